@@ -1,0 +1,184 @@
+"""Tile packs: the `.npz` exchange format for synthetic and user data (see DESIGN.md, "Tile pack").
+
+A pack is validated whenever it crosses a boundary (load, save, user input). Errors name the file and
+the array, what was expected and what was found.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from xbench.errors import XbenchInputError
+
+DEFAULT_BANDS = ("blue", "green", "red", "nir", "swir1", "swir2")
+
+
+@dataclass
+class TilePack:
+    """Tiles, labels, planted-structure masks and (optionally) structure-free twins.
+
+    images: float32 (N, C, H, W) surface reflectance in [0, 1].
+    labels: int64 (N,) class index into ``class_names`` (possibly noisy).
+    masks: bool (N, K, H, W), one plane per structure type named in ``mask_names``;
+        a pixel is True when the type's sub-pixel coverage there is above zero.
+    twins: optional float32 (N, C, H, W), each tile with every planted structure removed (same noise).
+    clean_labels: optional int64 (N,), labels before label noise.
+    cue: optional bool (N,), whether the spurious cue was applied to the tile.
+    coverage: optional float32 (N, K, H, W) sub-pixel area fraction per structure type.
+    meta: free JSON-serialisable information (recipe, seeds, label rule text...).
+    """
+
+    images: np.ndarray
+    labels: np.ndarray
+    class_names: list[str]
+    band_names: list[str]
+    masks: np.ndarray
+    mask_names: list[str]
+    twins: np.ndarray | None = None
+    clean_labels: np.ndarray | None = None
+    cue: np.ndarray | None = None
+    coverage: np.ndarray | None = None
+    meta: dict[str, Any] = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return int(self.images.shape[0])
+
+    @property
+    def n_classes(self) -> int:
+        return len(self.class_names)
+
+    def subset(self, index: np.ndarray | slice) -> TilePack:
+        """The same pack restricted to some tiles (views where numpy allows)."""
+
+        def pick(a: np.ndarray | None) -> np.ndarray | None:
+            return None if a is None else a[index]
+
+        return TilePack(
+            images=self.images[index], labels=self.labels[index], class_names=list(self.class_names),
+            band_names=list(self.band_names), masks=self.masks[index], mask_names=list(self.mask_names),
+            twins=pick(self.twins), clean_labels=pick(self.clean_labels), cue=pick(self.cue),
+            coverage=pick(self.coverage), meta=dict(self.meta),
+        )
+
+    def type_mask(self, names: list[str] | tuple[str, ...]) -> np.ndarray:
+        """Union (N, H, W) of the planes of the given structure types (absent types add nothing)."""
+        out = np.zeros((len(self),) + self.images.shape[2:], dtype=bool)
+        for name in names:
+            if name in self.mask_names:
+                out |= self.masks[:, self.mask_names.index(name)]
+        return out
+
+
+def _check(cond: bool, where: str, problem: str, expected: str, found: Any) -> None:
+    if not cond:
+        raise XbenchInputError(where, problem, expected=expected, found=found)
+
+
+def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
+    """Check every array of a pack against the contract; returns the pack or raises XbenchInputError."""
+    img = pack.images
+    _check(isinstance(img, np.ndarray) and img.ndim == 4, f"{source}: array 'images'", "wrong shape",
+           "4-d array (N, C, H, W)", getattr(img, "shape", type(img).__name__))
+    n, c, h, w = img.shape
+    _check(img.dtype == np.float32, f"{source}: array 'images'", "wrong dtype", "float32", str(img.dtype))
+    _check(n > 0, f"{source}: array 'images'", "no tiles", "N >= 1", n)
+    finite = np.isfinite(img)
+    if not finite.all():
+        bad = int(np.argwhere(~finite)[0][0])
+        raise XbenchInputError(f"{source}: array 'images'", f"non-finite values (NaN or inf), first in tile {bad}")
+    lo, hi = float(img.min()), float(img.max())
+    _check(lo >= 0.0 and hi <= 1.0, f"{source}: array 'images'", "reflectance out of range",
+           "values in [0, 1]", f"min {lo:.4g}, max {hi:.4g}")
+    lab = pack.labels
+    _check(isinstance(lab, np.ndarray) and lab.shape == (n,), f"{source}: array 'labels'", "wrong shape",
+           f"({n},)", getattr(lab, "shape", None))
+    _check(np.issubdtype(lab.dtype, np.integer), f"{source}: array 'labels'", "wrong dtype", "int64",
+           str(lab.dtype))
+    k = len(pack.class_names)
+    _check(k >= 2, f"{source}: array 'class_names'", "too few classes", ">= 2 names", k)
+    if lab.size and (lab.min() < 0 or lab.max() >= k):
+        raise XbenchInputError(f"{source}: array 'labels'", "label outside the classes",
+                               expected=f"integers in [0, {k - 1}]", found=f"{int(lab.min())}..{int(lab.max())}")
+    _check(len(pack.band_names) == c, f"{source}: array 'band_names'", "length differs from the band axis",
+           f"{c} names", len(pack.band_names))
+    m = pack.masks
+    _check(isinstance(m, np.ndarray) and m.ndim == 4 and m.shape[0] == n and m.shape[2:] == (h, w),
+           f"{source}: array 'masks'", "wrong shape", f"({n}, K, {h}, {w})", getattr(m, "shape", None))
+    _check(m.dtype == np.bool_, f"{source}: array 'masks'", "masks must be boolean", "bool", str(m.dtype))
+    _check(len(pack.mask_names) == m.shape[1], f"{source}: array 'mask_names'",
+           "length differs from the masks' type axis", f"{m.shape[1]} names", len(pack.mask_names))
+    for name, arr in (("twins", pack.twins), ("coverage", pack.coverage)):
+        if arr is None:
+            continue
+        want = img.shape if name == "twins" else m.shape
+        _check(arr.shape == want, f"{source}: array '{name}'", "wrong shape", str(want), arr.shape)
+        _check(arr.dtype == np.float32, f"{source}: array '{name}'", "wrong dtype", "float32", str(arr.dtype))
+        _check(bool(np.isfinite(arr).all()), f"{source}: array '{name}'", "non-finite values", "finite", "NaN/inf")
+    for name, arr in (("clean_labels", pack.clean_labels), ("cue", pack.cue)):
+        if arr is not None:
+            _check(arr.shape == (n,), f"{source}: array '{name}'", "wrong shape", f"({n},)", arr.shape)
+    pack.labels = lab.astype(np.int64, copy=False)
+    return pack
+
+
+def save_pack(pack: TilePack, path: str | Path) -> Path:
+    """Validate and write a pack atomically (write to a temporary file, then rename)."""
+    path = Path(path)
+    validate_pack(pack, str(path))
+    arrays: dict[str, np.ndarray] = {
+        "images": pack.images, "labels": pack.labels.astype(np.int64),
+        "class_names": np.array(pack.class_names), "band_names": np.array(pack.band_names),
+        "masks": pack.masks, "mask_names": np.array(pack.mask_names),
+        "meta_json": np.array(json.dumps(pack.meta, sort_keys=True)),
+    }
+    for name in ("twins", "clean_labels", "cue", "coverage"):
+        if getattr(pack, name) is not None:
+            arrays[name] = getattr(pack, name)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp.npz")
+    os.close(fd)
+    try:
+        np.savez_compressed(tmp, **arrays)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return path
+
+
+REQUIRED_ARRAYS = ("images", "labels", "class_names", "band_names", "masks", "mask_names")
+
+
+def load_pack(path: str | Path) -> TilePack:
+    """Read and validate a tile pack; errors name the file and the array."""
+    path = Path(path)
+    if not path.is_file():
+        raise XbenchInputError(str(path), "tile pack not found")
+    try:
+        data = np.load(path, allow_pickle=False)
+    except Exception as exc:  # zip or npy format errors from numpy
+        raise XbenchInputError(str(path), f"not a readable .npz tile pack ({exc})") from None
+    with data:
+        missing = [k for k in REQUIRED_ARRAYS if k not in data.files]
+        if missing:
+            raise XbenchInputError(str(path), f"missing array(s) {', '.join(missing)}",
+                                   expected=", ".join(REQUIRED_ARRAYS), found=sorted(data.files))
+        meta = json.loads(str(data["meta_json"])) if "meta_json" in data.files else {}
+        pack = TilePack(
+            images=data["images"], labels=data["labels"],
+            class_names=[str(s) for s in data["class_names"]], band_names=[str(s) for s in data["band_names"]],
+            masks=data["masks"], mask_names=[str(s) for s in data["mask_names"]],
+            twins=data["twins"] if "twins" in data.files else None,
+            clean_labels=data["clean_labels"] if "clean_labels" in data.files else None,
+            cue=data["cue"] if "cue" in data.files else None,
+            coverage=data["coverage"] if "coverage" in data.files else None,
+            meta=meta,
+        )
+    return validate_pack(pack, str(path))
