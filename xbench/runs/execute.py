@@ -1,0 +1,293 @@
+"""Work done for one cell: prepare (data, model, truth) and then explain and score.
+
+Preparation is shared by every cell of one (model, seed) and kept in a per-process cache, so that the
+local executor prepares once and each dask worker prepares at most once per (model, seed). Models come
+from the training cache; the runner trains them on the client before cells are dispatched.
+"""
+
+from __future__ import annotations
+
+import time
+import traceback
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import torch
+
+from xbench.runs.grid import Cell
+from xbench.runs.store import CONCEPT_COLUMNS, CURVE_COLUMNS, RECORD_COLUMNS
+
+# One thread everywhere inside cells: results must not depend on how many threads a worker has.
+CELL_THREADS = 1
+
+
+@dataclass
+class Prepared:
+    """What every cell of one (model, seed) shares."""
+
+    task: Any
+    data: Any
+    trained: Any
+    seed: int
+    explain_index: np.ndarray  # indices into the test split
+    images: np.ndarray
+    targets: np.ndarray
+    twins: np.ndarray | None
+    masks: np.ndarray
+    mask_names: list[str]
+    planted: np.ndarray
+    reliance: Any
+    fit_images: np.ndarray
+    fit_labels: np.ndarray
+    fit_masks: np.ndarray
+    concept_sets: dict[str, np.ndarray] | None
+
+
+_TASK_CACHE: dict[str, tuple[Any, Any]] = {}
+_PREP_CACHE: dict[tuple[str, str, int], Prepared] = {}
+_CONCEPT_CACHE: dict[str, dict[str, np.ndarray]] = {}
+
+
+def task_and_data(task_path: str) -> tuple[Any, Any]:
+    """The task and its tile packs, built once per process (deterministic from the task's data seed)."""
+    from xbench.tasks import build_task_data, load_task
+
+    task = load_task(task_path)
+    key = f"{task.path}:{task.file_hash}"
+    if key not in _TASK_CACHE:
+        _TASK_CACHE[key] = (task, build_task_data(task))
+    return _TASK_CACHE[key]
+
+
+def model_spec(task: Any, name: str) -> Any:
+    return next(m for m in task.models if m.name == name)
+
+
+def train_or_load(task_path: str, model_name: str, seed: int) -> Any:
+    from xbench.models import train_model
+
+    task, data = task_and_data(task_path)
+    return train_model(task, data, model_spec(task, model_name), seed)
+
+
+def choose_explain_tiles(task: Any, labels: np.ndarray, count: int) -> np.ndarray:
+    """The first `count` test tiles whose class is made by planted structures (so localization is defined)."""
+    positive = [c for c, types in task.class_driving_types.items() if types]
+    index = np.flatnonzero(np.isin(labels, positive))
+    return index[:count]
+
+
+def concept_sets_for(task: Any) -> dict[str, np.ndarray]:
+    from xbench.explainers.concept_sets import make_concept_sets
+    from xbench.scenes import HUMAN_TYPES, LOOKALIKE_TYPES
+
+    key = f"{task.path}:{task.file_hash}"
+    if key not in _CONCEPT_CACHE:
+        run = task.run
+        types = [t for t in (*HUMAN_TYPES, *LOOKALIKE_TYPES)]
+        _CONCEPT_CACHE[key] = make_concept_sets(
+            task.data.recipe, task.data.size, types, int(run["concept_set_size"]), int(run.get("random_sets", 10)),
+            int(task.data.seed) + 7919,
+        )
+    return _CONCEPT_CACHE[key]
+
+
+def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = False) -> Prepared:
+    from xbench.truth import compute_reliance
+
+    task, data = task_and_data(task_path)
+    key = (f"{task.path}:{task.file_hash}", model_name, int(seed))
+    if key in _PREP_CACHE:
+        prep = _PREP_CACHE[key]
+        if need_concepts and prep.concept_sets is None:
+            prep.concept_sets = concept_sets_for(task)
+        return prep
+    torch.set_num_threads(CELL_THREADS)
+    trained = train_or_load(task_path, model_name, seed)
+    test = data.test
+    index = choose_explain_tiles(task, test.labels, int(task.run["explain_tiles"]))
+    targets = test.labels[index].astype(np.int64)
+    sub = test.subset(index)
+    scenes = [data.test_scenes[i] for i in index]
+    reliance = compute_reliance(trained.handle, scenes, targets, seed=int(seed))
+    planted = np.zeros((len(index),) + sub.images.shape[2:], dtype=bool)
+    for row, cls in enumerate(targets):
+        planted[row] = _union(sub, row, task.class_driving_types.get(int(cls), []))
+    # Fitting set for activation-clusters: correctly classified training tiles.
+    train = data.train
+    n_fit = int(task.run["fit_tiles"])
+    pred = trained.handle.predict(train.images[: 4 * n_fit])
+    correct = np.flatnonzero(pred == train.labels[: 4 * n_fit])[:n_fit]
+    prep = Prepared(
+        task=task, data=data, trained=trained, seed=int(seed), explain_index=index, images=sub.images,
+        targets=targets, twins=sub.twins, masks=sub.masks, mask_names=list(sub.mask_names), planted=planted,
+        reliance=reliance, fit_images=train.images[correct], fit_labels=train.labels[correct],
+        fit_masks=train.masks[correct], concept_sets=concept_sets_for(task) if need_concepts else None,
+    )
+    _PREP_CACHE[key] = prep
+    return prep
+
+
+def _union(pack: Any, row: int, types: list[str]) -> np.ndarray:
+    out = np.zeros(pack.masks.shape[2:], dtype=bool)
+    for name in types:
+        if name in pack.mask_names:
+            out |= pack.masks[row, pack.mask_names.index(name)]
+    return out
+
+
+def explain_context(prep: Prepared, cell: Cell) -> Any:
+    from xbench.explainers import ExplainContext
+
+    task = prep.task
+    return ExplainContext(
+        seed=int(cell.seed), batch_size=int(task.run["batch_size"]), twins=prep.twins, masks=prep.masks,
+        mask_names=prep.mask_names, driving_types=dict(task.class_driving_types),
+        class_names=list(task.class_names), fit_images=prep.fit_images, fit_labels=prep.fit_labels,
+        fit_masks=prep.fit_masks, concept_sets=prep.concept_sets,
+    )
+
+
+def type_groups(prep: Prepared) -> tuple[dict[str, float], list[str], list[str], list[str]]:
+    """Interventional importance per type, and the relied-on, look-alike and unused types."""
+    table = prep.reliance.type_table
+    importance = {str(k): float(v) for k, v in zip(table["kind"], table["mean_drop"], strict=True) if k != "cue"}
+    relied = [t for t in prep.reliance.relied_types() if t != "cue"]
+    lookalikes = [t for t in prep.task.lookalike_types if t in prep.mask_names]
+    unused = [t for t in prep.mask_names if t not in relied and t not in lookalikes]
+    return importance, relied, lookalikes, unused
+
+
+def compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict],
+                 run_id: str) -> dict[str, Any]:
+    """Explain and score one cell; never raises: a failure comes back as a failed result."""
+    started = time.perf_counter()
+    try:
+        return _compute_cell(task_path, cell, metric_keys, metric_settings, run_id, started)
+    except Exception as exc:  # recorded and reported; the rest of the grid goes on
+        return {"status": "failed", "meta": {
+            "cell": cell.to_dict(), "error": f"{type(exc).__name__}: {exc}",
+            "traceback": traceback.format_exc(limit=8), "seconds": time.perf_counter() - started}}
+
+
+def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict],
+                  run_id: str, started: float) -> dict[str, Any]:
+    from xbench.explainers import explain, get_explainer
+    from xbench.metrics import MetricInputs, compute_metric
+
+    torch.set_num_threads(CELL_THREADS)
+    needs = set(get_explainer(cell.explainer).needs)
+    prep = prepare(task_path, cell.model, cell.seed, need_concepts="concept-sets" in needs)
+    handle = prep.trained.handle
+    context = explain_context(prep, cell)
+    explanation = explain(cell.explainer, handle, prep.images, prep.targets, context=context,
+                          **cell.explainer_settings)
+    t_explained = time.perf_counter()
+
+    def explain_fn(model: Any, images: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        # Re-runs for sanity and stability metrics. Per-tile context (twins, masks) is only valid when the
+        # images are the same tiles in the same order; otherwise it is left out.
+        same_tiles = images.shape == prep.images.shape
+        ctx = context if same_tiles else explain_context_without_tiles(context)
+        return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
+
+    importance, relied, lookalikes, unused = type_groups(prep)
+    inputs = MetricInputs(
+        attributions=explanation.attributions, images=prep.images, targets=prep.targets, model=handle,
+        planted=prep.planted, verified=prep.reliance.verified_masks, evidence=prep.reliance.evidence,
+        twins=prep.twins, type_masks=prep.masks, mask_names=prep.mask_names, explain_fn=explain_fn,
+        concept_report=explanation.concepts, type_importance=importance, relied_types=relied,
+        lookalike_types=lookalikes, unused_types=unused, cost=explanation.cost, seed=int(cell.seed),
+        batch_size=int(prep.task.run["batch_size"]),
+    )
+    rows: list[tuple] = []
+    curves: list[dict[str, Any]] = []
+    notes: dict[str, str] = {}
+    metric_seconds: dict[str, float] = {}
+    tiles = prep.explain_index.astype(np.int64)
+    for key in metric_keys:
+        t0 = time.perf_counter()
+        for result in compute_metric(key, inputs, **metric_settings.get(key, {})):
+            tag = f"{key}/{result.truth}"
+            if result.skipped:
+                notes[tag] = f"skipped: {result.skipped}"
+                continue
+            values = np.asarray(result.values, dtype=np.float64)
+            if result.per_tile:
+                rows.extend((run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth,
+                             int(t), float(v)) for t, v in zip(tiles, values, strict=True))
+            else:
+                rows.append((run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth, -1,
+                             float(values.reshape(-1)[0])))
+            if result.reasons:
+                notes[tag] = "; ".join(sorted({str(r) for r in result.reasons.values()}))[:500]
+            curves.extend(curve_rows(cell, key, result))
+        metric_seconds[key] = time.perf_counter() - t0
+    records = pd.DataFrame(rows, columns=RECORD_COLUMNS)
+    concepts = concept_rows(cell, explanation.concepts)
+    gallery_n = min(int(prep.task.run["gallery_tiles"]), len(tiles))
+    result: dict[str, Any] = {
+        "status": "ok",
+        "records": records,
+        "curves": pd.DataFrame(curves, columns=CURVE_COLUMNS),
+        "concepts": pd.DataFrame(concepts, columns=CONCEPT_COLUMNS),
+        "gallery": {"map": explanation.attributions[:gallery_n].astype(np.float32)},
+        "meta": {
+            "cell": cell.to_dict(), "error": None, "notes": notes,
+            "seconds": time.perf_counter() - started, "explain_seconds": t_explained - started,
+            "metric_seconds": metric_seconds,
+            "cost": {"forward_calls": int(explanation.cost.forward_calls),
+                     "backward_calls": int(explanation.cost.backward_calls),
+                     "seconds": float(explanation.cost.seconds), "tiles": int(len(tiles))},
+        },
+    }
+    report = explanation.concepts
+    if report is not None and getattr(report, "cluster_maps", None) is not None:
+        result["clusters"] = {
+            "cluster_maps": np.asarray(report.cluster_maps)[:gallery_n].astype(np.int64),
+            "score_changes": np.asarray(report.score_changes, dtype=np.float64),
+        }
+    return result
+
+
+def explain_context_without_tiles(context: Any) -> Any:
+    from dataclasses import replace
+
+    return replace(context, twins=None, masks=None)
+
+
+def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:
+    """Mean curves (with sd and n) for the figures: deletion/insertion per step, randomization per layer."""
+    out: list[dict[str, Any]] = []
+    curves = getattr(result, "curves", None) or {}
+    labels = getattr(result, "curve_labels", None) or {}
+    baseline = str((getattr(result, "settings", None) or {}).get("baseline", ""))
+    for name, arr in curves.items():
+        arr = np.asarray(arr, dtype=np.float64)
+        if arr.ndim == 1:
+            arr = arr[None, :]
+        n = np.sum(np.isfinite(arr), axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.nanmean(arr, axis=0) if arr.size else arr
+            sd = np.nanstd(arr, axis=0, ddof=1) if arr.shape[0] > 1 else np.zeros(arr.shape[1])
+        steps = arr.shape[1]
+        names = list(labels.get(name, [])) if isinstance(labels, dict) else list(labels)
+        for step in range(steps):
+            label = names[step] if step < len(names) else ""
+            x = step / max(steps - 1, 1) if name in ("deletion", "insertion") else float(step)
+            out.append({"task": cell.task, "model": cell.model, "seed": cell.seed, "explainer": cell.explainer,
+                        "curve": name, "baseline": baseline, "step": step, "x": float(x), "label": label,
+                        "mean": float(mean[step]), "sd": float(sd[step]), "n": int(n[step])})
+    return out
+
+
+def concept_rows(cell: Cell, report: Any) -> list[dict[str, Any]]:
+    if report is None:
+        return []
+    out = []
+    for row in report.rows:
+        out.append({"task": cell.task, "model": cell.model, "seed": cell.seed, "explainer": cell.explainer}
+                   | {k: row.get(k) for k in CONCEPT_COLUMNS[4:]})
+    return out

@@ -1,0 +1,105 @@
+"""Grid expansion: a task file becomes cells (model x seed x explainer), each with a content hash."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+from xbench import __version__
+from xbench.errors import XbenchInputError
+
+
+def content_hash(payload: Any, length: int = 16) -> str:
+    """A short, stable hash of JSON-serialisable data (keys sorted)."""
+    text = json.dumps(payload, sort_keys=True, default=str, separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:length]
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One unit of work: explain the chosen test tiles with one explainer and score every metric."""
+
+    cell_id: str
+    task: str
+    model: str
+    seed: int
+    explainer: str
+    explainer_settings: dict = field(default_factory=dict, hash=False, compare=False)
+
+    def describe(self) -> str:
+        return f"{self.task}/{self.model}/seed {self.seed}/{self.explainer}"
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass
+class Grid:
+    cells: list[Cell]
+    skipped: list[dict[str, str]]  # (model, explainer, reason) that cannot run, e.g. gradients on a black box
+
+
+def validate_task_keys(task: Any) -> None:
+    """Explainer and metric keys of a task must exist in the registries (checked before any work)."""
+    from xbench.explainers import get_explainer
+    from xbench.metrics import get_metric
+
+    where = f"{task.path}"
+    for key in task.explainers:
+        try:
+            spec = get_explainer(key)
+        except XbenchInputError as exc:
+            raise XbenchInputError(f"{where}: [explainers] keys", exc.problem, expected=exc.expected,
+                                   found=key) from None
+        known = set(spec.defaults)
+        for name in task.explainer_settings.get(key, {}):
+            if name not in known:
+                raise XbenchInputError(f"{where}: [explainers.settings.{key}] {name}", "unknown setting",
+                                       expected=", ".join(sorted(known)) or "no settings", found=name)
+    for key in task.metrics:
+        try:
+            get_metric(key)
+        except XbenchInputError as exc:
+            raise XbenchInputError(f"{where}: [metrics] keys", exc.problem, expected=exc.expected,
+                                   found=key) from None
+
+
+def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[str] | None = None,
+                seeds: list[int] | None = None) -> Grid:
+    """Cells of a task, in a fixed order (model, seed, explainer). Filters narrow the task's own lists."""
+    from xbench.explainers import get_explainer
+
+    validate_task_keys(task)
+    keys = list(task.explainers) if explainers is None else list(explainers)
+    unknown = [k for k in keys if k not in task.explainers]
+    for k in unknown:
+        get_explainer(k)  # raises for keys that do not exist anywhere
+    model_specs = [m for m in task.models if models is None or m.name in models]
+    if models is not None and len(model_specs) != len(set(models)):
+        names = [m.name for m in task.models]
+        raise XbenchInputError(f"{task.path}: [[models]]", "model not in the task", expected=", ".join(names),
+                               found=sorted(set(models) - set(names)))
+    run_seeds = list(task.seeds) if seeds is None else list(seeds)
+    base = {
+        "xbench": __version__, "task_hash": task.file_hash, "run": task.run,
+        "metrics": {k: task.metric_settings.get(k, {}) for k in task.metrics},
+    }
+    cells: list[Cell] = []
+    skipped: list[dict[str, str]] = []
+    for spec in model_specs:
+        black_box = spec.kind == "forest"
+        for seed in run_seeds:
+            for key in keys:
+                needs = set(get_explainer(key).needs)
+                if black_box and needs & {"gradients", "layer"}:
+                    if seed == run_seeds[0]:
+                        skipped.append({"model": spec.name, "explainer": key,
+                                        "reason": "needs gradients or a layer; the model is a black box"})
+                    continue
+                settings = dict(task.explainer_settings.get(key, {}))
+                payload = base | {"model": spec.name, "model_kind": spec.kind, "model_params": spec.params,
+                                  "seed": seed, "explainer": key, "settings": settings}
+                cells.append(Cell(content_hash(payload), task.name, spec.name, int(seed), key, settings))
+    return Grid(cells, skipped)
