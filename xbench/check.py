@@ -125,7 +125,9 @@ def _line_of(text: str | None, key: str, occurrence_after: int = 0) -> int | Non
     """Best-effort line number of ``key = ...`` in a TOML text (first one at or after a line)."""
     if not text:
         return None
-    pattern = re.compile(rf"^\s*(\"{re.escape(key)}\"|'{re.escape(key)}'|{re.escape(key)})\s*=")
+    k = re.escape(key)
+    name = rf"(\"{k}\"|'{k}'|{k})"
+    pattern = re.compile(rf"^\s*({name}\s*=|\[\[?\s*{name}\s*[\].])")  # key = ... or a [key] header
     for number, line in enumerate(text.splitlines(), start=1):
         if number >= occurrence_after and pattern.match(line):
             return number
@@ -436,6 +438,11 @@ def _group_mean(values: pd.DataFrame) -> tuple[float, int]:
     return float(per_seed.mean()), int(len(finite))
 
 
+def _is_on(value: Any) -> bool:
+    """A rule value that asks for a check: a threshold (0 included) or true; not None or false."""
+    return value is not None and value is not False
+
+
 def _worsening(diff: float, hib: bool | None) -> float:
     """How much worse current is than baseline (negative = better); any change when no direction."""
     if hib is None:
@@ -461,7 +468,7 @@ def _paired_test(cur: pd.DataFrame, base: pd.DataFrame, hib: bool | None, tolera
     n = len(joined)
     if n == 0:
         return None, 0, "no paired finite values"
-    d = (joined["cur"] - joined["base"]).to_numpy()
+    d = (joined["cur"] - joined["base"]).to_numpy(dtype=float, copy=True)
     d[np.abs(d) <= tolerance] = 0.0
     if not np.any(d):
         return 1.0, n, "identical per-tile values"
@@ -539,7 +546,7 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
 
         for check, key_name in (("at-least", "at_least"), ("at-most", "at_most")):
             limit = rule.get(key_name)
-            if limit is None or limit is False:
+            if not _is_on(limit):
                 continue
             if vrange is not None and not (vrange[0] <= limit <= vrange[1]):
                 raise XbenchInputError(f"{spec.source}, gate '{key_name}' for metric '{group['metric']}'",
@@ -554,7 +561,7 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
                 rel = "below" if check == "at-least" else "above"
                 row(check, "fail", f"mean {_fmt(c_mean)} is {rel} {_fmt(limit)}", **kw)
 
-        relative_checks = [c for c, k in RELATIVE_CHECKS if rule.get(k)]
+        relative_checks = [c for c, k in RELATIVE_CHECKS if _is_on(rule.get(k))]
         if not has_base:
             if base is not None:  # without any baseline, only absolute gates apply
                 for check in relative_checks:
@@ -572,7 +579,7 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
         both_undefined = c_n == 0 and not np.isfinite(b_mean)
         for check, key_name in (("max-drop", "max_drop"), ("max-relative-drop", "max_relative_drop")):
             limit = rule.get(key_name)
-            if limit is None or limit is False:
+            if not _is_on(limit):
                 continue
             kw = dict(limit=limit, baseline=b_mean, current=c_mean, difference=diff)
             if both_undefined:

@@ -45,7 +45,7 @@ class BandNorm(nn.Module):
 
 
 class PlainCNN(nn.Module):
-    """conv-relu x4 with max-pools after the first two, global average pooling and a linear head (GAP + linear = CAM form)."""
+    """conv-relu x4 (max-pools after the first two), global average pooling, linear head (the CAM form)."""
 
     def __init__(self, n_bands: int, n_classes: int, width: int = 32, dropout: float = 0.1):
         super().__init__()
@@ -103,7 +103,7 @@ class BasicBlock(nn.Module):
 class TinyResNet(nn.Module):
     """stem -> block1 (w) -> block2 (2w, /2) -> block3 (2w, /2) -> 1x1 mix conv -> GAP -> linear."""
 
-    def __init__(self, n_bands: int, n_classes: int, width: int = 24, dropout: float = 0.1):
+    def __init__(self, n_bands: int, n_classes: int, width: int = 16, dropout: float = 0.1):
         super().__init__()
         w = int(width)
         self.norm = BandNorm(n_bands)
@@ -131,42 +131,49 @@ class TinyResNet(nn.Module):
 
 
 class ConvUnit(nn.Module):
-    """Two 3x3 conv + batch-norm + ReLU layers (the U-Net unit)."""
+    """One or two 3x3 conv + batch-norm + ReLU layers (the U-Net unit; one layer at full resolution to
+    keep CPU cost low)."""
 
-    def __init__(self, c_in: int, c_out: int):
+    def __init__(self, c_in: int, c_out: int, double: bool = True):
         super().__init__()
         self.conv1 = nn.Conv2d(c_in, c_out, 3, padding=1, bias=False)
         self.bn1 = nn.BatchNorm2d(c_out)
         self.relu1 = nn.ReLU()
-        self.conv2 = nn.Conv2d(c_out, c_out, 3, padding=1, bias=False)
-        self.bn2 = nn.BatchNorm2d(c_out)
-        self.relu2 = nn.ReLU()
+        self.double = double
+        if double:
+            self.conv2 = nn.Conv2d(c_out, c_out, 3, padding=1, bias=False)
+            self.bn2 = nn.BatchNorm2d(c_out)
+            self.relu2 = nn.ReLU()
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = self.relu1(self.bn1(self.conv1(x)))
-        return self.relu2(self.bn2(self.conv2(x)))
+        if self.double:
+            x = self.relu2(self.bn2(self.conv2(x)))
+        return x
 
 
 class EvidenceUNet(nn.Module):
     """A two-level U-Net producing ``n_maps`` evidence maps at input resolution, then a small head.
 
-    The head reads each evidence map's spatial mean and maximum (the maximum lets a thin road or a small
-    clearing count as much as a large one), so class evidence has to pass through the maps.
+    Encoder: full resolution -> 1/2 -> 1/4 (bottom); decoder: nearest upsampling with skip
+    concatenations back to full resolution; a 1x1 conv makes the non-negative evidence maps. The head
+    reads each map's spatial mean and maximum (the maximum lets a thin road or a small clearing count as
+    much as a large one), so all class evidence passes through the maps.
     """
 
-    def __init__(self, n_bands: int, n_classes: int, width: int = 16, n_maps: int = 4, dropout: float = 0.1):
+    def __init__(self, n_bands: int, n_classes: int, width: int = 8, n_maps: int = 4, dropout: float = 0.1):
         super().__init__()
         w = int(width)
         self.norm = BandNorm(n_bands)
-        self.enc1 = ConvUnit(n_bands, w)
+        self.enc1 = ConvUnit(n_bands, w, double=False)
         self.down1 = nn.MaxPool2d(2)
         self.enc2 = ConvUnit(w, 2 * w)
         self.down2 = nn.MaxPool2d(2)
         self.bottom = ConvUnit(2 * w, 4 * w)
         self.up2 = nn.Upsample(scale_factor=2, mode="nearest")
-        self.dec2 = ConvUnit(4 * w + 2 * w, 2 * w)
+        self.dec2 = ConvUnit(4 * w + 2 * w, 2 * w, double=False)
         self.up1 = nn.Upsample(scale_factor=2, mode="nearest")
-        self.dec1 = ConvUnit(2 * w + w, w)
+        self.dec1 = ConvUnit(2 * w + w, w, double=False)
         self.evidence = nn.Conv2d(w, int(n_maps), 1)
         self.evidence_relu = nn.ReLU()
         self.flatten = nn.Flatten()

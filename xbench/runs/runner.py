@@ -178,7 +178,7 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
         write_npz(out / "artifacts" / f"gallery__{task.name}__{name}__{seed}.npz", arrays)
 
     data = task.data
-    counts = {"train": int(data.train), "val": int(data.val), "test": int(data.test)}
+    counts = {k: int(v) for k, v in data.counts.items()}
     manifest = {
         "run_id": run_id, "task": task.name, "task_file": str(task.path), "task_hash": task.file_hash,
         "description": task.description, "xbench_version": __version__, "versions": _versions(),
@@ -187,9 +187,9 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
                                                  "python": platform.python_version()},
         "seeds": sorted({c.seed for c in grid.cells}),
         "data": {"recipe": data.recipe, "size": int(data.size), "counts": counts,
-                 "label_rule": task.label_rule_text if hasattr(task, "label_rule_text") else None,
+                 "label_rule": describe_label_rule(data.labels),
                  "class_names": list(task.class_names), "label_noise": float(data.label_noise),
-                 "cue": task.cue_text if hasattr(task, "cue_text") else None,
+                 "cue": describe_cue(data), "presence": data.presence,
                  "driving_types": {task.class_names[k]: v for k, v in task.class_driving_types.items()},
                  "lookalike_types": list(task.lookalike_types)},
         "models": model_rows,
@@ -199,3 +199,26 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
         "skipped": grid.skipped, "cells": cells_meta,
     }
     write_json(out / "manifest.json", manifest)
+
+
+def describe_label_rule(labels: dict[str, Any]) -> str:
+    """One sentence for the methods text, from the task's declarative label rule."""
+    rules = labels.get("rule", []) or []
+    parts = []
+    for rule in rules:
+        stat = rule.get("stat", "coverage")
+        above = rule.get("above", 0)
+        what = f"{rule.get('type')} {stat} above {above:g}" if stat == "coverage" else \
+            f"more than {above:g} {rule.get('type')} instance(s)"
+        parts.append(f"'{rule.get('class')}' when {what}")
+    default = labels.get("default", (labels.get("classes") or ["?"])[0])
+    return ("first matching rule: " + "; ".join(parts) + f"; otherwise '{default}'") if parts else \
+        f"all tiles '{default}'"
+
+
+def describe_cue(data: Any) -> str | None:
+    if not data.cue:
+        return None
+    cue = ", ".join(f"{k}={v}" for k, v in sorted(data.cue.items()))
+    rates = ", ".join(f"{k} {v:g}" for k, v in sorted(data.cue_rates.items()))
+    return f"spurious cue ({cue}) with the label-correlated rate per split: {rates}"

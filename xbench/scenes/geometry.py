@@ -6,6 +6,9 @@ computed on ``SUBROWS`` horizontal scanlines per pixel row, exactly in x on each
 lengths are integrated analytically), then averaged and quantised to multiples of ``1 / QUANTUM``.
 Everything is vectorised with numpy: one call per shape, no Python loop over pixels.
 
+Pieces of one shape (a road and its branches) are accumulated together; where they overlap inside a
+pixel the sum is clipped to 1, a slight overestimate at junction pixels only.
+
 A coverage raster is returned as :class:`Patch` (a crop with its offset) because most shapes are small.
 """
 
@@ -37,7 +40,7 @@ class Patch:
 
     def full(self, height: int, width: int) -> np.ndarray:
         out = np.zeros((height, width), dtype=np.float32)
-        out[self.r0:self.r1, self.c0:self.c1] = self.cov
+        out[self.r0 : self.r1, self.c0 : self.c1] = self.cov
         return out
 
     def area(self) -> float:
@@ -47,7 +50,7 @@ class Patch:
 def shoelace_area(poly: np.ndarray) -> float:
     """Signed area of a polygon (positive when counter-clockwise in x-right, y-up axes)."""
     x, y = poly[:, 0], poly[:, 1]
-    return 0.5 * float(np.dot(x, np.roll(y, -1)) - np.dot(np.roll(x, -1), y))
+    return 0.5 * float(np.dot(x[:-1], y[1:]) - np.dot(x[1:], y[:-1]) + x[-1] * y[0] - x[0] * y[-1])
 
 
 def _bbox(xmin: float, xmax: float, ymin: float, ymax: float, height: int, width: int):
@@ -60,40 +63,44 @@ def _bbox(xmin: float, xmax: float, ymin: float, ymax: float, height: int, width
     return r0, r1, c0, c1
 
 
-def _finish(acc: np.ndarray, r0: int, c0: int, nrow: int, ncol: int) -> Patch | None:
-    """Integrate the step accumulator along x, clip to [0, 1], average sub-rows, quantise."""
-    sub = np.cumsum(acc, axis=1)[:, :ncol]
-    np.clip(sub, 0.0, 1.0, out=sub)
-    cov = sub.reshape(nrow, SUBROWS, ncol).mean(axis=1)
-    cov = np.rint(cov * QUANTUM) / QUANTUM
+def _finish(acc: np.ndarray, r0: int, c0: int, ncol: int) -> Patch | None:
+    """Integrate the step accumulator along x, clip to [0, 1], quantise."""
+    cov = np.cumsum(acc, axis=1)[:, :ncol]
+    np.minimum(cov, 1.0, out=cov)
+    np.maximum(cov, 0.0, out=cov)
+    cov *= QUANTUM
+    np.rint(cov, out=cov)
+    cov *= 1.0 / QUANTUM
     if not cov.any():
         return None
     return Patch(r0, c0, cov.astype(np.float32))
 
 
-def _accumulate(rows: np.ndarray, x: np.ndarray, d: np.ndarray, nsub: int, ncol: int) -> np.ndarray:
-    """Step accumulator: each crossing (sub-row, x, direction) adds a unit step of height d at x.
+def _accumulate(rows: np.ndarray, x: np.ndarray, d: np.ndarray, nrow: int, ncol: int) -> np.ndarray:
+    """Step accumulator (nrow, ncol + 2): each crossing (sub-row, x, direction) adds a step of d at x.
 
-    The per-pixel integral of the step over pixel j is d * clip(j + 1 - x, 0, 1); written as a difference
-    array: d * (j + 1 - x) at j = floor(x) and d * (x - j) at j + 1, so a cumulative sum along x
-    gives the exact covered length of every pixel on the scanline.
+    The integral of a unit step at x over pixel j is clip(j + 1 - x, 0, 1); as a difference array that
+    is (j + 1 - x) at j = floor(x) and (x - j) at j + 1, so a cumulative sum along x gives the exact
+    covered length of every pixel on the scanline. Sub-rows are averaged into their pixel row before
+    the sum (both operations are linear), so the coverage of overlapping pieces adds up and is clipped.
     """
-    xl = np.clip(x, 0.0, float(ncol))
-    j = np.minimum(np.floor(xl).astype(np.int64), ncol)
+    xl = np.minimum(np.maximum(x, 0.0), float(ncol))
+    j = xl.astype(np.int64)
     frac = xl - j
     width = ncol + 2
-    base = rows * width + j
-    size = nsub * width
-    acc = np.bincount(base, weights=d * (1.0 - frac), minlength=size)
-    acc += np.bincount(base + 1, weights=d * frac, minlength=size)
-    return acc.reshape(nsub, width)
+    base = (rows // SUBROWS) * width + j
+    size = nrow * width
+    w = d * (1.0 / SUBROWS)
+    acc = np.bincount(base, weights=w - w * frac, minlength=size)
+    acc += np.bincount(base + 1, weights=w * frac, minlength=size)
+    return acc.reshape(nrow, width)
 
 
 def polygons_coverage(polys: list[np.ndarray], height: int, width: int) -> Patch | None:
     """Coverage of the union of polygons (each (M, 2) of x, y vertices); None when nothing is inside.
 
-    Each polygon is oriented so its inside has winding +1; overlapping polygons add up and the per-
-    scanline coverage is clipped to 1 (exact for disjoint or non-overlapping pieces on a scanline).
+    Each polygon is oriented so its inside has winding +1; overlapping polygons add up and the pixel
+    coverage is clipped to 1 (exact for a single simple polygon and for disjoint pieces).
     """
     polys = [np.asarray(p, dtype=np.float64) for p in polys if len(p) >= 3]
     if not polys:
@@ -109,7 +116,7 @@ def polygons_coverage(polys: list[np.ndarray], height: int, width: int) -> Patch
     for p in polys:
         sign = 1.0 if shoelace_area(p) >= 0 else -1.0
         a_list.append(p)
-        b_list.append(np.roll(p, -1, axis=0))
+        b_list.append(np.concatenate([p[1:], p[:1]]))
         s_list.append(np.full(len(p), sign))
     a = np.concatenate(a_list)
     b = np.concatenate(b_list)
@@ -118,8 +125,8 @@ def polygons_coverage(polys: list[np.ndarray], height: int, width: int) -> Patch
     x1, y1 = b[:, 0] - c0, (b[:, 1] - r0) * SUBROWS - 0.5
     # sub-row k sits at y = k (in these scaled units); an edge takes rows with min <= k < max
     ya, yb = np.minimum(y0, y1), np.maximum(y0, y1)
-    ia = np.clip(np.ceil(ya), 0, nsub).astype(np.int64)
-    ib = np.clip(np.ceil(yb), 0, nsub).astype(np.int64)
+    ia = np.minimum(np.maximum(np.ceil(ya), 0), nsub).astype(np.int64)
+    ib = np.minimum(np.maximum(np.ceil(yb), 0), nsub).astype(np.int64)
     n = ib - ia
     keep = n > 0
     if not keep.any():
@@ -133,8 +140,8 @@ def polygons_coverage(polys: list[np.ndarray], height: int, width: int) -> Patch
     x = x0[edge] + t * (x1[edge] - x0[edge])
     # with positive signed area (x right, y down), left edges go up (dy < 0): winding +1 to their right
     d = -np.sign(y1 - y0)[edge] * orient[edge]
-    acc = _accumulate(rows, x, d, nsub, ncol)
-    return _finish(acc, r0, c0, nrow, ncol)
+    acc = _accumulate(rows, x, d, nrow, ncol)
+    return _finish(acc, r0, c0, ncol)
 
 
 def disc_coverage(cx: float, cy: float, r: float, height: int, width: int) -> Patch | None:
@@ -155,8 +162,8 @@ def disc_coverage(cx: float, cy: float, r: float, height: int, width: int) -> Pa
     h = np.sqrt(h2[inside])
     xs = np.concatenate([cx - h - c0, cx + h - c0])
     ds = np.concatenate([np.ones_like(h), -np.ones_like(h)])
-    acc = _accumulate(np.concatenate([rows, rows]), xs, ds, nsub, ncol)
-    return _finish(acc, r0, c0, nrow, ncol)
+    acc = _accumulate(np.concatenate([rows, rows]), xs, ds, nrow, ncol)
+    return _finish(acc, r0, c0, ncol)
 
 
 def union_patches(patches: list[Patch | None], height: int, width: int) -> Patch | None:
@@ -172,7 +179,7 @@ def union_patches(patches: list[Patch | None], height: int, width: int) -> Patch
     c1 = max(p.c1 for p in ps)
     keep = np.ones((r1 - r0, c1 - c0), dtype=np.float32)
     for p in ps:
-        keep[p.r0 - r0:p.r1 - r0, p.c0 - c0:p.c1 - c0] *= 1.0 - p.cov
+        keep[p.r0 - r0 : p.r1 - r0, p.c0 - c0 : p.c1 - c0] *= 1.0 - p.cov
     cov = np.rint((1.0 - keep) * QUANTUM) / QUANTUM
     return Patch(r0, c0, cov.astype(np.float32))
 
@@ -224,11 +231,18 @@ def smooth_periodic(rng: np.random.Generator, n: int, smooth: int) -> np.ndarray
     co = rng.normal(size=smooth) * amp
     t = np.linspace(0, 2 * np.pi, n, endpoint=False)
     out = (co[None, :] * np.cos(k[None, :] * t[:, None] + ph[None, :])).sum(axis=1)
-    return out / max(np.sqrt(0.5 * np.sum(amp ** 2)), 1e-9)
+    return out / max(np.sqrt(0.5 * np.sum(amp**2)), 1e-9)
 
 
-def blob(rng: np.random.Generator, cx: float, cy: float, radius: float, n_vertices: int,
-         roughness: float, smooth: int) -> np.ndarray:
+def blob(
+    rng: np.random.Generator,
+    cx: float,
+    cy: float,
+    radius: float,
+    n_vertices: int,
+    roughness: float,
+    smooth: int,
+) -> np.ndarray:
     """A star-shaped irregular polygon around (cx, cy): radius * exp(roughness * smooth noise)."""
     t = np.linspace(0, 2 * np.pi, n_vertices, endpoint=False)
     t = t + rng.uniform(-0.3, 0.3, n_vertices) * (2 * np.pi / n_vertices)
@@ -237,26 +251,38 @@ def blob(rng: np.random.Generator, cx: float, cy: float, radius: float, n_vertic
     return np.stack([cx + rad * np.cos(t), cy + rad * np.sin(t)], axis=1)
 
 
-def walk(rng: np.random.Generator, start: np.ndarray, heading: float, steps: int, step: float,
-         curvature: float, persistence: float = 0.85) -> np.ndarray:
-    """A smooth random walk: the turn rate is an AR(1) process with sd ``curvature`` rad per pixel."""
-    noise = rng.normal(0.0, 1.0, steps)
-    sd = curvature * step * np.sqrt(1 - persistence ** 2)
-    turn = np.empty(steps)
-    acc = 0.0
-    # AR(1) filter by scipy-free recursion on a short vector (steps <= a few hundred)
-    for i in range(steps):
-        acc = persistence * acc + sd * noise[i]
-        turn[i] = acc
-    head = heading + np.cumsum(turn)
+def walk(
+    rng: np.random.Generator,
+    start: np.ndarray,
+    heading: float,
+    steps: int,
+    step: float,
+    wander: float,
+    wavelength: tuple[float, float] = (25.0, 80.0),
+) -> np.ndarray:
+    """A smooth path: heading = base + wander * (sum of three random sinusoids in arc length).
+
+    ``wander`` is the standard deviation of the heading around its base direction (radians); with
+    wander below about 0.5 the path never turns back on itself.
+    """
+    s = np.arange(steps) * step
+    lam = rng.uniform(wavelength[0], wavelength[1], 3)
+    ph = rng.uniform(0, 2 * np.pi, 3)
+    a = rng.normal(size=3)
+    dev = (a[None, :] * np.sin(2 * np.pi * s[:, None] / lam[None, :] + ph[None, :])).sum(axis=1)
+    head = heading + wander * dev / np.sqrt(1.5)
     d = np.stack([np.cos(head), np.sin(head)], axis=1) * step
     return np.concatenate([start[None, :], start[None, :] + np.cumsum(d, axis=0)])
 
 
 def clip_path(path: np.ndarray, size: int, margin: float) -> np.ndarray:
     """Cut a path at its first vertex beyond the tile (+ margin), keeping that vertex."""
-    out = (path[:, 0] < -margin) | (path[:, 0] > size + margin) | (path[:, 1] < -margin) | (
-        path[:, 1] > size + margin)
+    out = (
+        (path[:, 0] < -margin)
+        | (path[:, 0] > size + margin)
+        | (path[:, 1] < -margin)
+        | (path[:, 1] > size + margin)
+    )
     out[0] = False
     idx = np.flatnonzero(out)
     return path if idx.size == 0 else path[: idx[0] + 1]

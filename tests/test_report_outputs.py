@@ -1,0 +1,621 @@
+"""The report end to end on small fabricated run folders (fixed seed): files, figures, tables, text.
+
+The run folders are made up (numbers drawn with a fixed seed) to exercise the report's mechanics; the
+statistics in them are checked against scipy.stats computed independently from the same records.
+"""
+
+from __future__ import annotations
+
+import html.parser
+import json
+import re
+import shutil
+import subprocess
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from xbench.errors import XbenchInputError
+from xbench.report import write_report
+from xbench.report.stats import holm
+
+EXPLAINERS = ["gradient", "integrated-gradients", "grad-cam", "activation-clusters", "random", "oracle"]
+QUALITY = {
+    "gradient": 0.45,
+    "integrated-gradients": 0.55,
+    "grad-cam": 0.6,
+    "activation-clusters": 0.5,
+    "random": 0.2,
+    "oracle": 0.95,
+}
+BANDS = ["blue", "green", "red", "nir", "swir1", "swir2"]
+CLASSES = ["forest", "logged"]
+
+
+def make_run(
+    folder: Path,
+    task: str,
+    models: list[str],
+    seeds: list[int],
+    n_tiles: int = 24,
+    rng_seed: int = 0,
+    artifacts: bool = True,
+    extras: bool = True,
+) -> Path:
+    """A run folder following the result-store contract of DEVELOPERS.md, with made-up numbers."""
+    rng = np.random.default_rng(rng_seed)
+    folder.mkdir(parents=True, exist_ok=True)
+    rows = []
+    model_shift = {m: 0.05 * i for i, m in enumerate(models)}
+    tile_effect = rng.normal(0, 0.08, n_tiles)  # tiles differ in difficulty, shared by explainers
+    for model in models:
+        for seed in seeds:
+            for e in EXPLAINERS:
+                q = QUALITY[e] - model_shift[model]
+                for truth, off in (("planted", 0.0), ("verified", -0.05)):
+                    v = np.clip(q + off + tile_effect + rng.normal(0, 0.06, n_tiles), 0, 1)
+                    v[rng.random(n_tiles) < 0.05] = np.nan  # undefined values happen
+                    rows += [
+                        (f"run-{task}", task, model, seed, e, "mass-accuracy", truth, t, float(x))
+                        for t, x in enumerate(v)
+                    ]
+                pg = (rng.random(n_tiles) < q).astype(float)
+                rows += [
+                    (f"run-{task}", task, model, seed, e, "pointing-game", "planted", t, float(x))
+                    for t, x in enumerate(pg)
+                ]
+                dl = np.clip(0.6 - 0.5 * q + rng.normal(0, 0.05, n_tiles), 0, 1)
+                rows += [
+                    (f"run-{task}", task, model, seed, e, "deletion-auc", "none", t, float(x))
+                    for t, x in enumerate(dl)
+                ]
+                sp = np.clip(0.3 + 0.4 * rng.random() + rng.normal(0, 0.05, n_tiles), 0, 1)
+                rows += [
+                    (f"run-{task}", task, model, seed, e, "sparseness", "none", t, float(x))
+                    for t, x in enumerate(sp)
+                ]
+                rows.append(
+                    (
+                        f"run-{task}",
+                        task,
+                        model,
+                        seed,
+                        e,
+                        "seconds",
+                        "none",
+                        -1,
+                        float(0.001 * (1 + 50 * (e == "integrated-gradients")) * (1 + 0.1 * rng.random())),
+                    )
+                )
+    records = pd.DataFrame(
+        rows, columns=["run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value"]
+    )
+    records.to_parquet(folder / "records.parquet", index=False)
+    records.to_csv(folder / "records.csv", index=False)
+    cells = [
+        {
+            "cell_id": f"{m}-{s}-{e}",
+            "model": m,
+            "seed": s,
+            "explainer": e,
+            "status": "ok",
+            "seconds": 1.5,
+            "error": None,
+            "cost": {
+                "forward_calls": 10,
+                "backward_calls": 10,
+                "seconds": 0.02 * (1 + 20 * (e == "integrated-gradients")),
+                "tiles": n_tiles,
+            },
+        }
+        for m in models
+        for s in seeds
+        for e in EXPLAINERS
+    ]
+    manifest = {
+        "run_id": f"run-{task}",
+        "task": task,
+        "task_hash": "abc123def456",
+        "xbench_version": "0.1.0",
+        "versions": {"numpy": np.__version__},
+        "git_commit": "0123456789abcdef",
+        "machine": {"python": "3.11"},
+        "seeds": seeds,
+        "data": {
+            "recipe": "orrin-vale",
+            "size": 32,
+            "counts": {"train": 800, "val": 200, "test": 200},
+            "label_rule": "logged if a road or a clearing covers at least 2 % of the tile",
+            "class_names": CLASSES,
+            "label_noise": 0.02,
+            "cue": None,
+            "driving_types": {"forest": [], "logged": ["road", "clearing"]},
+            "lookalike_types": ["river"],
+        },
+        "models": [
+            {
+                "name": m,
+                "kind": "resnet" if m == "resnet" else "cnn",
+                "seed": s,
+                "accuracy": {"train": 0.97, "val": 0.93, "test": 0.92 - 0.01 * s, "balanced_test": 0.91},
+                "params": 12345,
+            }
+            for m in models
+            for s in seeds
+        ],
+        "explainers": {e: ({"steps": 32} if e == "integrated-gradients" else {}) for e in EXPLAINERS},
+        "metrics": {
+            "mass-accuracy": {},
+            "pointing-game": {},
+            "deletion-auc": {"baseline": "blur"},
+            "sparseness": {},
+            "seconds": {},
+        },
+        "explain_tiles": n_tiles,
+        "cells": cells,
+    }
+    (folder / "manifest.json").write_text(json.dumps(manifest, indent=2))
+    curve_rows = []
+    for model in models:
+        for seed in seeds:
+            for e in EXPLAINERS:
+                q = QUALITY[e]
+                for step in range(11):
+                    x = step / 10
+                    curve_rows.append(
+                        (
+                            task,
+                            model,
+                            seed,
+                            e,
+                            "deletion",
+                            "blur",
+                            step,
+                            x,
+                            "",
+                            float(0.9 * np.exp(-4 * q * x)),
+                            0.1,
+                            n_tiles,
+                        )
+                    )
+                    curve_rows.append(
+                        (
+                            task,
+                            model,
+                            seed,
+                            e,
+                            "insertion",
+                            "blur",
+                            step,
+                            x,
+                            "",
+                            float(0.9 * (1 - np.exp(-4 * q * x))),
+                            0.1,
+                            n_tiles,
+                        )
+                    )
+                for step, layer in enumerate(["fc", "conv3", "conv2", "conv1"]):
+                    decay = 0.0 if e == "oracle" else 0.25 * q
+                    curve_rows.append(
+                        (
+                            task,
+                            model,
+                            seed,
+                            e,
+                            "randomization-spearman",
+                            "",
+                            step,
+                            float(step),
+                            layer,
+                            float(max(0.0, 1 - decay * (step + 1))),
+                            0.05,
+                            n_tiles,
+                        )
+                    )
+                    curve_rows.append(
+                        (
+                            task,
+                            model,
+                            seed,
+                            e,
+                            "randomization-ssim",
+                            "",
+                            step,
+                            float(step),
+                            layer,
+                            float(max(0.0, 0.9 - decay * (step + 1))),
+                            0.05,
+                            n_tiles,
+                        )
+                    )
+    if not extras:  # records and manifest only
+        return folder
+    pd.DataFrame(
+        curve_rows,
+        columns=[
+            "task",
+            "model",
+            "seed",
+            "explainer",
+            "curve",
+            "baseline",
+            "step",
+            "x",
+            "label",
+            "mean",
+            "sd",
+            "n",
+        ],
+    ).to_parquet(folder / "curves.parquet")
+    rel = [
+        (task, m, s, k, d + rng.normal(0, 0.01), d - 0.03, d + 0.03, n_tiles)
+        for m in models
+        for s in seeds
+        for k, d in (("road", 0.3), ("clearing", 0.2), ("river", 0.0), ("cue", 0.05))
+    ]
+    pd.DataFrame(
+        rel, columns=["task", "model", "seed", "kind", "mean_drop", "ci_low", "ci_high", "n"]
+    ).to_parquet(folder / "reliance.parquet")
+    pd.DataFrame(
+        [
+            (
+                task,
+                models[0],
+                seeds[0],
+                "activation-clusters",
+                "cluster 0",
+                "logged",
+                0.3,
+                0.1,
+                0.01,
+                "road",
+                0.4,
+                0.8,
+            )
+        ],
+        columns=[
+            "task",
+            "model",
+            "seed",
+            "explainer",
+            "concept",
+            "class_name",
+            "score",
+            "spread",
+            "p_value",
+            "matched_type",
+            "iou",
+            "purity",
+        ],
+    ).to_parquet(folder / "concepts.parquet")
+    if artifacts:
+        art = folder / "artifacts"
+        art.mkdir(exist_ok=True)
+        g, h = 3, 32
+        yy, xx = np.mgrid[:h, :h]
+        planted = np.stack([(np.abs(yy - xx - 4 * i) < 2) for i in range(g)])
+        images = np.empty((g, 6, h, h), np.float32)
+        veg = np.array([0.03, 0.06, 0.04, 0.40, 0.20, 0.10])
+        road = np.array([0.10, 0.11, 0.12, 0.13, 0.14, 0.14])
+        for i in range(g):
+            images[i] = np.where(planted[i][None], road[:, None, None], veg[:, None, None])
+        images += rng.normal(0, 0.005, images.shape).astype(np.float32)
+        for model in models[:1]:
+            seed = seeds[0]
+            maps = {
+                f"map__{e}": (planted * QUALITY[e] + rng.random((g, h, h)) * (1 - QUALITY[e])).astype(
+                    np.float32
+                )
+                for e in EXPLAINERS
+            }
+            maps["map__gradient"] = maps["map__gradient"] - 0.3  # a signed map
+            np.savez_compressed(
+                art / f"gallery__{task}__{model}__{seed}.npz",
+                images=images,
+                band_names=np.array(BANDS),
+                planted=planted,
+                evidence=(planted * 0.8).astype(np.float32),
+                tiles=np.arange(g),
+                targets=np.ones(g, np.int64),
+                class_names=np.array(CLASSES),
+                **maps,
+            )
+        np.savez_compressed(
+            art / f"clusters__{task}__{models[0]}__{seeds[0]}.npz",
+            images=images,
+            cluster_maps=(planted[:, ::4, ::4].astype(np.int64) + (xx[::4, ::4] > 16)),
+            score_changes=rng.normal(0, 0.1, (3, n_tiles, 2)) - np.array([0, 0, 0.2])[:, None, None],
+            class_names=np.array(CLASSES),
+        )
+    return folder
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory) -> list[Path]:
+    base = tmp_path_factory.mktemp("runs")
+    # Three task x model blocks; the second folder holds records and a manifest only (fewer figures: fast).
+    return [
+        make_run(base / "vale", "orrin-roads", ["cnn", "resnet"], [0, 1], rng_seed=1),
+        make_run(base / "bog", "orrin-clearcuts", ["cnn"], [0, 1], rng_seed=2, artifacts=False, extras=False),
+    ]
+
+
+@pytest.fixture(scope="module")
+def report(runs, tmp_path_factory):
+    out = tmp_path_factory.mktemp("report")
+    return write_report(runs, out, n_resamples=500)
+
+
+def test_write_report_returns_summary_and_prints_nothing(runs, tmp_path, capsys):
+    s = write_report(runs[:1], tmp_path / "r", formats="md", n_resamples=200, figures=False)
+    captured = capsys.readouterr()
+    assert captured.out == "" and captured.err == ""
+    assert (tmp_path / "r" / "tables.md").is_file() and not (tmp_path / "r" / "report.html").exists()
+    assert all(p.is_file() for p in s.paths)
+
+
+def test_every_file_exists_and_figures_are_png_and_pdf(report):
+    out = report.out_dir
+    for name in (
+        "tables.md",
+        "tables.tex",
+        "report.html",
+        "methods.md",
+        "refs.bib",
+        "summary.csv",
+        "ranks.csv",
+    ):
+        assert (out / name).stat().st_size > 0, name
+    for p in report.paths:
+        assert p.is_file() and p.stat().st_size > 0, p
+    pngs = sorted((out / "figures").glob("*.png"))
+    assert len(pngs) == report.n_figures
+    for png in pngs:
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        pdf = png.with_suffix(".pdf")
+        assert pdf.read_bytes()[:5] == b"%PDF-"
+    stems = {p.stem.split("__")[0] for p in pngs}
+    assert stems == {"gallery", "curves", "randomization", "cd", "clusters", "reliance", "cost_quality"}
+
+
+def test_figures_use_the_agg_canvas():
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from xbench.report.figures import new_figure
+
+    assert isinstance(new_figure(2, 2).canvas, FigureCanvasAgg)
+
+
+def test_html_page_is_well_formed_and_self_contained(report):
+    text = (report.out_dir / "report.html").read_text(encoding="utf-8")
+    ET.fromstring(text.split("\n", 1)[1])  # XML parser: every element closed, attributes quoted
+
+    class Balance(html.parser.HTMLParser):  # html.parser: open/close tags balance
+        VOID = {"meta", "img", "br", "hr", "link", "input"}
+
+        def __init__(self):
+            super().__init__()
+            self.stack: list[str] = []
+
+        def handle_starttag(self, tag, attrs):
+            if tag not in self.VOID:
+                self.stack.append(tag)
+
+        def handle_startendtag(self, tag, attrs):  # <meta .../>: opens and closes at once
+            pass
+
+        def handle_endtag(self, tag):
+            assert self.stack and self.stack[-1] == tag, (tag, self.stack[-5:])
+            self.stack.pop()
+
+    p = Balance()
+    p.feed(text)
+    p.close()
+    assert p.stack == []
+    assert text.count("data:image/png;base64,") == report.n_figures
+    assert 'src="http' not in text and "<link" not in text
+
+
+def _tex_engine() -> str | None:
+    for name in ("pdflatex", "lualatex", "xelatex"):
+        if shutil.which(name):
+            return name
+    return None
+
+
+@pytest.mark.skipif(_tex_engine() is None, reason="no TeX engine installed")
+def test_latex_tables_compile(report, tmp_path):
+    doc = tmp_path / "doc.tex"
+    shutil.copy(report.out_dir / "tables.tex", tmp_path / "tables.tex")
+    doc.write_text(
+        "\\documentclass{article}\n\\usepackage{booktabs}\n\\usepackage{graphicx}\n"
+        "\\begin{document}\n\\input{tables.tex}\n\\end{document}\n"
+    )
+    res = subprocess.run(
+        [_tex_engine(), "-interaction=nonstopmode", "-halt-on-error", doc.name],
+        cwd=tmp_path,
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert res.returncode == 0, res.stdout[-2000:]
+    assert (tmp_path / "doc.pdf").stat().st_size > 0
+
+
+def test_latex_table_structure(report):
+    tex = (report.out_dir / "tables.tex").read_text()
+    assert tex.count("\\begin{table}") == tex.count("\\end{table}") == report.n_tables
+    assert tex.count("\\toprule") == tex.count("\\bottomrule") == report.n_tables
+    assert "\\textbf{" in tex and "Wilcoxon signed-rank" in tex and "BCa bootstrap" in tex
+    assert "2 model seeds (0, 1)" in tex
+
+
+def _seed_averaged(records: pd.DataFrame, task, model, metric, truth) -> pd.DataFrame:
+    r = records[
+        (records.task == task)
+        & (records.model == model)
+        & (records.metric == metric)
+        & (records.truth == truth)
+        & (records.tile >= 0)
+    ]
+    return r.groupby(["tile", "explainer"])["value"].mean().unstack()
+
+
+def test_table_numbers_equal_scipy_on_the_records(runs, report):
+    records = pd.concat([pd.read_parquet(r / "records.parquet") for r in runs])
+    summary = pd.read_csv(report.out_dir / "summary.csv")
+    task, model, metric, truth = "orrin-roads", "cnn", "mass-accuracy", "planted"
+    wide = _seed_averaged(records, task, model, metric, truth)
+    block = summary[
+        (summary.task == task)
+        & (summary.model == model)
+        & (summary.metric == metric)
+        & (summary.truth == truth)
+    ].set_index("explainer")
+    best = wide.mean().idxmax()
+    assert best == "oracle" and bool(block.loc[best, "best"])
+    ps = {}
+    for e in wide.columns:
+        v = wide[e].dropna().to_numpy()
+        assert block.loc[e, "mean"] == pytest.approx(v.mean(), rel=1e-6)
+        # Reference: scipy.stats.bootstrap, BCa, same resamples and seed as the report used.
+        ci = stats.bootstrap((v,), np.mean, n_resamples=500, method="BCa", rng=np.random.default_rng(0))
+        assert block.loc[e, "ci_low"] == pytest.approx(ci.confidence_interval.low, rel=1e-5)
+        assert block.loc[e, "ci_high"] == pytest.approx(ci.confidence_interval.high, rel=1e-5)
+        if e != best:
+            pair = wide[[best, e]].dropna()
+            # Reference: scipy.stats.wilcoxon on the seed-averaged per-tile values, paired by tile.
+            ps[e] = stats.wilcoxon(pair[best], pair[e]).pvalue
+            assert block.loc[e, "p_value"] == pytest.approx(ps[e], rel=1e-9)
+    names = list(ps)
+    adj = holm([ps[e] for e in names])
+    for e, a in zip(names, adj, strict=True):
+        assert block.loc[e, "p_holm"] == pytest.approx(a, rel=1e-9)
+    assert block.loc["random", "mark"] == "***"
+
+
+def test_rank_statistics_equal_scipy_friedman(runs, report):
+    records = pd.concat([pd.read_parquet(r / "records.parquet") for r in runs])
+    ranks = pd.read_csv(report.out_dir / "ranks.csv")
+    r = ranks[(ranks.metric == "deletion-auc")]
+    means = []
+    for task, model in (("orrin-roads", "cnn"), ("orrin-roads", "resnet"), ("orrin-clearcuts", "cnn")):
+        means.append(_seed_averaged(records, task, model, "deletion-auc", "none").mean()[EXPLAINERS])
+    scores = np.array(means)
+    # Reference: scipy.stats.friedmanchisquare over the 3 task x model blocks.
+    ref = stats.friedmanchisquare(*scores.T)
+    assert r["friedman_chi2"].iloc[0] == pytest.approx(ref.statistic, rel=1e-5)
+    assert r["friedman_p"].iloc[0] == pytest.approx(ref.pvalue, rel=1e-4)
+    # Average ranks (lower deletion AUC is better, rank 1 = best), scipy.stats.rankdata.
+    avg = stats.rankdata(scores, axis=1).mean(axis=0)
+    got = r.set_index("explainer").loc[EXPLAINERS, "avg_rank"].to_numpy()
+    np.testing.assert_allclose(got, avg, rtol=1e-5)
+    k, n = len(EXPLAINERS), 3
+    q = stats.studentized_range.ppf(0.95, k, np.inf) / np.sqrt(2)
+    assert r["cd"].iloc[0] == pytest.approx(q * np.sqrt(k * (k + 1) / (6 * n)), rel=1e-4)
+
+
+def test_markdown_tables_mark_best_and_significance(report):
+    md = (report.out_dir / "tables.md").read_text()
+    assert "| Explainer |" in md and "**" in md
+    oracle = next(line for line in md.splitlines() if line.startswith("| oracle |"))
+    assert oracle.split("|")[2].strip().startswith("**")  # oracle is best at mass-accuracy (planted)
+    rnd = next(line for line in md.splitlines() if line.startswith("| random |"))
+    assert "\\*\\*\\*" in rnd
+    assert "per seed†" in md  # 'seconds' has one value per seed
+
+
+def test_methods_text_and_bibliography(report):
+    text = (report.out_dir / "methods.md").read_text()
+    bib = (report.out_dir / "refs.bib").read_text()
+    for expected in (
+        "800 training, 200 validation and 200 test tiles",
+        "orrin-vale",
+        "24 test tiles",
+        "steps = 32",
+        "Holm",
+        "Friedman",
+        "BCa",
+        "500 resamples",
+    ):
+        assert expected in text, expected
+    cited = set(re.findall(r"@([a-z0-9]+)", text))
+    entries = set(re.findall(r"@\w+\{([a-z0-9]+),", bib))
+    assert cited == entries
+    for key in (
+        "demsar2006statistical",
+        "wilcoxon1945individual",
+        "holm1979simple",
+        "efron1993introduction",
+        "simonyan2014deep",
+        "sundararajan2017axiomatic",
+        "selvaraju2017gradcam",
+        "ghorbani2019towards",
+        "arras2022ground",
+        "petsiuk2018rise",
+        "chalasani2020concise",
+        "he2016deep",
+    ):
+        assert key in entries, key
+    assert "Demsar" in bib and "JMLR" in bib and "{81}" in bib  # details as REFERENCES.md gives them
+
+
+def test_missing_optional_files_are_logged_not_fatal(tmp_path):
+    run = make_run(tmp_path / "run", "orrin-roads", ["cnn"], [0], artifacts=False)
+    for name in (
+        "curves.parquet",
+        "reliance.parquet",
+        "concepts.parquet",
+        "records.parquet",
+        "manifest.json",
+    ):
+        (run / name).unlink()
+    s = write_report([run], tmp_path / "out", n_resamples=200)
+    notes = "\n".join(s.warnings)
+    for name in ("curves.parquet", "reliance.parquet", "manifest.json", "artifacts"):
+        assert name in notes, name
+    assert (tmp_path / "out" / "tables.md").is_file()
+    assert s.n_figures == 0 or all(p.stat().st_size > 0 for p in s.paths)
+
+
+def test_bad_input_raises_clear_errors(tmp_path):
+    with pytest.raises(XbenchInputError, match="not found"):
+        write_report([tmp_path / "nowhere"], tmp_path / "out")
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(XbenchInputError, match="records"):
+        write_report([tmp_path / "empty"], tmp_path / "out")
+    run = make_run(tmp_path / "run", "t", ["cnn"], [0], n_tiles=6, artifacts=False)
+    with pytest.raises(XbenchInputError, match="unknown format"):
+        write_report([run], tmp_path / "out", formats="md,docx")
+    pd.read_parquet(run / "records.parquet").drop(columns=["truth"]).to_parquet(run / "records.parquet")
+    with pytest.raises(XbenchInputError, match="records.parquet: records lack columns"):
+        write_report([run], tmp_path / "out")
+
+
+def test_cli_report_prints_paths(runs, tmp_path, capsys):
+    from xbench.cli import main
+
+    assert (
+        main(
+            [
+                "report",
+                str(runs[0]),
+                "--out",
+                str(tmp_path / "r"),
+                "--format",
+                "md,html",
+                "--resamples",
+                "200",
+                "--no-figures",
+            ]
+        )
+        == 0
+    )
+    out = capsys.readouterr().out
+    assert "tables.md" in out and "report.html" in out and "methods.md" in out
+    assert main(["report", str(tmp_path / "missing")]) == 2
+    assert "xbench report: error:" in capsys.readouterr().err

@@ -1,0 +1,264 @@
+"""``activation-clusters``: candidate concepts as Gaussian-mixture clusters of a layer's per-position
+activation vectors, each tested by replacing it inside the network (in the spirit of Ghorbani et al. 2019,
+with clusters found by EM, Dempster et al. 1977).
+
+Steps (any torch model whose chosen layer outputs a (N, K, h, w) map: plain conv stacks, residual and
+U-shaped networks alike, since only a forward hook on the named layer is used):
+
+1. Collect the layer's activation vectors at every position of the fitting set (``context.fit_images``;
+   correctly classified tiles), subsampled to ``max_positions``.
+2. If the layer is wider than ``pca_components`` channels, reduce with PCA (scikit-learn).
+3. Fit a Gaussian mixture by EM (scikit-learn ``GaussianMixture``); ``n_clusters`` is an integer or
+   ``"bic"`` (the k in ``cluster_range`` with the lowest BIC).
+4. Assign every position of every explained tile (and of the fitting set) to a cluster.
+5. For each tile and cluster, replace the cluster's activation vectors by a baseline (``fit-mean``: the
+   fitting set's mean activation vector; or ``zero``) inside a forward hook and record the drop of every
+   class score (``score``: probability by default, or logit).
+
+Outputs
+- attributions: for each tile, the cluster map with each position carrying the drop of the tile's target
+  score when its cluster is replaced, upsampled (bilinear) to the input size.
+- ConceptReport rows, one per (cluster, class) for the classes among the targets: ``score`` = mean drop
+  of that class's score over the tiles of that target class where the cluster occurs (positive = the
+  cluster supports the class), ``spread`` = its standard deviation, ``p_value`` = two-sided one-sample
+  t-test of the drops against 0 (scipy), ``matched_type`` = the planted type with the best IoU,
+  ``iou`` / ``purity`` against it. IoU = |cluster & type| / |cluster | type| and purity = |cluster & type|
+  / |cluster| over all pixels of the fitting set (``fit_masks``; else the explained tiles' ``masks``), the
+  cluster maps upsampled by nearest neighbour.
+- ``type_importance[t]``: mean target-score drop of the cluster best matched to t (over the tiles where it
+  occurs; 0 when no cluster reaches ``min_iou``); ``flagged[t]``: that drop is positive and significant
+  (one-sample t-test, Bonferroni over the types, level ``alpha``).
+- extras (also attributes of the report): ``cluster_maps`` int (N, h, w) of the explained tiles,
+  ``score_changes`` (n_clusters, N, n_classes) = score *drops* (original minus replaced), ``fit_cluster_maps``,
+  ``iou`` and ``purity`` (n_clusters, K), ``mask_names``, ``class_names``, ``n_clusters``, ``bic``, ``layer``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+from scipy import stats
+from sklearn.decomposition import PCA
+from sklearn.mixture import GaussianMixture
+
+from xbench.errors import XbenchInputError
+from xbench.explainers.base import (
+    ConceptReport,
+    LayerTap,
+    as_tensor,
+    batches,
+    check_choice,
+    check_float,
+    check_int,
+    layer_activations,
+    nearest_index_upsample,
+    upsample,
+)
+from xbench.explainers.registry import register_explainer
+
+CITE_CLUSTERS = ("Ghorbani, Wexler, Zou, Kim. Towards automatic concept-based explanations. NeurIPS 2019; "
+                 "Gaussian mixtures by EM: Dempster, Laird, Rubin. J. Royal Statistical Society B, 1977.")
+KEY = "activation-clusters"
+
+
+def _positions(acts: np.ndarray) -> np.ndarray:
+    """(N, K, h, w) -> (N*h*w, K) float64."""
+    n, k, h, w = acts.shape
+    return acts.transpose(0, 2, 3, 1).reshape(-1, k).astype(np.float64)
+
+
+def _fit_mixture(x: np.ndarray, n_clusters, cluster_range, covariance: str, seed: int
+                 ) -> tuple[GaussianMixture, dict[int, float]]:
+    if n_clusters == "bic":
+        lo, hi = cluster_range
+        candidates = range(lo, hi + 1)
+    else:
+        candidates = [int(n_clusters)]
+    best, best_bic, bics = None, np.inf, {}
+    for k in candidates:
+        if k > x.shape[0]:
+            break
+        gm = GaussianMixture(n_components=k, covariance_type=covariance, reg_covar=1e-4, n_init=1,
+                             max_iter=200, random_state=seed)
+        gm.fit(x)
+        bic = float(gm.bic(x))
+        bics[k] = bic
+        if best is None or bic < best_bic:
+            best, best_bic = gm, bic
+    if best is None:
+        raise XbenchInputError(f"explainer '{KEY}'", "too few activation positions to fit the mixture",
+                               expected=f"at least {min(candidates)} positions", found=x.shape[0])
+    return best, bics
+
+
+def _overlap(cluster_maps: np.ndarray, masks: np.ndarray, n_clusters: int) -> tuple[np.ndarray, np.ndarray]:
+    """IoU and purity (n_clusters, K) of each upsampled cluster region against each planted type."""
+    n, k_types, h, w = masks.shape
+    full = nearest_index_upsample(cluster_maps, (h, w))
+    m = masks.transpose(1, 0, 2, 3).reshape(k_types, -1)
+    type_area = m.sum(axis=1).astype(np.float64)
+    iou = np.zeros((n_clusters, k_types))
+    purity = np.zeros((n_clusters, k_types))
+    flat = full.reshape(-1)
+    for c in range(n_clusters):
+        region = flat == c
+        area = region.sum()
+        if area == 0:
+            continue
+        inter = (m & region[None]).sum(axis=1).astype(np.float64)
+        union = area + type_area - inter
+        iou[c] = np.divide(inter, union, out=np.zeros_like(inter), where=union > 0)
+        purity[c] = inter / area
+    return iou, purity
+
+
+def _ttest(d: np.ndarray) -> float | None:
+    """Two-sided one-sample t-test of d against 0 (scipy); None with fewer than 2 values."""
+    if d.size < 2:
+        return None
+    if np.ptp(d) == 0:
+        return 1.0 if d[0] == 0 else 0.0
+    return float(stats.ttest_1samp(d, 0.0).pvalue)
+
+
+@register_explainer(KEY, citation=CITE_CLUSTERS, needs={"layer", "fit-set"}, kind="concept",
+                    defaults={"layer": None, "n_clusters": "bic", "cluster_range": [2, 8],
+                              "pca_components": 8, "covariance": "full", "max_positions": 20000,
+                              "baseline": "fit-mean", "score": "probability", "alpha": 0.05,
+                              "min_iou": 0.1},
+                    description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
+                                "each replaced by a baseline inside the network; attribution = cluster "
+                                "maps weighted by the target-score drop; reports IoU/purity per type")
+def activation_clusters(model, images, targets, context, *, layer, n_clusters, cluster_range,
+                        pca_components, covariance, max_positions, baseline, score, alpha, min_iou):
+    if n_clusters != "bic":
+        n_clusters = check_int(KEY, "n_clusters", n_clusters, 1)
+    if (not isinstance(cluster_range, (list, tuple)) or len(cluster_range) != 2
+            or not all(isinstance(v, (int, np.integer)) for v in cluster_range)
+            or not 1 <= cluster_range[0] <= cluster_range[1]):
+        raise XbenchInputError(f"explainer '{KEY}': setting 'cluster_range'", "bad value",
+                               expected="[k_min, k_max] integers with 1 <= k_min <= k_max",
+                               found=cluster_range)
+    pca_components = check_int(KEY, "pca_components", pca_components, 1)
+    covariance = check_choice(KEY, "covariance", covariance, ("full", "diag", "tied", "spherical"))
+    max_positions = check_int(KEY, "max_positions", max_positions, 2)
+    baseline = check_choice(KEY, "baseline", baseline, ("fit-mean", "zero"))
+    score = check_choice(KEY, "score", score, ("probability", "logit"))
+    alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
+    min_iou = check_float(KEY, "min_iou", min_iou, 0.0, 1.0)
+    seed = int(context.seed)
+    bs = context.batch_size
+
+    # 1-3: fit the mixture on the fitting set's activation vectors
+    fit_acts = layer_activations(KEY, model, layer, context.fit_images, bs)
+    _, width, h, w = fit_acts.shape
+    fit_x = _positions(fit_acts)
+    rng = context.rng(stream=3)
+    sample = fit_x if fit_x.shape[0] <= max_positions else \
+        fit_x[np.sort(rng.choice(fit_x.shape[0], max_positions, replace=False))]
+    pca = None
+    if width > pca_components:
+        pca = PCA(n_components=pca_components, random_state=seed).fit(sample)
+
+    def project(x: np.ndarray) -> np.ndarray:
+        return pca.transform(x) if pca is not None else x
+
+    gm, bics = _fit_mixture(project(sample), n_clusters, tuple(cluster_range), covariance, seed)
+    k = int(gm.n_components)
+
+    # 4: assign positions
+    acts = layer_activations(KEY, model, layer, images, bs)
+    if acts.shape[1:] != fit_acts.shape[1:]:
+        raise XbenchInputError(f"explainer '{KEY}': layer '{layer}'", "feature map size differs between "
+                               "the fitting set and the explained tiles",
+                               expected=fit_acts.shape[1:], found=acts.shape[1:])
+    n = images.shape[0]
+    cluster_maps = gm.predict(project(_positions(acts))).reshape(n, h, w)
+    fit_maps = gm.predict(project(fit_x)).reshape(-1, h, w)
+    base_vec = fit_acts.mean(axis=(0, 2, 3)) if baseline == "fit-mean" else np.zeros(width, np.float32)
+    base_t = torch.from_numpy(base_vec.astype(np.float32))[None, :, None, None]
+
+    # 5: replace each cluster inside the network; record every class score's drop
+    drops = np.zeros((k, n, model.n_classes), dtype=np.float64)
+    current: dict[str, torch.Tensor | None] = {"mask": None}
+
+    def replace(out: torch.Tensor) -> torch.Tensor:
+        m = current["mask"]
+        if m is None:
+            return out
+        return torch.where(m[:, None], base_t.to(out.dtype), out)
+
+    def scores(logits: torch.Tensor) -> np.ndarray:
+        if score == "probability":
+            return torch.softmax(logits.double(), dim=1).numpy()
+        return logits.double().numpy()
+
+    with LayerTap(KEY, model, layer, mode="read", replace=replace) as t, torch.no_grad():
+        for sl in batches(n, bs):
+            x = as_tensor(images[sl])
+            current["mask"] = None
+            s0 = scores(t.forward(x))
+            maps = torch.from_numpy(cluster_maps[sl])
+            for c in range(k):
+                present = (cluster_maps[sl] == c).reshape(x.shape[0], -1).any(axis=1)
+                if not present.any():
+                    continue
+                rows = np.flatnonzero(present)
+                current["mask"] = (maps[rows] == c)
+                drops[c, np.arange(sl.start, sl.stop)[rows]] = s0[rows] - scores(t.forward(x[rows]))
+            current["mask"] = None
+
+    # attribution: each position carries its cluster's target-score drop
+    target_drop = drops[:, np.arange(n), targets]  # (k, n)
+    low = target_drop[cluster_maps, np.arange(n)[:, None, None]]  # (n, h, w)
+    attributions = upsample(low.astype(np.float32), images.shape[2:], "bilinear")
+
+    # overlap with planted types
+    names = list(context.mask_names) if context.mask_names is not None else []
+    if context.fit_masks is not None:
+        iou, purity = _overlap(fit_maps, np.asarray(context.fit_masks, bool), k)
+    elif context.masks is not None:
+        iou, purity = _overlap(cluster_maps, np.asarray(context.masks, bool), k)
+    else:
+        iou = purity = None
+        names = []
+
+    class_names = list(context.class_names) if context.class_names is not None else \
+        [str(i) for i in range(model.n_classes)]
+    present_all = np.stack([(cluster_maps == c).reshape(n, -1).any(axis=1) for c in range(k)])  # (k, n)
+    rows = []
+    for c in range(k):
+        best = int(np.argmax(iou[c])) if iou is not None and iou.shape[1] else None
+        matched = names[best] if best is not None and iou[c, best] > 0 else None
+        for cls in np.unique(targets):
+            sel = present_all[c] & (targets == cls)
+            d = drops[c, sel, cls]
+            rows.append({
+                "concept": f"cluster-{c}",
+                "class_name": class_names[int(cls)] if int(cls) < len(class_names) else str(int(cls)),
+                "score": float(d.mean()) if d.size else None,
+                "spread": float(d.std(ddof=1)) if d.size > 1 else None,
+                "p_value": _ttest(d),
+                "matched_type": matched,
+                "iou": float(iou[c, best]) if matched is not None else None,
+                "purity": float(purity[c, best]) if matched is not None else None,
+            })
+
+    importance: dict[str, float] = {}
+    flagged: dict[str, bool] = {}
+    for j, name in enumerate(names):
+        c = int(np.argmax(iou[:, j]))
+        if iou[c, j] < min_iou or iou[c, j] == 0:
+            importance[name], flagged[name] = 0.0, False
+            continue
+        d = target_drop[c, present_all[c]]
+        importance[name] = float(d.mean()) if d.size else 0.0
+        p = _ttest(d)
+        flagged[name] = bool(p is not None and p < alpha / max(len(names), 1) and d.mean() > 0)
+
+    report = ConceptReport(rows=rows, type_importance=importance, flagged=flagged, extras={
+        "cluster_maps": cluster_maps.astype(np.int64), "score_changes": drops.astype(np.float32),
+        "fit_cluster_maps": fit_maps.astype(np.int64), "iou": iou, "purity": purity,
+        "mask_names": names, "class_names": class_names, "n_clusters": k, "bic": bics, "layer": layer,
+        "score": score, "baseline_vector": base_vec.astype(np.float32)})
+    return attributions, report

@@ -1,0 +1,337 @@
+"""The metric registry: :class:`MetricInputs`, :class:`MetricResult`, ``register_metric``, ``compute_metric``.
+
+Every metric is a pure function on numpy arrays (in its family module) plus a small *runner* registered
+here with its metadata (definition, citation, range, direction, needs). The runner receives a
+:class:`MetricInputs` bundle, the truth kind it should score against, and validated settings, and returns
+one :class:`MetricResult`. ``compute_metric`` does everything around it:
+
+- validates the arrays' shapes (bad input raises :class:`~xbench.errors.XbenchInputError`),
+- validates settings (unknown ones raise, listing the known ones),
+- skips with a stated reason when a hard need (model, torch model, explainer re-runs, cost) is missing,
+- runs localization metrics once per truth kind (``planted`` and ``verified``),
+- and guarantees that every NaN value carries a reason (``reasons[tile]`` or ``reasons[-1]``).
+
+Undefined values are NaN with a recorded reason; a metric never returns a silent zero and never crashes
+on degenerate input (constant or all-NaN attributions, empty masks).
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from xbench.errors import XbenchInputError
+from xbench.models.base import ModelHandle
+
+TRUTH_KINDS = ("planted", "verified")
+FAMILIES = ("localization", "faithfulness", "sanity", "stability", "concentration", "concepts", "cost")
+
+# The vocabulary of needs shown by `xbench metrics`. Hard needs are checked before a runner is called;
+# the others are checked by the runner (they depend on settings or have alternatives).
+NEEDS_TEXT = {
+    "truth mask": "a planted mask or a model-verified evidence mask",
+    "model": "the model (torch module or black box) to score perturbed tiles",
+    "torch model": "a torch module (white box) whose layers can be re-initialised",
+    "twins": "structure-free counterfactual twins (for the default 'twin' baseline)",
+    "explainer re-runs": "the explainer re-run with the same settings on other images or models",
+    "type masks": "one mask per structure type (pixel methods)",
+    "concepts": "a concept report (concept methods) or type masks (pixel methods)",
+    "interventional importance": "per-type importance from the truth module's interventions",
+    "type roles": "which types the model relies on, which are look-alikes and which are unused",
+    "cost": "the explainer's recorded cost (model calls and seconds)",
+}
+HARD_NEEDS = ("model", "torch model", "explainer re-runs", "cost")
+
+
+@dataclass
+class MetricInputs:
+    """Everything a metric may need; the runner fills it. All but the first three are optional.
+
+    attributions: float32 (N, H, W), larger = more evidence for the target class.
+    images: float32 (N, C, H, W) reflectance.  targets: int (N,) target class per tile.
+    model: the explained model.  planted: bool (N, H, W), union of the target class's driving types.
+    verified: bool (N, H, W), model-verified evidence mask.  evidence: float (N, H, W) evidence map.
+    twins: float32 (N, C, H, W) structure-free twins.  type_masks: bool (N, K, H, W) with ``mask_names``.
+    explain_fn(model, images, targets) -> (N, H, W): the same explainer with the same settings.
+    concept_report: has ``type_importance: dict[str, float]`` and ``flagged: dict[str, bool]`` (concept
+    methods) or None (pixel methods).  type_importance: interventional importance per structure type.
+    relied_types / lookalike_types / unused_types: type roles.  cost: has ``forward_calls``,
+    ``backward_calls``, ``seconds``.  seed: seeds every random draw.  batch_size: images per model call.
+    """
+
+    attributions: np.ndarray
+    images: np.ndarray
+    targets: np.ndarray
+    model: ModelHandle | None = None
+    planted: np.ndarray | None = None
+    verified: np.ndarray | None = None
+    evidence: np.ndarray | None = None
+    twins: np.ndarray | None = None
+    type_masks: np.ndarray | None = None
+    mask_names: list[str] | None = None
+    explain_fn: Callable[[ModelHandle, np.ndarray, np.ndarray], np.ndarray] | None = None
+    concept_report: Any = None
+    type_importance: dict[str, float] | None = None
+    relied_types: list[str] | None = None
+    lookalike_types: list[str] | None = None
+    unused_types: list[str] | None = None
+    cost: Any = None
+    seed: int = 0
+    batch_size: int = 256
+    # Shared work between metrics on the same inputs (perturbation curves, the randomization cascade).
+    _cache: dict = field(default_factory=dict, init=False, repr=False, compare=False)
+
+    @property
+    def n_tiles(self) -> int:
+        return int(np.shape(self.attributions)[0])
+
+    def truth_mask(self, truth: str) -> np.ndarray | None:
+        return {"planted": self.planted, "verified": self.verified}.get(truth)
+
+    def cache_key(self, *parts: Any) -> tuple:
+        """A key for shared work: the given parts plus a digest of the attributions and images."""
+        digest = hashlib.blake2b(digest_size=12)
+        for arr in (self.attributions, self.images, self.targets):
+            a = np.ascontiguousarray(arr)
+            digest.update(str(a.shape).encode())
+            digest.update(a.tobytes())
+        return (*parts, id(self.model), self.seed, digest.hexdigest())
+
+
+@dataclass
+class MetricResult:
+    """One metric against one truth kind.
+
+    values: float64 (N,) per tile, or (1,) when the metric is not per tile; NaN where undefined.
+    reasons: tile index -> why its value is NaN; -1 for the whole result.
+    skipped: why the metric could not run at all (then every value is NaN), else None.
+    curves: per-tile curves, e.g. ``deletion`` (N, steps+1); ``curve_labels`` names their columns
+        when they are not evenly spaced fractions (the randomization cascade's layer names).
+    """
+
+    metric: str
+    truth: str
+    values: np.ndarray
+    per_tile: bool
+    reasons: dict[int, str] = field(default_factory=dict)
+    skipped: str | None = None
+    curves: dict[str, np.ndarray] = field(default_factory=dict)
+    curve_labels: dict[str, list[str]] = field(default_factory=dict)
+    settings: dict[str, Any] = field(default_factory=dict)
+
+    def mean(self) -> float:
+        """Mean over finite values (NaN when none)."""
+        v = self.values[np.isfinite(self.values)]
+        return float(v.mean()) if v.size else float("nan")
+
+
+@dataclass(frozen=True)
+class MetricSpec:
+    key: str
+    family: str
+    definition: str
+    citation: str
+    value_range: tuple[float, float]
+    higher_is_better: bool | None
+    needs: tuple[str, ...]
+    per_tile: bool
+    defaults: dict[str, Any]
+    settings_doc: dict[str, str]
+    truths: tuple[str, ...]
+    runner: Callable[..., MetricResult]
+
+    @property
+    def range_text(self) -> str:
+        def f(x: float) -> str:
+            if np.isinf(x):
+                return "inf" if x > 0 else "-inf"
+            return f"{x:g}"
+
+        return f"[{f(self.value_range[0])}, {f(self.value_range[1])}]"
+
+    @property
+    def direction_text(self) -> str:
+        return {True: "higher", False: "lower", None: "neither"}[self.higher_is_better]
+
+
+_REGISTRY: dict[str, MetricSpec] = {}
+
+
+def register_metric(
+    key: str,
+    *,
+    family: str,
+    definition: str,
+    citation: str,
+    value_range: tuple[float, float],
+    higher_is_better: bool | None,
+    needs: tuple[str, ...] | list[str],
+    per_tile: bool,
+    defaults: dict[str, Any] | None = None,
+    settings_doc: dict[str, str] | None = None,
+    truths: tuple[str, ...] = ("none",),
+) -> Callable[[Callable[..., MetricResult]], Callable[..., MetricResult]]:
+    """Register ``runner(inputs, truth, settings) -> MetricResult`` under ``key`` with its metadata."""
+    if family not in FAMILIES:
+        raise ValueError(f"metric '{key}': unknown family {family!r}; expected one of {FAMILIES}")
+    unknown = [n for n in needs if n not in NEEDS_TEXT]
+    if unknown:
+        raise ValueError(f"metric '{key}': unknown needs {unknown}; expected from {sorted(NEEDS_TEXT)}")
+
+    def decorate(runner: Callable[..., MetricResult]) -> Callable[..., MetricResult]:
+        if key in _REGISTRY:
+            raise ValueError(f"metric '{key}' is already registered")
+        _REGISTRY[key] = MetricSpec(
+            key=key, family=family, definition=definition, citation=citation,
+            value_range=(float(value_range[0]), float(value_range[1])), higher_is_better=higher_is_better,
+            needs=tuple(needs), per_tile=per_tile, defaults=dict(defaults or {}),
+            settings_doc=dict(settings_doc or {}), truths=tuple(truths), runner=runner,
+        )
+        return runner
+
+    return decorate
+
+
+def get_metric(key: str) -> MetricSpec:
+    if key not in _REGISTRY:
+        raise XbenchInputError(f"metric '{key}'", "unknown metric key",
+                               expected="one of " + ", ".join(s.key for s in list_metrics()))
+    return _REGISTRY[key]
+
+
+def list_metrics(family: str | None = None) -> list[MetricSpec]:
+    """Registered metrics grouped by family (in FAMILIES order; registration order within a family),
+    optionally of one family."""
+    specs = sorted(_REGISTRY.values(), key=lambda s: FAMILIES.index(s.family))
+    if family is not None:
+        specs = [s for s in specs if s.family == family]
+    return specs
+
+
+# -- input validation ---------------------------------------------------------------------------------
+def validate_inputs(inputs: MetricInputs) -> None:
+    """Shapes and dtypes of the bundle; raises XbenchInputError naming the array."""
+    a = np.asarray(inputs.attributions)
+    if a.ndim != 3:
+        raise XbenchInputError("metric inputs: attributions", "wrong shape", expected="(N, H, W)",
+                               found=a.shape)
+    n, h, w = a.shape
+    im = np.asarray(inputs.images)
+    if im.ndim != 4 or im.shape[0] != n or im.shape[2:] != (h, w):
+        raise XbenchInputError("metric inputs: images", "wrong shape", expected=f"({n}, C, {h}, {w})",
+                               found=im.shape)
+    t = np.asarray(inputs.targets)
+    if t.shape != (n,) or not np.issubdtype(t.dtype, np.integer):
+        raise XbenchInputError("metric inputs: targets", "wrong shape or dtype", expected=f"int ({n},)",
+                               found=f"{t.dtype} {t.shape}")
+    for name in ("planted", "verified", "evidence"):
+        arr = getattr(inputs, name)
+        if arr is not None and np.shape(arr) != (n, h, w):
+            raise XbenchInputError(f"metric inputs: {name}", "wrong shape", expected=f"({n}, {h}, {w})",
+                                   found=np.shape(arr))
+    if inputs.twins is not None and np.shape(inputs.twins) != im.shape:
+        raise XbenchInputError("metric inputs: twins", "wrong shape", expected=str(im.shape),
+                               found=np.shape(inputs.twins))
+    if inputs.type_masks is not None:
+        tm = np.shape(inputs.type_masks)
+        if len(tm) != 4 or tm[0] != n or tm[2:] != (h, w):
+            raise XbenchInputError("metric inputs: type_masks", "wrong shape", expected=f"({n}, K, {h}, {w})",
+                                   found=tm)
+        names = inputs.mask_names
+        if names is None or len(names) != tm[1]:
+            raise XbenchInputError("metric inputs: mask_names", "must name each type mask plane",
+                                   expected=f"{tm[1]} names", found=names)
+
+
+def _hard_need_missing(need: str, inputs: MetricInputs) -> str | None:
+    if need == "model" and inputs.model is None:
+        return "needs a model"
+    if need == "torch model" and (inputs.model is None or inputs.model.module is None):
+        return "needs a torch model (white box); this model is a black box" if inputs.model is not None \
+            else "needs a torch model"
+    if need == "explainer re-runs" and inputs.explain_fn is None:
+        return "needs explainer re-runs (explain_fn)"
+    if need == "cost" and inputs.cost is None:
+        return "needs the explainer's recorded cost"
+    return None
+
+
+def nan_result(spec: MetricSpec, inputs: MetricInputs, truth: str, reason: str,
+               settings: dict[str, Any]) -> MetricResult:
+    """A skipped result: every value NaN, the reason recorded for the whole result."""
+    size = inputs.n_tiles if spec.per_tile else 1
+    return MetricResult(metric=spec.key, truth=truth, values=np.full(size, np.nan), per_tile=spec.per_tile,
+                        reasons={-1: reason}, skipped=reason, settings=dict(settings))
+
+
+def _finalise(result: MetricResult, spec: MetricSpec, inputs: MetricInputs) -> MetricResult:
+    values = np.asarray(result.values, dtype=np.float64).reshape(-1)
+    expected = inputs.n_tiles if spec.per_tile else 1
+    if values.shape != (expected,):  # a bug in a runner, not bad input
+        raise RuntimeError(f"metric '{spec.key}' returned {values.shape} values, expected ({expected},)")
+    result.values = values
+    if -1 not in result.reasons:
+        for i in np.flatnonzero(~np.isfinite(values)):
+            result.reasons.setdefault(int(i), "undefined value (no specific reason recorded)")
+    return result
+
+
+def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[MetricResult]:
+    """Compute one metric; localization metrics give one result per truth kind (planted, verified)."""
+    spec = get_metric(key)
+    unknown = sorted(set(settings) - set(spec.defaults))
+    if unknown:
+        known = ", ".join(f"{k}={v!r}" for k, v in spec.defaults.items()) or "none"
+        raise XbenchInputError(f"metric '{key}' settings", f"unknown setting(s) {', '.join(unknown)}",
+                               expected=f"known settings: {known}")
+    validate_inputs(inputs)
+    merged = {**spec.defaults, **settings}
+    results = []
+    for truth in spec.truths:
+        hard = [r for n in spec.needs if n in HARD_NEEDS if (r := _hard_need_missing(n, inputs))]
+        missing = hard[0] if hard else None
+        if missing is None and truth in TRUTH_KINDS and inputs.truth_mask(truth) is None:
+            missing = ("needs the planted mask" if truth == "planted" else
+                       "needs the model-verified evidence mask (from counterfactual twins, truth module)")
+        if missing is not None:
+            results.append(nan_result(spec, inputs, truth, missing, merged))
+            continue
+        result = spec.runner(inputs, truth, merged)
+        results.append(_finalise(result, spec, inputs))
+    return results
+
+
+# -- helpers shared by the families ---------------------------------------------------------------------
+def bad_attribution_tiles(attributions: np.ndarray) -> np.ndarray:
+    """Tiles (N,) whose attribution holds a NaN or infinity."""
+    a = np.asarray(attributions)
+    return ~np.isfinite(a.reshape(a.shape[0], -1)).all(axis=1)
+
+
+NONFINITE_REASON = "attribution has non-finite values (NaN or inf)"
+
+
+def tile_result(spec_key: str, truth: str, values: np.ndarray, reasons: dict[int, str],
+                settings: dict[str, Any], **extra: Any) -> MetricResult:
+    return MetricResult(metric=spec_key, truth=truth, values=np.asarray(values, dtype=np.float64),
+                        per_tile=True, reasons=reasons, settings=dict(settings), **extra)
+
+
+def check_choice(key: str, name: str, value: Any, choices: tuple) -> None:
+    if value not in choices:
+        raise XbenchInputError(f"metric '{key}' setting '{name}'", "unknown value",
+                               expected=" | ".join(map(str, choices)), found=value)
+
+
+def check_number(key: str, name: str, value: Any, lo: float, hi: float, integer: bool = False) -> None:
+    ok = isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool)
+    if ok and integer:
+        ok = float(value) == int(value)
+    if not ok or not (lo <= float(value) <= hi):
+        kind = "an integer" if integer else "a number"
+        raise XbenchInputError(f"metric '{key}' setting '{name}'", "out of range",
+                               expected=f"{kind} in [{lo:g}, {hi:g}]", found=value)

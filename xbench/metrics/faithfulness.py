@@ -1,0 +1,337 @@
+"""Faithfulness: does removing (or adding) what the attribution ranks highest change the model's score?
+
+The score is ``model.probabilities(images)[:, target]``. Pixels are perturbed in all bands at once
+(attributions are per pixel), one pixel at a time (region size 1; Samek et al. 2017 used 9x9 regions).
+Pixel order: by attribution, ties broken by a seeded random permutation (a constant map gives a random
+order, never an arbitrary raster order).
+
+Perturbation baselines (setting ``baseline``):
+- ``zero``: reflectance 0 in every band;  ``mean``: the tile's own per-band mean;
+- ``blur``: the tile blurred with a Gaussian of ``blur_sigma`` pixels (Petsiuk et al. 2018 insert into a
+  blurred image);
+- ``twin`` (default): the tile's structure-free counterfactual twin, an in-distribution baseline that only
+  synthetic data can give. Without twins the result is skipped with a stated reason.
+
+The engine is batched: for a chunk of tiles it builds every perturbed image of every step at once
+(``np.where`` over a (tiles, steps+1, 1, H, W) selection) and sends the whole stack through the model in
+large batches; chunks bound the memory to about ``CHUNK_BYTES``. :func:`perturbation_curves_loop` is the
+straightforward per-tile, per-step reference that the tests and ``tests/bench/bench_metrics.py`` compare
+against.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+from scipy import ndimage
+
+from xbench.errors import XbenchInputError
+from xbench.metrics.base import (
+    NONFINITE_REASON,
+    MetricInputs,
+    MetricResult,
+    bad_attribution_tiles,
+    check_choice,
+    check_number,
+    get_metric,
+    nan_result,
+    register_metric,
+    tile_result,
+)
+
+BASELINES = ("twin", "zero", "mean", "blur")
+CHUNK_BYTES = 96 * 2**20
+ProbFn = Callable[[np.ndarray], np.ndarray]
+
+
+# -- pure pieces ----------------------------------------------------------------------------------------
+def make_baseline(images: np.ndarray, kind: str, twins: np.ndarray | None = None,
+                  blur_sigma: float = 3.0) -> np.ndarray:
+    """The replacement image (N, C, H, W) float32 for each tile."""
+    images = np.asarray(images, dtype=np.float32)
+    if kind == "zero":
+        return np.zeros_like(images)
+    if kind == "mean":
+        return np.broadcast_to(images.mean(axis=(2, 3), keepdims=True), images.shape).astype(np.float32)
+    if kind == "blur":
+        return ndimage.gaussian_filter(images, sigma=(0, 0, blur_sigma, blur_sigma), mode="reflect")
+    if kind == "twin":
+        if twins is None:
+            raise XbenchInputError("metric baseline 'twin'", "needs twins")
+        return np.asarray(twins, dtype=np.float32)
+    raise XbenchInputError("metric setting 'baseline'", "unknown baseline", expected=" | ".join(BASELINES),
+                           found=kind)
+
+
+def pixel_order(attributions: np.ndarray, seed: int, most_relevant_first: bool = True) -> np.ndarray:
+    """(N, H*W) pixel indices sorted by attribution (descending for MoRF, ascending for LeRF); ties are
+    broken by a random key drawn from ``seed``."""
+    a = np.asarray(attributions, dtype=np.float64)
+    a = a.reshape(a.shape[0], -1)
+    a = np.nan_to_num(a, nan=0.0, posinf=0.0, neginf=0.0)
+    tie = np.random.default_rng([int(seed), 1729]).random(a.shape)
+    return np.lexsort((tie, -a if most_relevant_first else a), axis=-1)
+
+
+def step_counts(n_pixels: int, steps: int) -> np.ndarray:
+    """Pixels perturbed after each step s = 0..steps: round(s * P / steps)."""
+    return (np.arange(steps + 1) * n_pixels + steps // 2) // steps
+
+
+def perturbation_curves(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray, baseline: np.ndarray,
+                        order: np.ndarray, steps: int, mode: str = "deletion",
+                        chunk_bytes: int = CHUNK_BYTES) -> np.ndarray:
+    """Target-class score after each step (N, steps+1), batched over tiles and steps.
+
+    ``deletion``: step s replaces the first k_s pixels of ``order`` by the baseline (step 0 = the tile).
+    ``insertion``: step s starts from the baseline and restores the first k_s pixels (step 0 = baseline).
+    """
+    images = np.asarray(images, dtype=np.float32)
+    baseline = np.asarray(baseline, dtype=np.float32)
+    n, c, h, w = images.shape
+    p = h * w
+    targets = np.asarray(targets)
+    out = np.empty((n, steps + 1))
+    if n == 0:
+        return out
+    rank = np.empty((n, p), dtype=np.int32)
+    np.put_along_axis(rank, np.asarray(order), np.arange(p, dtype=np.int32)[None, :].repeat(n, 0), axis=1)
+    ks = step_counts(p, steps).astype(np.int32)
+    src, repl = (images, baseline) if mode == "deletion" else (baseline, images)
+    per_tile_bytes = (steps + 1) * c * p * 4
+    tiles = max(1, int(chunk_bytes // per_tile_bytes))
+    for start in range(0, n, tiles):
+        sl = slice(start, min(n, start + tiles))
+        t = sl.stop - sl.start
+        sel = (rank[sl][:, None, :] < ks[None, :, None]).reshape(t, steps + 1, 1, h, w)
+        stack = np.where(sel, repl[sl][:, None], src[sl][:, None]).reshape(t * (steps + 1), c, h, w)
+        probs = prob_fn(stack)
+        out[sl] = probs[np.arange(t * (steps + 1)), np.repeat(targets[sl], steps + 1)].reshape(t, steps + 1)
+    return out
+
+
+def perturbation_curves_loop(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray, baseline: np.ndarray,
+                             order: np.ndarray, steps: int, mode: str = "deletion") -> np.ndarray:
+    """The straightforward reference: one tile at a time, one model call per step (slow; tests, bench)."""
+    images = np.asarray(images, dtype=np.float32)
+    baseline = np.asarray(baseline, dtype=np.float32)
+    n, c, h, w = images.shape
+    ks = step_counts(h * w, steps)
+    out = np.empty((n, steps + 1))
+    for i in range(n):
+        for s, k in enumerate(ks):
+            x = (images[i] if mode == "deletion" else baseline[i]).copy().reshape(c, -1)
+            idx = order[i, :k]
+            x[:, idx] = (baseline[i] if mode == "deletion" else images[i]).reshape(c, -1)[:, idx]
+            out[i, s] = prob_fn(x.reshape(1, c, h, w))[0, targets[i]]
+    return out
+
+
+def curve_auc(curves: np.ndarray) -> np.ndarray:
+    """Area under each curve (N, steps+1) over the perturbed fraction in [0, 1] (trapezoid rule)."""
+    steps = curves.shape[1] - 1
+    return np.trapezoid(curves, dx=1.0 / steps, axis=1)
+
+
+def aopc(curves: np.ndarray) -> np.ndarray:
+    """Area over the perturbation curve (Samek et al. 2017): mean over k = 0..L of f(x_0) - f(x_k)."""
+    return curves[:, 0] - curves.mean(axis=1)
+
+
+def constant_rows(x: np.ndarray, rtol: float = 1e-12) -> np.ndarray:
+    """Rows whose spread is zero or at rounding level relative to their magnitude."""
+    scale = np.abs(x).max(axis=1)
+    return np.ptp(x, axis=1) <= rtol * scale
+
+
+def pearson_rows(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Pearson correlation per row; NaN when either row is constant."""
+    ok = ~constant_rows(x) & ~constant_rows(y)
+    x = x - x.mean(axis=1, keepdims=True)
+    y = y - y.mean(axis=1, keepdims=True)
+    den = np.sqrt((x * x).sum(axis=1) * (y * y).sum(axis=1))
+    ok &= den > 0
+    out = np.full(x.shape[0], np.nan)
+    out[ok] = np.clip((x * y).sum(axis=1)[ok] / den[ok], -1.0, 1.0)
+    return out
+
+
+def random_subsets(n_tiles: int, n_pixels: int, size: int, runs: int, seed: int,
+                   tile_ids: np.ndarray | None = None) -> np.ndarray:
+    """(N, runs, size) random pixel subsets, drawn per tile from ``[seed, tile, 11]`` (so the draw of a tile
+    does not depend on which other tiles are scored)."""
+    ids = np.arange(n_tiles) if tile_ids is None else np.asarray(tile_ids)
+    out = np.empty((len(ids), runs, size), dtype=np.int64)
+    for j, i in enumerate(ids):
+        keys = np.random.default_rng([int(seed), int(i), 11]).random((runs, n_pixels))
+        out[j] = np.argpartition(keys, size - 1, axis=1)[:, :size]
+    return out
+
+
+def faithfulness_correlation_scores(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray,
+                                    attributions: np.ndarray, baseline: np.ndarray, subsets: np.ndarray,
+                                    chunk_bytes: int = CHUNK_BYTES) -> tuple[np.ndarray, np.ndarray]:
+    """(attribution sums over each subset, score drops f(x) - f(x with the subset set to the baseline)),
+    both (N, runs), batched over tiles and runs."""
+    images = np.asarray(images, dtype=np.float32)
+    baseline = np.asarray(baseline, dtype=np.float32)
+    n, c, h, w = images.shape
+    p = h * w
+    runs = subsets.shape[1]
+    a = np.asarray(attributions, dtype=np.float64).reshape(n, p)
+    sums = np.take_along_axis(a[:, None, :].repeat(runs, 1), subsets, axis=2).sum(axis=2)
+    base_scores = prob_fn(images)[np.arange(n), targets]
+    drops = np.empty((n, runs))
+    tiles = max(1, int(chunk_bytes // (runs * c * p * 4)))
+    for start in range(0, n, tiles):
+        sl = slice(start, min(n, start + tiles))
+        t = sl.stop - sl.start
+        sel = np.zeros((t, runs, p), dtype=bool)
+        np.put_along_axis(sel, subsets[sl], True, axis=2)
+        stack = np.where(sel.reshape(t, runs, 1, h, w), baseline[sl][:, None], images[sl][:, None])
+        probs = prob_fn(stack.reshape(t * runs, c, h, w))
+        scores = probs[np.arange(t * runs), np.repeat(targets[sl], runs)].reshape(t, runs)
+        drops[sl] = base_scores[sl][:, None] - scores
+    return sums, drops
+
+
+# -- runners --------------------------------------------------------------------------------------------
+_FAITH_DEFAULTS = {"baseline": "twin", "steps": 20, "blur_sigma": 3.0}
+_FAITH_DOC = {
+    "baseline": "replacement for perturbed pixels: twin (structure-free twin), zero, mean (the tile's "
+                "band means), blur (Gaussian-blurred tile)",
+    "steps": "number of perturbation steps (the curve has steps+1 points)",
+    "blur_sigma": "Gaussian sigma in pixels for the blur baseline",
+}
+_PETSIUK = ("Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. "
+            "BMVC 2018.")
+_SAMEK = ("Samek, Binder, Montavon, Lapuschkin, Mueller. Evaluating the visualization of what a deep neural "
+          "network has learned. IEEE TNNLS 2017.")
+
+
+def _check_faith_settings(key: str, settings: dict[str, Any]) -> None:
+    check_choice(key, "baseline", settings["baseline"], BASELINES)
+    if "steps" in settings:
+        check_number(key, "steps", settings["steps"], 1, 10_000, integer=True)
+    check_number(key, "blur_sigma", settings["blur_sigma"], 0, 1e4)
+
+
+def _twin_missing(inputs: MetricInputs, settings: dict[str, Any]) -> str | None:
+    if settings["baseline"] == "twin" and inputs.twins is None:
+        return "needs twins for the 'twin' baseline (no twins given; choose baseline zero, mean or blur)"
+    return None
+
+
+def _prob_fn(inputs: MetricInputs) -> ProbFn:
+    model = inputs.model
+    assert model is not None
+    return model.probabilities
+
+
+def _curves(inputs: MetricInputs, settings: dict[str, Any], mode: str, morf: bool) -> np.ndarray:
+    """Per-tile curves (N, steps+1), NaN rows for tiles with non-finite attributions; cached on the inputs
+    so deletion-auc and aopc-morf share one pass."""
+    steps = int(settings["steps"])
+    key = inputs.cache_key("curve", mode, morf, settings["baseline"], steps, float(settings["blur_sigma"]),
+                           id(inputs.twins))
+    if key in inputs._cache:
+        return inputs._cache[key]
+    bad = bad_attribution_tiles(inputs.attributions)
+    good = np.flatnonzero(~bad)
+    n = inputs.n_tiles
+    out = np.full((n, steps + 1), np.nan)
+    if good.size:
+        images = np.asarray(inputs.images, dtype=np.float32)[good]
+        twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
+        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
+        order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf)
+        out[good] = perturbation_curves(_prob_fn(inputs), images, np.asarray(inputs.targets)[good], base,
+                                        order, steps, mode)
+    inputs._cache[key] = out
+    return out
+
+
+def _faith_runner(key: str, mode: str, morf: bool, summary: Callable[[np.ndarray], np.ndarray],
+                  curve_name: str) -> Callable[..., MetricResult]:
+    def run(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+        _check_faith_settings(key, settings)
+        missing = _twin_missing(inputs, settings)
+        if missing:
+            return nan_result(get_metric(key), inputs, truth, missing, settings)
+        curves = _curves(inputs, settings, mode, morf)
+        values = np.full(inputs.n_tiles, np.nan)
+        ok = np.isfinite(curves).all(axis=1)
+        values[ok] = summary(curves[ok])
+        reasons = {int(i): NONFINITE_REASON for i in np.flatnonzero(~ok)}
+        return tile_result(key, truth, values, reasons, settings, curves={curve_name: curves})
+
+    return run
+
+
+_FAITH = dict(family="faithfulness", needs=("model", "twins"), per_tile=True, defaults=_FAITH_DEFAULTS,
+              settings_doc=_FAITH_DOC)
+
+register_metric(
+    "deletion-auc", definition="area under the target score as the most relevant pixels are replaced by the "
+    "baseline", citation=_PETSIUK, value_range=(0, 1), higher_is_better=False, **_FAITH,
+)(_faith_runner("deletion-auc", "deletion", True, curve_auc, "deletion"))
+register_metric(
+    "insertion-auc", definition="area under the target score as the most relevant pixels are restored "
+    "into the baseline", citation=_PETSIUK, value_range=(0, 1), higher_is_better=True, **_FAITH,
+)(_faith_runner("insertion-auc", "insertion", True, curve_auc, "insertion"))
+register_metric(
+    "aopc-morf", definition="mean drop of the target score over steps, most relevant pixels perturbed first",
+    citation=_SAMEK, value_range=(-1, 1), higher_is_better=True, **_FAITH,
+)(_faith_runner("aopc-morf", "deletion", True, aopc, "deletion"))
+register_metric(
+    "aopc-lerf", definition="mean drop of the target score over steps, least relevant pixels perturbed first",
+    citation=_SAMEK, value_range=(-1, 1), higher_is_better=False, **_FAITH,
+)(_faith_runner("aopc-lerf", "deletion", False, aopc, "deletion-lerf"))
+
+
+@register_metric(
+    "faithfulness-corr",
+    definition="Pearson correlation, over random pixel subsets, of the attribution sum and the score drop "
+               "when the subset is set to the baseline",
+    citation="Bhatt, Weller, Moura. Evaluating and aggregating feature-based model explanations. IJCAI 2020.",
+    value_range=(-1, 1), higher_is_better=True, family="faithfulness", needs=("model", "twins"),
+    per_tile=True, defaults={"baseline": "twin", "fraction": 0.1, "runs": 32, "blur_sigma": 3.0},
+    settings_doc={"baseline": _FAITH_DOC["baseline"], "fraction": "share of the tile's pixels in each subset",
+                  "runs": "random subsets per tile", "blur_sigma": _FAITH_DOC["blur_sigma"]},
+)
+def _faithfulness_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    key = "faithfulness-corr"
+    _check_faith_settings(key, settings)
+    check_number(key, "fraction", settings["fraction"], 1e-9, 1)
+    check_number(key, "runs", settings["runs"], 2, 100_000, integer=True)
+    missing = _twin_missing(inputs, settings)
+    if missing:
+        return nan_result(get_metric(key), inputs, truth, missing, settings)
+    n = inputs.n_tiles
+    h, w = np.shape(inputs.attributions)[1:]
+    size = max(1, int(round(float(settings["fraction"]) * h * w)))
+    runs = int(settings["runs"])
+    bad = bad_attribution_tiles(inputs.attributions)
+    good = np.flatnonzero(~bad)
+    values = np.full(n, np.nan)
+    reasons = {int(i): NONFINITE_REASON for i in np.flatnonzero(bad)}
+    if good.size:
+        images = np.asarray(inputs.images, dtype=np.float32)[good]
+        twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
+        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
+        subsets = random_subsets(n, h * w, size, runs, inputs.seed, tile_ids=good)
+        sums, drops = faithfulness_correlation_scores(
+            _prob_fn(inputs), images, np.asarray(inputs.targets)[good], np.asarray(inputs.attributions)[good],
+            base, subsets)
+        corr = pearson_rows(sums, drops)
+        values[good] = corr
+        for j in np.flatnonzero(~np.isfinite(corr)):
+            i = int(good[j])
+            if constant_rows(sums[j:j + 1])[0]:
+                reasons[i] = ("attribution sums are equal over all subsets (constant attribution): "
+                              "correlation undefined")
+            else:
+                reasons[i] = "the model's score did not change over the subsets: correlation undefined"
+    return tile_result(key, truth, values, reasons, settings)

@@ -1,0 +1,257 @@
+"""Sanity: cascading model-parameter randomization (Adebayo et al. 2018).
+
+A deep copy of the torch module has its parametrised layers re-initialised one after another, **top layer
+first** (the reverse of the order in which a forward pass runs them; each layer re-initialised with its own
+``reset_parameters`` under a torch seed derived from ``seed`` and the step). After each step the explainer
+is re-run with the same settings (``explain_fn``) and its maps are compared with the original ones:
+
+- ``randomization-spearman``: Spearman rank correlation per tile (equals ``scipy.stats.spearmanr``);
+- ``randomization-ssim``: structural similarity per tile (Wang et al. 2004; equals
+  ``skimage.metrics.structural_similarity`` with its defaults: 7x7 uniform window, K1 = 0.01, K2 = 0.03,
+  sample covariance).
+
+Normalisation: by default (``absolute = True``) both maps are compared as ``|a| / max |a|`` per tile (in
+[0, 1], SSIM data range 1), as Adebayo et al. did for their absolute-value comparisons; with
+``absolute = False`` as ``a / max |a|`` (in [-1, 1], data range 2). Spearman is unaffected by the scaling.
+
+Per-tile value: the similarity **after the full cascade** (every parametrised layer re-initialised, or the
+top ``max_layers`` when set): a faithful explanation should no longer resemble its original, so lower is
+better. The per-step similarities go into ``curves`` (N, L) with the cumulative layer names in
+``curve_labels``, for the figures.
+"""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+import torch
+from scipy import ndimage
+from scipy.stats import rankdata
+from torch import nn
+
+from xbench.errors import XbenchInputError
+from xbench.metrics.base import (
+    NONFINITE_REASON,
+    MetricInputs,
+    MetricResult,
+    bad_attribution_tiles,
+    check_number,
+    register_metric,
+    tile_result,
+)
+from xbench.models.base import ModelHandle
+
+
+SSIM_WINDOW = 7
+
+
+# -- pure similarity cores -------------------------------------------------------------------------------
+def normalise_maps(maps: np.ndarray, absolute: bool = True) -> np.ndarray:
+    """Per tile: |a| / max|a| (absolute) or a / max|a|; NaN rows where the map is zero everywhere."""
+    a = np.asarray(maps, dtype=np.float64)
+    if absolute:
+        a = np.abs(a)
+    scale = np.abs(a).reshape(a.shape[0], -1).max(axis=1)
+    out = np.full_like(a, np.nan)
+    ok = np.isfinite(scale) & (scale > 0)
+    out[ok] = a[ok] / scale[ok, None, None]
+    return out
+
+
+def spearman_rows(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Spearman rank correlation per tile of two (N, H, W) stacks (mid-ranks for ties); NaN when either map
+    is constant or non-finite."""
+    x = np.asarray(x, dtype=np.float64).reshape(len(x), -1)
+    y = np.asarray(y, dtype=np.float64).reshape(len(y), -1)
+    out = np.full(x.shape[0], np.nan)
+    ok = np.isfinite(x).all(axis=1) & np.isfinite(y).all(axis=1)
+    ok &= (np.ptp(x, axis=1) > 0) & (np.ptp(y, axis=1) > 0)
+    if ok.any():
+        rx = rankdata(x[ok], axis=1)
+        ry = rankdata(y[ok], axis=1)
+        rx -= rx.mean(axis=1, keepdims=True)
+        ry -= ry.mean(axis=1, keepdims=True)
+        out[ok] = np.clip((rx * ry).sum(1) / np.sqrt((rx * rx).sum(1) * (ry * ry).sum(1)), -1, 1)
+    return out
+
+
+def ssim_rows(x: np.ndarray, y: np.ndarray, data_range: float, win_size: int = SSIM_WINDOW,
+              k1: float = 0.01, k2: float = 0.03) -> np.ndarray:
+    """Mean SSIM per tile (Wang et al. 2004) with skimage's defaults (uniform window, sample covariance,
+    border of (win_size-1)/2 cropped); NaN for non-finite maps and for tiles smaller than the window."""
+    x = np.asarray(x, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
+    out = np.full(x.shape[0], np.nan)
+    if min(x.shape[1:]) < win_size:
+        return out
+    ok = np.isfinite(x).reshape(len(x), -1).all(1) & np.isfinite(y).reshape(len(y), -1).all(1)
+    if not ok.any():
+        return out
+    x, y = x[ok], y[ok]
+    size = (1, win_size, win_size)
+    npix = win_size**2
+    cov_norm = npix / (npix - 1)
+    ux = ndimage.uniform_filter(x, size=size)
+    uy = ndimage.uniform_filter(y, size=size)
+    uxx = ndimage.uniform_filter(x * x, size=size)
+    uyy = ndimage.uniform_filter(y * y, size=size)
+    uxy = ndimage.uniform_filter(x * y, size=size)
+    vx = cov_norm * (uxx - ux * ux)
+    vy = cov_norm * (uyy - uy * uy)
+    vxy = cov_norm * (uxy - ux * uy)
+    c1 = (k1 * data_range) ** 2
+    c2 = (k2 * data_range) ** 2
+    s = ((2 * ux * uy + c1) * (2 * vxy + c2)) / ((ux**2 + uy**2 + c1) * (vx + vy + c2))
+    pad = (win_size - 1) // 2
+    out[ok] = s[:, pad:s.shape[1] - pad, pad:s.shape[2] - pad].mean(axis=(1, 2))
+    return out
+
+
+# -- the cascade -----------------------------------------------------------------------------------------
+def parametrised_layers(module: nn.Module, example: torch.Tensor) -> list[str]:
+    """Names of the modules that own parameters directly, in the order a forward pass first runs them
+    (modules never run are left out)."""
+    owners = {name: m for name, m in module.named_modules() if any(True for _ in m.parameters(recurse=False))}
+    seen: list[str] = []
+    handles = []
+    for name, m in owners.items():
+        def hook(_m, _a, _o, name=name):
+            if name not in seen:
+                seen.append(name)
+        handles.append(m.register_forward_hook(hook))
+    try:
+        with torch.no_grad():
+            module(example)
+    finally:
+        for h in handles:
+            h.remove()
+    return seen
+
+
+def _reinitialise(layer: nn.Module, seed: int) -> None:
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        if hasattr(layer, "reset_parameters"):
+            layer.reset_parameters()
+        else:
+            with torch.no_grad():
+                for p in layer.parameters(recurse=False):
+                    p.normal_(0.0, 0.02)
+
+
+def _detached_copy(module: nn.Module) -> nn.Module:
+    """A deep copy without the original handle's call-counting hooks (they would count into it)."""
+    clone = copy.deepcopy(module)
+    for attr in ("_forward_hooks", "_backward_hooks", "_forward_pre_hooks", "_backward_pre_hooks"):
+        hooks = getattr(clone, attr, None)
+        if hooks is not None:
+            hooks.clear()
+    if hasattr(clone, "_is_full_backward_hook"):
+        clone._is_full_backward_hook = None
+    return clone.eval()
+
+
+def cascading_randomization(model: ModelHandle, explain_fn: Callable, images: np.ndarray, targets: np.ndarray,
+                            seed: int, max_layers: int | None = None) -> tuple[list[str], list[np.ndarray]]:
+    """Re-initialise the parametrised layers top first on a deep copy; after each, re-run the explainer.
+    Returns the layer names (in cascade order) and the attributions (N, H, W) after each step."""
+    assert model.module is not None
+    clone = _detached_copy(model.module)
+    example = torch.from_numpy(np.ascontiguousarray(np.asarray(images[:1], dtype=np.float32)))
+    layers = parametrised_layers(clone, example)[::-1]
+    if max_layers is not None:
+        layers = layers[:int(max_layers)]
+    modules = dict(clone.named_modules())
+    handle = ModelHandle(f"{model.name}~randomized", model.n_classes, module=clone,
+                         batch_size=model.batch_size)
+    maps = []
+    for step, name in enumerate(layers):
+        _reinitialise(modules[name], int(seed) * 1000 + step)
+        out = np.asarray(explain_fn(handle, images, targets), dtype=np.float64)
+        if out.shape != np.shape(images)[:1] + np.shape(images)[2:]:
+            raise RuntimeError(f"explain_fn returned {out.shape}, expected (N, H, W)")
+        maps.append(out)
+    return layers, maps
+
+
+def _cascade(inputs: MetricInputs, max_layers: int | None) -> tuple[list[str], list[np.ndarray]]:
+    key = inputs.cache_key("randomization", max_layers)
+    if key not in inputs._cache:
+        assert inputs.model is not None and inputs.explain_fn is not None
+        inputs._cache[key] = cascading_randomization(inputs.model, inputs.explain_fn,
+                                                     np.asarray(inputs.images), np.asarray(inputs.targets),
+                                                     inputs.seed, max_layers)
+    return inputs._cache[key]
+
+
+def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    absolute = settings["absolute"]
+    if not isinstance(absolute, bool):
+        raise XbenchInputError(f"metric '{key}' setting 'absolute'", "must be true or false", found=absolute)
+    max_layers = settings["max_layers"]
+    if max_layers is not None:
+        check_number(key, "max_layers", max_layers, 1, 100_000, integer=True)
+    n = inputs.n_tiles
+    if key == "randomization-ssim" and min(np.shape(inputs.attributions)[1:]) < SSIM_WINDOW:
+        return tile_result(key, truth, np.full(n, np.nan),
+                           {-1: f"tiles smaller than the {SSIM_WINDOW}x{SSIM_WINDOW} SSIM window"}, settings)
+    bad = bad_attribution_tiles(inputs.attributions)
+    layers, maps = _cascade(inputs, max_layers)
+    original = normalise_maps(inputs.attributions, absolute)
+    curve = np.full((n, len(layers)), np.nan)
+    for j, m in enumerate(maps):
+        other = normalise_maps(m, absolute)
+        if key == "randomization-spearman":
+            curve[:, j] = spearman_rows(original, other)
+        else:
+            curve[:, j] = ssim_rows(original, other, data_range=1.0 if absolute else 2.0)
+    reasons: dict[int, str] = {}
+    if not layers:
+        values = np.full(n, np.nan)
+        reasons[-1] = "the model has no parametrised layer to randomize"
+        return tile_result(key, truth, values, reasons, settings)
+    values = curve[:, -1].copy()
+    last = maps[-1].reshape(n, -1)
+    orig = np.asarray(inputs.attributions, dtype=np.float64).reshape(n, -1)
+    for i in np.flatnonzero(~np.isfinite(values)):
+        i = int(i)
+        if bad[i]:
+            reasons[i] = NONFINITE_REASON
+        elif not np.isfinite(last[i]).all():
+            reasons[i] = "the randomized model's attribution has non-finite values"
+        elif not np.abs(orig[i]).max() > 0:
+            reasons[i] = "attribution is zero everywhere: no map to compare"
+        elif not np.abs(last[i]).max() > 0:
+            reasons[i] = "the fully randomized model's attribution is zero everywhere: similarity undefined"
+        else:
+            reasons[i] = "a map is constant after normalisation: rank correlation undefined"
+    return tile_result(key, truth, values, reasons, settings, curves={key: curve}, curve_labels={key: layers})
+
+
+_ADEBAYO = ("Adebayo, Gilmer, Muelly, Goodfellow, Hardt, Kim. Sanity checks for saliency maps. NeurIPS 2018.")
+_SANITY = dict(family="sanity", needs=("torch model", "explainer re-runs"), per_tile=True,
+               defaults={"absolute": True, "max_layers": None},
+               settings_doc={"absolute": "compare |a| / max|a| (true) or a / max|a| (false)",
+                             "max_layers": "randomize only the top this many parametrised layers "
+                                           "(none = all)"},
+               higher_is_better=False)
+
+
+@register_metric("randomization-spearman",
+                 definition="Spearman correlation between the original maps and those of the fully "
+                            "randomized model (layers re-initialised top first)",
+                 citation=_ADEBAYO, value_range=(-1, 1), **_SANITY)
+def _randomization_spearman(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    return _randomization("randomization-spearman", inputs, truth, settings)
+
+
+@register_metric("randomization-ssim",
+                 definition="SSIM between the original maps and those of the fully randomized model "
+                            "(layers re-initialised top first)",
+                 citation=_ADEBAYO + " SSIM: Wang, Bovik, Sheikh, Simoncelli. IEEE TIP 2004.",
+                 value_range=(-1, 1), **_SANITY)
+def _randomization_ssim(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    return _randomization("randomization-ssim", inputs, truth, settings)

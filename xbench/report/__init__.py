@@ -1,0 +1,14 @@
+"""Reports for methods sections: statistics, tables, figures, methods text and BibTeX.
+
+One call writes everything::
+
+    from xbench.report import write_report
+    summary = write_report(["runs/demo"], "runs/demo/report", formats=("md", "tex", "html"))
+
+Modules: ``load`` (run folders), ``stats`` (bootstrap, Wilcoxon + Holm, Friedman, Nemenyi), ``compare``
+(records -> table numbers), ``tables`` (Markdown, LaTeX, HTML), ``figures``, ``methods``, ``bib``, ``writer``.
+"""
+
+from xbench.report.writer import ReportSummary, write_report
+
+__all__ = ["ReportSummary", "write_report"]

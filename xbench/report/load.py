@@ -1,0 +1,229 @@
+"""Reading run folders for the report (the result-store contract in DEVELOPERS.md).
+
+``records`` are required (parquet, or the CSV copy when the parquet is missing or unreadable). Everything
+else is optional: a missing or malformed optional file is logged and that part of the report is left out.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from xbench.errors import XbenchInputError
+
+RECORD_COLUMNS = ["run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value"]
+CURVE_COLUMNS = [
+    "task",
+    "model",
+    "seed",
+    "explainer",
+    "curve",
+    "baseline",
+    "step",
+    "x",
+    "label",
+    "mean",
+    "sd",
+    "n",
+]
+RELIANCE_COLUMNS = ["task", "model", "seed", "kind", "mean_drop", "ci_low", "ci_high", "n"]
+CONCEPT_COLUMNS = [
+    "task",
+    "model",
+    "seed",
+    "explainer",
+    "concept",
+    "class_name",
+    "score",
+    "spread",
+    "p_value",
+    "matched_type",
+    "iou",
+    "purity",
+]
+RECORD_KEY = ["task", "model", "seed", "explainer", "metric", "truth", "tile"]
+
+_ARTIFACT = re.compile(r"^(gallery|clusters)__(.+)__(.+)__(-?\d+)\.npz$")
+
+
+@dataclass
+class Artifact:
+    """One ``artifacts/{kind}__{task}__{model}__{seed}.npz`` file (read on demand)."""
+
+    kind: str
+    task: str
+    model: str
+    seed: int
+    path: Path
+
+    def load(self) -> dict[str, np.ndarray]:
+        with np.load(self.path, allow_pickle=False) as data:
+            return {k: data[k] for k in data.files}
+
+
+@dataclass
+class RunSet:
+    """One or more run folders read together."""
+
+    dirs: list[Path]
+    records: pd.DataFrame
+    manifests: list[dict[str, Any]]
+    curves: pd.DataFrame | None = None
+    reliance: pd.DataFrame | None = None
+    concepts: pd.DataFrame | None = None
+    artifacts: list[Artifact] = field(default_factory=list)
+    log: list[str] = field(default_factory=list)
+
+    def manifest_for(self, task: str) -> dict[str, Any]:
+        """The (first) manifest of a task, or an empty dict."""
+        for m in self.manifests:
+            if m.get("task") == task:
+                return m
+        return {}
+
+    def galleries(self) -> list[Artifact]:
+        return [a for a in self.artifacts if a.kind == "gallery"]
+
+    def clusters(self) -> list[Artifact]:
+        return [a for a in self.artifacts if a.kind == "clusters"]
+
+
+def _read_table(path: Path) -> pd.DataFrame:
+    return pd.read_csv(path) if path.suffix == ".csv" else pd.read_parquet(path)
+
+
+def read_records(run_dir: Path, log: list[str]) -> pd.DataFrame:
+    """The records of one run folder, typed; raises XbenchInputError when there are none to read."""
+    parquet, csv = run_dir / "records.parquet", run_dir / "records.csv"
+    frame = None
+    source = parquet
+    if parquet.is_file():
+        try:
+            frame = pd.read_parquet(parquet)
+        except Exception as exc:  # unreadable parquet: try the CSV copy
+            log.append(f"{parquet}: unreadable ({type(exc).__name__}: {exc}); trying records.csv")
+    if frame is None and csv.is_file():
+        source = csv
+        try:
+            frame = pd.read_csv(csv)
+        except Exception as exc:
+            raise XbenchInputError(str(csv), f"unreadable CSV ({exc})") from None
+    if frame is None:
+        raise XbenchInputError(str(run_dir), "no records.parquet or records.csv: not a run folder")
+    missing = [c for c in RECORD_COLUMNS if c not in frame.columns]
+    if missing:
+        raise XbenchInputError(
+            str(source),
+            "records lack columns",
+            expected=", ".join(RECORD_COLUMNS),
+            found=", ".join(map(str, frame.columns)),
+        )
+    frame = frame[RECORD_COLUMNS].copy()
+    for col in ("run_id", "task", "model", "explainer", "metric"):
+        frame[col] = frame[col].astype(str)
+    frame["truth"] = frame["truth"].fillna("none").astype(str)
+    try:
+        frame["seed"] = pd.to_numeric(frame["seed"]).astype("int64")
+        frame["tile"] = pd.to_numeric(frame["tile"]).astype("int64")
+        frame["value"] = pd.to_numeric(frame["value"], errors="raise").astype("float64")
+    except (ValueError, TypeError) as exc:
+        raise XbenchInputError(
+            str(source), f"records: seed, tile and value must be numeric ({exc})"
+        ) from None
+    return frame
+
+
+def _read_optional(run_dir: Path, name: str, columns: list[str], log: list[str]) -> pd.DataFrame | None:
+    path = run_dir / name
+    if not path.is_file():
+        log.append(f"{path}: not found; the parts of the report that need it are left out")
+        return None
+    try:
+        frame = _read_table(path)
+    except Exception as exc:
+        log.append(f"{path}: unreadable ({type(exc).__name__}: {exc}); left out")
+        return None
+    missing = [c for c in columns if c not in frame.columns]
+    if missing:
+        log.append(f"{path}: missing columns {', '.join(missing)}; left out")
+        return None
+    return frame[columns].copy()
+
+
+def read_manifest(run_dir: Path, log: list[str]) -> dict[str, Any]:
+    path = run_dir / "manifest.json"
+    if not path.is_file():
+        log.append(f"{path}: not found; the methods text will lack data, model and timing details")
+        return {}
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as exc:
+        raise XbenchInputError(str(path), f"invalid JSON at line {exc.lineno}: {exc.msg}") from None
+    if not isinstance(data, dict):
+        raise XbenchInputError(str(path), "manifest must be a JSON object", found=type(data).__name__)
+    return data
+
+
+def find_artifacts(run_dir: Path, log: list[str]) -> list[Artifact]:
+    folder = run_dir / "artifacts"
+    if not folder.is_dir():
+        log.append(f"{folder}: not found; no heatmap gallery or activation-cluster figures")
+        return []
+    out = []
+    for path in sorted(folder.glob("*.npz")):
+        m = _ARTIFACT.match(path.name)
+        if m:
+            out.append(Artifact(m.group(1), m.group(2), m.group(3), int(m.group(4)), path))
+    return out
+
+
+def _concat(frames: list[pd.DataFrame | None]) -> pd.DataFrame | None:
+    frames = [f for f in frames if f is not None and len(f)]
+    return pd.concat(frames, ignore_index=True) if frames else None
+
+
+def load_runs(run_dirs: Any) -> RunSet:
+    """Read one or more run folders. Later folders win where two hold the same value (logged)."""
+    if isinstance(run_dirs, (str, Path)):
+        run_dirs = [run_dirs]
+    dirs = [Path(d) for d in run_dirs]
+    if not dirs:
+        raise XbenchInputError("run folders", "none given", expected="at least one run folder")
+    log: list[str] = []
+    records, manifests, curves, reliance, concepts, artifacts = [], [], [], [], [], []
+    for d in dirs:
+        if not d.is_dir():
+            raise XbenchInputError(str(d), "run folder not found")
+        records.append(read_records(d, log))
+        manifests.append(read_manifest(d, log))
+        curves.append(_read_optional(d, "curves.parquet", CURVE_COLUMNS, log))
+        reliance.append(_read_optional(d, "reliance.parquet", RELIANCE_COLUMNS, log))
+        concepts.append(_read_optional(d, "concepts.parquet", CONCEPT_COLUMNS, log))
+        artifacts.extend(find_artifacts(d, log))
+    rec = pd.concat(records, ignore_index=True)
+    dup = rec.duplicated(RECORD_KEY, keep="last")
+    if dup.any():
+        log.append(f"{int(dup.sum())} record(s) given by more than one run folder; the last folder's kept")
+        rec = rec[~dup].reset_index(drop=True)
+    if rec.empty:
+        raise XbenchInputError(", ".join(map(str, dirs)), "the run folders hold no records")
+    # The same artifact in several folders: keep the last.
+    seen: dict[tuple, Artifact] = {}
+    for a in artifacts:
+        seen[(a.kind, a.task, a.model, a.seed)] = a
+    return RunSet(
+        dirs=dirs,
+        records=rec,
+        manifests=manifests,
+        curves=_concat(curves),
+        reliance=_concat(reliance),
+        concepts=_concat(concepts),
+        artifacts=list(seen.values()),
+        log=log,
+    )

@@ -1,0 +1,425 @@
+"""Comparison tables: one neutral table model, rendered as Markdown, LaTeX (booktabs) and HTML.
+
+Results tables: one per (task, model) block and metric family; rows are explainers, cells the mean with its
+bootstrap interval and a mark when the explainer differs significantly from the column's best (bold).
+Rank tables: one per metric family; average ranks across blocks with the Friedman test and Nemenyi CD.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from xbench.report.compare import Column, Summary
+from xbench.report.meta import family_rank
+from xbench.report.stats import MIN_N_FOR_CI
+
+
+@dataclass
+class TCell:
+    main: str = ""  # "" renders as a dash (no value)
+    ci: str = ""
+    mark: str = ""
+    bold: bool = False
+
+
+@dataclass
+class TableSpec:
+    ident: str
+    title: str
+    caption: str
+    header: list[tuple[str, str]]  # (group, sub): group = metric name, sub = truth and direction
+    rows: list[tuple[str, list[TCell]]]
+    footer: list[tuple[str, list[str]]] = field(default_factory=list)
+    number: int = 0
+
+
+# ---------------------------------------------------------------- formatting helpers
+
+
+def decimals_for(values) -> int:
+    """Decimals showing about three significant digits of the largest magnitude (0 to 4)."""
+    v = np.abs(np.asarray([x for x in values if x is not None and np.isfinite(x)], dtype=np.float64))
+    if v.size == 0 or v.max() == 0:
+        return 3
+    return int(min(4, max(0, 2 - math.floor(math.log10(v.max())))))
+
+
+def fmt(value: float, decimals: int) -> str:
+    if value is None or not np.isfinite(value):
+        return ""
+    text = f"{value:.{decimals}f}"
+    return "0" if re.fullmatch(r"-0\.?0*", text) else text.replace("-0.000", "0.000")
+
+
+def fmt_p(p: float) -> str:
+    if p is None or not np.isfinite(p):
+        return "n/a"
+    return "p < 0.001" if p < 0.001 else f"p = {p:.3f}"
+
+
+def slug(*parts: str) -> str:
+    return re.sub(r"[^A-Za-z0-9]+", "-", "-".join(parts)).strip("-").lower()
+
+
+def _seed_text(seeds: list[int]) -> str:
+    return f"{len(seeds)} model seed{'s' if len(seeds) != 1 else ''} ({', '.join(map(str, seeds))})"
+
+
+# ---------------------------------------------------------------- building the tables
+
+
+def result_tables(summary: Summary) -> list[TableSpec]:
+    s = summary.settings
+    conf = int(round(100 * s["confidence"]))
+    out: list[TableSpec] = []
+    for task, model in summary.blocks:
+        block = summary.block_table(task, model)
+        if block.empty:
+            continue
+        seeds = summary.seeds.get((task, model), [])
+        present = set(zip(block["metric"], block["truth"], strict=True))
+        cols = [c for c in summary.columns if c.key in present]
+        families = sorted({c.info.family for c in cols}, key=family_rank)
+        for fam in families:
+            fcols = [c for c in cols if c.info.family == fam]
+            header = [(c.metric, _sub(c, block)) for c in fcols]
+            explainers = [e for e in summary.explainers if e in set(block["explainer"])]
+            cells: dict[str, list[TCell]] = {e: [] for e in explainers}
+            ns: list[int] = []
+            k_tested = []
+            percentile = 0
+            for c in fcols:
+                sub = block[(block["metric"] == c.metric) & (block["truth"] == c.truth)].set_index(
+                    "explainer"
+                )
+                d = decimals_for(sub[["mean", "ci_low", "ci_high"]].to_numpy().ravel())
+                if (sub["unit"] == "tile").any():
+                    ns.extend(int(n) for n in sub["n"])
+                    k_tested.append(int(sub["test_n"].gt(0).sum()))
+                percentile += int((sub["ci_method"] == "percentile").sum())
+                for e in explainers:
+                    if e not in sub.index or not np.isfinite(sub.at[e, "mean"]):
+                        cells[e].append(TCell())
+                        continue
+                    r = sub.loc[e]
+                    ci = (
+                        f"[{fmt(r['ci_low'], d)}, {fmt(r['ci_high'], d)}]" if np.isfinite(r["ci_low"]) else ""
+                    )
+                    cells[e].append(TCell(fmt(r["mean"], d), ci, str(r["mark"]), bool(r["best"])))
+            caption = _result_caption(conf, s, seeds, ns, fcols, block, percentile, max(k_tested or [0]))
+            title = f"{task}, model {model}: {fam} metrics"
+            out.append(
+                TableSpec(
+                    slug("results", task, model, fam),
+                    title,
+                    caption,
+                    header,
+                    [(e, cells[e]) for e in explainers],
+                )
+            )
+    return out
+
+
+def _sub(c: Column, block) -> str:
+    sub = block[(block["metric"] == c.metric) & (block["truth"] == c.truth)]
+    parts = [] if c.truth == "none" else [c.truth]
+    if len(sub) and (sub["unit"] == "seed").all():
+        parts.append("per seed†")
+    if c.arrow:
+        parts.append(c.arrow)
+    return " ".join(parts)
+
+
+def _result_caption(
+    conf: int,
+    s: dict,
+    seeds: list[int],
+    ns: list[int],
+    cols: list[Column],
+    block,
+    percentile: int,
+    k_tested: int,
+) -> str:
+    parts = []
+    if ns:
+        n_text = f"{min(ns)}" if min(ns) == max(ns) else f"{min(ns)} to {max(ns)}"
+        parts.append(
+            f"Mean over n = {n_text} explained test tiles (tiles with a defined value) with a {conf}% "
+            f"{s['ci_method']} bootstrap confidence interval ({s['n_resamples']} resamples over tiles); each "
+            f"tile's value is first averaged over {_seed_text(seeds)}."
+        )
+    if any(
+        (block[(block["metric"] == c.metric) & (block["truth"] == c.truth)]["unit"] == "seed").all()
+        for c in cols
+    ):
+        parts.append(
+            f"† One value per seed: mean over {_seed_text(seeds)} (with a {conf}% {s['ci_method']} "
+            f"interval when there are at least {MIN_N_FOR_CI} seeds), not tested."
+        )
+    if any(c.arrow for c in cols):
+        parts.append("Bold: best explainer in the column (↑ higher is better, ↓ lower is better).")
+    if ns:
+        parts.append(
+            "Marks: two-sided Wilcoxon signed-rank test against the column's best explainer, paired by tile, "
+            f"Holm-corrected across the comparisons in the column (up to {k_tested}): * p < 0.05, ** p < "
+            "0.01, "
+            "*** p < 0.001; unmarked: no significant difference from the best."
+        )
+    if percentile:
+        parts.append(f"In {percentile} cell(s) BCa was undefined and the percentile interval is shown.")
+    parts.append("A dash: no value.")
+    return " ".join(parts)
+
+
+def rank_tables(summary: Summary) -> list[TableSpec]:
+    alpha = summary.settings["alpha"]
+    out = []
+    tests = [summary.rank_tests[c.key] for c in summary.columns if c.key in summary.rank_tests]
+    for fam in sorted({t.column.info.family for t in tests}, key=family_rank):
+        ft = [t for t in tests if t.column.info.family == fam]
+        explainers = [e for e in summary.explainers if any(e in t.explainers for t in ft)]
+        rows = {e: [] for e in explainers}
+        for t in ft:
+            best = float(np.min(t.avg_ranks))
+            for e in explainers:
+                if e in t.explainers:
+                    r = float(t.avg_ranks[t.explainers.index(e)])
+                    rows[e].append(TCell(f"{r:.2f}", bold=bool(np.isclose(r, best))))
+                else:
+                    rows[e].append(TCell())
+        footer = [
+            ("blocks N", [str(t.friedman.n_blocks or len(t.blocks)) for t in ft]),
+            ("explainers k", [str(len(t.explainers)) for t in ft]),
+            ("Friedman χ²", [fmt(t.friedman.statistic, 2) or "n/a" for t in ft]),
+            ("Friedman p", [fmt_p(t.friedman.p_value).replace("p = ", "").replace("p ", "") for t in ft]),
+            (f"Nemenyi CD (α = {alpha:g})", [fmt(t.cd, 2) or "n/a" for t in ft]),
+        ]
+        n_blocks = sorted({len(t.blocks) for t in ft})
+        caption = (
+            f"Average rank of each explainer (1 = best) across {'/'.join(map(str, n_blocks))} task × model "
+            "block(s); a block's value is the mean shown in the results tables (ties share their average "
+            "rank). "
+            "Friedman test over blocks (n/a with fewer than 3 explainers or 2 blocks). Nemenyi critical "
+            f"difference CD = q · sqrt(k(k+1)/(6N)) at α = {alpha:g}, q the studentized range quantile "
+            "(infinite degrees of freedom) over sqrt(2) (Demsar 2006): average ranks closer than CD are not "
+            "significantly different. Bold: best average rank. A dash: the explainer lacks a value in some "
+            "block and is left out of that column."
+        )
+        header = [
+            (t.column.metric, " ".join(p for p in ([] if t.column.truth == "none" else [t.column.truth])))
+            for t in ft
+        ]
+        out.append(
+            TableSpec(
+                slug("ranks", fam),
+                f"Average ranks across tasks and models: {fam} metrics",
+                caption,
+                header,
+                [(e, rows[e]) for e in explainers],
+                footer,
+            )
+        )
+    return out
+
+
+def number_tables(tables: list[TableSpec]) -> list[TableSpec]:
+    for i, t in enumerate(tables, 1):
+        t.number = i
+    return tables
+
+
+def _groups(header: list[tuple[str, str]]) -> list[tuple[str, int]]:
+    """Consecutive header columns with the same group, as (group, span)."""
+    out: list[tuple[str, int]] = []
+    for g, _ in header:
+        if out and out[-1][0] == g:
+            out[-1] = (g, out[-1][1] + 1)
+        else:
+            out.append((g, 1))
+    return out
+
+
+# ---------------------------------------------------------------- Markdown
+
+
+def _md(text: str) -> str:
+    return re.sub(r"([|*_\\`])", r"\\\1", text)
+
+
+def to_markdown(t: TableSpec) -> str:
+    head = ["Explainer"] + [_md(f"{g} {s}".strip()) for g, s in t.header]
+    lines = [
+        f"### Table {t.number}. {_md(t.title)}",
+        "",
+        "| " + " | ".join(head) + " |",
+        "| :-- | " + " | ".join("--:" for _ in t.header) + " |",
+    ]
+    for name, cells in t.rows:
+        out = []
+        for c in cells:
+            if not c.main:
+                out.append("–")
+                continue
+            v = f"**{c.main}**" if c.bold else c.main
+            out.append(" ".join(x for x in (v, c.ci) if x) + _md(c.mark))
+        lines.append(f"| {_md(name)} | " + " | ".join(out) + " |")
+    for label, values in t.footer:
+        lines.append(f"| *{_md(label)}* | " + " | ".join(_md(v) for v in values) + " |")
+    lines += ["", f"*{_md(t.caption)}*", ""]
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------- LaTeX
+
+_TEX_SPECIAL = {
+    "\\": r"\textbackslash{}",
+    "&": r"\&",
+    "%": r"\%",
+    "$": r"\$",
+    "#": r"\#",
+    "_": r"\_",
+    "{": r"\{",
+    "}": r"\}",
+    "~": r"\textasciitilde{}",
+    "^": r"\textasciicircum{}",
+}
+_TEX_UNICODE = {
+    "↑": r"$\uparrow$",
+    "↓": r"$\downarrow$",
+    "χ²": r"$\chi^2$",
+    "α": r"$\alpha$",
+    "×": r"$\times$",
+    "·": r"$\cdot$",
+    "–": "--",
+    "—": "---",
+    "≥": r"$\geq$",
+    "≤": r"$\leq$",
+    "±": r"$\pm$",
+    "†": r"\textsuperscript{\dag}",
+    "‡": r"\textsuperscript{\ddag}",
+    "<": r"$<$",
+    ">": r"$>$",
+}
+
+
+def tex_escape(text: str) -> str:
+    """Escape LaTeX specials, map the few Unicode signs we use, set significance stars as superscripts."""
+    out = "".join(_TEX_SPECIAL.get(ch, ch) for ch in str(text))
+    for k, v in _TEX_UNICODE.items():
+        out = out.replace(k, v)
+    return re.sub(r"(\*+)", lambda m: f"$^{{{m.group(1)}}}$", out)
+
+
+def _tex_mark(mark: str) -> str:
+    return f"$^{{{mark}}}$" if mark else ""
+
+
+def to_latex(t: TableSpec) -> str:
+    ncol = len(t.header)
+    lines = [
+        r"\begin{table}[htbp]",
+        r"  \centering",
+        r"  \small",
+        f"  \\caption{{{tex_escape(t.title)}. {tex_escape(t.caption)}}}",
+        f"  \\label{{tab:xbench-{t.ident}}}",
+    ]
+    wide = ncol > 3
+    if wide:
+        lines.append(r"  \resizebox{\linewidth}{!}{%")
+    lines.append(f"  \\begin{{tabular}}{{l{'c' * ncol}}}")
+    lines.append(r"  \toprule")
+    groups = _groups(t.header)
+    row1, rules, col = ["Explainer" if not any(s for _, s in t.header) else ""], [], 2
+    for g, span in groups:
+        row1.append(f"\\multicolumn{{{span}}}{{c}}{{{tex_escape(g)}}}" if span > 1 else tex_escape(g))
+        rules.append(f"\\cmidrule(lr){{{col}-{col + span - 1}}}")
+        col += span
+    lines.append("  " + " & ".join(row1) + r" \\")
+    if any(s for _, s in t.header):
+        lines.append("  " + " ".join(rules))
+        lines.append("  " + " & ".join(["Explainer"] + [tex_escape(s) for _, s in t.header]) + r" \\")
+    lines.append(r"  \midrule")
+    for name, cells in t.rows:
+        out = []
+        for c in cells:
+            if not c.main:
+                out.append("--")
+                continue
+            v = f"\\textbf{{{c.main}}}" if c.bold else c.main
+            ci = f" {{\\scriptsize {c.ci}}}" if c.ci else ""
+            out.append(v + ci + _tex_mark(c.mark))
+        lines.append("  " + " & ".join([tex_escape(name)] + out) + r" \\")
+    if t.footer:
+        lines.append(r"  \midrule")
+        for label, values in t.footer:
+            lines.append("  " + " & ".join([tex_escape(label)] + [tex_escape(v) for v in values]) + r" \\")
+    lines.append(r"  \bottomrule")
+    lines.append(r"  \end{tabular}" + ("%" if wide else ""))
+    if wide:
+        lines.append("  }")
+    lines.append(r"\end{table}")
+    return "\n".join(lines) + "\n"
+
+
+LATEX_PREAMBLE_NOTE = (
+    "% xbench comparison tables. Needs \\usepackage{booktabs} and \\usepackage{graphicx}\n"
+    "% in the preamble; \\input this file where the tables go.\n"
+)
+
+
+# ---------------------------------------------------------------- HTML
+
+
+def _h(text: str) -> str:
+    return html.escape(str(text), quote=True)
+
+
+def to_html(t: TableSpec) -> str:
+    groups = _groups(t.header)
+    two_rows = any(s for _, s in t.header)
+    lines = [
+        f'<figure class="table" id="{_h(t.ident)}">',
+        f"<figcaption><b>Table {t.number}.</b> {_h(t.title)}. {_h(t.caption)}</figcaption>",
+        "<table>",
+        "<thead>",
+    ]
+    rowspan = ' rowspan="2"' if two_rows else ""
+    first = [f'<th{rowspan} class="name">Explainer</th>']
+    for g, span in groups:
+        first.append(
+            f'<th colspan="{span}">{_h(g)}</th>'
+            if span > 1
+            else (f"<th>{_h(g)}</th>" if not two_rows else f'<th class="grp">{_h(g)}</th>')
+        )
+    lines.append("<tr>" + "".join(first) + "</tr>")
+    if two_rows:
+        lines.append("<tr>" + "".join(f"<th>{_h(s)}</th>" for _, s in t.header) + "</tr>")
+    lines += ["</thead>", "<tbody>"]
+    for name, cells in t.rows:
+        out = []
+        for c in cells:
+            if not c.main:
+                out.append('<td class="na">–</td>')
+                continue
+            v = f"<strong>{_h(c.main)}</strong>" if c.bold else _h(c.main)
+            ci = f' <span class="ci">{_h(c.ci)}</span>' if c.ci else ""
+            mark = f"<sup>{_h(c.mark)}</sup>" if c.mark else ""
+            out.append(f"<td>{v}{ci}{mark}</td>")
+        lines.append(f'<tr><th class="name">{_h(name)}</th>' + "".join(out) + "</tr>")
+    lines.append("</tbody>")
+    if t.footer:
+        lines.append("<tfoot>")
+        for label, values in t.footer:
+            lines.append(
+                f'<tr><th class="name">{_h(label)}</th>'
+                + "".join(f"<td>{_h(v)}</td>" for v in values)
+                + "</tr>"
+            )
+        lines.append("</tfoot>")
+    lines += ["</table>", "</figure>"]
+    return "\n".join(lines)
