@@ -53,8 +53,8 @@ above = 0.008
 name = "cnn"
 kind = "cnn"
 width = 16
-epochs = 10
-patience = 3
+epochs = 14
+patience = 4
 
 [explainers]
 keys = ["gradient", "grad-cam", "random", "edges", "oracle"]

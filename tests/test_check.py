@@ -666,6 +666,8 @@ def test_plugin_fixture_runs_a_task_with_a_user_explainer(pytester, runs):
             task, kw = CALLS[-1]
             assert task.endswith("tasks/tiny.toml")
             assert kw == {"jobs": 1, "explainers": ["gradient"], "models": None, "seeds": [0, 1]}
+            assert xbench_task_run(explainers=["gradient"], seeds=[0, 1]) == run_dir  # no second run
+            assert len(CALLS) == 1
             assert_faithful(run_dir, gates={"gate": [
                 {"explainer": "gradient", "metric": "mass-accuracy", "at_least": 0.3}]})
 
@@ -674,3 +676,64 @@ def test_plugin_fixture_runs_a_task_with_a_user_explainer(pytester, runs):
     """)
     result = pytester.runpytest("-p", "no:cacheprovider")
     result.assert_outcomes(passed=2)
+
+
+USER_CONFTEST = """
+import numpy as np
+import torch
+from scipy.ndimage import gaussian_filter
+
+from xbench.explainers import register_explainer
+
+
+@register_explainer("smooth-saliency", needs={"gradients"}, defaults={"sigma": 1.5},
+                    citation="In-house: |input gradient| of the target logit, max over bands, smoothed.")
+def smooth_saliency(model, images, targets, context, *, sigma):
+    x = torch.from_numpy(images).requires_grad_(True)
+    with torch.enable_grad():
+        logits = model.module(x)
+        logits.gather(1, torch.from_numpy(targets).long()[:, None]).sum().backward()
+    maps = x.grad.abs().amax(dim=1).numpy()
+    return gaussian_filter(maps, sigma=(0, sigma, sigma)).astype(np.float32)
+"""
+
+
+@pytest.mark.slow
+def test_plugin_end_to_end_with_a_user_explainer(pytester, tmp_path, monkeypatch):
+    """The README example for real: a user explainer registered in the user's conftest, the runner's tiny
+    task run once by the fixture (a small CNN trained into a fresh cache), gates applied to the folder.
+    The user's explainer passes; the random control under the same bounds fails with the table."""
+    from xbench.explainers import unregister_explainer
+
+    task = Path(__file__).parent / "data" / "tiny_task.toml"
+    if not task.is_file():
+        pytest.skip("the runner's tiny test task is not there")
+    monkeypatch.setenv("XBENCH_CACHE", str(tmp_path / "cache"))
+    pytester.makeconftest(USER_CONFTEST)
+    pytester.makepyfile(test_user_faithfulness=f"""
+        import pytest
+        from xbench.pytest_plugin import assert_faithful
+
+        def bounds(explainer):
+            return {{"gate": [
+                {{"explainer": explainer, "metric": "mask-auroc", "truth": "planted", "at_least": 0.7}},
+                {{"explainer": explainer, "metric": "pointing-game", "truth": "planted", "at_least": 0.5}},
+            ]}}
+
+        @pytest.fixture(scope="module")
+        def run_dir(xbench_task_run):
+            return xbench_task_run({str(task)!r}, explainers=["smooth-saliency", "random"])
+
+        def test_my_explainer_finds_the_roads(run_dir):
+            assert_faithful(run_dir, gates=bounds("smooth-saliency"))
+
+        def test_random_control_does_not(run_dir):
+            assert_faithful(run_dir, gates=bounds("random"))
+    """)
+    try:
+        result = pytester.runpytest("-p", "no:cacheprovider")
+    finally:
+        unregister_explainer("smooth-saliency")
+    result.assert_outcomes(passed=1, failed=1)
+    result.stdout.fnmatch_lines(["*test_random_control_does_not*",
+                                 "*FAIL*random*mask-auroc*planted*at least*"])

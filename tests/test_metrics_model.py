@@ -148,7 +148,8 @@ def test_infidelity_agrees_with_captum(fresh, normalize):
     targets = np.ones(n, int)
     attr = _input_gradient(handle, images, targets)
     inputs = MetricInputs(attr, images, targets, model=handle, seed=seed)
-    ours = compute_metric("infidelity", inputs, samples=samples, noise=noise_sd, normalize=normalize)[0].values
+    (res,) = compute_metric("infidelity", inputs, samples=samples, noise=noise_sd, normalize=normalize)
+    ours = res.values
     pert = np.concatenate([infidelity_perturbations(seed, i, (H, W), samples, noise_sd) for i in range(n)])
     pert = torch.from_numpy(np.repeat(pert[:, None], c, axis=1))  # shared by every band
 
@@ -162,8 +163,9 @@ def test_infidelity_agrees_with_captum(fresh, normalize):
     # so that the dot product with a band-shared perturbation is the same as ours.
     spread = torch.from_numpy(np.repeat(attr[:, None] / c, c, axis=1))
     # reference: captum.metrics.infidelity on the same perturbations (Yeh et al. 2019)
-    ref = captum_infidelity(forward, perturb, torch.from_numpy(images), spread, target=torch.from_numpy(targets),
-                            n_perturb_samples=samples, normalize=normalize).numpy()
+    ref = captum_infidelity(forward, perturb, torch.from_numpy(images), spread,
+                            target=torch.from_numpy(targets), n_perturb_samples=samples,
+                            normalize=normalize).numpy()
     assert np.all(ref > 1e-9)  # not a vacuous comparison
     np.testing.assert_allclose(ours, ref, rtol=1e-3, atol=0)
 

@@ -74,8 +74,8 @@ def build(attr, planted, verified, seed, with_model=False):
     type_masks = np.stack([planted, verified, ~planted], axis=1)
     kw = dict(attributions=attr, images=images, targets=rng.integers(0, 3, n), planted=planted,
               verified=verified, type_masks=type_masks, mask_names=["road", "clearing", "river"],
-              type_importance={"road": 0.3, "clearing": 0.1, "river": -0.02}, relied_types=["road", "clearing"],
-              lookalike_types=["river"], unused_types=[], seed=seed,
+              type_importance={"road": 0.3, "clearing": 0.1, "river": -0.02},
+              relied_types=["road", "clearing"], lookalike_types=["river"], unused_types=[], seed=seed,
               cost=SimpleNamespace(forward_calls=3 * n, backward_calls=n, seconds=0.1))
     if with_model:
         kw.update(model=HANDLE, twins=(images * 0.7).astype(np.float32), explain_fn=explain)

@@ -38,7 +38,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse: usage errors exit 2, --help and --version exit 0
+        return int(exc.code or 0)
     if not getattr(args, "verb", None):
         parser.print_help()
         return 2

@@ -146,6 +146,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
     os.close(fd)
     try:
         np.savez_compressed(tmp, **arrays)
+        os.chmod(tmp, 0o644)  # mkstemp makes owner-only files; a pack is meant to be shared
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):

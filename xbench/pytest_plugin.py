@@ -65,12 +65,15 @@ def _keys(value: str | Iterable[Any] | None, cast: Callable = str) -> list | Non
     return [cast(v) for v in items]
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def xbench_task_run(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> Callable:
     """Run a small xbench task into a temporary folder and return the run folder (a ``Path``).
 
-    Call it: ``run_dir = xbench_task_run("tasks/ci.toml", explainers={"my-explainer": {}})``.
+    Call it: ``run_dir = xbench_task_run("tasks/ci.toml", explainers=["my-explainer", "random"])``.
+    Session-scoped, so module-scoped fixtures can use it; a call with the same arguments as an earlier
+    one in the session returns the earlier run folder instead of running again.
     """
+    done: dict[tuple, Path] = {}
 
     def run(task: str | Path | None = None, *, explainers: str | Iterable[str] | None = None,
             models: str | Iterable[str] | None = None, seeds: int | Iterable[int] | None = None,
@@ -82,18 +85,23 @@ def xbench_task_run(request: pytest.FixtureRequest, tmp_path_factory: pytest.Tem
             task = _ini_path(request.config, "xbench_task")
             if task is None:
                 raise pytest.UsageError("xbench_task_run: give a task, or set the ini option xbench_task")
+        wanted = (_keys(explainers), _keys(models), _keys(seeds, int))
+        key = (str(Path(task).resolve()) if Path(task).is_file() else str(task),
+               *(None if w is None else tuple(w) for w in wanted), jobs)
+        if key in done:
+            return done[key]
         out = tmp_path_factory.mktemp("xbench-run")
-        summary = run_task(task, out, jobs=jobs, explainers=_keys(explainers), models=_keys(models),
-                           seeds=_keys(seeds, int))
+        summary = run_task(task, out, jobs=jobs, explainers=wanted[0], models=wanted[1], seeds=wanted[2])
         if summary.cells_failed:
             details = "; ".join(f"{f['cell']}: {f['error']}" for f in summary.failures[:3])
             pytest.fail(f"xbench_task_run: {summary.cells_failed} cell(s) failed ({details})", pytrace=False)
-        return Path(summary.out_dir)
+        done[key] = Path(summary.out_dir)
+        return done[key]
 
     return run
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def xbench_assert_faithful(request: pytest.FixtureRequest) -> Callable:
     """:func:`assert_faithful` with the ini option ``xbench_gates`` as the default gate file."""
     default_gates = _ini_path(request.config, "xbench_gates")

@@ -152,7 +152,8 @@ def _expect(value: Any, types: tuple[type, ...], where: str, what: str) -> Any:
 def _unknown(table: dict[str, Any], allowed: set[str], where: str) -> None:
     extra = sorted(set(table) - allowed)
     if extra:
-        raise XbenchInputError(f"{where}.{extra[0]}" if where else extra[0], "unknown key",
+        at = f"{where} {extra[0]}" if where.endswith(":") else f"{where}.{extra[0]}"
+        raise XbenchInputError(at, "unknown key",
                                expected="one of " + ", ".join(sorted(allowed)), found=extra[0])
 
 

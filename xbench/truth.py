@@ -84,11 +84,8 @@ def _plan(scenes: Sequence[Any]) -> list[_Render]:
 
 
 def scene_has_cue(scene: Any) -> bool:
-    """Whether a scene is rendered with the spurious cue on."""
-    for attr in ("cue_on", "has_cue"):
-        if hasattr(scene, attr):
-            return bool(getattr(scene, attr))
-    return getattr(scene, "cue", None) not in (None, False)
+    """Whether a scene is rendered with a spurious cue switched on."""
+    return bool(getattr(scene, "cue_on", False)) and getattr(scene, "cue", None) is not None
 
 
 def _batches(plan: list[_Render], scenes: Sequence[Any], batch_size: int) -> Iterator[np.ndarray]:

@@ -104,7 +104,7 @@ def render_one(spec: ExplainerSpec, width: int = 100) -> str:
 
 def run(args: argparse.Namespace) -> int:
     errors = load_plugins()
-    width = min(shutil.get_terminal_size((100, 24)).columns, 120)
+    width = max(min(shutil.get_terminal_size((120, 24)).columns, 140), 80)
     if args.key:
         spec = get_explainer(args.key)
         print(json.dumps(as_dict(spec), indent=2) if args.json else render_one(spec, width))

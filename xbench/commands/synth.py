@@ -142,6 +142,7 @@ def _write_json(path: Path, obj: object) -> None:
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
     with os.fdopen(fd, "w") as fh:
         json.dump(obj, fh, indent=1)
+    os.chmod(tmp, 0o644)  # mkstemp makes private files; this is an ordinary output file
     os.replace(tmp, path)
 
 

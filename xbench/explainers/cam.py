@@ -20,6 +20,8 @@ from xbench.explainers.base import (
     backward_counted,
     batches,
     check_choice,
+)
+from xbench.explainers.base import (
     upsample as resize_maps,
 )
 from xbench.explainers.registry import register_explainer

@@ -26,8 +26,9 @@ Outputs
   / |cluster| over all pixels of the fitting set (``fit_masks``; else the explained tiles' ``masks``), the
   cluster maps upsampled by nearest neighbour.
 - ``type_importance[t]``: mean target-score drop of the cluster best matched to t (over the tiles where it
-  occurs; 0 when no cluster reaches ``min_iou``); ``flagged[t]``: that drop is positive and significant
-  (one-sample t-test, Bonferroni over the types, level ``alpha``).
+  occurs; 0 when no cluster reaches ``min_iou``); ``flagged[t]``: that mean drop exceeds ``min_drop``
+  (0.01 by default: a consistent but negligible effect is not "use") and is significant (one-sample
+  t-test, Bonferroni over the types, level ``alpha``).
 - extras (also attributes of the report): ``cluster_maps`` int (N, h, w) of the explained tiles,
   ``score_changes`` (n_clusters, N, n_classes) = score *drops* (original minus replaced), ``fit_cluster_maps``,
   ``iou`` and ``purity`` (n_clusters, K), ``mask_names``, ``class_names``, ``n_clusters``, ``bic``, ``layer``.
@@ -125,12 +126,12 @@ def _ttest(d: np.ndarray) -> float | None:
                     defaults={"layer": None, "n_clusters": "bic", "cluster_range": [2, 8],
                               "pca_components": 8, "covariance": "full", "max_positions": 20000,
                               "baseline": "fit-mean", "score": "probability", "alpha": 0.05,
-                              "min_iou": 0.1},
+                              "min_drop": 0.01, "min_iou": 0.1},
                     description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
                                 "each replaced by a baseline inside the network; attribution = cluster "
                                 "maps weighted by the target-score drop; reports IoU/purity per type")
 def activation_clusters(model, images, targets, context, *, layer, n_clusters, cluster_range,
-                        pca_components, covariance, max_positions, baseline, score, alpha, min_iou):
+                        pca_components, covariance, max_positions, baseline, score, alpha, min_drop, min_iou):
     if n_clusters != "bic":
         n_clusters = check_int(KEY, "n_clusters", n_clusters, 1)
     if (not isinstance(cluster_range, (list, tuple)) or len(cluster_range) != 2
@@ -145,6 +146,7 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
     baseline = check_choice(KEY, "baseline", baseline, ("fit-mean", "zero"))
     score = check_choice(KEY, "score", score, ("probability", "logit"))
     alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
+    min_drop = check_float(KEY, "min_drop", min_drop, 0.0)
     min_iou = check_float(KEY, "min_iou", min_iou, 0.0, 1.0)
     seed = int(context.seed)
     bs = context.batch_size
@@ -254,7 +256,7 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
         d = target_drop[c, present_all[c]]
         importance[name] = float(d.mean()) if d.size else 0.0
         p = _ttest(d)
-        flagged[name] = bool(p is not None and p < alpha / max(len(names), 1) and d.mean() > 0)
+        flagged[name] = bool(p is not None and p < alpha / max(len(names), 1) and d.mean() > min_drop)
 
     report = ConceptReport(rows=rows, type_importance=importance, flagged=flagged, extras={
         "cluster_maps": cluster_maps.astype(np.int64), "score_changes": drops.astype(np.float32),

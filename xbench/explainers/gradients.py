@@ -50,6 +50,10 @@ CITE_GUIDED = ("Springenberg, Dosovitskiy, Brox, Riedmiller. Striving for simpli
 CITE_DEEPLIFT = ("Shrikumar, Greenside, Kundaje. Learning important features through propagating activation "
                  "differences. ICML 2017.")
 
+# activation modules captum's DeepLift has rules for (captum.attr._core.deep_lift.SUPPORTED_NON_LINEAR)
+DEEPLIFT_MODULES = (torch.nn.ReLU, torch.nn.ELU, torch.nn.Sigmoid, torch.nn.Tanh, torch.nn.Softmax,
+                    torch.nn.MaxPool1d, torch.nn.MaxPool2d, torch.nn.MaxPool3d)
+
 
 def _per_batch(model: ModelHandle, images: np.ndarray, targets: np.ndarray, context: ExplainContext,
                attribute: Callable[[torch.Tensor, torch.Tensor, slice], torch.Tensor]) -> np.ndarray:
@@ -60,6 +64,15 @@ def _per_batch(model: ModelHandle, images: np.ndarray, targets: np.ndarray, cont
         t = torch.from_numpy(targets[sl])
         out[sl] = as_numpy(attribute(x, t, sl))
     return out
+
+
+def _require_modules(key: str, model: ModelHandle, types: tuple[type, ...], what: str) -> None:
+    """captum's modified backpropagation works through hooks on activation *modules*; a network whose
+    non-linearities are all functional calls would silently get plain gradients instead."""
+    if not any(isinstance(m, types) for m in model.module.modules()):
+        raise XbenchInputError(f"explainer '{key}'", f"model '{model.name}' has no {what} modules "
+                               "(functional activations such as torch.relu cannot be hooked)",
+                               expected=f"non-linearities as {what} modules, each used once")
 
 
 def _modified_backprop_error(key: str, model: ModelHandle, exc: Exception) -> XbenchInputError:
@@ -141,6 +154,7 @@ def smoothgrad(model, images, targets, context, *, n_samples, stdev, reduce):
 def guided_backprop(model, images, targets, context, *, reduce):
     key = "guided-backprop"
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
+    _require_modules(key, model, (torch.nn.ReLU,), "nn.ReLU")
     method = GuidedBackprop(model.module)
     try:
         raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(x, target=t))
@@ -159,6 +173,7 @@ def deeplift(model, images, targets, context, *, baseline, blur_sigma, reduce):
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
     base = make_baseline(key, baseline, images, context, blur_sigma)
+    _require_modules(key, model, DEEPLIFT_MODULES, "nn.ReLU (or other DeepLIFT-supported activation)")
     method = DeepLift(model.module)
     try:
         raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(

@@ -228,6 +228,10 @@ def validate_inputs(inputs: MetricInputs) -> None:
     if t.shape != (n,) or not np.issubdtype(t.dtype, np.integer):
         raise XbenchInputError("metric inputs: targets", "wrong shape or dtype", expected=f"int ({n},)",
                                found=f"{t.dtype} {t.shape}")
+    if inputs.model is not None and n and (t.min() < 0 or t.max() >= inputs.model.n_classes):
+        raise XbenchInputError("metric inputs: targets", "class index out of range",
+                               expected=f"0..{inputs.model.n_classes - 1}",
+                               found=(int(t.min()), int(t.max())))
     for name in ("planted", "verified", "evidence"):
         arr = getattr(inputs, name)
         if arr is not None and np.shape(arr) != (n, h, w):
@@ -294,6 +298,8 @@ def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[Metr
     for truth in spec.truths:
         hard = [r for n in spec.needs if n in HARD_NEEDS if (r := _hard_need_missing(n, inputs))]
         missing = hard[0] if hard else None
+        if missing is None and inputs.n_tiles == 0:
+            missing = "no tiles"
         if missing is None and truth in TRUTH_KINDS and inputs.truth_mask(truth) is None:
             missing = ("needs the planted mask" if truth == "planted" else
                        "needs the model-verified evidence mask (from counterfactual twins, truth module)")

@@ -5,8 +5,10 @@ the mean drop of the target score when that type's instances are removed; signed
 the type roles (relied-on types, look-alikes, unused types).
 
 A method's importance per type:
-- **concept methods** (``concept_report`` given, e.g. activation clusters matched to types, TCAV): their
-  ``concept_report.type_importance`` (signed, 0 = no effect) and ``concept_report.flagged``;
+- **concept methods** (``concept_report`` given): their ``concept_report.type_importance`` (signed,
+  0 = no effect) and ``concept_report.flagged``. The explainers fill these: ``activation-clusters`` with
+  the score sensitivity of the cluster matched to each type, ``tcav`` with its score per type centred
+  on 0.5 (score - 0.5) and ``flagged`` = significant against random concepts;
 - **pixel methods**: from ``type_masks``, over the tiles where the type is present,
   importance = mean of (attribution summed inside the type's mask) / (sum of |attribution|) (the signed
   mass share, in [-1, 1]); a type is *flagged* when its mean positive-mass share exceeds

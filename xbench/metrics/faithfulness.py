@@ -65,13 +65,16 @@ def make_baseline(images: np.ndarray, kind: str, twins: np.ndarray | None = None
                            found=kind)
 
 
-def pixel_order(attributions: np.ndarray, seed: int, most_relevant_first: bool = True) -> np.ndarray:
+def pixel_order(attributions: np.ndarray, seed: int, most_relevant_first: bool = True,
+                tile_ids: np.ndarray | None = None) -> np.ndarray:
     """(N, H*W) pixel indices sorted by attribution (descending for MoRF, ascending for LeRF); ties are
-    broken by a random key drawn from ``seed``."""
+    broken by a random key drawn per tile from ``[seed, tile, 1729]`` (``tile_ids`` default 0..N-1)."""
     a = np.asarray(attributions, dtype=np.float64)
     a = a.reshape(a.shape[0], -1)
     a = np.nan_to_num(a, nan=0.0, posinf=0.0, neginf=0.0)
-    tie = np.random.default_rng([int(seed), 1729]).random(a.shape)
+    ids = np.arange(a.shape[0]) if tile_ids is None else np.asarray(tile_ids)
+    tie = np.stack([np.random.default_rng([int(seed), int(i), 1729]).random(a.shape[1]) for i in ids]) \
+        if len(ids) else np.zeros(a.shape)
     return np.lexsort((tie, -a if most_relevant_first else a), axis=-1)
 
 
@@ -246,7 +249,8 @@ def _curves(inputs: MetricInputs, settings: dict[str, Any], mode: str, morf: boo
         images = np.asarray(inputs.images, dtype=np.float32)[good]
         twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
         base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
-        order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf)
+        order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf,
+                            tile_ids=good)
         out[good] = perturbation_curves(_prob_fn(inputs), images, np.asarray(inputs.targets)[good], base,
                                         order, steps, mode)
     inputs._cache[key] = out

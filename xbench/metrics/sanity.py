@@ -44,7 +44,6 @@ from xbench.metrics.base import (
 )
 from xbench.models.base import ModelHandle
 
-
 SSIM_WINDOW = 7
 
 

@@ -58,6 +58,7 @@ class TrainedModel:
     weights_hash: str
     n_parameters: int = 0
     epochs: int = 0
+    cpu_seconds: float = 0.0
     cache_dir: Path | None = None
     history: list[dict[str, float]] = field(default_factory=list)
 
@@ -233,7 +234,7 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
         if loaded is not None:
             return loaded
     packs = {"train": data.train, "val": data.val, "test": data.test}
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     history: list[dict[str, float]] = []
     if spec.kind in TORCH_KINDS:
         arch, params = _split_params(spec)
@@ -241,7 +242,7 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
             module = build_torch_model(spec.kind, n_bands, n_classes, **arch)
             module.norm.set_statistics(data.train.images)
             history, best_epoch = _fit_torch(module, data.train, data.val, params, seed, n_classes)
-        seconds = time.perf_counter() - t0
+        seconds, cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
         state = module.state_dict()
         weights_hash = state_dict_hash(state)
         handle = ModelHandle(name, n_classes, module=module, batch_size=batch_size)
@@ -252,7 +253,7 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
     elif spec.kind == "forest":
         arrays = fit_forest(tile_features(data.train.images, data.train.band_names), data.train.labels,
                             n_classes, seed, spec.params)
-        seconds = time.perf_counter() - t0
+        seconds, cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
         weights_hash = forest_hash(arrays)
         handle = ModelHandle(name, n_classes, predict_fn=ForestPredictor(arrays, data.train.band_names),
                              batch_size=batch_size)
@@ -274,11 +275,11 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
             "model": spec.as_dict(), "seed": int(seed), "task": task.name, "data_hash": task.data.hash,
             "xbench": __version__, "train_code": TRAIN_CODE_VERSION, "weights_file": weights_file,
             "weights_hash": weights_hash, "accuracy": accuracy, "seconds": seconds,
-            "n_parameters": n_params, "epochs": best_epoch, "history": history,
+            "cpu_seconds": cpu_seconds, "n_parameters": n_params, "epochs": best_epoch, "history": history,
         })
     return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=accuracy, seconds=seconds,
                         cached=False, weights_hash=weights_hash, n_parameters=n_params, epochs=best_epoch,
-                        cache_dir=entry if use_cache else None, history=history)
+                        cpu_seconds=cpu_seconds, cache_dir=entry if use_cache else None, history=history)
 
 
 def _load_cached(entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int, band_names: list[str],
@@ -305,9 +306,10 @@ def _load_cached(entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int
                 return None
             handle = ModelHandle(spec.name, n_classes, predict_fn=ForestPredictor(arrays, band_names),
                                  batch_size=batch_size)
-    except (OSError, KeyError, ValueError, RuntimeError, json.JSONDecodeError):
-        return None  # a damaged entry is retrained and overwritten
+    except Exception:  # unreadable or unpicklable files, missing keys: retrain and overwrite the entry
+        return None
     return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=dict(meta["accuracy"]),
                         seconds=float(meta["seconds"]), cached=True, weights_hash=meta["weights_hash"],
                         n_parameters=int(meta.get("n_parameters", 0)), epochs=int(meta.get("epochs", 0)),
-                        cache_dir=entry, history=list(meta.get("history", [])))
+                        cpu_seconds=float(meta.get("cpu_seconds", 0.0)), cache_dir=entry,
+                        history=list(meta.get("history", [])))

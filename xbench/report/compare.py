@@ -165,7 +165,15 @@ def summarize(
             key = (task, model, col.metric, col.truth)
             if key not in grouped.groups:
                 continue
-            unit, wide, n_seeds = unit_values(grouped.get_group(key))
+            group = grouped.get_group(key)
+            unit, wide, n_seeds = unit_values(group)
+            if unit == "tile":
+                lone = sorted(set(group["explainer"]) - set(group.loc[group["tile"] >= 0, "explainer"]))
+                if lone:
+                    log.append(
+                        f"{task}/{model} {col.label}: {', '.join(lone)} have one value per seed, "
+                        "not per tile, and are left out of that column"
+                    )
             names = [e for e in explainers if e in wide.columns]
             cis = {
                 e: stats.bootstrap_ci(wide[e].to_numpy(), confidence, n_resamples, seed=seed) for e in names

@@ -64,7 +64,8 @@ def bootstrap_ci(
     if n < max(min_n, 2):
         return Interval(mean, np.nan, np.nan, n, "none")
     if np.all(x == x[0]):
-        return Interval(mean, mean, mean, n, "degenerate")
+        v = float(x[0])
+        return Interval(v, v, v, n, "degenerate")
     for m in (method, "percentile"):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

@@ -13,6 +13,7 @@ import re
 from dataclasses import dataclass, field
 
 import numpy as np
+import pandas as pd
 
 from xbench.report.compare import Column, Summary
 from xbench.report.meta import family_rank
@@ -36,24 +37,31 @@ class TableSpec:
     rows: list[tuple[str, list[TCell]]]
     footer: list[tuple[str, list[str]]] = field(default_factory=list)
     number: int = 0
+    row_label: str = "Explainer"
 
 
 # ---------------------------------------------------------------- formatting helpers
 
 
-def decimals_for(values) -> int:
-    """Decimals showing about three significant digits of the largest magnitude (0 to 4)."""
+def decimals_for(values) -> int | None:
+    """Decimals showing about three significant digits of the largest magnitude (0 to 4); None (three
+    significant digits per value) when the magnitudes span more than a factor 20, e.g. seconds per tile."""
     v = np.abs(np.asarray([x for x in values if x is not None and np.isfinite(x)], dtype=np.float64))
-    if v.size == 0 or v.max() == 0:
+    v = v[v > 0]
+    if v.size == 0:
         return 3
+    if v.max() / v.min() > 20 or v.max() < 1e-3:
+        return None
     return int(min(4, max(0, 2 - math.floor(math.log10(v.max())))))
 
 
-def fmt(value: float, decimals: int) -> str:
+def fmt(value: float, decimals: int | None) -> str:
     if value is None or not np.isfinite(value):
         return ""
+    if decimals is None:
+        return f"{value:#.3g}".rstrip(".")
     text = f"{value:.{decimals}f}"
-    return "0" if re.fullmatch(r"-0\.?0*", text) else text.replace("-0.000", "0.000")
+    return "0" if re.fullmatch(r"-0\.?0*", text) else text
 
 
 def fmt_p(p: float) -> str:
@@ -97,7 +105,7 @@ def result_tables(summary: Summary) -> list[TableSpec]:
                 sub = block[(block["metric"] == c.metric) & (block["truth"] == c.truth)].set_index(
                     "explainer"
                 )
-                d = decimals_for(sub[["mean", "ci_low", "ci_high"]].to_numpy().ravel())
+                d = decimals_for(sub["mean"].to_numpy())
                 if (sub["unit"] == "tile").any():
                     ns.extend(int(n) for n in sub["n"])
                     k_tested.append(int(sub["test_n"].gt(0).sum()))
@@ -227,6 +235,69 @@ def rank_tables(summary: Summary) -> list[TableSpec]:
     return out
 
 
+CONCEPT_ROWS_SHOWN = 60
+
+
+def concept_tables(concepts: pd.DataFrame | None) -> tuple[list[TableSpec], list[str]]:
+    """Concept reports (TCAV, activation clusters) per task and model, one row per seed and concept.
+
+    Not averaged over seeds: cluster identities are arbitrary per seed. Markdown and HTML only (a long
+    list does not suit a LaTeX float); every row is in concepts.csv.
+    """
+    notes: list[str] = []
+    if concepts is None or concepts.empty:
+        return [], notes
+    out = []
+    cols = [
+        ("class", "class_name"),
+        ("score", "score"),
+        ("spread", "spread"),
+        ("p-value", "p_value"),
+        ("matched type", "matched_type"),
+        ("IoU", "iou"),
+        ("purity", "purity"),
+    ]
+    for (task, model), g in concepts.groupby(["task", "model"], sort=False):
+        g = g.sort_values(["explainer", "seed", "concept", "class_name"], kind="stable")
+        rows = []
+        for r in g.head(CONCEPT_ROWS_SHOWN).itertuples(index=False):
+            cells = []
+            for _, key in cols:
+                v = getattr(r, key)
+                if isinstance(v, (int, float, np.floating)) and not isinstance(v, bool):
+                    cells.append(
+                        TCell(
+                            fmt_p(v).replace("p = ", "").replace("p ", "")
+                            if key == "p_value"
+                            else fmt(float(v), 3)
+                        )
+                    )
+                else:
+                    cells.append(TCell("" if v is None or (isinstance(v, float) and np.isnan(v)) else str(v)))
+            rows.append((f"{r.explainer} / seed {r.seed} / {r.concept}", cells))
+        if len(g) > CONCEPT_ROWS_SHOWN:
+            notes.append(
+                f"concept table {task}/{model}: {len(g)} rows, first {CONCEPT_ROWS_SHOWN} shown; "
+                "all in concepts.csv"
+            )
+        caption = (
+            "Concept reports as the concept explainers recorded them, one row per seed, concept and "
+            "class (not averaged over seeds: cluster identities differ between seeds). Matched type, "
+            "IoU and purity compare a concept with the planted structure types. A dash: not reported."
+        )
+        out.append(
+            TableSpec(
+                slug("concepts", task, model),
+                f"{task}, model {model}: concept reports",
+                caption,
+                [(name, "") for name, _ in cols],
+                rows,
+                row_label="explainer / seed / concept",
+            )
+        )
+    return out, notes
+
+
 def number_tables(tables: list[TableSpec]) -> list[TableSpec]:
     for i, t in enumerate(tables, 1):
         t.number = i
@@ -252,7 +323,7 @@ def _md(text: str) -> str:
 
 
 def to_markdown(t: TableSpec) -> str:
-    head = ["Explainer"] + [_md(f"{g} {s}".strip()) for g, s in t.header]
+    head = [_md(t.row_label)] + [_md(f"{g} {s}".strip()) for g, s in t.header]
     lines = [
         f"### Table {t.number}. {_md(t.title)}",
         "",
@@ -328,13 +399,12 @@ def to_latex(t: TableSpec) -> str:
         f"  \\caption{{{tex_escape(t.title)}. {tex_escape(t.caption)}}}",
         f"  \\label{{tab:xbench-{t.ident}}}",
     ]
-    wide = ncol > 3
-    if wide:
-        lines.append(r"  \resizebox{\linewidth}{!}{%")
+    # Shrink to the line width when wider (graphicx: \width is the table's natural width); never enlarge.
+    lines.append(r"  \resizebox{\ifdim\width>\linewidth\linewidth\else\width\fi}{!}{%")
     lines.append(f"  \\begin{{tabular}}{{l{'c' * ncol}}}")
     lines.append(r"  \toprule")
     groups = _groups(t.header)
-    row1, rules, col = ["Explainer" if not any(s for _, s in t.header) else ""], [], 2
+    row1, rules, col = [tex_escape(t.row_label) if not any(s for _, s in t.header) else ""], [], 2
     for g, span in groups:
         row1.append(f"\\multicolumn{{{span}}}{{c}}{{{tex_escape(g)}}}" if span > 1 else tex_escape(g))
         rules.append(f"\\cmidrule(lr){{{col}-{col + span - 1}}}")
@@ -342,7 +412,9 @@ def to_latex(t: TableSpec) -> str:
     lines.append("  " + " & ".join(row1) + r" \\")
     if any(s for _, s in t.header):
         lines.append("  " + " ".join(rules))
-        lines.append("  " + " & ".join(["Explainer"] + [tex_escape(s) for _, s in t.header]) + r" \\")
+        lines.append(
+            "  " + " & ".join([tex_escape(t.row_label)] + [tex_escape(s) for _, s in t.header]) + r" \\"
+        )
     lines.append(r"  \midrule")
     for name, cells in t.rows:
         out = []
@@ -359,9 +431,8 @@ def to_latex(t: TableSpec) -> str:
         for label, values in t.footer:
             lines.append("  " + " & ".join([tex_escape(label)] + [tex_escape(v) for v in values]) + r" \\")
     lines.append(r"  \bottomrule")
-    lines.append(r"  \end{tabular}" + ("%" if wide else ""))
-    if wide:
-        lines.append("  }")
+    lines.append(r"  \end{tabular}%")
+    lines.append("  }")
     lines.append(r"\end{table}")
     return "\n".join(lines) + "\n"
 
@@ -389,7 +460,7 @@ def to_html(t: TableSpec) -> str:
         "<thead>",
     ]
     rowspan = ' rowspan="2"' if two_rows else ""
-    first = [f'<th{rowspan} class="name">Explainer</th>']
+    first = [f'<th{rowspan} class="name">{_h(t.row_label)}</th>']
     for g, span in groups:
         first.append(
             f'<th colspan="{span}">{_h(g)}</th>'

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import base64
 import html
+import logging
 import re
 import warnings
 from dataclasses import dataclass, field
@@ -93,10 +94,8 @@ def cost_points(runs: RunSet, summary: Summary, column: Column, log: list[str]) 
         for c in m.get("cells") or []:
             if c.get("status") not in ("ok", None):
                 continue
-            cost = c.get("cost") or {}
+            cost = c.get("cost") or {}  # the explainer's own time (a cell's "seconds" include the metrics)
             secs, tiles = cost.get("seconds"), cost.get("tiles")
-            if secs is None or not tiles:
-                secs, tiles = c.get("seconds"), m.get("explain_tiles")
             if secs is not None and tiles:
                 rows.append(
                     {
@@ -351,6 +350,7 @@ def html_page(
     figs: list[F.FigureFile],
     methods_md: str,
     log: list[str],
+    concepts: list[T.TableSpec] = (),
 ) -> str:
     h = T._h
     sections = [
@@ -373,6 +373,8 @@ def html_page(
     body += [
         f'<li><a href="#fig-{k}">{h(v)}</a></li>' for k, v in sections if any(f.section == k for f in figs)
     ]
+    if concepts:
+        body.append('<li><a href="#concepts">Concept reports</a></li>')
     body += [
         '<li><a href="#methods">Methods text</a></li>',
         '<li><a href="#notes">Notes</a></li>',
@@ -399,6 +401,10 @@ def html_page(
             body.append(f'<section id="fig-{key}"><h2>{h(name)}</h2>')
             body += [figure_html(f) for f in chosen]
             body.append("</section>")
+    if concepts:
+        body.append('<section id="concepts"><h2>Concept reports</h2>')
+        body += [T.to_html(t) for t in concepts]
+        body.append("</section>")
     body.append('<section id="methods"><h2>Methods text</h2>')
     body.append(markdown_to_html(re.sub(r"^# .*\n", "", methods_md)))
     body.append("</section>")
@@ -448,24 +454,34 @@ def write_report(
     out.mkdir(parents=True, exist_ok=True)
     log = list(runs.log)
     result = ReportSummary(out)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        summary = summarize(
-            runs.records,
-            runs.manifests,
-            confidence=confidence,
-            n_resamples=n_resamples,
-            seed=seed,
-            alpha=alpha,
-        )
-        log += summary.log
-        headline = choose_headline(summary, headline_metric, headline_truth, log)
-        figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
-        results = T.result_tables(summary)
-        ranks = T.rank_tables(summary)
-        T.number_tables(results + ranks)
-        methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs))
-        log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
+    mpl_logger = logging.getLogger("matplotlib")
+    mpl_level = mpl_logger.level
+    mpl_logger.setLevel(logging.ERROR)  # prints nothing: font notices would reach stderr
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            summary = summarize(
+                runs.records,
+                runs.manifests,
+                confidence=confidence,
+                n_resamples=n_resamples,
+                seed=seed,
+                alpha=alpha,
+            )
+            log += summary.log
+            headline = choose_headline(summary, headline_metric, headline_truth, log)
+            figs = (
+                make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
+            )
+            results = T.result_tables(summary)
+            ranks = T.rank_tables(summary)
+            concept_specs, notes = T.concept_tables(runs.concepts)
+            log += notes
+            T.number_tables(results + ranks + concept_specs)
+            methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs))
+            log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
+    finally:
+        mpl_logger.setLevel(mpl_level)
     for w in caught:
         msg = f"{w.category.__name__}: {w.message}"
         if msg not in log:
@@ -496,21 +512,25 @@ def write_report(
     ]
     pd.DataFrame(rank_rows).to_csv(out / "ranks.csv", index=False, float_format="%.12g")
     result.paths.append(out / "ranks.csv")
+    if runs.concepts is not None:
+        runs.concepts.to_csv(out / "concepts.csv", index=False, float_format="%.12g")
+        result.paths.append(out / "concepts.csv")
     if "md" in fmts:
         write(
             "tables.md",
-            "# xbench comparison tables\n\n" + "\n".join(T.to_markdown(t) for t in results + ranks),
+            "# xbench comparison tables\n\n"
+            + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs),
         )
     if "tex" in fmts:
         write("tables.tex", T.LATEX_PREAMBLE_NOTE + "\n" + "\n".join(T.to_latex(t) for t in results + ranks))
     if "html" in fmts:
-        write("report.html", html_page(runs, results, ranks, figs, methods_md, log))
+        write("report.html", html_page(runs, results, ranks, figs, methods_md, log, concept_specs))
     write("methods.md", methods_md)
     write("refs.bib", render_bib(cites.keys))
     for f in figs:
         result.paths += [f.png, f.pdf]
     write("report.log", "\n".join(log) + ("\n" if log else ""))
     result.warnings = log
-    result.n_tables = len(results) + len(ranks)
+    result.n_tables = len(results) + len(ranks) + len(concept_specs)
     result.n_figures = len(figs)
     return result

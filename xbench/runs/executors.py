@@ -40,7 +40,8 @@ def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict
 def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int = 2) -> Iterator[tuple[Cell, dict]]:
     """Run cells on a dask.distributed cluster (an address, or a local cluster when none is given)."""
     try:
-        from dask.distributed import Client, LocalCluster, as_completed as dask_completed
+        from dask.distributed import Client, LocalCluster
+        from dask.distributed import as_completed as dask_completed
     except ImportError:
         raise XbenchInputError("--executor dask", "dask.distributed is not installed",
                                expected="pip install 'xbench[cluster]'") from None

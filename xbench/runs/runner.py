@@ -101,7 +101,7 @@ def run_task(
         trained = train_or_load(task_path, name, seed)
         preps[(name, seed)] = prepare(task_path, name, seed)
         model_rows.append({"name": name, "kind": next(m.kind for m in task_obj.models if m.name == name),
-                           "seed": seed, "accuracy": dict(trained.accuracy), "seconds": trained.seconds,
+                           "seed": seed, "accuracy": accuracy_summary(trained.accuracy), "seconds": trained.seconds,
                            "cached": bool(trained.cached),
                            "params": int(sum(p.numel() for p in trained.handle.module.parameters()))
                            if trained.handle.module is not None else None})
@@ -222,3 +222,14 @@ def describe_cue(data: Any) -> str | None:
     cue = ", ".join(f"{k}={v}" for k, v in sorted(data.cue.items()))
     rates = ", ".join(f"{k} {v:g}" for k, v in sorted(data.cue_rates.items()))
     return f"spurious cue ({cue}) with the label-correlated rate per split: {rates}"
+
+
+def accuracy_summary(accuracy: dict[str, float]) -> dict[str, float]:
+    """The trainer's accuracy table plus the short names the report reads (train, val, test, balanced_test)."""
+    out = {k: float(v) for k, v in accuracy.items()}
+    for split in ("train", "val", "test"):
+        if f"{split}_accuracy" in out:
+            out.setdefault(split, out[f"{split}_accuracy"])
+        if f"{split}_balanced_accuracy" in out:
+            out.setdefault(f"balanced_{split}", out[f"{split}_balanced_accuracy"])
+    return out

@@ -32,6 +32,7 @@ def _atomic(path: Path, write: Any) -> None:
     os.close(fd)
     try:
         write(tmp)
+        os.chmod(tmp, 0o644)  # mkstemp makes owner-only files; results are meant to be shared
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):

@@ -102,44 +102,44 @@ def polygons_coverage(polys: list[np.ndarray], height: int, width: int) -> Patch
     Each polygon is oriented so its inside has winding +1; overlapping polygons add up and the pixel
     coverage is clipped to 1 (exact for a single simple polygon and for disjoint pieces).
     """
-    polys = [np.asarray(p, dtype=np.float64) for p in polys if len(p) >= 3]
-    if not polys:
+    a_list, b_list = [], []
+    for p in polys:
+        if len(p) < 3:
+            continue
+        p = np.asarray(p, dtype=np.float64)
+        if shoelace_area(p) < 0:
+            p = p[::-1]
+        a_list.append(p)
+        b_list.append(np.concatenate([p[1:], p[:1]]))
+    if not a_list:
         return None
-    pts = np.concatenate(polys)
-    box = _bbox(pts[:, 0].min(), pts[:, 0].max(), pts[:, 1].min(), pts[:, 1].max(), height, width)
+    a = np.concatenate(a_list) if len(a_list) > 1 else a_list[0]
+    b = np.concatenate(b_list) if len(b_list) > 1 else b_list[0]
+    lo, hi = a.min(axis=0), a.max(axis=0)
+    box = _bbox(lo[0], hi[0], lo[1], hi[1], height, width)
     if box is None:
         return None
     r0, r1, c0, c1 = box
     nrow, ncol = r1 - r0, c1 - c0
     nsub = nrow * SUBROWS
-    a_list, b_list, s_list = [], [], []
-    for p in polys:
-        sign = 1.0 if shoelace_area(p) >= 0 else -1.0
-        a_list.append(p)
-        b_list.append(np.concatenate([p[1:], p[:1]]))
-        s_list.append(np.full(len(p), sign))
-    a = np.concatenate(a_list)
-    b = np.concatenate(b_list)
-    orient = np.concatenate(s_list)
-    x0, y0 = a[:, 0] - c0, (a[:, 1] - r0) * SUBROWS - 0.5
-    x1, y1 = b[:, 0] - c0, (b[:, 1] - r0) * SUBROWS - 0.5
-    # sub-row k sits at y = k (in these scaled units); an edge takes rows with min <= k < max
-    ya, yb = np.minimum(y0, y1), np.maximum(y0, y1)
-    ia = np.minimum(np.maximum(np.ceil(ya), 0), nsub).astype(np.int64)
-    ib = np.minimum(np.maximum(np.ceil(yb), 0), nsub).astype(np.int64)
-    n = ib - ia
-    keep = n > 0
-    if not keep.any():
+    # scaled units: x in pixels from column c0; sub-row k of the crop sits at y = k
+    x0 = a[:, 0] - c0
+    x1 = b[:, 0] - c0
+    y0 = (a[:, 1] - r0) * SUBROWS - 0.5
+    y1 = (b[:, 1] - r0) * SUBROWS - 0.5
+    # an edge crosses the sub-rows k with min(y0, y1) <= k < max(y0, y1)
+    ia = np.ceil(np.minimum(y0, y1)).clip(0, nsub).astype(np.int64)
+    n = np.ceil(np.maximum(y0, y1)).clip(0, nsub).astype(np.int64) - ia
+    total = int(n.sum())
+    if total == 0:
         return None
-    x0, y0, x1, y1, ia, n = x0[keep], y0[keep], x1[keep], y1[keep], ia[keep], n[keep]
-    orient = orient[keep]
     edge = np.repeat(np.arange(len(n)), n)
-    start = np.cumsum(n) - n
-    rows = ia[edge] + (np.arange(edge.size) - start[edge])
-    t = (rows - y0[edge]) / (y1[edge] - y0[edge])
-    x = x0[edge] + t * (x1[edge] - x0[edge])
-    # with positive signed area (x right, y down), left edges go up (dy < 0): winding +1 to their right
-    d = -np.sign(y1 - y0)[edge] * orient[edge]
+    rows = np.arange(total) - np.repeat(np.cumsum(n) - n - ia, n)
+    slope = (x1 - x0) / np.where(y1 == y0, 1.0, y1 - y0)
+    x = x0[edge] + (rows - y0[edge]) * slope[edge]
+    # inside has positive signed area (x right, y down): edges going up (dy < 0) are left edges, so
+    # the winding steps up by one to their right
+    d = np.where(y1 < y0, 1.0, -1.0)[edge]
     acc = _accumulate(rows, x, d, nrow, ncol)
     return _finish(acc, r0, c0, ncol)
 

@@ -77,7 +77,7 @@ SCHEMA: dict[str, dict[str, tuple[str, Any]]] = {
     "river": {
         "width": ("range+", [1.0, 3.0]),
         "material": ("material", "river-water"),
-        "meander": ("nonneg", 0.6),
+        "meander": ("nonneg", 0.5),
     },
     "natural-gap": {
         "area": ("range+", [30.0, 300.0]),

@@ -30,7 +30,14 @@ from xbench.scenes.geometry import Patch
 from xbench.scenes.labels import ALL_TYPES, Cue
 from xbench.scenes.materials import BAND_INDEX, HAZE_SHAPE
 from xbench.scenes.recipes import Recipe
-from xbench.scenes.terrain import class_weights, fractal_field, fractal_pair, hillshade
+from xbench.scenes.terrain import (
+    class_weights,
+    field_from_white,
+    hillshade,
+    pair_from_white,
+    white_field,
+    white_pair,
+)
 
 # independent random streams of a scene's seed: the landscape (fields, noise offset, cue position and
 # the presence draws, always drawn in full and in this order) and one stream per structure type
@@ -57,7 +64,7 @@ class Instance:
     instance_id: int
     kind: str
     human: bool
-    params: dict[str, Any]
+    params: dict[str, Any] = field(repr=False)
     raw: Patch = field(repr=False)
     visible: Patch = field(repr=False)
     look: dict[str, Any] = field(repr=False)
@@ -156,6 +163,13 @@ class Scene:
     def render(self, omit: Iterable[int] = (), cue: bool | None = None) -> np.ndarray:
         return render(self, omit=omit, cue=cue)
 
+    def __repr__(self) -> str:
+        kinds = ", ".join(f"{i.instance_id}:{i.kind}" for i in self.instances)
+        return (
+            f"Scene(recipe={self.recipe!r}, size={self.size}, seed={self.seed}, cue_on={self.cue_on}, "
+            f"instances=[{kinds}])"
+        )
+
     def to_json(self) -> dict[str, Any]:
         return {
             "recipe": self.recipe,
@@ -173,54 +187,85 @@ class Scene:
 
 def build_fields(recipe: Recipe, size: int, seed: int) -> dict[str, np.ndarray]:
     """Elevation, textures, land-cover weights, background reflectance, haze, cue centre and noise."""
-    rng = scene_rng(seed, STREAM_FIELDS)
-    t = recipe.terrain
-    elev, gstd = fractal_field(rng, size, t.beta)
-    mix_f, tex_f, _ = fractal_pair(rng, size, t.texture_beta)
+    return build_fields_batch(recipe, size, [seed])[0]
 
+
+def build_fields_batch(recipe: Recipe, size: int, seeds: list[int]) -> list[dict[str, np.ndarray]]:
+    """:func:`build_fields` of many tiles at once (the same values: random draws are per tile, the
+    arithmetic is element-wise, in the same order, whatever the batch)."""
+    t = recipe.terrain
     c = _recipe_constants(recipe)
-    # (einsum, not BLAS: no thread pool, and the same sums for every call)
+    b = len(seeds)
+    ze, zt, hz, noise, draws = [], [], [], [], []
+    for seed in seeds:
+        rng = scene_rng(seed, STREAM_FIELDS)
+        ze.append(white_field(rng, size))
+        zt.append(white_pair(rng, size, pad=False))
+        hz.append(rng.uniform(0.2, 1.0, 6).tolist() + rng.uniform(0, 2 * np.pi, 6).tolist())
+        noise.append(sensor_noise(rng, (len(recipe.bands), size, size)))
+        draws.append(rng.random(2 + len(ALL_TYPES)))
+    elev, gstd = field_from_white(np.stack(ze), size, t.beta)
+    mix_f, tex_f, _ = pair_from_white(np.stack(zt), size, t.texture_beta)
+
+    # land cover: weights (K, B, H, W); background = sum over classes of weight x material, plus, for
+    # classes with a second material, weight x mix fraction x (second - first). The sum is one einsum
+    # per tile on contiguous arrays of the same shape for every batch, so batching never changes it.
     w = class_weights(elev, c["shares"], t.edge)
-    if c["has_mix"].any():
-        f = np.minimum(np.maximum(c["mix_share"] + np.float32(0.3) * mix_f[None], 0.0), 1.0)
-        f *= c["has_mix"][:, None, None]
-        bg = np.einsum("ck,khw->chw", c["s1t"], w * (1.0 - f)) + np.einsum("ck,khw->chw", c["s2t"], w * f)
-    else:
-        bg = np.einsum("ck,khw->chw", c["s1t"], w)
-    water = c["water"]
-    land = w[~water].sum(axis=0) if (~water).any() else np.zeros_like(elev)
-    bright = 1.0 + t.texture * tex_f * (0.3 + 0.7 * land)
+    mixed = np.flatnonzero(c["has_mix"])
+    nk = len(c["s1"])
+    coef = np.concatenate([c["s1"], (c["s2"] - c["s1"])[mixed]])  # (K + M, C)
+    parts = np.empty((b, nk + len(mixed), size, size), dtype=np.float32)
+    parts[:, :nk] = w.transpose(1, 0, 2, 3)
+    for j, k in enumerate(mixed):
+        f = np.float32(0.3) * mix_f
+        f += c["mix_share"][k]
+        np.minimum(np.maximum(f, 0.0, out=f), 1.0, out=f)
+        np.multiply(f, w[k], out=parts[:, nk + j])
+    bg = np.empty((b, len(recipe.bands), size, size), dtype=np.float32)
+    for i in range(b):
+        np.einsum("kc,khw->chw", coef, parts[i], out=bg[i])
+    land = np.zeros_like(elev)
+    for k in range(nk):
+        if not c["water"][k]:
+            land += w[k]
+    bright = np.float32(t.texture) * tex_f * (np.float32(0.3) + np.float32(0.7) * land)
+    bright += np.float32(1.0)
     if t.relief > 0:
-        bright += t.relief * hillshade(elev, gstd) * land
-    bg = (bg * np.maximum(bright, 0.2)[None]).astype(np.float32)
+        bright += np.float32(t.relief) * hillshade(elev, gstd) * land
+    bg *= np.maximum(bright, np.float32(0.2))[:, None]
 
     # haze: a sum of broad separable waves (smooth at tile scale), mean = the recipe's haze
+    hz_a = np.array(hz)
     u = (np.arange(size, dtype=np.float64) + 0.5) * (2 * np.pi / size)
-    fy = rng.uniform(0.2, 1.0, 3)
-    fx = rng.uniform(0.2, 1.0, 3)
-    ph = rng.uniform(0, 2 * np.pi, (3, 2))
-    wy = np.cos(fy[:, None] * u[None, :] + ph[:, :1])
-    wx = np.cos(fx[:, None] * u[None, :] + ph[:, 1:])
-    wave = (wy[:, :, None] * wx[:, None, :]).sum(axis=0) / 1.5
-    haze = (recipe.sensor.haze * np.maximum(1.0 + 0.5 * wave, 0.0)).astype(np.float32)
+    wy = np.cos(hz_a[:, 0:3, None] * u + hz_a[:, 6:9, None])  # (B, 3, H)
+    wx = np.cos(hz_a[:, 3:6, None] * u + hz_a[:, 9:12, None])  # (B, 3, W)
+    wave = wy[:, 0, :, None] * wx[:, 0, None, :]
+    wave += wy[:, 1, :, None] * wx[:, 1, None, :]
+    wave += wy[:, 2, :, None] * wx[:, 2, None, :]
+    haze = (recipe.sensor.haze * np.maximum(1.0 + wave / 3.0, 0.0)).astype(np.float32)
 
-    noise = sensor_noise(rng, (len(recipe.bands), size, size))
-    noise *= c["sigma"]
-    cy, cx = rng.uniform(0.15 * size, 0.85 * size, 2)
-    presence = rng.random(len(ALL_TYPES))
-    return {
-        "elev": elev,
-        "mix": mix_f,
-        "tex": tex_f,
-        "weights": w,
-        "water": water,
-        "land": land,
-        "background": bg,
-        "haze": haze,
-        "noise": noise,
-        "cue_centre": np.array([cx, cy]),
-        "presence_draws": presence,
-    }
+    noise_a = np.stack(noise)
+    noise_a *= c["sigma"]
+    size_f = float(size)
+    out = []
+    for i in range(b):
+        d = draws[i]
+        out.append(
+            {
+                "elev": elev[i],
+                "mix": mix_f[i],
+                "tex": tex_f[i],
+                "weights": w[:, i],
+                "water": c["water"],
+                "land": land[i],
+                "background": bg[i],
+                "haze": haze[i],
+                "noise": noise_a[i],
+                "cue_centre": np.array([(0.15 + 0.7 * d[0]) * size_f, (0.15 + 0.7 * d[1]) * size_f]),
+                "presence_draws": d[2:],
+            }
+        )
+    return out
 
 
 NOISE_POOL = 1 << 21
@@ -233,10 +278,10 @@ def _recipe_constants(recipe: Recipe) -> dict[str, np.ndarray]:
         lc = recipe.landcover
         c = recipe._cache["render"] = {
             "shares": np.array([x.share for x in lc], dtype=np.float64),
-            "s1t": np.ascontiguousarray(np.stack([recipe.spectrum(x.material) for x in lc]).T),
-            "s2t": np.ascontiguousarray(np.stack([recipe.spectrum(x.mix or x.material) for x in lc]).T),
+            "s1": np.stack([recipe.spectrum(x.material) for x in lc]),
+            "s2": np.stack([recipe.spectrum(x.mix or x.material) for x in lc]),
             "has_mix": np.array([x.mix is not None and x.mix_share > 0 for x in lc]),
-            "mix_share": np.array([x.mix_share for x in lc], dtype=np.float32)[:, None, None],
+            "mix_share": np.array([x.mix_share for x in lc], dtype=np.float32),
             "water": np.array([recipe.materials[x.material].kind == "water" for x in lc]),
             "sigma": np.asarray(recipe.sensor.noise_sigma, dtype=np.float32)[:, None, None],
         }

@@ -17,7 +17,7 @@ from xbench.scenes.recipes import Recipe, StructureSpec
 
 STEP = 1.5  # path step, pixels
 ROAD_WAVELENGTH = (30.0, 90.0)  # wavelengths of a road's heading wander, pixels
-RIVER_WAVELENGTH = (10.0, 28.0)  # meander wavelengths, pixels
+RIVER_WAVELENGTH = (18.0, 45.0)  # meander wavelengths, pixels
 
 #: Drawing order (later types are drawn over earlier ones).
 LAYERS = ("field", "clearing", "natural-gap", "outcrop", "river", "corridor", "road", "building")
@@ -159,10 +159,10 @@ def plant_road(rng, spec: StructureSpec, ctx: Context) -> list[Planted]:
                     break
                 k = int(rng.choice(inside[:-1]))
                 d = main[k + 1] - main[k]
-                head = float(np.arctan2(d[1], d[0])) + rng.choice([-1.0, 1.0]) * rng.uniform(0.6, 1.4)
+                head = float(np.arctan2(d[1], d[0])) + rng.choice([-1.0, 1.0]) * rng.uniform(0.8, 1.5)
                 steps = max(2, int(_u(rng, p["branch_length"]) / STEP))
                 br = g.clip_path(
-                    g.walk(rng, main[k], head, steps, STEP, p["curvature"], ROAD_WAVELENGTH), n, 3.0
+                    g.walk(rng, main[k], head, steps, STEP, 0.5 * p["curvature"], ROAD_WAVELENGTH), n, 3.0
                 )
                 bw = width * 0.8
                 polys.append(g.stroke_polygon(br, bw / 2))

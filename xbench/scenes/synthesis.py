@@ -26,9 +26,19 @@ from xbench.scenes.labels import (
     parse_cue,
     parse_label_rule,
 )
-from xbench.scenes.recipes import Recipe, load_recipe
-from xbench.scenes.render import STREAM_TYPES, Instance, Scene, build_fields, render, scene_rng
+from xbench.scenes.recipes import Recipe, load_recipe, recipe_dir
+from xbench.scenes.render import (
+    STREAM_TYPES,
+    Instance,
+    Scene,
+    build_fields,
+    build_fields_batch,
+    render,
+    scene_rng,
+)
 from xbench.scenes.structures import LAYERS, PLANTERS, Context
+
+FIELD_BATCH = 8
 
 
 def check_presence(presence: Any, where: str = "presence") -> dict[str, float] | None:
@@ -74,7 +84,17 @@ def sample_scene(
         raise XbenchInputError("size", "tile size too small", expected=">= 8 pixels", found=size)
     presence = check_presence(presence)
     cue_spec = None if cue is None else parse_cue(cue, "cue")
-    fields = build_fields(recipe, size, seed)
+    return _sample(recipe, size, int(seed), presence, cue_spec, build_fields(recipe, size, seed))
+
+
+def _sample(
+    recipe: Recipe,
+    size: int,
+    seed: int,
+    presence: dict[str, float] | None,
+    cue_spec: Cue | None,
+    fields: dict[str, np.ndarray],
+) -> Scene:
     ctx = Context(size, recipe, fields)
     # one presence draw per type, always all of them, so a type's presence never shifts another's
     draws = fields["presence_draws"]
@@ -189,8 +209,11 @@ def synthesize(
     cue_rng = np.random.default_rng(np.random.SeedSequence([int(seed), 2]))
     seeds = [tile_seed(seed, i) for i in range(count)]
     scenes: list[Scene] = []
+    batch: list[dict[str, np.ndarray]] = []
     for i in range(count):
-        scene = sample_scene(recipe, size, seeds[i], presence, cue_spec)
+        if i % FIELD_BATCH == 0:  # landscape fields of many tiles at once (fewer, larger array operations)
+            batch = build_fields_batch(recipe, size, seeds[i : i + FIELD_BATCH])
+        scene = _sample(recipe, size, seeds[i], presence, cue_spec, batch[i % FIELD_BATCH])
         clean[i] = rule.apply(scene)
         u = cue_rng.random()
         if cue_spec is not None:
@@ -216,7 +239,7 @@ def synthesize(
     meta = {
         "source": "xbench.scenes.synthesis",
         "recipe": recipe.name,
-        "recipe_path": recipe.path,
+        "recipe_path": _recipe_source(recipe),
         "seed": int(seed),
         "size": size,
         "count": count,
@@ -244,21 +267,38 @@ def synthesize(
     return pack, scenes
 
 
+def _recipe_source(recipe: Recipe) -> str | None:
+    """The recipe file, or None for a shipped recipe (found again by name on any machine)."""
+    path = Path(recipe.path)
+    shipped = recipe_dir() / f"{recipe.name}.toml"
+    if path.is_file() and shipped.is_file() and path.resolve() == shipped.resolve():
+        return None
+    return recipe.path
+
+
 def scenes_to_json(scenes: list[Scene]) -> list[dict[str, Any]]:
     """What was planted where: one dict per tile (recipe, size, seed, cue, instances with geometry)."""
     return [dict(tile=i, **s.to_json()) for i, s in enumerate(scenes)]
 
 
-def rebuild_scenes(meta: dict[str, Any]) -> list[Scene]:
-    """Scenes of a synthetic pack again, from its ``meta`` (recipe, size, presence, cue, tile seeds).
+def rebuild_scenes(meta: dict[str, Any], cue_flags: Any = None) -> list[Scene]:
+    """The scenes of a synthetic pack again, from its ``meta`` (recipe, size, presence, cue, tile seeds).
 
-    The cue flags are not in meta; set ``scene.cue_on`` from the pack's ``cue`` array if needed.
+    ``cue_flags``: the pack's ``cue`` array, to restore each scene's cue setting (else the cue is off).
     """
     try:
-        recipe = load_recipe(meta.get("recipe_path") or meta["recipe"])
+        source = meta.get("recipe_path")
+        recipe = load_recipe(source if source and Path(source).is_file() else meta["recipe"])
         cue = meta.get("cue")
-        return [sample_scene(recipe, meta["size"], s, meta.get("presence"), cue) for s in meta["tile_seeds"]]
+        scenes = [
+            sample_scene(recipe, meta["size"], s, meta.get("presence"), cue) for s in meta["tile_seeds"]
+        ]
     except KeyError as exc:
         raise XbenchInputError(
-            "pack meta", f"missing key {exc}", expected="a pack written by synthesize"
+            "pack meta", f"missing key {exc}", expected="a pack written by xbench.scenes.synthesize"
         ) from None
+    flags = np.zeros(len(scenes), dtype=bool) if cue_flags is None else np.asarray(cue_flags, dtype=bool)
+    for scene, flag in zip(scenes, flags, strict=True):
+        scene.cue_on = bool(flag) and scene.cue is not None
+        scene.release()
+    return scenes

@@ -67,33 +67,58 @@ def fft_size(size: int) -> int:
     return -(-(3 * size // 2) // 8) * 8
 
 
-def fractal_pair(rng: np.random.Generator, size: int, beta: float) -> tuple[np.ndarray, np.ndarray, float]:
-    """Two independent unit-variance 1/f^beta fields (size, size) float32, and their gradient std.
+def white_pair(rng: np.random.Generator, size: int, pad: bool = True) -> np.ndarray:
+    """The white noise of :func:`pair_from_white` (2, n, n) for one tile."""
+    n = fft_size(size) if pad else size
+    return _white(rng, (2, n, n))
 
-    Synthesised on a larger grid (:func:`fft_size`) and cropped; one complex inverse FFT gives both
-    (real and imaginary parts of A (Z1 + i Z2)).
-    """
-    n = fft_size(size)
+
+def pair_from_white(z: np.ndarray, size: int, beta: float) -> tuple[np.ndarray, np.ndarray, float]:
+    """Two independent unit-variance 1/f^beta fields (..., size, size) float32 and their gradient std,
+    from white noise (..., 2, n, n): the real and imaginary parts of one complex inverse FFT of
+    A (Z1 + i Z2). With n > size the fields are cropped from a larger grid (not periodic)."""
+    n = z.shape[-1]
     amp, std, gstd = _amplitude(n, float(beta), False)
-    z = _white(rng, (2, n, n))
-    spec = amp * (z[0] + 1j * z[1])
-    field = sfft.ifft2(spec, overwrite_x=True)[:size, :size]
+    spec = amp * (z[..., 0, :, :] + 1j * z[..., 1, :, :])
+    field = sfft.ifft2(spec, axes=(-2, -1), overwrite_x=True)[..., :size, :size]
     inv = np.float32(1.0 / std)
     return field.real * inv, field.imag * inv, gstd / std
 
 
+def white_field(rng: np.random.Generator, size: int) -> np.ndarray:
+    """The white noise of :func:`field_from_white` (2, n, n // 2 + 1) for one tile."""
+    n = fft_size(size)
+    return _white(rng, (2, n, n // 2 + 1))
+
+
+def field_from_white(z: np.ndarray, size: int, beta: float) -> tuple[np.ndarray, float]:
+    """One unit-variance 1/f^beta field (..., size, size) float32 (real inverse FFT on a grid of
+    :func:`fft_size`, cropped) and its gradient std, from white noise (..., 2, n, n // 2 + 1)."""
+    n = z.shape[-2]
+    amp, std, gstd = _amplitude(n, float(beta), True)
+    spec = amp * (z[..., 0, :, :] + 1j * z[..., 1, :, :])
+    field = sfft.irfft2(spec, s=(n, n), axes=(-2, -1), overwrite_x=True)[..., :size, :size]
+    return field * np.float32(1.0 / std), gstd / std
+
+
+def fractal_pair(
+    rng: np.random.Generator, size: int, beta: float, pad: bool = True
+) -> tuple[np.ndarray, np.ndarray, float]:
+    """Two independent unit-variance 1/f^beta fields (size, size) float32, and their gradient std.
+
+    ``pad=True`` synthesises on a larger grid (:func:`fft_size`) and crops (not periodic);
+    ``pad=False`` on the tile itself (periodic; fine for small-scale texture, and cheaper).
+    """
+    return pair_from_white(white_pair(rng, size, pad), size, beta)
+
+
 def fractal_field(rng: np.random.Generator, size: int, beta: float) -> tuple[np.ndarray, float]:
     """One unit-variance 1/f^beta field (size, size) float32 (real inverse FFT), and its gradient std."""
-    n = fft_size(size)
-    amp, std, gstd = _amplitude(n, float(beta), True)
-    z = _white(rng, (2,) + amp.shape)
-    spec = amp * (z[0] + 1j * z[1])
-    field = sfft.irfft2(spec, s=(n, n), overwrite_x=True)[:size, :size]
-    return field * np.float32(n * n / std / n**2), gstd / std
+    return field_from_white(white_field(rng, size), size, beta)
 
 
 def class_weights(elev: np.ndarray, shares: np.ndarray, edge: float) -> np.ndarray:
-    """Soft land-cover weights (K, H, W) from an elevation field, classes ordered from low to high ground.
+    """Soft land-cover weights (K, ...) from an elevation field (...), classes ordered from low to high.
 
     Class k takes the elevations between the standard-normal quantiles of the cumulative shares; the
     boundaries are linear ramps ``edge`` standard deviations wide, so class edges are anti-aliased.
@@ -103,7 +128,8 @@ def class_weights(elev: np.ndarray, shares: np.ndarray, edge: float) -> np.ndarr
     cum = np.clip(cum, 1e-6, 1 - 1e-6)
     thr = ndtri(cum).astype(np.float32)
     # below[k] = share of pixel under threshold k (1 deep below, 0 well above)
-    below = (thr[:, None, None] - elev[None]) * np.float32(1.0 / max(edge, 1e-6)) + np.float32(0.5)
+    thr = thr.reshape((-1,) + (1,) * elev.ndim)
+    below = (thr - elev[None]) * np.float32(1.0 / max(edge, 1e-6)) + np.float32(0.5)
     np.minimum(below, 1.0, out=below)
     np.maximum(below, 0.0, out=below)
     k = len(shares)
@@ -123,10 +149,10 @@ def hillshade(elev: np.ndarray, gstd: float, azimuth: float = 2.36) -> np.ndarra
     cx = np.float32(0.5 * np.cos(azimuth) / max(gstd, 1e-9))
     cy = np.float32(0.5 * np.sin(azimuth) / max(gstd, 1e-9))
     s = np.empty_like(elev)
-    inner = s[1:-1, 1:-1]
-    np.subtract(elev[1:-1, 2:], elev[1:-1, :-2], out=inner)
+    inner = s[..., 1:-1, 1:-1]
+    np.subtract(elev[..., 1:-1, 2:], elev[..., 1:-1, :-2], out=inner)
     inner *= cx
-    inner += cy * (elev[2:, 1:-1] - elev[:-2, 1:-1])
-    s[0, 1:-1], s[-1, 1:-1] = s[1, 1:-1], s[-2, 1:-1]
-    s[:, 0], s[:, -1] = s[:, 1], s[:, -2]
+    inner += cy * (elev[..., 2:, 1:-1] - elev[..., :-2, 1:-1])
+    s[..., 0, 1:-1], s[..., -1, 1:-1] = s[..., 1, 1:-1], s[..., -2, 1:-1]
+    s[..., :, 0], s[..., :, -1] = s[..., :, 1], s[..., :, -2]
     return s

@@ -1,0 +1,315 @@
+"""Concept explainers: activation-clusters (hand-built models whose activations separate planted regions
+by construction; plain, residual and U-shaped networks) and tcav (random-versus-random calibration after
+Kim et al. 2018, a concept the model uses by construction), plus the concept example sets."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from xbench.errors import XbenchInputError
+from xbench.explainers import ExplainContext, explain
+from xbench.models.base import ModelHandle
+
+C, H, W = 3, 16, 16
+
+
+@pytest.fixture(autouse=True, scope="module")
+def one_torch_thread():
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+# ---------------------------------------------------------------------------------------------------
+# Planted regions and a model that separates them by construction
+# ---------------------------------------------------------------------------------------------------
+
+
+def planted(n: int, seed: int):
+    """Tiles with a horizontal 'road' strip (bright band 0) and a 'building' square (bright band 1)
+    at random places; 2 classes besides 'none': class 1 has the road, class 2 the building."""
+    rng = np.random.default_rng(seed)
+    x = 0.05 + 0.02 * rng.standard_normal((n, C, H, W))
+    masks = np.zeros((n, 2, H, W), bool)
+    labels = np.zeros(n, np.int64)
+    for i in range(n):
+        kind = i % 3
+        if kind == 1:
+            r = rng.integers(1, H - 4)
+            masks[i, 0, r:r + 3] = True
+        if kind == 2:
+            r, c = rng.integers(1, H - 6, 2)
+            masks[i, 1, r:r + 5, c:c + 5] = True
+        labels[i] = kind
+    x[:, 0][masks[:, 0]] = 0.9
+    x[:, 1][masks[:, 1]] = 0.9
+    return x.astype(np.float32), masks, labels
+
+
+class RegionNet(nn.Module):
+    """feat = relu(1x1 conv copying bands 0 and 1 into ``width`` channels); GAP; linear head where class
+    1 reads the band-0 channels and class 2 the band-1 channels. Positions in a road, a building and the
+    background have three distinct activation vectors by construction."""
+
+    def __init__(self, width: int = 2):
+        super().__init__()
+        self.feat = nn.Conv2d(C, width, 1)
+        self.relu = nn.ReLU()
+        self.pool = nn.AdaptiveAvgPool2d(1)
+        self.fc = nn.Linear(width, 3)
+        half = width // 2
+        with torch.no_grad():
+            wt = torch.zeros(width, C, 1, 1)
+            scales = torch.linspace(0.5, 1.5, half)
+            wt[:half, 0, 0, 0] = scales
+            wt[half:, 1, 0, 0] = scales
+            self.feat.weight.copy_(wt)
+            self.feat.bias.zero_()
+            head = torch.zeros(3, width)
+            head[1, :half] = 40.0 / half
+            head[2, half:] = 40.0 / half
+            self.fc.weight.copy_(head)
+            self.fc.bias.copy_(torch.tensor([3.0, 0.0, 0.0]))
+
+    def forward(self, x):
+        return self.fc(self.pool(self.relu(self.feat(x))).flatten(1))
+
+
+@pytest.mark.parametrize("width,n_clusters", [(2, 3), (2, "bic"), (12, 3)])
+def test_activation_clusters_recover_planted_regions(width, n_clusters):
+    # By construction (see RegionNet): the road and building positions form their own clusters, so the
+    # mixture (Dempster et al. 1977 EM; scikit-learn) must recover them with IoU >= 0.9. width 12 > 8
+    # exercises the PCA path.
+    model = ModelHandle("regions", 3, module=RegionNet(width).eval())
+    fit_x, fit_m, fit_y = planted(30, seed=1)
+    x, m, y = planted(12, seed=2)
+    ctx = ExplainContext(seed=0, fit_images=fit_x, fit_labels=fit_y, fit_masks=fit_m, masks=m,
+                         mask_names=["road", "building"], class_names=["none", "road", "building"])
+    exp = explain("activation-clusters", model, x, y, ctx, n_clusters=n_clusters, cluster_range=[2, 5])
+    rep = exp.concepts
+    assert rep.iou.max(axis=0).min() >= 0.9, rep.iou
+    matched = {r["matched_type"] for r in rep.rows if r["iou"] is not None and r["iou"] >= 0.9}
+    assert matched == {"road", "building"}
+    k = rep.n_clusters
+    assert rep.cluster_maps.shape == (12, H, W) and rep.score_changes.shape == (k, 12, 3)
+    assert set(rep.rows[0]) == {"concept", "class_name", "score", "spread", "p_value", "matched_type", "iou",
+                                "purity"}
+    # the road cluster carries the road class, the building cluster the building class
+    assert rep.type_importance["road"] > 0.2 and rep.type_importance["building"] > 0.2
+    assert rep.flagged == {"road": True, "building": True}
+    # attribution: large on the driving structure of the tile's class
+    a = exp.attributions
+    for i in range(12):
+        if y[i] == 1:
+            assert a[i][m[i, 0]].mean() > a[i][~m[i, 0]].mean() + 0.1
+    # cost: the forward passes that collect, assign and replace (no gradients)
+    assert exp.cost.backward_calls == 0 and exp.cost.forward_calls >= 30 + 12 + 12
+
+
+def test_activation_clusters_flag_nothing_for_a_type_the_model_ignores():
+    # By construction: a head that reads only the band-0 (road) channels cannot use the building.
+    net = RegionNet(2)
+    with torch.no_grad():
+        net.fc.weight[2] = 0.0
+    model = ModelHandle("roads-only", 3, module=net.eval())
+    fit_x, fit_m, fit_y = planted(30, seed=1)
+    x, m, y = planted(12, seed=2)
+    ctx = ExplainContext(fit_images=fit_x, fit_masks=fit_m, masks=m, mask_names=["road", "building"])
+    rep = explain("activation-clusters", model, x, y, ctx, n_clusters=3).concepts
+    assert rep.flagged["road"] and not rep.flagged["building"]
+
+
+class TinyResidual(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(C, 6, 3, padding=1)
+        self.relu0 = nn.ReLU()
+        self.conv_a = nn.Conv2d(6, 6, 3, padding=1)
+        self.relu_a = nn.ReLU()
+        self.conv_b = nn.Conv2d(6, 6, 3, padding=1)
+        self.relu_out = nn.ReLU()
+        self.head = nn.Linear(6, 3)
+
+    def forward(self, x):
+        h = self.relu0(self.stem(x))
+        h = self.relu_out(h + self.conv_b(self.relu_a(self.conv_a(h))))
+        return self.head(h.mean(dim=(2, 3)))
+
+
+class TinyUNet(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.enc = nn.Conv2d(C, 4, 3, padding=1)
+        self.enc_relu = nn.ReLU()
+        self.down = nn.MaxPool2d(2)
+        self.bottom = nn.Conv2d(4, 8, 3, padding=1)
+        self.bottom_relu = nn.ReLU()
+        self.up = nn.Upsample(scale_factor=2)
+        self.dec = nn.Conv2d(12, 4, 3, padding=1)
+        self.dec_relu = nn.ReLU()
+        self.head = nn.Linear(4, 3)
+
+    def forward(self, x):
+        e = self.enc_relu(self.enc(x))
+        b = self.bottom_relu(self.bottom(self.down(e)))
+        d = self.dec_relu(self.dec(torch.cat([self.up(b), e], dim=1)))
+        return self.head(d.mean(dim=(2, 3)))
+
+
+@pytest.mark.parametrize("net,layer", [(TinyResidual, "relu_out"), (TinyResidual, "conv_b"),
+                                       (TinyUNet, "dec"), (TinyUNet, "bottom")])
+def test_concept_explainers_run_on_residual_and_u_shaped_networks(net, layer):
+    torch.manual_seed(0)
+    model = ModelHandle("arch", 3, module=net().eval())
+    fit_x, fit_m, fit_y = planted(12, seed=3)
+    x, m, y = planted(6, seed=4)
+    rng = np.random.default_rng(0)
+    sets = {"road": planted(9, seed=5)[0][1::3].repeat(2, axis=0),
+            **{f"random-{i}": rng.random((5, C, H, W)).astype(np.float32) * 0.2 for i in range(10)}}
+    ctx = ExplainContext(fit_images=fit_x, fit_masks=fit_m, mask_names=["road", "building"],
+                         concept_sets=sets)
+    exp = explain("activation-clusters", model, x, y, ctx, layer=layer, n_clusters=3)
+    assert exp.attributions.shape == (6, H, W) and np.isfinite(exp.attributions).all()
+    assert exp.concepts.score_changes.shape[:2] == (3, 6)
+    t = explain("tcav", model, x, y, ctx, layer=layer)
+    assert t.attributions.shape == (6, H, W) and np.isfinite(t.attributions).all()
+    assert t.cost.backward_calls == 6
+
+
+def test_concept_explainers_run_on_the_zoo_models():
+    zoo = pytest.importorskip("xbench.models.zoo")
+    x, m, y = planted(4, seed=6)
+    x = np.repeat(np.repeat(x, 2, axis=2), 2, axis=3)  # 32 x 32
+    m = np.repeat(np.repeat(m, 2, axis=2), 2, axis=3)
+    rng = np.random.default_rng(0)
+    sets = {"road": x[1:2].repeat(4, axis=0),
+            **{f"random-{i}": rng.random((4, C, 32, 32)).astype(np.float32) * 0.2 for i in range(10)}}
+    ctx = ExplainContext(fit_images=x, fit_masks=m, mask_names=["road", "building"], concept_sets=sets)
+    for kind in ("cnn", "resnet", "bottleneck"):
+        torch.manual_seed(0)
+        model = ModelHandle(kind, 3, module=zoo.build_torch_model(kind, C, 3, width=8).eval())
+        for key in ("activation-clusters", "tcav", "grad-cam", "grad-cam-pp", "deeplift", "guided-backprop"):
+            settings = {"n_clusters": 3} if key == "activation-clusters" else {}
+            exp = explain(key, model, x, y, ctx, **settings)
+            assert exp.attributions.shape == (4, 32, 32), (kind, key)
+            assert np.isfinite(exp.attributions).all(), (kind, key)
+
+
+# ---------------------------------------------------------------------------------------------------
+# TCAV
+# ---------------------------------------------------------------------------------------------------
+
+
+class ProbeNet(nn.Module):
+    """conv1 -> relu1 -> 1x1 conv2 -> relu2 -> GAP -> linear; class 1 reads relu2 channel 0, which
+    thresholds relu1 channel 0, a band-0 detector (so class 1 rises with band-0 structures)."""
+
+    def __init__(self, seed: int = 0):
+        super().__init__()
+        g = torch.Generator().manual_seed(seed)
+        self.conv1 = nn.Conv2d(C, 4, 3, padding=1)
+        self.relu1 = nn.ReLU()
+        self.conv2 = nn.Conv2d(4, 4, 1)
+        self.relu2 = nn.ReLU()
+        self.fc = nn.Linear(4, 2)
+        with torch.no_grad():
+            for p in self.parameters():
+                p.copy_(torch.randn(p.shape, generator=g) * 0.3)
+            self.conv1.weight[0] = 0.0
+            self.conv1.weight[0, 0, 1, 1] = 1.0
+            self.conv1.bias[0] = 0.0
+            self.conv2.weight[0] = 0.0
+            self.conv2.weight[0, 0] = 1.0
+            self.conv2.bias[0] = -0.2
+            self.fc.weight[1] = torch.tensor([5.0, 0.0, 0.0, 0.0])
+
+    def forward(self, x):
+        return self.fc(self.relu2(self.conv2(self.relu1(self.conv1(x)))).mean(dim=(2, 3)))
+
+
+def test_tcav_random_versus_random_concepts_are_not_significant():
+    # Kim et al. 2018: a concept made of random examples should not come out significant; we require
+    # "not significant" in >= 90% of trials at the 5% level (our set-level t-test, see tcav.py).
+    model = ModelHandle("probe", 2, module=ProbeNet().eval())
+    trials, significant = 12, 0
+    for trial in range(trials):
+        rng = np.random.default_rng(100 + trial)
+        sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(10)}
+        sets["noise"] = rng.random((10, C, H, W), dtype=np.float32)
+        x = rng.random((12, C, H, W), dtype=np.float32)
+        rep = explain("tcav", model, x, np.r_[np.zeros(6, int), np.ones(6, int)],
+                      ExplainContext(seed=trial, concept_sets=sets), layer="relu1").concepts
+        significant += any(r["p_value"] < 0.05 for r in rep.rows[:1])
+    assert significant <= 0.1 * trials, significant
+
+
+def test_tcav_detects_a_concept_the_model_uses():
+    # By construction (ProbeNet): adding band-0 structure raises class 1 at every tile, so the band-0
+    # concept has TCAV score ~1 for class 1 (Kim et al. 2018, directional derivative > 0) and is flagged.
+    model = ModelHandle("probe", 2, module=ProbeNet().eval())
+    rng = np.random.default_rng(0)
+    base = lambda n: (0.3 * rng.random((n, C, H, W))).astype(np.float32)  # noqa: E731
+    concept = base(20)
+    for i in range(20):
+        r = rng.integers(0, H - 4)
+        concept[i, 0, r:r + 3] = 1.0
+    other = base(20)
+    other[:, 2] += 0.5  # a band-2 concept the class does not read
+    sets = {"band0-lines": concept, "band2-wash": other,
+            **{f"random-{i}": base(20) for i in range(10)}}
+    x = base(16)
+    x[:, 0, 4:7] = 1.0  # every tile shows a band-0 line, so the detector is active
+    targets = np.ones(16, int)
+    exp = explain("tcav", model, x, targets, ExplainContext(concept_sets=sets, class_names=["a", "b"]),
+                  layer="relu1")
+    rep = exp.concepts
+    row = next(r for r in rep.rows if r["concept"] == "band0-lines")
+    assert row["score"] > 0.95 and row["class_name"] == "b" and row["matched_type"] == "band0-lines"
+    assert rep.flagged["band0-lines"] and rep.type_importance["band0-lines"] > 0.95
+    assert exp.cost.backward_calls == 16
+    assert exp.attributions[:, 4:7].mean() > exp.attributions[:, 9:].mean()
+
+
+def test_tcav_bad_concept_sets():
+    model = ModelHandle("probe", 2, module=ProbeNet().eval())
+    x = np.random.default_rng(0).random((4, C, H, W), dtype=np.float32)
+    few = {"c": x, **{f"random-{i}": x for i in range(3)}}
+    with pytest.raises(XbenchInputError, match="too few random sets"):
+        explain("tcav", model, x, np.ones(4, int), ExplainContext(concept_sets=few))
+    with pytest.raises(XbenchInputError, match="concept sets"):
+        explain("tcav", model, x, np.ones(4, int))
+    only_random = {f"random-{i}": x for i in range(10)}
+    with pytest.raises(XbenchInputError, match="no concept sets"):
+        explain("tcav", model, x, np.ones(4, int), ExplainContext(concept_sets=only_random))
+
+
+# ---------------------------------------------------------------------------------------------------
+# Concept example sets from the synthesizer
+# ---------------------------------------------------------------------------------------------------
+
+
+def test_make_concept_sets_from_the_synthesizer():
+    scenes = pytest.importorskip("xbench.scenes")
+    from xbench.explainers.concept_sets import _scene_seed, make_concept_sets
+
+    recipe = scenes.list_recipes()[0]
+    types = scenes.load_recipe(recipe).types()[:2]
+    sets = make_concept_sets(recipe, 32, types, n_per_set=2, n_random=2, seed=5)
+    assert list(sets) == [*types, "random-0", "random-1"]
+    for arr in sets.values():
+        assert arr.shape[0] == 2 and arr.shape[2:] == (32, 32) and arr.dtype == np.float32
+    again = make_concept_sets(recipe, 32, types, n_per_set=2, n_random=2, seed=5)
+    assert all(np.array_equal(sets[k], again[k]) for k in sets)
+    # a concept tile holds its type and no other catalogued type
+    catalogue = scenes.load_recipe(recipe).types()
+    presence = {t: 0.0 for t in catalogue}
+    presence[types[0]] = 1.0
+    scene = scenes.sample_scene(recipe, 32, _scene_seed(5, 0, 0), presence=presence)
+    kinds = {inst.kind for inst in scene.instances}
+    assert kinds == {types[0]}
+    with pytest.raises(XbenchInputError, match="catalogue"):
+        make_concept_sets(recipe, 32, ["no-such-type"], 2, 2, 0)

@@ -1,3 +1,0 @@
-def test_fixture(trained_small):
-    t = trained_small.trained
-    print(t.accuracy, t.seconds, t.epochs, t.history[-1])
