@@ -152,9 +152,21 @@ def test_sparseness_and_entropy_hand_values():
 
 
 # -- the batched perturbation engine --------------------------------------------------------------------
+def numpy_model(c: int, h: int, w: int, seed: int = 0) -> ModelHandle:
+    """A fast black box (softmax of a fixed random projection of tanh(x)) for engine-vs-loop checks."""
+    proj = np.random.default_rng(seed).normal(size=(c * h * w, 2))
+
+    def predict(x):
+        z = np.tanh(4 * x.reshape(len(x), -1)) @ proj
+        e = np.exp(z - z.max(axis=1, keepdims=True))
+        return e / e.sum(axis=1, keepdims=True)
+
+    return ModelHandle("numpy", 2, predict_fn=predict)
+
+
 def test_batched_curves_equal_the_per_tile_loop_and_do_not_depend_on_chunking():
     rng = np.random.default_rng(4)
-    handle = tiny_handle(1)
+    handle = numpy_model(3, 12, 12)
     x = rng.random((3, 3, 12, 12)).astype(np.float32)
     a = quantised(rng, (3, 12, 12))
     t = rng.integers(0, 2, 3)
@@ -179,6 +191,26 @@ def test_batched_curves_equal_the_per_tile_loop_and_do_not_depend_on_chunking():
     np.testing.assert_allclose(i[:, -1], p_x, atol=1e-6)
 
 
+def test_repeated_steps_are_not_rescored_and_curves_stay_exact():
+    rng = np.random.default_rng(8)
+    handle = numpy_model(3, 12, 12, seed=1)
+    x = rng.random((3, 3, 12, 12)).astype(np.float32)
+    twin = x.copy()
+    twin[:, :, 2:5, 2:6] = 0.9  # like a structure-free twin: differs from the tile on 12 pixels only
+    region = np.zeros((3, 12, 12), np.float32)
+    region[:, 2:5, 2:6] = 1.0
+    t = rng.integers(0, 2, 3)
+    for attr, saves in ((region, True), (rng.random((3, 12, 12)), False)):
+        order = pixel_order(attr, seed=1)
+        for mode in ("deletion", "insertion"):
+            with handle.counting() as calls:
+                fast = perturbation_curves(handle.probabilities, x, t, twin, order, 12, mode)
+            np.testing.assert_allclose(fast, perturbation_curves_loop(handle.probabilities, x, t, twin, order, 12,
+                                                                      mode), atol=1e-6)
+            if saves:  # the region enters within the first step: steps 2..12 repeat step 1
+                assert calls.forward == 3 * 2
+
+
 def test_auc_and_aopc_by_hand():
     curve = np.array([[1.0, 0.5, 0.0]])
     assert curve_auc(curve)[0] == pytest.approx(0.5)  # trapezoid rule (Petsiuk et al. 2018)
@@ -188,15 +220,27 @@ def test_auc_and_aopc_by_hand():
 def test_curves_reach_the_model_in_large_batches():
     inputs = full_inputs(n=6, h=8, w=8)
     sizes = []
-    original = inputs.model.probabilities
-
-    def spy(images):
-        sizes.append(len(images))
-        return original(images)
-
-    inputs.model.probabilities = spy
+    inputs.model.module.register_forward_hook(lambda _m, args, _o: sizes.append(len(args[0])))
     compute_metric("deletion-auc", inputs, steps=10)
-    assert sizes == [6 * 11]  # every tile and every step in one stack
+    assert sizes == [6 * 11]  # every tile and every step in one model call
+
+
+def test_fast_scorer_gives_the_handle_probabilities_and_counts_calls():
+    from xbench.metrics.base import model_scorer
+
+    inputs = full_inputs(n=5)
+    x = np.random.default_rng(0).random((300, 3, 10, 10)).astype(np.float32)
+    with inputs.model.counting() as calls:
+        fast = model_scorer(inputs.model, chunk=64)(x)
+    assert calls.forward == 300
+    np.testing.assert_allclose(fast, inputs.model.probabilities(x), atol=1e-6)
+
+    class Viewing(nn.Module):  # rejects channels-last input (.view on a spatial tensor)
+        def forward(self, x):
+            return x.view(x.shape[0], -1)[:, :2] * 0 + torch.tensor([0.0, 1.0])
+
+    handle = ModelHandle("viewing", 2, module=Viewing().eval())
+    np.testing.assert_allclose(model_scorer(handle)(x[:4]), handle.probabilities(x[:4]))
 
 
 def test_curves_are_shared_between_deletion_auc_and_aopc_morf():

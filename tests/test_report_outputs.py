@@ -45,6 +45,7 @@ def make_run(
     rng_seed: int = 0,
     artifacts: bool = True,
     extras: bool = True,
+    long_accuracy_keys: bool = False,
 ) -> Path:
     """A run folder following the result-store contract of DEVELOPERS.md, with made-up numbers."""
     rng = np.random.default_rng(rng_seed)
@@ -70,13 +71,11 @@ def make_run(
                 ]
                 dl = np.clip(0.6 - 0.5 * q + rng.normal(0, 0.05, n_tiles), 0, 1)
                 rows += [
-                    (f"run-{task}", task, model, seed, e, "deletion-auc", "none", t, float(x))
-                    for t, x in enumerate(dl)
+                    (f"run-{task}", task, model, seed, e, "deletion-auc", "none", t, float(x)) for t, x in enumerate(dl)
                 ]
                 sp = np.clip(0.3 + 0.4 * rng.random() + rng.normal(0, 0.05, n_tiles), 0, 1)
                 rows += [
-                    (f"run-{task}", task, model, seed, e, "sparseness", "none", t, float(x))
-                    for t, x in enumerate(sp)
+                    (f"run-{task}", task, model, seed, e, "sparseness", "none", t, float(x)) for t, x in enumerate(sp)
                 ]
                 rows.append(
                     (
@@ -141,7 +140,11 @@ def make_run(
                 "name": m,
                 "kind": "resnet" if m == "resnet" else "cnn",
                 "seed": s,
-                "accuracy": {"train": 0.97, "val": 0.93, "test": 0.92 - 0.01 * s, "balanced_test": 0.91},
+                "accuracy": (
+                    {"train_accuracy": 0.97, "test_accuracy": 0.92 - 0.01 * s, "test_balanced_accuracy": 0.91}
+                    if long_accuracy_keys  # the names `xbench run` writes
+                    else {"train": 0.97, "val": 0.93, "test": 0.92 - 0.01 * s, "balanced_test": 0.91}
+                ),
                 "params": 12345,
             }
             for m in models
@@ -257,9 +260,9 @@ def make_run(
         for s in seeds
         for k, d in (("road", 0.3), ("clearing", 0.2), ("river", 0.0), ("cue", 0.05))
     ]
-    pd.DataFrame(
-        rel, columns=["task", "model", "seed", "kind", "mean_drop", "ci_low", "ci_high", "n"]
-    ).to_parquet(folder / "reliance.parquet")
+    pd.DataFrame(rel, columns=["task", "model", "seed", "kind", "mean_drop", "ci_low", "ci_high", "n"]).to_parquet(
+        folder / "reliance.parquet"
+    )
     pd.DataFrame(
         [
             (
@@ -307,9 +310,7 @@ def make_run(
         for model in models[:1]:
             seed = seeds[0]
             maps = {
-                f"map__{e}": (planted * QUALITY[e] + rng.random((g, h, h)) * (1 - QUALITY[e])).astype(
-                    np.float32
-                )
+                f"map__{e}": (planted * QUALITY[e] + rng.random((g, h, h)) * (1 - QUALITY[e])).astype(np.float32)
                 for e in EXPLAINERS
             }
             maps["map__gradient"] = maps["map__gradient"] - 0.3  # a signed map
@@ -340,14 +341,24 @@ def runs(tmp_path_factory) -> list[Path]:
     # Three task x model blocks; the second folder holds records and a manifest only (fewer figures: fast).
     return [
         make_run(base / "vale", "orrin-roads", ["cnn", "resnet"], [0, 1], rng_seed=1),
-        make_run(base / "bog", "orrin-clearcuts", ["cnn"], [0, 1], rng_seed=2, artifacts=False, extras=False),
+        make_run(
+            base / "bog",
+            "orrin-clearcuts",
+            ["cnn"],
+            [0, 1],
+            rng_seed=2,
+            artifacts=False,
+            extras=False,
+            long_accuracy_keys=True,
+        ),
     ]
 
 
 @pytest.fixture(scope="module")
 def report(runs, tmp_path_factory):
     out = tmp_path_factory.mktemp("report")
-    return write_report(runs, out, n_resamples=500)  # 500: the table test reproduces it with scipy
+    # 500 resamples: the table test reproduces them with scipy; 2 gallery tiles keep the figure quick.
+    return write_report(runs, out, n_resamples=500, gallery_tiles=2)
 
 
 def test_write_report_returns_summary_and_prints_nothing(runs, tmp_path, capsys):
@@ -473,10 +484,7 @@ def test_table_numbers_equal_scipy_on_the_records(runs, report):
     task, model, metric, truth = "orrin-roads", "cnn", "mass-accuracy", "planted"
     wide = _seed_averaged(records, task, model, metric, truth)
     block = summary[
-        (summary.task == task)
-        & (summary.model == model)
-        & (summary.metric == metric)
-        & (summary.truth == truth)
+        (summary.task == task) & (summary.model == model) & (summary.metric == metric) & (summary.truth == truth)
     ].set_index("explainer")
     best = wide.mean().idxmax()
     assert best == "oracle" and bool(block.loc[best, "best"])
@@ -545,6 +553,8 @@ def test_methods_text_and_bibliography(report):
         "500 resamples",
     ):
         assert expected in text, expected
+    models = text.split("## Models")[1].split("## Explainers")[0]
+    assert "n/a" not in models and models.count("test accuracy 0.915 ± 0.007") == 3
     cited = set(re.findall(r"@([a-z0-9]+)", text))
     entries = set(re.findall(r"@\w+\{([a-z0-9]+),", bib))
     assert cited == entries

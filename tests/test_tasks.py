@@ -81,15 +81,15 @@ def _variant(old: str, new: str, count: int = 1) -> str:
     ("size = 48", "size = 50", "data.size"),                                            # not a multiple of 4
     ("size = 48", "size = true", "data.size"),                                          # bool is not an int
     ("label_noise = 0.0", "label_noise = 0.7", "data.label_noise"),                     # out of range
-    ("train = 1000", "train = -5", "data.train"),                                       # bad count
+    ("train = 800", "train = -5", "data.train"),                                       # bad count
     ("road = 0.5", "road = 1.5", "data.presence.road"),                                 # not a probability
     ("road = 0.5", "roads = 0.5", "data.presence.roads"),                               # unknown type
     ('recipe = "orrin-vale"', 'recipe = "atlantis"', "data.recipe"),                    # unknown recipe
     ('lookalikes = ["river"]', 'lookalikes = ["road"]', "data.lookalikes[0]"),          # human type
     ('kind = "cnn"', 'kind = "transformer"', "models[0].kind"),                         # unknown kind
-    ("epochs = 20", "epochs = 20\nlearning_rate = 0.1", "models[0].learning_rate"),     # unknown hyper-param
-    ("epochs = 20", "epochs = 2.5", "models[0].epochs"),                                # wrong type
-    ("epochs = 20", "epochs = 0", "models[0].epochs"),                                  # bad value
+    ("epochs = 16", "epochs = 16\nlearning_rate = 0.1", "models[0].learning_rate"),     # unknown hyper-param
+    ("epochs = 16", "epochs = 2.5", "models[0].epochs"),                                # wrong type
+    ("epochs = 16", "epochs = 0", "models[0].epochs"),                                  # bad value
     ('name = "resnet"', 'name = "cnn"', "models[1].name"),                              # duplicate name
     ("n_trees = 200", 'n_trees = 200\nmax_features = "half"', "models[3].max_features"),
     ("seeds = [0, 1]", "seeds = [0, -1]", "seeds[1]"),

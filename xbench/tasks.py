@@ -86,6 +86,7 @@ class DataSpec:
     cue_rates: dict[str, float]
     lookalikes: list[str] | None
     raw: dict[str, Any]
+    possible_types: list[str] = field(default_factory=list)  # types that may appear in the tiles
 
     @property
     def hash(self) -> str:
@@ -285,11 +286,7 @@ def load_task(path_or_name: str | Path) -> Task:
 def _default_lookalikes(data: DataSpec, driving: dict[int, list[str]]) -> list[str]:
     """Natural types that can appear in the task's tiles and drive no class."""
     driving_all = {t for types in driving.values() for t in types}
-    if data.presence is not None:
-        present = [t for t, p in data.presence.items() if p > 0]
-    else:
-        present = list(NATURAL_TYPES)
-    return [t for t in NATURAL_TYPES if t in present and t not in driving_all]
+    return [t for t in NATURAL_TYPES if t in data.possible_types and t not in driving_all]
 
 
 def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
@@ -303,7 +300,7 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
             raise XbenchInputError(f"{w}.{key}", "missing required key")
     recipe = _expect(sec["recipe"], (str,), f"{w}.recipe", "a recipe name or path")
     try:
-        scenes.load_recipe(_recipe_ref(recipe, f))
+        recipe_obj = scenes.load_recipe(_recipe_ref(recipe, f))
     except XbenchInputError as exc:
         raise XbenchInputError(f"{w}.recipe", f"cannot load recipe ({exc})", found=recipe) from None
     size = _int_in(sec["size"], f"{w}.size", 16, 512)
@@ -343,9 +340,17 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
             rates[s] = _float_in(sec[key], f"{w}.{key}", 0.0, 1.0)
     elif cue_keys:
         raise XbenchInputError(f"{w}.{cue_keys[0]}", "cue settings without a [data.cue] table")
+    possible = []
+    for kind in HUMAN_TYPES + NATURAL_TYPES:
+        if presence is not None and kind in presence:
+            p = presence[kind]
+        else:
+            p = recipe_obj.spec(kind).probability if kind in recipe_obj.types() else 0.0
+        if p > 0:
+            possible.append(kind)
     spec = DataSpec(recipe=recipe, size=size, counts=counts, seed=seed, presence=presence, labels=labels,
-                    label_noise=label_noise, cue=cue, cue_rates=rates,
-                    lookalikes=lookalikes, raw=json.loads(json.dumps(sec, default=str)))
+                    label_noise=label_noise, cue=cue, cue_rates=rates, lookalikes=lookalikes,
+                    raw=json.loads(json.dumps(sec, default=str)), possible_types=possible)
     return spec, rule
 
 

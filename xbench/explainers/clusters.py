@@ -41,6 +41,7 @@ import torch
 from scipy import stats
 from sklearn.decomposition import PCA
 from sklearn.mixture import GaussianMixture
+from threadpoolctl import threadpool_limits
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
@@ -81,8 +82,9 @@ def _fit_mixture(x: np.ndarray, n_clusters, cluster_range, covariance: str, seed
             break
         gm = GaussianMixture(n_components=k, covariance_type=covariance, reg_covar=1e-4, n_init=1,
                              max_iter=200, random_state=seed)
-        gm.fit(x)
-        bic = float(gm.bic(x))
+        with threadpool_limits(1):  # small problems: BLAS threads only add contention
+            gm.fit(x)
+            bic = float(gm.bic(x))
         bics[k] = bic
         if best is None or bic < best_bic:
             best, best_bic = gm, bic
@@ -124,7 +126,7 @@ def _ttest(d: np.ndarray) -> float | None:
 
 @register_explainer(KEY, citation=CITE_CLUSTERS, needs={"layer", "fit-set"}, kind="concept",
                     defaults={"layer": None, "n_clusters": "bic", "cluster_range": [2, 8],
-                              "pca_components": 8, "covariance": "full", "max_positions": 20000,
+                              "pca_components": 8, "covariance": "full", "max_positions": 4000,
                               "baseline": "fit-mean", "score": "probability", "alpha": 0.05,
                               "min_drop": 0.01, "min_iou": 0.1},
                     description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
@@ -160,10 +162,15 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
         fit_x[np.sort(rng.choice(fit_x.shape[0], max_positions, replace=False))]
     pca = None
     if width > pca_components:
-        pca = PCA(n_components=pca_components, random_state=seed).fit(sample)
+        with threadpool_limits(1):
+            pca = PCA(n_components=pca_components, random_state=seed).fit(sample)
 
     def project(x: np.ndarray) -> np.ndarray:
         return pca.transform(x) if pca is not None else x
+
+    def assign(x: np.ndarray) -> np.ndarray:
+        with threadpool_limits(1):
+            return gm.predict(project(x))
 
     gm, bics = _fit_mixture(project(sample), n_clusters, tuple(cluster_range), covariance, seed)
     k = int(gm.n_components)
@@ -175,8 +182,8 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
                                "the fitting set and the explained tiles",
                                expected=fit_acts.shape[1:], found=acts.shape[1:])
     n = images.shape[0]
-    cluster_maps = gm.predict(project(_positions(acts))).reshape(n, h, w)
-    fit_maps = gm.predict(project(fit_x)).reshape(-1, h, w)
+    cluster_maps = assign(_positions(acts)).reshape(n, h, w)
+    fit_maps = assign(fit_x).reshape(-1, h, w)
     base_vec = fit_acts.mean(axis=(0, 2, 3)) if baseline == "fit-mean" else np.zeros(width, np.float32)
     base_t = torch.from_numpy(base_vec.astype(np.float32))[None, :, None, None]
 

@@ -42,6 +42,7 @@ import numpy as np
 import torch
 from scipy import stats
 from sklearn.linear_model import LogisticRegression
+from threadpoolctl import threadpool_limits
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
@@ -84,7 +85,8 @@ def _cav(pos: np.ndarray, neg: np.ndarray, regularization: float, seed: int) -> 
     y = np.concatenate([np.ones(len(pos)), np.zeros(len(neg))])
     scale = x.std(axis=0).mean() or 1.0  # a common scale keeps the solver well-conditioned
     clf = LogisticRegression(C=regularization, solver="liblinear", max_iter=2000, random_state=seed)
-    clf.fit(x / scale, y)
+    with threadpool_limits(1):  # tiny problems: BLAS threads only add contention
+        clf.fit(x / scale, y)
     v = clf.coef_[0] / scale
     norm = np.linalg.norm(v)
     return v / norm if norm > 0 else v
@@ -104,15 +106,13 @@ def _ttest_ind(a: np.ndarray, b: np.ndarray) -> float:
 
 @register_explainer(KEY, citation=CITE_TCAV, needs={"gradients", "layer", "concept-sets"}, kind="concept",
                     defaults={"layer": None, "pool": "mean", "regularization": 1.0, "test": "set",
-                              "n_splits": 5, "alpha": 0.05, "min_random": 10},
+                              "alpha": 0.05, "min_random": 10},
                     description="concept activation vectors from example sets (logistic regression at a "
                                 "layer); TCAV score per class and concept, t-test against >= 10 random "
                                 "concepts with Bonferroni; attribution = weighted concept-presence maps")
-def tcav(model, images, targets, context, *, layer, pool, regularization, test, n_splits, alpha,
-         min_random):
+def tcav(model, images, targets, context, *, layer, pool, regularization, test, alpha, min_random):
     pool = check_choice(KEY, "pool", pool, ("mean", "none"))
     test = check_choice(KEY, "test", test, ("set", "runs"))
-    n_splits = check_int(KEY, "n_splits", n_splits, 2)
     regularization = check_float(KEY, "regularization", regularization, 0.0, inclusive_min=False)
     alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
     min_random = check_int(KEY, "min_random", min_random, 2)
@@ -173,58 +173,40 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
             vs.append(v)
         return np.array(per_class), np.array(pooled), vs  # (runs, classes), (runs,)
 
-    rng = context.rng(stream=11)
-    null_cache: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    # random versus random: each random set in turn plays a concept against the other random sets
+    n_r = len(randoms)
+    pair_class = np.full((n_r, n_r, len(classes)), np.nan)
+    pair_pooled = np.full((n_r, n_r), np.nan)
+    for i in range(n_r):
+        for j in range(i + 1, n_r):
+            v = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 1000 + i * n_r + j)
+            pair_class[i, j], pair_pooled[i, j] = scores(v)
+            pair_class[j, i], pair_pooled[j, i] = scores(-v)  # the CAV of j against i points the other way
+    null_class = np.nanmean(pair_class, axis=1)  # (n_r, classes): each random set's mean score
+    null_pooled = np.nanmean(pair_pooled, axis=1)
+    kim_class, kim_pooled = pair_class[0, 1:], pair_pooled[0, 1:]  # random-0 against the others
 
-    def null_draws(size: int) -> tuple[np.ndarray, np.ndarray]:
-        """Set-level null: a size-matched subset of each random set plays a concept against the other
-        random sets; its mean TCAV score is one draw. (n_random, classes), (n_random,)."""
-        if size not in null_cache:
-            per_class, pooled = [], []
-            for j, name in enumerate(randoms):
-                pick = rng.permutation(len(feats[name]))[:size]
-                others = [r for r in randoms if r != name]
-                pc, pl, _ = mean_scores_of(feats[name][pick], others, 1000 * (j + 1))
-                per_class.append(pc.mean(axis=0))
-                pooled.append(pl.mean())
-            null_cache[size] = (np.array(per_class), np.array(pooled))
-        return null_cache[size]
-
-    if test == "runs":  # Kim et al. 2018: random-0 against each other random set, one score per CAV
-        kim_class, kim_pooled, _ = mean_scores_of(feats[randoms[0]], randoms[1:], 500)
+    def pvalue(c_runs: np.ndarray, null: np.ndarray, kim: np.ndarray) -> float:
+        if test == "set":
+            return _ttest_ind(np.array([c_runs.mean()]), null)
+        return _ttest_ind(c_runs, kim)
 
     class_names = list(context.class_names) if context.class_names is not None else \
         [str(i) for i in range(model.n_classes)]
     m_tests = len(concepts)  # Bonferroni family: the concepts tested for one class
-    rows, importance, flagged, mean_scores, cavs, split_scores = [], {}, {}, {}, {}, {}
+    rows, importance, flagged, mean_scores, cavs = [], {}, {}, {}, {}
     for concept in concepts:
         c_class, c_pooled, vs = mean_scores_of(feats[concept], randoms, 0)
-        if test == "set":
-            n_c = len(feats[concept])
-            k_parts = max(2, min(n_splits, n_c // 2))
-            parts = np.array_split(rng.permutation(n_c), k_parts)
-            size = min(len(p) for p in parts)
-            part_class, part_pooled = [], []
-            for pi, part in enumerate(parts):
-                pc, pl, _ = mean_scores_of(feats[concept][part[:size]], randoms, 100 * (pi + 1))
-                part_class.append(pc.mean(axis=0))
-                part_pooled.append(pl.mean())
-            part_class, part_pooled = np.array(part_class), np.array(part_pooled)
-            null_class, null_pooled = null_draws(size)
-            p_class = [_ttest_ind(part_class[:, j], null_class[:, j]) for j in range(len(classes))]
-            p_pool = _ttest_ind(part_pooled, null_pooled)
-            split_scores[concept] = part_class
-        else:
-            p_class = [_ttest_ind(c_class[:, j], kim_class[:, j]) for j in range(len(classes))]
-            p_pool = _ttest_ind(c_pooled, kim_pooled)
         for j, k in enumerate(classes):
+            p = pvalue(c_class[:, j], null_class[:, j], kim_class[:, j])
             rows.append({"concept": concept, "class_name": class_names[int(k)] if int(k) < len(class_names)
                          else str(int(k)),
                          "score": float(c_class[:, j].mean()), "spread": float(c_class[:, j].std(ddof=1)),
-                         "p_value": min(1.0, p_class[j] * m_tests), "matched_type": concept, "iou": None,
+                         "p_value": min(1.0, p * m_tests), "matched_type": concept, "iou": None,
                          "purity": None})
+        p_pooled = min(1.0, pvalue(c_pooled, null_pooled, kim_pooled) * m_tests)
         importance[concept] = float(c_pooled.mean())
-        flagged[concept] = bool(min(1.0, p_pool * m_tests) < alpha and c_pooled.mean() > 0.5)
+        flagged[concept] = bool(p_pooled < alpha and c_pooled.mean() > 0.5)
         mean_scores[concept] = c_class.mean(axis=0)
         v = np.mean(vs, axis=0)
         cavs[concept] = v / (np.linalg.norm(v) or 1.0)
@@ -247,6 +229,6 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
 
     report = ConceptReport(rows=rows, type_importance=importance, flagged=flagged, extras={
         "layer": layer, "pool": pool, "n_random": len(randoms), "cavs": cavs,
-        "test": test, "split_scores": split_scores, "null_scores": {size: v[0] for size, v in null_cache.items()},
-        "classes": [int(k) for k in classes], "class_names": class_names})
+        "test": test, "null_scores": null_class, "classes": [int(k) for k in classes],
+        "class_names": class_names})
     return attributions, report

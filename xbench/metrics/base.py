@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import torch
 
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
@@ -312,6 +313,47 @@ def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[Metr
 
 
 # -- helpers shared by the families ---------------------------------------------------------------------
+SCORE_CHUNK = 128
+
+
+def model_scorer(model: ModelHandle, chunk: int = SCORE_CHUNK) -> Callable[[np.ndarray], np.ndarray]:
+    """``images (M, C, H, W) -> class probabilities (M, K)`` for the perturbation metrics.
+
+    Black boxes (and handles whose ``probabilities`` is overridden) go through ``model.probabilities``.
+    Plain torch handles take a faster route with the same numbers: inference mode, chunks of ``chunk``
+    images (the sweet spot for small CPU models; larger batches spill the caches) in channels-last
+    memory format (about 1.5x faster convolutions on CPU), falling back to the ordinary layout if the
+    module rejects it. Calls still pass through the module, so the handle's call counter sees them, and
+    the output is checked as ``probabilities`` checks it.
+    """
+    if model.module is None or type(model).probabilities is not ModelHandle.probabilities:
+        return model.probabilities
+    module = model.module
+    state = {"channels_last": True}
+
+    def forward(x: torch.Tensor) -> torch.Tensor:
+        if state["channels_last"]:
+            try:
+                return module(x.contiguous(memory_format=torch.channels_last))
+            except RuntimeError:  # e.g. a .view() on a spatial tensor inside the module
+                state["channels_last"] = False
+        return module(x)
+
+    def score(images: np.ndarray) -> np.ndarray:
+        images = np.asarray(images, dtype=np.float32)
+        out = np.empty((images.shape[0], model.n_classes))
+        with torch.inference_mode():
+            for start in range(0, images.shape[0], chunk):
+                part = images[start:start + chunk]
+                logits = forward(torch.from_numpy(np.ascontiguousarray(part)))
+                probs = torch.softmax(logits.double(), dim=1).numpy()
+                model._check_output(probs, part.shape[0])
+                out[start:start + part.shape[0]] = probs
+        return out
+
+    return score
+
+
 def bad_attribution_tiles(attributions: np.ndarray) -> np.ndarray:
     """Tiles (N,) whose attribution holds a NaN or infinity."""
     a = np.asarray(attributions)

@@ -29,6 +29,7 @@ from xbench.metrics.base import (
     MetricResult,
     bad_attribution_tiles,
     check_number,
+    model_scorer,
     register_metric,
     tile_result,
 )
@@ -164,14 +165,15 @@ def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
     values = np.full(n, np.nan)
     reasons = {int(i): NONFINITE_REASON for i in np.flatnonzero(bad)}
     if good.size:
-        base = inputs.model.probabilities(images[good])[np.arange(good.size), targets[good]]
+        score = model_scorer(inputs.model)
+        base = score(images[good])[np.arange(good.size), targets[good]]
         per_chunk = max(1, (64 * 2**20) // (samples * c * h * w * 4))
         for start in range(0, good.size, per_chunk):
             j = np.arange(start, min(good.size, start + per_chunk))
             ids = good[j]
             pert = np.stack([infidelity_perturbations(inputs.seed, i, (h, w), samples, noise) for i in ids])
             stack = (images[ids][:, None] - pert[:, :, None]).reshape(-1, c, h, w)
-            probs = inputs.model.probabilities(stack)
+            probs = score(stack)
             picked = probs[np.arange(stack.shape[0]), np.repeat(targets[ids], samples)]
             scores = picked.reshape(len(ids), samples)
             values[ids] = infidelity(np.asarray(inputs.attributions)[ids], pert, base[j][:, None] - scores,

@@ -33,9 +33,7 @@ class BibEntry:
         return f"{note}@{self.kind}{{{self.key},\n{body}\n}}\n"
 
 
-def _e(
-    key, kind, authors, title, venue_field, venue, year, first, memory=False, extra=(), years=None, also=()
-):
+def _e(key, kind, authors, title, venue_field, venue, year, first, memory=False, extra=(), years=None, also=()):
     fields = [("author", authors), ("title", title)]
     if venue_field:
         fields.append((venue_field, venue))

@@ -112,7 +112,9 @@ def order_explainers(records: pd.DataFrame, manifests: list[dict[str, Any]]) -> 
         for key in m.get("explainers", {}) or {}:
             if key in present and key not in order:
                 order.append(key)
-    return order + sorted(e for e in present if e not in order)
+    order += sorted(e for e in present if e not in order)
+    controls = ("random", "edges", "oracle")  # reference points last
+    return [e for e in order if e not in controls] + [e for e in controls if e in order]
 
 
 def order_columns(records: pd.DataFrame, manifests: list[dict[str, Any]]) -> list[Column]:
@@ -175,9 +177,7 @@ def summarize(
                         "not per tile, and are left out of that column"
                     )
             names = [e for e in explainers if e in wide.columns]
-            cis = {
-                e: stats.bootstrap_ci(wide[e].to_numpy(), confidence, n_resamples, seed=seed) for e in names
-            }
+            cis = {e: stats.bootstrap_ci(wide[e].to_numpy(), confidence, n_resamples, seed=seed) for e in names}
             finite = [e for e in names if np.isfinite(cis[e].mean)]
             best = None
             if hib is not None and finite:
@@ -223,8 +223,7 @@ def summarize(
             rank_tests[col.key] = rt
             if rt.excluded:
                 log.append(
-                    f"ranks for {col.label}: left out {', '.join(rt.excluded)} "
-                    f"(no value in every task x model block)"
+                    f"ranks for {col.label}: left out {', '.join(rt.excluded)} (no value in every task x model block)"
                 )
     settings = {
         "confidence": confidence,
@@ -244,9 +243,7 @@ def rank_test(
     sub = table[(table["metric"] == col.metric) & (table["truth"] == col.truth)]
     if hib is None or sub.empty:
         return None
-    wide = sub.pivot_table(
-        index=["task", "model"], columns="explainer", values="mean", aggfunc="first", dropna=False
-    )
+    wide = sub.pivot_table(index=["task", "model"], columns="explainer", values="mean", aggfunc="first", dropna=False)
     wide = wide.reindex(index=pd.MultiIndex.from_tuples([b for b in blocks if b in wide.index]))
     order = [e for e in explainers if e in wide.columns]
     complete = [e for e in order if wide[e].notna().all()]

@@ -83,6 +83,19 @@ def style(index: int) -> dict[str, Any]:
     }
 
 
+CONTROL_LINESTYLES = {"random": (0, (1, 1.5)), "edges": (0, (4, 2)), "oracle": (0, (6, 2, 1, 2))}
+
+
+def explainer_styles(explainers: list[str]) -> dict[str, dict[str, Any]]:
+    """One style per explainer, the same in every figure; controls get dashed lines, so that curves
+    lying on top of each other (controls often do) stay visible."""
+    out = {e: style(i) for i, e in enumerate(explainers)}
+    for e, ls in CONTROL_LINESTYLES.items():
+        if e in out:
+            out[e]["linestyle"] = ls
+    return out
+
+
 def file_stem(*parts: Any) -> str:
     import re
 
@@ -262,9 +275,7 @@ def deletion_insertion_figure(
             for j, kind in enumerate(kinds):
                 ax = axes[i, j]
                 for e in names:
-                    d = pooled[
-                        (pooled["explainer"] == e) & (pooled["curve"] == kind) & (pooled["baseline"] == b)
-                    ]
+                    d = pooled[(pooled["explainer"] == e) & (pooled["curve"] == kind) & (pooled["baseline"] == b)]
                     if d.empty:
                         continue
                     d = d.sort_values("step")
@@ -323,7 +334,8 @@ def randomization_figure(
                     d["mean"],
                     linestyle="none",
                     marker=styles[e]["marker"],
-                    markersize=3,
+                    markersize=4,
+                    markerfacecolor="none",  # hollow: coinciding curves stay visible
                     color=styles[e]["color"],
                 )
             ticks = sorted(steps)
@@ -334,9 +346,7 @@ def randomization_figure(
             ax.grid(alpha=0.3, linewidth=0.5)
         _legend(fig, names, styles, marker=True)
         fig.supxlabel("layers randomized in cascade, from the output down to the named layer", fontsize=8)
-        fig.suptitle(
-            f"{title}: model-parameter randomization, mean over tiles and seeds (band: 95 % CI)", fontsize=9
-        )
+        fig.suptitle(f"{title}: model-parameter randomization, mean over tiles and seeds (band: 95 % CI)", fontsize=9)
     return fig
 
 
@@ -403,9 +413,7 @@ def cd_figure(names: list[str], ranks: np.ndarray, cd: float, title: str) -> Fig
 
 def _categorical(n: int) -> ListedColormap:
     colours = (
-        OKABE_ITO
-        if n <= len(OKABE_ITO)
-        else [matplotlib.colormaps["viridis"](i / max(n - 1, 1)) for i in range(n)]
+        OKABE_ITO if n <= len(OKABE_ITO) else [matplotlib.colormaps["viridis"](i / max(n - 1, 1)) for i in range(n)]
     )
     return ListedColormap(colours[:n])
 
@@ -414,9 +422,7 @@ def clusters_figure(data: dict[str, np.ndarray], title: str, max_tiles: int = 4)
     images = np.asarray(data["images"])
     maps = np.asarray(data["cluster_maps"])
     changes = np.asarray(data["score_changes"], dtype=np.float64)
-    classes = [str(c) for c in data.get("class_names", [])] or [
-        f"class {j}" for j in range(changes.shape[-1])
-    ]
+    classes = [str(c) for c in data.get("class_names", [])] or [f"class {j}" for j in range(changes.shape[-1])]
     g = min(len(images), len(maps), max_tiles)
     n_clusters = int(changes.shape[0]) if changes.ndim == 3 else int(maps.max()) + 1
     band_names = data.get("band_names", np.array(["blue", "green", "red"]))
@@ -536,7 +542,9 @@ def reliance_figure(reliance: pd.DataFrame, title: str) -> Figure | None:
         ax.axhline(0, color="0.4", linewidth=0.7)
         ax.set_xticks(range(len(kinds)))
         ax.set_xticklabels(kinds)
-        ax.set_xlabel("structure type removed in the counterfactual twin (cue: the spurious cue)")
+        ax.set_xlabel(
+            "structure type removed in the counterfactual twin" + (" (cue: the spurious cue)" if "cue" in kinds else "")
+        )
         ax.set_ylabel("mean drop in target-class\nprobability (Δp)")
         ax.legend(title="model", frameon=False, loc="best")
         ax.grid(axis="y", alpha=0.3, linewidth=0.5)
@@ -550,6 +558,28 @@ def reliance_figure(reliance: pd.DataFrame, title: str) -> Figure | None:
 # ---------------------------------------------------------------- cost vs quality
 
 
+def _place_labels(ax, points: list[tuple[str, float, float]], min_gap: float = 11.0) -> None:
+    """Label points, nudging a label up (in points) while it would overlap one already placed."""
+    ax.autoscale_view()
+    scale = 72.0 / ax.figure.dpi
+    placed: list[tuple[float, float, float]] = []  # x, y (points), text width (points)
+    for name, x, y in sorted(points, key=lambda t: t[2]):
+        px, py = (v * scale for v in ax.transData.transform((x, y)))
+        width = 4.2 * len(name)
+        dy = 3.0
+        while any(abs(py + dy - qy) < min_gap and px < qx + qw and qx < px + width for qx, qy, qw in placed):
+            dy += min_gap
+        placed.append((px, py + dy, width))
+        ax.annotate(
+            name,
+            (x, y),
+            xytext=(4, dy),
+            textcoords="offset points",
+            fontsize=7,
+            arrowprops={"arrowstyle": "-", "color": "0.6", "linewidth": 0.5} if dy > 3.0 else None,
+        )
+
+
 def cost_quality_figure(
     points: pd.DataFrame, explainers: list[str], styles: dict[str, dict], y_label: str, title: str
 ) -> Figure | None:
@@ -558,6 +588,7 @@ def cost_quality_figure(
     if p.empty:
         return None
     names = [e for e in explainers if e in set(p["explainer"])]
+    means: list[tuple[str, float, float]] = []
     with matplotlib.rc_context(RC):
         fig = new_figure(6.0, 4.0)
         ax = fig.add_subplot()
@@ -585,8 +616,9 @@ def cost_quality_figure(
                 linewidths=0.5,
                 zorder=3,
             )
-            ax.annotate(e, (sx, sy), xytext=(4, 3), textcoords="offset points", fontsize=7)
+            means.append((e, sx, sy))
         ax.set_xscale("log")
+        _place_labels(ax, means)
         ax.set_xlabel("explainer time per tile (s, log scale)")
         ax.set_ylabel(y_label)
         ax.grid(alpha=0.3, linewidth=0.5, which="both")

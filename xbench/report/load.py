@@ -133,9 +133,7 @@ def read_records(run_dir: Path, log: list[str]) -> pd.DataFrame:
         frame["tile"] = pd.to_numeric(frame["tile"]).astype("int64")
         frame["value"] = pd.to_numeric(frame["value"], errors="raise").astype("float64")
     except (ValueError, TypeError) as exc:
-        raise XbenchInputError(
-            str(source), f"records: seed, tile and value must be numeric ({exc})"
-        ) from None
+        raise XbenchInputError(str(source), f"records: seed, tile and value must be numeric ({exc})") from None
     return frame
 
 

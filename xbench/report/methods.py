@@ -78,9 +78,7 @@ def data_paragraph(task: str, m: dict[str, Any], bands: list[str] | None) -> str
         return f"Task *{task}*: the run folder has no manifest data description."
     counts = d.get("counts") or {}
     size = d.get("size")
-    parts = [
-        f"Task *{task}*" + (f" ({m['description']})" if m.get("description") else "") + " uses synthetic"
-    ]
+    parts = [f"Task *{task}*" + (f" ({m['description']})" if m.get("description") else "") + " uses synthetic"]
     if size:
         parts[-1] += f" {size} × {size}-pixel tiles"
     else:
@@ -115,10 +113,24 @@ def data_paragraph(task: str, m: dict[str, Any], bands: list[str] | None) -> str
         parts.append(f"Label noise rate: {noise:g}.")
     parts.append(f"Spurious cue: {d['cue']}." if d.get("cue") else "No spurious cue was added.")
     if m.get("explain_tiles"):
-        parts.append(
-            f"Explanations and metrics were computed on {m['explain_tiles']} test tiles per model and seed."
-        )
+        parts.append(f"Explanations and metrics were computed on {m['explain_tiles']} test tiles per model and seed.")
     return " ".join(parts)
+
+
+# Accuracy keys in a manifest's model rows: the short names of the result-store contract, or the long
+# names `xbench run` writes.
+_ACCURACY_KEYS = {
+    "test": ("test", "test_accuracy"),
+    "balanced_test": ("balanced_test", "test_balanced_accuracy"),
+    "train": ("train", "train_accuracy"),
+}
+
+
+def _acc(row: dict[str, Any], key: str) -> float | None:
+    for k in _ACCURACY_KEYS[key]:
+        if row.get(k) is not None:
+            return float(row[k])
+    return None
 
 
 def models_paragraph(task: str, m: dict[str, Any], cites: Citations) -> str:
@@ -135,13 +147,11 @@ def models_paragraph(task: str, m: dict[str, Any], cites: Citations) -> str:
         params = rows[0].get("params")
         ref = " " + cites.key(MODEL_KEYS[kind]) if kind in MODEL_KEYS else ""
         acc = [r.get("accuracy") or {} for r in rows]
-        desc = (
-            f"*{name}* ({kind}{ref}" + (f", {params:,} parameters" if isinstance(params, int) else "") + ")"
-        )
+        desc = f"*{name}* ({kind}{ref}" + (f", {params:,} parameters" if isinstance(params, int) else "") + ")"
         desc += (
-            f": test accuracy {_mean_sd([a.get('test') for a in acc])}, balanced test accuracy "
-            f"{_mean_sd([a.get('balanced_test') for a in acc])}, training accuracy "
-            f"{_mean_sd([a.get('train') for a in acc])}"
+            f": test accuracy {_mean_sd([_acc(a, 'test') for a in acc])}, balanced test accuracy "
+            f"{_mean_sd([_acc(a, 'balanced_test') for a in acc])}, training accuracy "
+            f"{_mean_sd([_acc(a, 'train') for a in acc])}"
         )
         items.append(desc)
     seed_text = f"{_plural(len(seeds), 'seed')} ({', '.join(map(str, seeds))})"
@@ -163,30 +173,22 @@ def explainers_paragraph(
         info = explainer_info(e)
         desc = info.description if info.description and info.description != e else ""
         items.append(
-            f"`{e}`"
-            + (f" ({desc})" if desc else "")
-            + cites.cite(info.citation, e)
-            + f", {_settings(settings.get(e))}"
+            f"`{e}`" + (f" ({desc})" if desc else "") + cites.cite(info.citation, e) + f", {_settings(settings.get(e))}"
         )
     text = f"We compared {_plural(len(methods), 'explainer')}: " + "; ".join(items) + "."
     if controls:
         word = "controls frame" if len(controls) > 1 else "control frames"
         text += (
-            f" The {word} the scores: "
-            + "; ".join(f"`{c}` ({explainer_info(c).description})" for c in controls)
-            + "."
+            f" The {word} the scores: " + "; ".join(f"`{c}` ({explainer_info(c).description})" for c in controls) + "."
         )
     text += (
-        " Every explainer returns one map per tile at input resolution (larger = more evidence for the "
-        "target class)."
+        " Every explainer returns one map per tile at input resolution (larger = more evidence for the target class)."
     )
     if cells:
         failed = [c for c in cells if c.get("status") not in ("ok", None)]
         text += f" The run had {_plural(len(cells), 'cell')} (model × seed × explainer)"
         if failed:
-            listed = ", ".join(
-                f"{c.get('explainer')} on {c.get('model')} seed {c.get('seed')}" for c in failed[:10]
-            )
+            listed = ", ".join(f"{c.get('explainer')} on {c.get('model')} seed {c.get('seed')}" for c in failed[:10])
             text += (
                 f", of which {len(failed)} did not finish and are missing from the tables: {listed}"
                 + (", ..." if len(failed) > 10 else "")
@@ -227,9 +229,7 @@ def metrics_paragraph(columns: list[Column], settings: dict[str, Any], cites: Ci
             + _join([desc.get(t, t) for t in sorted(truths, key=lambda t: (t != "planted", t))])
             + "."
         )
-    text += (
-        " Undefined values (for example a tile without any planted structure) are left out, not set to zero."
-    )
+    text += " Undefined values (for example a tile without any planted structure) are left out, not set to zero."
     return text
 
 

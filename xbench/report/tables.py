@@ -52,6 +52,8 @@ def decimals_for(values) -> int | None:
         return 3
     if v.max() / v.min() > 20 or v.max() < 1e-3:
         return None
+    if v.max() <= 1.0 + 1e-9:  # scores in [0, 1] or [-1, 1]: always three decimals
+        return 3
     return int(min(4, max(0, 2 - math.floor(math.log10(v.max())))))
 
 
@@ -102,9 +104,7 @@ def result_tables(summary: Summary) -> list[TableSpec]:
             k_tested = []
             percentile = 0
             for c in fcols:
-                sub = block[(block["metric"] == c.metric) & (block["truth"] == c.truth)].set_index(
-                    "explainer"
-                )
+                sub = block[(block["metric"] == c.metric) & (block["truth"] == c.truth)].set_index("explainer")
                 d = decimals_for(sub["mean"].to_numpy())
                 if (sub["unit"] == "tile").any():
                     ns.extend(int(n) for n in sub["n"])
@@ -115,9 +115,7 @@ def result_tables(summary: Summary) -> list[TableSpec]:
                         cells[e].append(TCell())
                         continue
                     r = sub.loc[e]
-                    ci = (
-                        f"[{fmt(r['ci_low'], d)}, {fmt(r['ci_high'], d)}]" if np.isfinite(r["ci_low"]) else ""
-                    )
+                    ci = f"[{fmt(r['ci_low'], d)}, {fmt(r['ci_high'], d)}]" if np.isfinite(r["ci_low"]) else ""
                     cells[e].append(TCell(fmt(r["mean"], d), ci, str(r["mark"]), bool(r["best"])))
             caption = _result_caption(conf, s, seeds, ns, fcols, block, percentile, max(k_tested or [0]))
             title = f"{task}, model {model}: {fam} metrics"
@@ -161,10 +159,7 @@ def _result_caption(
             f"{s['ci_method']} bootstrap confidence interval ({s['n_resamples']} resamples over tiles); each "
             f"tile's value is first averaged over {_seed_text(seeds)}."
         )
-    if any(
-        (block[(block["metric"] == c.metric) & (block["truth"] == c.truth)]["unit"] == "seed").all()
-        for c in cols
-    ):
+    if any((block[(block["metric"] == c.metric) & (block["truth"] == c.truth)]["unit"] == "seed").all() for c in cols):
         parts.append(
             f"† One value per seed: mean over {_seed_text(seeds)} (with a {conf}% {s['ci_method']} "
             f"interval when there are at least {MIN_N_FOR_CI} seeds), not tested."
@@ -219,8 +214,7 @@ def rank_tables(summary: Summary) -> list[TableSpec]:
             "block and is left out of that column."
         )
         header = [
-            (t.column.metric, " ".join(p for p in ([] if t.column.truth == "none" else [t.column.truth])))
-            for t in ft
+            (t.column.metric, " ".join(p for p in ([] if t.column.truth == "none" else [t.column.truth]))) for t in ft
         ]
         out.append(
             TableSpec(
@@ -266,19 +260,14 @@ def concept_tables(concepts: pd.DataFrame | None) -> tuple[list[TableSpec], list
                 v = getattr(r, key)
                 if isinstance(v, (int, float, np.floating)) and not isinstance(v, bool):
                     cells.append(
-                        TCell(
-                            fmt_p(v).replace("p = ", "").replace("p ", "")
-                            if key == "p_value"
-                            else fmt(float(v), 3)
-                        )
+                        TCell(fmt_p(v).replace("p = ", "").replace("p ", "") if key == "p_value" else fmt(float(v), 3))
                     )
                 else:
                     cells.append(TCell("" if v is None or (isinstance(v, float) and np.isnan(v)) else str(v)))
             rows.append((f"{r.explainer} / seed {r.seed} / {r.concept}", cells))
         if len(g) > CONCEPT_ROWS_SHOWN:
             notes.append(
-                f"concept table {task}/{model}: {len(g)} rows, first {CONCEPT_ROWS_SHOWN} shown; "
-                "all in concepts.csv"
+                f"concept table {task}/{model}: {len(g)} rows, first {CONCEPT_ROWS_SHOWN} shown; all in concepts.csv"
             )
         caption = (
             "Concept reports as the concept explainers recorded them, one row per seed, concept and "
@@ -412,9 +401,7 @@ def to_latex(t: TableSpec) -> str:
     lines.append("  " + " & ".join(row1) + r" \\")
     if any(s for _, s in t.header):
         lines.append("  " + " ".join(rules))
-        lines.append(
-            "  " + " & ".join([tex_escape(t.row_label)] + [tex_escape(s) for _, s in t.header]) + r" \\"
-        )
+        lines.append("  " + " & ".join([tex_escape(t.row_label)] + [tex_escape(s) for _, s in t.header]) + r" \\")
     lines.append(r"  \midrule")
     for name, cells in t.rows:
         out = []
@@ -487,9 +474,7 @@ def to_html(t: TableSpec) -> str:
         lines.append("<tfoot>")
         for label, values in t.footer:
             lines.append(
-                f'<tr><th class="name">{_h(label)}</th>'
-                + "".join(f"<td>{_h(v)}</td>" for v in values)
-                + "</tr>"
+                f'<tr><th class="name">{_h(label)}</th>' + "".join(f"<td>{_h(v)}</td>" for v in values) + "</tr>"
             )
         lines.append("</tfoot>")
     lines += ["</table>", "</figure>"]

@@ -69,11 +69,7 @@ def choose_headline(summary: Summary, metric: str, truth: str, log: list[str]) -
         if c.metric == metric and c.truth == truth:
             return c
     fallback = next(
-        (
-            c
-            for c in summary.columns
-            if c.info.higher_is_better is not None and c.info.family not in ("cost",)
-        ),
+        (c for c in summary.columns if c.info.higher_is_better is not None and c.info.family not in ("cost",)),
         None,
     )
     log.append(
@@ -109,9 +105,7 @@ def cost_points(runs: RunSet, summary: Summary, column: Column, log: list[str]) 
     if frame.empty:
         rec = runs.records[runs.records["metric"] == "seconds"]
         if rec.empty:
-            log.append(
-                "cost vs quality: no timings in the manifests and no 'seconds' records; figure left out"
-            )
+            log.append("cost vs quality: no timings in the manifests and no 'seconds' records; figure left out")
             return frame.assign(value=[])
         log.append("cost vs quality: timings from the 'seconds' records (no per-cell costs in the manifests)")
         frame = (
@@ -121,9 +115,7 @@ def cost_points(runs: RunSet, summary: Summary, column: Column, log: list[str]) 
         )
     secs = frame.groupby(["task", "model", "explainer"], as_index=False)["seconds"].mean()
     t = summary.table
-    vals = t[(t["metric"] == column.metric) & (t["truth"] == column.truth)][
-        ["task", "model", "explainer", "mean"]
-    ]
+    vals = t[(t["metric"] == column.metric) & (t["truth"] == column.truth)][["task", "model", "explainer", "mean"]]
     out = secs.merge(vals.rename(columns={"mean": "value"}), on=["task", "model", "explainer"], how="inner")
     out["block"] = out["task"] + " / " + out["model"]
     return out
@@ -189,7 +181,7 @@ def make_figures(
     runs: RunSet, summary: Summary, headline: Column | None, folder: Path, log: list[str], gallery_tiles: int
 ) -> list[F.FigureFile]:
     out: list[F.FigureFile] = []
-    styles = {e: F.style(i) for i, e in enumerate(summary.explainers)}
+    styles = F.explainer_styles(summary.explainers)
 
     def emit(make, stem: str, section: str, title: str, caption: str) -> None:
         try:
@@ -239,9 +231,7 @@ def make_figures(
         if rt is None:
             continue
         if len(rt.blocks) < 2:
-            log.append(
-                f"CD diagram for {col.label}: needs at least 2 task x model blocks, has {len(rt.blocks)}"
-            )
+            log.append(f"CD diagram for {col.label}: needs at least 2 task x model blocks, has {len(rt.blocks)}")
             continue
         fr = rt.friedman
         ptext = f"Friedman p = {fr.p_value:.3g}" if np.isfinite(fr.p_value) else "Friedman test n/a"
@@ -370,9 +360,7 @@ def html_page(
         '<li><a href="#results">Results by task and model</a></li>',
         '<li><a href="#ranks">Ranks across tasks and models</a></li>',
     ]
-    body += [
-        f'<li><a href="#fig-{k}">{h(v)}</a></li>' for k, v in sections if any(f.section == k for f in figs)
-    ]
+    body += [f'<li><a href="#fig-{k}">{h(v)}</a></li>' for k, v in sections if any(f.section == k for f in figs)]
     if concepts:
         body.append('<li><a href="#concepts">Concept reports</a></li>')
     body += [
@@ -470,9 +458,7 @@ def write_report(
             )
             log += summary.log
             headline = choose_headline(summary, headline_metric, headline_truth, log)
-            figs = (
-                make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
-            )
+            figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
             results = T.result_tables(summary)
             ranks = T.rank_tables(summary)
             concept_specs, notes = T.concept_tables(runs.concepts)
@@ -518,8 +504,7 @@ def write_report(
     if "md" in fmts:
         write(
             "tables.md",
-            "# xbench comparison tables\n\n"
-            + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs),
+            "# xbench comparison tables\n\n" + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs),
         )
     if "tex" in fmts:
         write("tables.tex", T.LATEX_PREAMBLE_NOTE + "\n" + "\n".join(T.to_latex(t) for t in results + ranks))
