@@ -631,3 +631,15 @@ def test_cli_report_prints_paths(runs, tmp_path, capsys):
     assert "tables.md" in out and "report.html" in out and "methods.md" in out
     assert main(["report", str(tmp_path / "missing")]) == 2
     assert "xbench report: error:" in capsys.readouterr().err
+
+
+def test_figures_of_an_earlier_report_are_replaced(tmp_path):
+    run = make_run(tmp_path / "run", "t", ["cnn"], [0], n_tiles=8, artifacts=False, extras=False)
+    figs = tmp_path / "out" / "figures"
+    figs.mkdir(parents=True)
+    (figs / "cd__old-metric__none.png").write_bytes(b"old")
+    (figs / "my-own-figure.png").write_bytes(b"mine")  # not a report name: left alone
+    s = write_report([run], tmp_path / "out", formats="md", n_resamples=200)
+    assert not (figs / "cd__old-metric__none.png").exists() and (figs / "my-own-figure.png").exists()
+    assert sorted(p.name for p in figs.glob("*.png")) == ["cost_quality.png", "my-own-figure.png"]
+    assert any("earlier report" in w for w in s.warnings)

@@ -53,8 +53,8 @@ def test_analytic_detector_drops(analytic_scenes) -> None:
         scene = sc[row.tile]
         inst = next(i for i in scene.instances if i.instance_id == row.instance_id)
         tile, twin = scene.render(), scene.render(omit=(row.instance_id,))
-        # Analytic drop of a linear tile-mean score: K/(H*W) times the summed index change, which is
-        # confined to the instance's footprint (the renderer's twin contract).
+        # Analytic drop of a linear tile-mean score (linearity of the mean, worked by hand): K/(H*W)
+        # times the summed index change, confined to the instance's footprint (the twin contract).
         cov = inst.coverage > 0
         delta = (tile.astype(np.float64) - twin)[[NIR, RED, BLUE]]
         changed = (delta[0] - delta[1] + delta[2])
@@ -76,6 +76,7 @@ def test_analytic_detector_drops(analytic_scenes) -> None:
         assert row["n"] == len(drops)
         assert row["mean_drop"] == pytest.approx(np.mean(drops), abs=1e-5)
         if len(drops) > 1 and np.ptp(drops) > 0:
+            # a percentile bootstrap interval of the mean brackets the mean (Efron & Tibshirani 1993)
             assert row["ci_low"] <= row["mean_drop"] <= row["ci_high"]
     # the cue: a blue offset of CUE_STRENGTH everywhere moves the score by exactly K * CUE_STRENGTH
     cue_tiles = [t for t, s in enumerate(sc) if s.cue_on]
@@ -134,3 +135,15 @@ def test_trained_model_relies_on_roads_not_rivers(trained_small) -> None:
     # verified evidence sits on road pixels
     road_px = data.test.type_mask(["road"])
     assert rel.evidence[road_px].sum() > rel.evidence[~road_px].sum()
+
+
+def test_cue_row_restricted_to_cue_classes(analytic_scenes) -> None:
+    sc = analytic_scenes
+    model = wrap_callable(index_detector, 2, "index-detector")
+    targets = np.array([i % 2 for i in range(len(sc))], dtype=np.int64)
+    rel = compute_reliance(model, sc, targets, n_boot=100, cue_classes=[1])
+    cue_pos = [t for t, s in enumerate(sc) if s.cue_on and targets[t] == 1]
+    row = rel.type_table[rel.type_table["kind"] == "cue"].iloc[0]
+    assert row["n"] == len(cue_pos) > 0
+    # the blue offset raises the class-1 score by exactly K * strength (linear detector, by hand)
+    assert row["mean_drop"] == pytest.approx(K * CUE_STRENGTH, abs=1e-6)

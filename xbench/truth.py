@@ -68,7 +68,7 @@ class _Render:
     cue: bool | None   # None = the scene's own cue; False = cue removed
 
 
-def _plan(scenes: Sequence[Any]) -> list[_Render]:
+def _plan(scenes: Sequence[Any], cue_tiles: np.ndarray) -> list[_Render]:
     plan: list[_Render] = []
     for t, scene in enumerate(scenes):
         plan.append(_Render(t, "base", None, (), None))
@@ -78,7 +78,7 @@ def _plan(scenes: Sequence[Any]) -> list[_Render]:
             by_kind.setdefault(str(inst.kind), []).append(int(inst.instance_id))
         for kind, ids in sorted(by_kind.items()):
             plan.append(_Render(t, "type", kind, tuple(ids), None))
-        if scene_has_cue(scene):
+        if cue_tiles[t] and scene_has_cue(scene):
             plan.append(_Render(t, "cue", CUE_KIND, (), False))
     return plan
 
@@ -110,8 +110,15 @@ def bootstrap_ci(values: np.ndarray, rng: np.random.Generator, n_boot: int) -> t
 
 
 def compute_reliance(model: ModelHandle, scenes: list[Any], targets: np.ndarray, *, seed: int = 0,
-                     batch_size: int = 128, n_boot: int = 1000) -> Reliance:
-    """Per-instance drops, evidence maps, verified masks and per-type importance (see module docstring)."""
+                     batch_size: int = 128, n_boot: int = 1000,
+                     cue_classes: Sequence[int] | None = None) -> Reliance:
+    """Per-instance drops, evidence maps, verified masks and per-type importance (see module docstring).
+
+    ``cue_classes``: the cue row averages over cue-on tiles whose target is one of these classes
+    (default: every class). Pass the classes the cue was correlated with in training (the synthesizer
+    switches it on in non-default-class tiles) to measure the cue as evidence for them; in tiles of the
+    other classes the cue is counter-evidence and would cancel the average.
+    """
     targets = np.asarray(targets)
     if targets.shape != (len(scenes),):
         raise XbenchInputError("array 'targets'", "wrong shape", expected=f"({len(scenes)},)",
@@ -123,7 +130,8 @@ def compute_reliance(model: ModelHandle, scenes: list[Any], targets: np.ndarray,
                                found=f"{targets.dtype} {targets.min()}..{targets.max()}")
     if len(scenes) == 0:
         raise XbenchInputError("scenes", "no scenes given", expected="at least one scene")
-    plan = _plan(scenes)
+    cue_tiles = np.ones(len(scenes), dtype=bool) if cue_classes is None else np.isin(targets, list(cue_classes))
+    plan = _plan(scenes, cue_tiles)
     scores = np.empty(len(plan), dtype=np.float64)
     pos = 0
     h = w = 0

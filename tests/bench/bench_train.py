@@ -62,7 +62,9 @@ def main() -> int:
                   f"{tm.seconds:5.1f} s wall, {tm.cpu_seconds:5.1f} s cpu  {'ok' if ok else 'MISSED TARGET'}",
                   flush=True)
             t1 = time.perf_counter()
-            rel = compute_reliance(tm.handle, data.test_scenes[:n], targets, seed=args.seed)
+            cue_classes = [c for c, types in task.class_driving_types.items() if types]
+            rel = compute_reliance(tm.handle, data.test_scenes[:n], targets, seed=args.seed,
+                                   cue_classes=cue_classes)
             print(f"   reliance on {n} test tiles ({time.perf_counter() - t1:.1f} s): " + "; ".join(
                 f"{r.kind} {r.mean_drop:+.3f} [{r.ci_low:+.3f}, {r.ci_high:+.3f}] n={r.n}"
                 for r in rel.type_table.itertuples()), flush=True)

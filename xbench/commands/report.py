@@ -24,7 +24,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         default="mass-accuracy",
         help="quality metric of the cost-vs-quality figure (default: mass-accuracy)",
     )
-    parser.add_argument("--truth", default="planted", help="its truth: planted, verified or none")
+    parser.add_argument(
+        "--truth", default="planted", choices=["planted", "verified", "none"], help="its truth (default: planted)"
+    )
     parser.add_argument("--resamples", type=int, default=2000, help="bootstrap resamples (default: 2000)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default: 0)")
     parser.add_argument("--alpha", type=float, default=0.05, help="level of the Nemenyi CD (default: 0.05)")
@@ -36,9 +38,7 @@ def run(args: argparse.Namespace) -> int:
     from xbench.report import write_report
 
     if args.resamples < 100:
-        raise XbenchInputError(
-            "--resamples", "too few bootstrap resamples", expected=">= 100", found=args.resamples
-        )
+        raise XbenchInputError("--resamples", "too few bootstrap resamples", expected=">= 100", found=args.resamples)
     if not 0 < args.alpha < 1:
         raise XbenchInputError("--alpha", "must lie strictly between 0 and 1", found=args.alpha)
     summary = write_report(

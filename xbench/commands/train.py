@@ -59,6 +59,8 @@ def run(args: argparse.Namespace) -> int:
     n_rel = len(data.test_scenes) if args.reliance_tiles is None else min(args.reliance_tiles,
                                                                           len(data.test_scenes))
     targets = (data.test.clean_labels if data.test.clean_labels is not None else data.test.labels)[:n_rel]
+    # the cue is switched on in tiles of the classes with driving types (the non-default classes)
+    cue_classes = [c for c, types in task.class_driving_types.items() if types]
     rows, rel_rows = [], []
     for spec in specs:
         for seed in seeds:
@@ -74,7 +76,7 @@ def run(args: argparse.Namespace) -> int:
             if args.no_reliance:
                 continue
             rel = compute_reliance(tm.handle, data.test_scenes[:n_rel], targets, seed=seed,
-                                   batch_size=task.run["batch_size"] * 2)
+                                   batch_size=task.run["batch_size"] * 2, cue_classes=cue_classes)
             table = rel.type_table.copy()
             table["role"] = [_role(task, k) for k in table["kind"]]
             print(f"\nreliance of {spec.name} (seed {seed}) on {n_rel} test tiles: mean drop of the "

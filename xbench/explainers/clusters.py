@@ -21,7 +21,8 @@ Outputs
 - ConceptReport rows, one per (cluster, class) for the classes among the targets: ``score`` = mean drop
   of that class's score over the tiles of that target class where the cluster occurs (positive = the
   cluster supports the class), ``spread`` = its standard deviation, ``p_value`` = two-sided one-sample
-  t-test of the drops against 0 (scipy), ``matched_type`` = the planted type with the best IoU,
+  t-test of the drops against 0 (scipy), Bonferroni-adjusted over the clusters (min(1, p * n_clusters);
+  None with fewer than two tiles), ``matched_type`` = the planted type with the best IoU,
   ``iou`` / ``purity`` against it. IoU = |cluster & type| / |cluster | type| and purity = |cluster & type|
   / |cluster| over all pixels of the fitting set (``fit_masks``; else the explained tiles' ``masks``), the
   cluster maps upsampled by nearest neighbour.
@@ -35,6 +36,8 @@ Outputs
 """
 
 from __future__ import annotations
+
+import warnings
 
 import numpy as np
 import torch
@@ -121,7 +124,10 @@ def _ttest(d: np.ndarray) -> float | None:
         return None
     if np.ptp(d) == 0:
         return 1.0 if d[0] == 0 else 0.0
-    return float(stats.ttest_1samp(d, 0.0).pvalue)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # near-identical drops: a precision note only
+        p = float(stats.ttest_1samp(d, 0.0).pvalue)
+    return p if np.isfinite(p) else 1.0
 
 
 @register_explainer(KEY, citation=CITE_CLUSTERS, needs={"layer", "fit-set"}, kind="concept",
@@ -242,12 +248,13 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
         for cls in np.unique(targets):
             sel = present_all[c] & (targets == cls)
             d = drops[c, sel, cls]
+            p = _ttest(d)
             rows.append({
                 "concept": f"cluster-{c}",
                 "class_name": class_names[int(cls)] if int(cls) < len(class_names) else str(int(cls)),
                 "score": float(d.mean()) if d.size else None,
                 "spread": float(d.std(ddof=1)) if d.size > 1 else None,
-                "p_value": _ttest(d),
+                "p_value": None if p is None else min(1.0, p * k),  # Bonferroni over the clusters
                 "matched_type": matched,
                 "iou": float(iou[c, best]) if matched is not None else None,
                 "purity": float(purity[c, best]) if matched is not None else None,

@@ -370,7 +370,7 @@ def _check_attributions(key: str, out: Any, shape: tuple[int, int, int]) -> np.n
         raise XbenchInputError(where, "not numeric", found=str(a.dtype))
     with np.errstate(over="ignore"):
         a = a.astype(np.float32)
-    bad = np.flatnonzero(~np.isfinite(a).reshape(shape[0], -1).all(axis=1))
+    bad = np.flatnonzero(~np.isfinite(a).reshape(shape[0], shape[1] * shape[2]).all(axis=1))
     if bad.size:
         tiles = ", ".join(str(int(i)) for i in bad[:10]) + (" ..." if bad.size > 10 else "")
         raise NonFiniteAttributionError(f"explainer '{key}'", f"non-finite attributions (NaN or inf) on "

@@ -15,17 +15,24 @@ direct implementation on arrays is shorter and keeps everything in memory and se
   derivative grad_A h_k . v_C is positive. Each concept is scored against every random set (one CAV each);
   ``score`` = mean over those, ``spread`` = standard deviation.
 - Significance (``test``), two-sided t-tests (scipy ``ttest_ind``) against at least ``min_random`` random
-  concepts. ``set`` (default): every random set in turn plays a concept against the other random sets;
-  its mean TCAV score is one draw from the null distribution of *set-level* scores, and the concept's
-  mean score is tested against these draws (``ttest_ind`` with a sample of one: the t-test for a new
-  observation). ``runs``: Kim et al. 2018's comparison of the concept's per-CAV scores with the per-CAV
-  scores of ``random-0`` against the other random sets. Scores within one group share their positive
-  set, so ``runs`` treats set-level luck as signal: on random-versus-random concepts it came out
-  significant in about 45% of our trials at the 5% level, ``set`` in none (tests/test_explainers_concepts.py).
+  concepts. ``set`` (default): every random set in turn plays a concept against the other random sets
+  (the CAV of set j against set i is minus that of i against j); its mean TCAV score is one draw from the
+  null distribution of *set-level* scores, and the concept's mean score is tested against these draws
+  (``ttest_ind`` with a sample of one: the t-test for one new observation). ``runs``: Kim et al. 2018's
+  comparison of the concept's per-CAV scores with the per-CAV scores of ``random-0`` against the other
+  random sets. Scores within one group share their positive set, so ``runs`` counts set-level luck as
+  signal: in our random-versus-random trials (a random set posing as the concept) it came out significant
+  in 45-70% of the trials at the 5% level, ``set`` in 0-7% (tests/test_explainers_concepts.py).
   ``p_value`` is Bonferroni-adjusted over the concepts tested for a class: min(1, p * n_concepts).
+  Power: the score is a fraction of signs, so when the class gradient at the layer points the same way on
+  most tiles (typically the last conv layer before global pooling and a linear head), random directions
+  already score near 0 or 1 and no concept can stand out against ten random sets; use an earlier layer
+  or more random sets.
 - ``type_importance[type]``: the TCAV score over all explained tiles, each with its own target (the class
-  score when all tiles share one target); ``flagged[type]``: that score is above 0.5 and significant
-  (Bonferroni over the concepts, level ``alpha``).
+  score when all tiles share one target), centred: score - 0.5, so that 0 means no effect as for the
+  other concept methods and the truth (the raw scores are in ``extras['tcav_scores']``);
+  ``flagged[type]``: that score is above 0.5 and significant (Bonferroni over the concepts, level
+  ``alpha``).
 - Pixel attribution (documented choice): concept-presence maps at the layer, weighted by how much the
   concept pushes the tile's target. For each concept C with mean CAV v and random-set mean activation mu,
   presence(i, j) = relu(v . (A(i, j) - mu)) (per position; for ``pool = "none"`` with the position's own
@@ -194,7 +201,7 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
     class_names = list(context.class_names) if context.class_names is not None else \
         [str(i) for i in range(model.n_classes)]
     m_tests = len(concepts)  # Bonferroni family: the concepts tested for one class
-    rows, importance, flagged, mean_scores, cavs = [], {}, {}, {}, {}
+    rows, importance, flagged, mean_scores, cavs, pooled_scores = [], {}, {}, {}, {}, {}
     for concept in concepts:
         c_class, c_pooled, vs = mean_scores_of(feats[concept], randoms, 0)
         for j, k in enumerate(classes):
@@ -205,7 +212,8 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
                          "p_value": min(1.0, p * m_tests), "matched_type": concept, "iou": None,
                          "purity": None})
         p_pooled = min(1.0, pvalue(c_pooled, null_pooled, kim_pooled) * m_tests)
-        importance[concept] = float(c_pooled.mean())
+        pooled_scores[concept] = float(c_pooled.mean())
+        importance[concept] = pooled_scores[concept] - 0.5  # signed: 0 = no effect (as clusters, truth)
         flagged[concept] = bool(p_pooled < alpha and c_pooled.mean() > 0.5)
         mean_scores[concept] = c_class.mean(axis=0)
         v = np.mean(vs, axis=0)
@@ -229,6 +237,6 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
 
     report = ConceptReport(rows=rows, type_importance=importance, flagged=flagged, extras={
         "layer": layer, "pool": pool, "n_random": len(randoms), "cavs": cavs,
-        "test": test, "null_scores": null_class, "classes": [int(k) for k in classes],
+        "test": test, "null_scores": null_class, "tcav_scores": pooled_scores, "classes": [int(k) for k in classes],
         "class_names": class_names})
     return attributions, report

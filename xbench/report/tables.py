@@ -95,8 +95,11 @@ def result_tables(summary: Summary) -> list[TableSpec]:
         present = set(zip(block["metric"], block["truth"], strict=True))
         cols = [c for c in summary.columns if c.key in present]
         families = sorted({c.info.family for c in cols}, key=family_rank)
+        parts = []
         for fam in families:
-            fcols = [c for c in cols if c.info.family == fam]
+            chunks = chunk_columns([c for c in cols if c.info.family == fam])
+            parts += [(fam, i + 1, len(chunks), chunk) for i, chunk in enumerate(chunks)]
+        for fam, part, n_parts, fcols in parts:
             header = [(c.metric, _sub(c, block)) for c in fcols]
             explainers = [e for e in summary.explainers if e in set(block["explainer"])]
             cells: dict[str, list[TCell]] = {e: [] for e in explainers}
@@ -119,9 +122,11 @@ def result_tables(summary: Summary) -> list[TableSpec]:
                     cells[e].append(TCell(fmt(r["mean"], d), ci, str(r["mark"]), bool(r["best"])))
             caption = _result_caption(conf, s, seeds, ns, fcols, block, percentile, max(k_tested or [0]))
             title = f"{task}, model {model}: {fam} metrics"
+            if n_parts > 1:
+                title += f" (part {part} of {n_parts})"
             out.append(
                 TableSpec(
-                    slug("results", task, model, fam),
+                    slug("results", task, model, fam, *([str(part)] if n_parts > 1 else [])),
                     title,
                     caption,
                     header,
@@ -129,6 +134,27 @@ def result_tables(summary: Summary) -> list[TableSpec]:
                 )
             )
     return out
+
+
+MAX_COLUMNS = 4
+
+
+def chunk_columns(cols: list[Column], limit: int = MAX_COLUMNS) -> list[list[Column]]:
+    """Split a family's columns into tables of at most ``limit`` columns, keeping a metric's truths
+    together (a wide table would be shrunk to an unreadable size on a page)."""
+    groups: list[list[Column]] = []
+    for c in cols:
+        if groups and groups[-1][0].metric == c.metric:
+            groups[-1].append(c)
+        else:
+            groups.append([c])
+    chunks: list[list[Column]] = []
+    for g in groups:
+        if chunks and len(chunks[-1]) + len(g) <= limit:
+            chunks[-1].extend(g)
+        else:
+            chunks.append(list(g))
+    return chunks
 
 
 def _sub(c: Column, block) -> str:

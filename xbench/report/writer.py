@@ -417,6 +417,20 @@ def html_page(
 # ---------------------------------------------------------------- entry point
 
 
+FIGURE_PREFIXES = ("gallery__", "curves__", "randomization__", "cd__", "clusters__", "reliance__", "cost_quality")
+
+
+def _stale_figures(folder: Path, written: set[Path]) -> list[Path]:
+    """Figure files of an earlier report in the same folder (our names only) that this one did not write."""
+    if not folder.is_dir():
+        return []
+    return sorted(
+        p
+        for p in folder.iterdir()
+        if p.suffix in (".png", ".pdf") and p.name.startswith(FIGURE_PREFIXES) and p not in written
+    )
+
+
 def write_report(
     run_dirs: Any,
     out_dir: str | Path | None = None,
@@ -472,6 +486,12 @@ def write_report(
         msg = f"{w.category.__name__}: {w.message}"
         if msg not in log:
             log.append(msg)
+
+    stale = _stale_figures(out / "figures", {p for f in figs for p in (f.png, f.pdf)}) if figures else []
+    for path in stale:
+        path.unlink()
+    if stale:
+        log.append(f"removed {len(stale)} figure file(s) left in {out / 'figures'} by an earlier report")
 
     def write(name: str, text: str) -> None:
         path = out / name

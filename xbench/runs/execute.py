@@ -21,6 +21,8 @@ from xbench.runs.store import CONCEPT_COLUMNS, CURVE_COLUMNS, RECORD_COLUMNS
 
 # One thread everywhere inside cells: results must not depend on how many threads a worker has.
 CELL_THREADS = 1
+# A metric setting the runner understands for every metric: score on the first K explained tiles only.
+TILE_SUBSET_SETTING = "tiles"
 
 
 @dataclass
@@ -186,22 +188,24 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
                           **cell.explainer_settings)
     t_explained = time.perf_counter()
 
-    def explain_fn(model: Any, images: np.ndarray, targets: np.ndarray) -> np.ndarray:
-        # Re-runs for sanity and stability metrics. Per-tile context (twins, masks) is only valid when the
-        # images are the same tiles in the same order; otherwise it is left out.
-        same_tiles = images.shape == prep.images.shape
-        ctx = context if same_tiles else explain_context_without_tiles(context)
-        return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
-
     importance, relied, lookalikes, unused = type_groups(prep)
-    inputs = MetricInputs(
+    full = MetricInputs(
         attributions=explanation.attributions, images=prep.images, targets=prep.targets, model=handle,
         planted=prep.planted, verified=prep.reliance.verified_masks, evidence=prep.reliance.evidence,
-        twins=prep.twins, type_masks=prep.masks, mask_names=prep.mask_names, explain_fn=explain_fn,
-        concept_report=explanation.concepts, type_importance=importance, relied_types=relied,
-        lookalike_types=lookalikes, unused_types=unused, cost=explanation.cost, seed=int(cell.seed),
-        batch_size=int(prep.task.run["batch_size"]),
+        twins=prep.twins, type_masks=prep.masks, mask_names=prep.mask_names,
+        explain_fn=make_explain_fn(cell, context, len(prep.targets)), concept_report=explanation.concepts,
+        type_importance=importance, relied_types=relied, lookalike_types=lookalikes, unused_types=unused,
+        cost=explanation.cost, seed=int(cell.seed), batch_size=int(prep.task.run["batch_size"]),
     )
+    # Metrics that re-run the explainer many times (sanity, stability) may be scored on the first K explained
+    # tiles only (metric setting `tiles`); metrics on the same K share one inputs object and its cache.
+    inputs_by_size: dict[int, Any] = {len(prep.targets): full}
+
+    def inputs_for(size: int) -> Any:
+        if size not in inputs_by_size:
+            inputs_by_size[size] = subset_inputs(full, size, make_explain_fn(cell, context, size))
+        return inputs_by_size[size]
+
     rows: list[tuple] = []
     curves: list[dict[str, Any]] = []
     notes: dict[str, str] = {}
@@ -209,7 +213,9 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
     tiles = prep.explain_index.astype(np.int64)
     for key in metric_keys:
         t0 = time.perf_counter()
-        for result in compute_metric(key, inputs, **metric_settings.get(key, {})):
+        settings = dict(metric_settings.get(key, {}))
+        size = min(int(settings.pop(TILE_SUBSET_SETTING, len(tiles))), len(tiles))
+        for result in compute_metric(key, inputs_for(size), **settings):
             tag = f"{key}/{result.truth}"
             if result.skipped:
                 notes[tag] = f"skipped: {result.skipped}"
@@ -217,7 +223,7 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
             values = np.asarray(result.values, dtype=np.float64)
             if result.per_tile:
                 rows.extend((run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth,
-                             int(t), float(v)) for t, v in zip(tiles, values, strict=True))
+                             int(t), float(v)) for t, v in zip(tiles[:size], values, strict=True))
             else:
                 rows.append((run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth, -1,
                              float(values.reshape(-1)[0])))
@@ -252,10 +258,39 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
     return result
 
 
-def explain_context_without_tiles(context: Any) -> Any:
+def make_explain_fn(cell: Cell, context: Any, size: int) -> Any:
+    """The cell's explainer with its settings, for metrics that re-run it (on another model or on perturbed
+    copies of the first `size` tiles). Per-tile context (twins, masks) goes along when the row count matches
+    those tiles; otherwise it is left out."""
     from dataclasses import replace
 
-    return replace(context, twins=None, masks=None)
+    from xbench.explainers import explain
+
+    sized = replace(context, twins=None if context.twins is None else context.twins[:size],
+                    masks=None if context.masks is None else context.masks[:size])
+    bare = replace(context, twins=None, masks=None)
+
+    def explain_fn(model: Any, images: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        ctx = sized if images.shape[0] == size else bare
+        return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
+
+    return explain_fn
+
+
+def subset_inputs(full: Any, size: int, explain_fn: Any) -> Any:
+    """The metric inputs of the first `size` tiles."""
+    from dataclasses import fields
+
+    values = {}
+    for f in fields(full):
+        if not f.init:
+            continue
+        value = getattr(full, f.name)
+        if isinstance(value, np.ndarray) and value.ndim >= 1 and value.shape[0] == full.n_tiles:
+            value = value[:size]
+        values[f.name] = value
+    values["explain_fn"] = explain_fn
+    return type(full)(**values)
 
 
 def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:

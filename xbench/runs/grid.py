@@ -60,10 +60,18 @@ def validate_task_keys(task: Any) -> None:
                                        expected=", ".join(sorted(known)) or "no settings", found=name)
     for key in task.metrics:
         try:
-            get_metric(key)
+            spec = get_metric(key)
         except XbenchInputError as exc:
             raise XbenchInputError(f"{where}: [metrics] keys", exc.problem, expected=exc.expected,
                                    found=key) from None
+        known = set(getattr(spec, "defaults", {}) or {}) | {"tiles"}  # `tiles`: see runs.execute
+        for name, value in task.metric_settings.get(key, {}).items():
+            if name not in known:
+                raise XbenchInputError(f"{where}: [metrics.settings.{key}] {name}", "unknown setting",
+                                       expected=", ".join(sorted(known)), found=name)
+            if name == "tiles" and (isinstance(value, bool) or not isinstance(value, int) or value < 1):
+                raise XbenchInputError(f"{where}: [metrics.settings.{key}] tiles", "bad value",
+                                       expected="a positive integer", found=value)
 
 
 def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[str] | None = None,
