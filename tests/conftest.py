@@ -53,8 +53,9 @@ above = 0.008
 name = "cnn"
 kind = "cnn"
 width = 16
-epochs = 14
-patience = 4
+epochs = 10
+patience = 3
+batch_size = 16
 
 [explainers]
 keys = ["gradient", "grad-cam", "random", "edges", "oracle"]

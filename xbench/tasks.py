@@ -43,6 +43,7 @@ RUN_DEFAULTS: dict[str, int] = {
     "batch_size": 64,         # images per model call in explainers and metrics
     "concept_set_size": 40,   # example tiles per concept set (tcav)
     "fit_tiles": 200,         # training tiles used to fit concept explainers (activation-clusters)
+    "random_sets": 10,        # random example sets for concept significance tests (tcav)
 }
 # Hyper-parameters per model kind: architecture (see models/zoo.py) and training (see models/train.py).
 TORCH_TRAIN_PARAMS: dict[str, tuple[type, ...]] = {

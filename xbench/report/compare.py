@@ -109,7 +109,8 @@ def order_explainers(records: pd.DataFrame, manifests: list[dict[str, Any]]) -> 
     present = list(dict.fromkeys(records["explainer"]))
     order: list[str] = []
     for m in manifests:
-        for key in m.get("explainers", {}) or {}:
+        # `explainer_order` keeps the task's order (the manifest's JSON objects are written with sorted keys)
+        for key in m.get("explainer_order") or m.get("explainers", {}) or {}:
             if key in present and key not in order:
                 order.append(key)
     order += sorted(e for e in present if e not in order)

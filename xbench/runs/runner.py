@@ -194,7 +194,9 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
                  "lookalike_types": list(task.lookalike_types)},
         "models": model_rows,
         "explainers": {k: task.explainer_settings.get(k, {}) for k in dict.fromkeys(c.explainer for c in grid.cells)},
+        "explainer_order": list(dict.fromkeys(c.explainer for c in grid.cells)),
         "metrics": {k: task.metric_settings.get(k, {}) for k in task.metrics},
+        "metric_order": list(task.metrics),
         "explain_tiles": int(len(next(iter(preps.values())).explain_index)) if preps else 0,
         "skipped": grid.skipped, "cells": cells_meta,
     }
