@@ -17,6 +17,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--explainers", default=None, help="comma-separated subset of the task's explainers")
     parser.add_argument("--models", default=None, help="comma-separated subset of the task's models")
     parser.add_argument("--seeds", default=None, help="comma-separated subset of seeds")
+    parser.add_argument("--metrics", default=None, help="comma-separated subset of the task's metrics")
     parser.add_argument("--quiet", action="store_true", help="no progress bars")
 
 
@@ -40,6 +41,6 @@ def run(args: argparse.Namespace) -> int:
     out = args.out or Path("runs") / task.name
     summary = run_task(args.task, out, jobs=args.jobs, executor=args.executor, scheduler=args.scheduler,
                        progress=not args.quiet, explainers=_split(args.explainers), models=_split(args.models),
-                       seeds=_split(args.seeds, int))
+                       seeds=_split(args.seeds, int), metrics=_split(args.metrics))
     print_summary(summary)
     return 0 if summary.ok else 1

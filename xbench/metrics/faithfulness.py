@@ -52,7 +52,7 @@ from xbench.metrics.base import (
 )
 
 BASELINES = ("twin", "zero", "mean", "blur")
-CHUNK_BYTES = 16 * 2**20
+CHUNK_BYTES = 4 * 2**20
 ProbFn = Callable[[np.ndarray], np.ndarray]
 
 
@@ -147,8 +147,12 @@ def perturbation_curves(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray
             stop += 1
         tile_idx, step_idx = np.nonzero(new[start:stop])
         tile_idx += start
-        sel = (rank[tile_idx] < ks[step_idx][:, None]).reshape(-1, 1, h, w)
-        stack = np.where(sel, repl[tile_idx], src[tile_idx])
+        if len(tile_idx) == (stop - start) * (steps + 1):  # every step is new: broadcast, no gathers
+            sel = (rank[start:stop, None, :] < ks[None, :, None]).reshape(stop - start, steps + 1, 1, h, w)
+            stack = np.where(sel, repl[start:stop, None], src[start:stop, None]).reshape(-1, c, h, w)
+        else:
+            sel = (rank[tile_idx] < ks[step_idx][:, None]).reshape(-1, 1, h, w)
+            stack = np.where(sel, repl[tile_idx], src[tile_idx])
         probs = prob_fn(stack)
         scores = np.full((stop - start, steps + 1), np.nan)
         scores[tile_idx - start, step_idx] = probs[np.arange(len(tile_idx)), targets[tile_idx]]

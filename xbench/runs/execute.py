@@ -81,14 +81,13 @@ def choose_explain_tiles(task: Any, labels: np.ndarray, count: int) -> np.ndarra
     return index[:count]
 
 
-def concept_sets_for(task: Any) -> dict[str, np.ndarray]:
+def concept_sets_for(task: Any, types: list[str]) -> dict[str, np.ndarray]:
+    """TCAV example sets for the structure types the task's recipe can plant (made once per process)."""
     from xbench.explainers.concept_sets import make_concept_sets
-    from xbench.scenes import HUMAN_TYPES, LOOKALIKE_TYPES
 
     key = f"{task.path}:{task.file_hash}"
     if key not in _CONCEPT_CACHE:
         run = task.run
-        types = [t for t in (*HUMAN_TYPES, *LOOKALIKE_TYPES)]
         _CONCEPT_CACHE[key] = make_concept_sets(
             task.data.recipe, task.data.size, types, int(run["concept_set_size"]), int(run.get("random_sets", 10)),
             int(task.data.seed) + 7919,
@@ -104,7 +103,7 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     if key in _PREP_CACHE:
         prep = _PREP_CACHE[key]
         if need_concepts and prep.concept_sets is None:
-            prep.concept_sets = concept_sets_for(task)
+            prep.concept_sets = concept_sets_for(task, prep.mask_names)
         return prep
     torch.set_num_threads(CELL_THREADS)
     trained = train_or_load(task_path, model_name, seed)
@@ -126,7 +125,8 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
         task=task, data=data, trained=trained, seed=int(seed), explain_index=index, images=sub.images,
         targets=targets, twins=sub.twins, masks=sub.masks, mask_names=list(sub.mask_names), planted=planted,
         reliance=reliance, fit_images=train.images[correct], fit_labels=train.labels[correct],
-        fit_masks=train.masks[correct], concept_sets=concept_sets_for(task) if need_concepts else None,
+        fit_masks=train.masks[correct],
+        concept_sets=concept_sets_for(task, list(sub.mask_names)) if need_concepts else None,
     )
     _PREP_CACHE[key] = prep
     return prep
@@ -266,12 +266,19 @@ def make_explain_fn(cell: Cell, context: Any, size: int) -> Any:
 
     from xbench.explainers import explain
 
-    sized = replace(context, twins=None if context.twins is None else context.twins[:size],
-                    masks=None if context.masks is None else context.masks[:size])
-    bare = replace(context, twins=None, masks=None)
+    def rows(array: np.ndarray | None, tiles: np.ndarray) -> np.ndarray | None:
+        return None if array is None else array[tiles]
 
-    def explain_fn(model: Any, images: np.ndarray, targets: np.ndarray) -> np.ndarray:
-        ctx = sized if images.shape[0] == size else bare
+    def explain_fn(model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
+                   ) -> np.ndarray:
+        # `tiles`: for each row of `images`, the index of the explained tile it is a copy of.
+        if tiles is None and images.shape[0] == size:
+            tiles = np.arange(size)
+        if tiles is None:
+            ctx = replace(context, twins=None, masks=None)
+        else:
+            tiles = np.asarray(tiles, dtype=np.int64)
+            ctx = replace(context, twins=rows(context.twins, tiles), masks=rows(context.masks, tiles))
         return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
 
     return explain_fn

@@ -39,6 +39,7 @@ class Cell:
 class Grid:
     cells: list[Cell]
     skipped: list[dict[str, str]]  # (model, explainer, reason) that cannot run, e.g. gradients on a black box
+    metrics: list[str] = field(default_factory=list)  # metric keys scored in every cell
 
 
 def validate_task_keys(task: Any) -> None:
@@ -75,7 +76,7 @@ def validate_task_keys(task: Any) -> None:
 
 
 def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[str] | None = None,
-                seeds: list[int] | None = None) -> Grid:
+                seeds: list[int] | None = None, metrics: list[str] | None = None) -> Grid:
     """Cells of a task, in a fixed order (model, seed, explainer). Filters narrow the task's own lists."""
     from xbench.explainers import get_explainer
 
@@ -90,9 +91,14 @@ def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[
         raise XbenchInputError(f"{task.path}: [[models]]", "model not in the task", expected=", ".join(names),
                                found=sorted(set(models) - set(names)))
     run_seeds = list(task.seeds) if seeds is None else list(seeds)
+    metric_keys = list(task.metrics) if metrics is None else list(metrics)
+    missing = [k for k in metric_keys if k not in task.metrics]
+    if missing:
+        raise XbenchInputError(f"{task.path}: [metrics] keys", "metric not in the task",
+                               expected=", ".join(task.metrics), found=missing)
     base = {
         "xbench": __version__, "task_hash": task.file_hash, "run": task.run,
-        "metrics": {k: task.metric_settings.get(k, {}) for k in task.metrics},
+        "metrics": {k: task.metric_settings.get(k, {}) for k in metric_keys},
     }
     cells: list[Cell] = []
     skipped: list[dict[str, str]] = []
@@ -110,4 +116,4 @@ def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[
                 payload = base | {"model": spec.name, "model_kind": spec.kind, "model_params": spec.params,
                                   "seed": seed, "explainer": key, "settings": settings}
                 cells.append(Cell(content_hash(payload), task.name, spec.name, int(seed), key, settings))
-    return Grid(cells, skipped)
+    return Grid(cells, skipped, metric_keys)

@@ -77,6 +77,7 @@ def run_task(
     explainers: list[str] | None = None,
     models: list[str] | None = None,
     seeds: list[int] | None = None,
+    metrics: list[str] | None = None,
 ) -> RunSummary:
     """Run a task's grid into ``out_dir``; finished cells are reused, so a killed run resumes."""
     from xbench.tasks import load_task
@@ -84,7 +85,7 @@ def run_task(
     started = time.perf_counter()
     task_obj = load_task(task)  # validates the file before any work
     task_path = str(Path(task_obj.path).resolve())
-    grid: Grid = expand_grid(task_obj, explainers=explainers, models=models, seeds=seeds)
+    grid: Grid = expand_grid(task_obj, explainers=explainers, models=models, seeds=seeds, metrics=metrics)
     run_for = executor_for(executor, jobs, scheduler)  # validates the executor name before any work
     out = Path(out_dir)
     store = CellStore(out)
@@ -108,8 +109,8 @@ def run_task(
 
     pending = [c for c in grid.cells if not store.is_done(c.cell_id)]
     summary.cells_cached = len(grid.cells) - len(pending)
-    metric_settings = {k: dict(task_obj.metric_settings.get(k, {})) for k in task_obj.metrics}
-    jobs_list = [(task_path, c, list(task_obj.metrics), metric_settings, run_id) for c in pending]
+    metric_settings = {k: dict(task_obj.metric_settings.get(k, {})) for k in grid.metrics}
+    jobs_list = [(task_path, c, list(grid.metrics), metric_settings, run_id) for c in pending]
     bar = tqdm(total=len(pending), desc="cells", disable=not progress, unit="cell")
     for cell, result in run_for(jobs_list):
         store.commit(cell.cell_id, result)
@@ -196,7 +197,7 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
         "explainers": {k: task.explainer_settings.get(k, {}) for k in dict.fromkeys(c.explainer for c in grid.cells)},
         "explainer_order": list(dict.fromkeys(c.explainer for c in grid.cells)),
         "metrics": {k: task.metric_settings.get(k, {}) for k in task.metrics},
-        "metric_order": list(task.metrics),
+        "metric_order": list(grid.metrics),
         "explain_tiles": int(len(next(iter(preps.values())).explain_index)) if preps else 0,
         "skipped": grid.skipped, "cells": cells_meta,
     }
