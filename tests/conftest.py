@@ -15,6 +15,12 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+import torch
+
+# pytester's in-process runs (tests/test_check.py) restore sys.modules afterwards. torch's compiler package
+# registers a native operator library when first imported, which cannot happen twice in one process, so
+# import it once here, before any test, where no snapshot will drop it.
+import torch._inductor.config  # noqa: E402, F401
 
 SMALL_TASK = """
 name = "small-roads"

@@ -341,10 +341,12 @@ def model_scorer(model: ModelHandle, chunk: int = SCORE_CHUNK) -> Callable[[np.n
 
     def score(images: np.ndarray) -> np.ndarray:
         images = np.asarray(images, dtype=np.float32)
-        out = np.empty((images.shape[0], model.n_classes))
+        m = images.shape[0]
+        out = np.empty((m, model.n_classes))
+        size = -(-m // max(1, -(-m // chunk))) if m else 1  # even chunks of at most `chunk` images
         with torch.inference_mode():
-            for start in range(0, images.shape[0], chunk):
-                part = images[start:start + chunk]
+            for start in range(0, m, size):
+                part = images[start:start + size]
                 logits = forward(torch.from_numpy(np.ascontiguousarray(part)))
                 probs = torch.softmax(logits.double(), dim=1).numpy()
                 model._check_output(probs, part.shape[0])

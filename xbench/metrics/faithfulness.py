@@ -52,7 +52,7 @@ from xbench.metrics.base import (
 )
 
 BASELINES = ("twin", "zero", "mean", "blur")
-CHUNK_BYTES = 4 * 2**20
+CHUNK_BYTES = 8 * 2**20  # a few tiles x all their steps per stack (cache-friendly)
 ProbFn = Callable[[np.ndarray], np.ndarray]
 
 

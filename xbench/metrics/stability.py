@@ -167,7 +167,7 @@ def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
     if good.size:
         score = model_scorer(inputs.model)
         base = score(images[good])[np.arange(good.size), targets[good]]
-        per_chunk = max(1, (64 * 2**20) // (samples * c * h * w * 4))
+        per_chunk = max(1, (8 * 2**20) // (samples * c * h * w * 4))
         for start in range(0, good.size, per_chunk):
             j = np.arange(start, min(good.size, start + per_chunk))
             ids = good[j]
