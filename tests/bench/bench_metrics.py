@@ -16,7 +16,9 @@ score a repeated image again). Printed side by side:
   ``model_scorer``: inference mode, channels-last chunks of 128 images);
 - the harness overhead: the engine with a free model, against the model's own time on the same stack.
 
-Best of ``--repeat`` runs for each (wall clock; CPU seconds beside, steadier on a busy machine).
+Best of ``--repeat`` rounds (engines timed round robin) for each, wall clock with CPU seconds beside.
+On a shared machine other processes make torch's two-thread timings swing widely (busy-waiting
+threads); ``--threads 1`` gives steadier figures.
 """
 
 from __future__ import annotations
@@ -99,15 +101,13 @@ def main() -> None:
             "batched, plain": lambda m, o=order: perturbation_curves(prob, images, targets, twins, o, args.steps, m),
             "batched": lambda m, o=order: perturbation_curves(fast, images, targets, twins, o, args.steps, m),
         }
-        results = {}
-        for name, engine in engines.items():
-            best = None
-            for _ in range(args.repeat):
+        results: dict = {}
+        for _ in range(args.repeat):  # round robin, so that a busy spell hits every engine alike
+            for name, engine in engines.items():
                 d, w1, c1 = timed(lambda e=engine: e("deletion"))
                 i, w2, c2 = timed(lambda e=engine: e("insertion"))
-                if best is None or w1 + w2 < best[1]:
-                    best = ((d, i), w1 + w2, c1 + c2)
-            results[name] = best
+                if name not in results or w1 + w2 < results[name][1]:
+                    results[name] = ((d, i), w1 + w2, c1 + c2)
         ref = results["loop"][0]
         for name, ((d, i), _, _) in results.items():
             assert np.allclose(d, ref[0], atol=1e-5) and np.allclose(i, ref[1], atol=1e-5), f"{name} disagrees"

@@ -57,7 +57,8 @@ class MetricInputs:
     model: the explained model.  planted: bool (N, H, W), union of the target class's driving types.
     verified: bool (N, H, W), model-verified evidence mask.  evidence: float (N, H, W) evidence map.
     twins: float32 (N, C, H, W) structure-free twins.  type_masks: bool (N, K, H, W) with ``mask_names``.
-    explain_fn(model, images, targets) -> (N, H, W): the same explainer with the same settings.
+    explain_fn(model, images, targets[, tiles=]) -> (N, H, W): the same explainer with the same settings;
+    the optional ``tiles`` gives, for each row of ``images``, the explained tile it is a perturbed copy of.
     concept_report: has ``type_importance: dict[str, float]`` and ``flagged: dict[str, bool]`` (concept
     methods) or None (pixel methods).  type_importance: interventional importance per structure type.
     relied_types / lookalike_types / unused_types: type roles.  cost: has ``forward_calls``,

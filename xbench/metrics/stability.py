@@ -18,6 +18,7 @@ Perturbations are drawn per tile from ``[seed, tile, salt]``, so a tile's draw d
 
 from __future__ import annotations
 
+import inspect
 from typing import Any
 
 import numpy as np
@@ -92,6 +93,18 @@ def infidelity(attributions: np.ndarray, perturbations: np.ndarray, score_drops:
 
 
 # -- runners ----------------------------------------------------------------------------------------------
+def call_explain_fn(explain_fn: Any, model: Any, images: np.ndarray, targets: np.ndarray,
+                    tiles: np.ndarray) -> np.ndarray:
+    """Call ``explain_fn`` with the row-to-tile index when it accepts one (the runner's does)."""
+    try:
+        params = inspect.signature(explain_fn).parameters
+    except (TypeError, ValueError):
+        params = {}
+    if "tiles" in params:
+        return explain_fn(model, images, targets, tiles=tiles)
+    return explain_fn(model, images, targets)
+
+
 def _chunks(n_items: int, per_item: int, limit: int) -> range:
     return range(0, n_items, max(1, limit // max(1, per_item)))
 
@@ -123,7 +136,10 @@ def _max_sensitivity(inputs: MetricInputs, truth: str, settings: dict[str, Any])
         ids = good[start:start + max(1, limit // samples)]
         noisy = np.concatenate([images[i][None] + sensitivity_perturbations(inputs.seed, i, images.shape[1:],
                                                                              samples, radius) for i in ids])
-        expl = np.asarray(inputs.explain_fn(inputs.model, noisy, np.repeat(targets[ids], samples)))
+        # `tiles` tells the runner which explained tile each noisy copy comes from (per-tile context such as
+        # the planted masks of the oracle control or the twin baseline of integrated gradients).
+        expl = np.asarray(call_explain_fn(inputs.explain_fn, inputs.model, noisy, np.repeat(targets[ids], samples),
+                                          np.repeat(ids, samples)))
         if expl.shape != (len(ids) * samples, *images.shape[2:]):
             raise XbenchInputError("metric 'max-sensitivity': explain_fn output", "wrong shape",
                                    expected=f"({len(ids) * samples}, H, W)", found=expl.shape)
