@@ -115,7 +115,7 @@ def run(args: argparse.Namespace) -> int:
         return 0
     n_plugins = sum(s.source != "xbench" for s in specs)
     print(f"{len(specs)} explainers ({len(specs) - n_plugins} built in, {n_plugins} from plugins). "
-          "Settings are set per explainer in a task file under [explainers.<key>].\n")
+          "Settings are set per explainer in a task file under [explainers.settings.<key>].\n")
     print(render_table(specs, width))
     for label, err in errors.items():
         print(f"plugin failed to load: {label}: {err}")
