@@ -32,7 +32,11 @@ from xbench.errors import XbenchInputError, load_toml, repo_root
 # Natural look-alikes (DESIGN.md "Structure types"): never positive evidence for a human class.
 NATURAL_TYPES = ("river", "natural-gap", "outcrop")
 HUMAN_TYPES = ("road", "clearing", "building", "corridor", "field")
-MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest")
+MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-callable")
+# Bring your own model: `factory` is an import path `package.module:function`. For `user-torch` it returns a
+# torch module (raw reflectance in, logits out) and `weights` (a state_dict file, relative to the task file)
+# is loaded with torch.load(weights_only=True); for `user-callable` it returns f(images) -> class scores.
+USER_KINDS = ("user-torch", "user-callable")
 
 TOP_KEYS = {"name", "description", "seeds", "data", "models", "explainers", "metrics", "run"}
 DATA_KEYS = {"recipe", "size", "train", "val", "test", "seed", "presence", "labels", "label_noise",
@@ -56,6 +60,8 @@ MODEL_PARAMS: dict[str, dict[str, tuple[type, ...]]] = {
     "bottleneck": {"width": (int,), "n_maps": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
     "forest": {"n_trees": (int,), "max_depth": (int,), "min_samples_leaf": (int,),
                "max_features": (int, float, str)},
+    "user-torch": {"factory": (str,), "weights": (str,)},
+    "user-callable": {"factory": (str,), "output": (str,)},
 }
 SPLITS = ("train", "val", "test")
 
@@ -392,10 +398,33 @@ def _load_models(raw: Any, f: str) -> list[ModelSpec]:
             _expect(value, allowed[key], f"{w}.{key}", " or ".join(t.__name__ for t in allowed[key]))
             params[key] = value
         _check_model_values(params, w)
+        if kind in USER_KINDS:
+            _check_user_model(params, kind, w, Path(f))
         if any(m.name == name for m in out):
             raise XbenchInputError(f"{w}.name", "duplicate model name", found=name)
         out.append(ModelSpec(name=name, kind=kind, params=params))
     return out
+
+
+def _check_user_model(params: dict[str, Any], kind: str, w: str, task_file: Path) -> None:
+    """A user model's keys are checked before any work: import path form and the weights file."""
+    factory = params.get("factory")
+    if factory is None:
+        raise XbenchInputError(f"{w}.factory", f"missing required key for kind '{kind}'",
+                               expected="'package.module:function'")
+    if factory.count(":") != 1 or not all(factory.split(":")):
+        raise XbenchInputError(f"{w}.factory", "bad import path", expected="'package.module:function'",
+                               found=factory)
+    if "weights" in params:
+        weights = Path(params["weights"])
+        if not weights.is_absolute():
+            weights = task_file.parent / weights
+        if not weights.is_file():
+            raise XbenchInputError(f"{w}.weights", "weights file not found", found=str(weights))
+        params["weights"] = str(weights.resolve())
+    if params.get("output", "probabilities") not in ("probabilities", "logits"):
+        raise XbenchInputError(f"{w}.output", "bad value", expected="probabilities | logits",
+                               found=params["output"])
 
 
 def _check_model_values(params: dict[str, Any], w: str) -> None:

@@ -225,6 +225,8 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
     """Train one model of a task with one seed, or load it from the cache."""
     spec = model_spec
     n_classes = len(task.class_names)
+    if spec.kind in ("user-torch", "user-callable"):
+        return load_user_model(spec, data, n_classes, seed, batch_size)
     n_bands = int(data.train.images.shape[1])
     key = cache_key(task, spec, seed)
     entry = cache_root() / "models" / key
@@ -280,6 +282,34 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
     return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=accuracy, seconds=seconds,
                         cached=False, weights_hash=weights_hash, n_parameters=n_params, epochs=best_epoch,
                         cpu_seconds=cpu_seconds, cache_dir=entry if use_cache else None, history=history)
+
+
+def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
+    """A user's model named in a task file: imported and loaded, never trained; checked on two test tiles."""
+    from xbench.models.adapters import import_factory, load_user_torch_model, wrap_callable
+
+    t0 = time.perf_counter()
+    probe = data.test.images[:2]
+    if spec.kind == "user-torch":
+        handle = load_user_torch_model(spec.params["factory"], spec.params.get("weights"), n_classes,
+                                       name=spec.name, probe=probe, batch_size=batch_size)
+        state = handle.module.state_dict()
+        weights_hash, n_params = state_dict_hash(state), count_parameters(handle.module)
+    else:
+        fn = import_factory(spec.params["factory"])()
+        if not callable(fn):
+            raise XbenchInputError(f"model '{spec.name}': factory '{spec.params['factory']}'",
+                                   "did not return a callable", expected="f(images) -> class scores",
+                                   found=type(fn).__name__)
+        handle = wrap_callable(fn, n_classes, spec.name, output=spec.params.get("output", "probabilities"),
+                               probe=probe, batch_size=batch_size)
+        weights_hash, n_params = "", 0
+    packs = {"train": data.train, "val": data.val, "test": data.test}
+    accuracy = evaluate(handle, packs)
+    handle.calls.forward = 0
+    return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=accuracy,
+                        seconds=time.perf_counter() - t0, cached=True, weights_hash=weights_hash,
+                        n_parameters=n_params)
 
 
 def _load_cached(entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int, band_names: list[str],

@@ -103,7 +103,7 @@ def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[
     cells: list[Cell] = []
     skipped: list[dict[str, str]] = []
     for spec in model_specs:
-        black_box = spec.kind == "forest"
+        black_box = spec.kind in ("forest", "user-callable")
         for seed in run_seeds:
             for key in keys:
                 needs = set(get_explainer(key).needs)
