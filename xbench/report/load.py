@@ -16,37 +16,13 @@ import numpy as np
 import pandas as pd
 
 from xbench.errors import XbenchInputError
+from xbench.runs.store import (  # the run folder's schema: one definition, the runner's
+    CONCEPT_COLUMNS,
+    CURVE_COLUMNS,
+    RECORD_COLUMNS,
+    RELIANCE_COLUMNS,
+)
 
-RECORD_COLUMNS = ["run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value"]
-CURVE_COLUMNS = [
-    "task",
-    "model",
-    "seed",
-    "explainer",
-    "curve",
-    "baseline",
-    "step",
-    "x",
-    "label",
-    "mean",
-    "sd",
-    "n",
-]
-RELIANCE_COLUMNS = ["task", "model", "seed", "kind", "mean_drop", "ci_low", "ci_high", "n"]
-CONCEPT_COLUMNS = [
-    "task",
-    "model",
-    "seed",
-    "explainer",
-    "concept",
-    "class_name",
-    "score",
-    "spread",
-    "p_value",
-    "matched_type",
-    "iou",
-    "purity",
-]
 RECORD_KEY = ["task", "model", "seed", "explainer", "metric", "truth", "tile"]
 
 _ARTIFACT = re.compile(r"^(gallery|clusters)__(.+)__(.+)__(-?\d+)\.npz$")
