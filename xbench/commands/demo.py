@@ -27,8 +27,10 @@ def run(args: argparse.Namespace) -> int:
     print_summary(summary)
     report = write_report([run_dir], report_dir)
     print(f"report: {report_dir}/ ({len(report.paths)} files written)")
-    for warning in report.warnings:
+    for warning in report.warnings[:3]:
         print(f"  note: {warning}")
+    if len(report.warnings) > 3:
+        print(f"  ... {len(report.warnings) - 3} more notes in {report_dir / 'report.log'}")
     print("look at:")
     print(f"  {report_dir / 'report.html'}   tables and figures in one page")
     print(f"  {report_dir / 'methods.md'}    methods text (with {report_dir / 'refs.bib'})")
