@@ -93,6 +93,9 @@ class DataSpec:
     cue_rates: dict[str, float]
     lookalikes: list[str] | None
     raw: dict[str, Any]
+    pack: str | None = None  # a user's tile pack (`[data] pack = ...`) instead of a recipe
+    pack_classes: list[str] | None = None
+    pack_drives: dict[int, list[str]] | None = None
     possible_types: list[str] = field(default_factory=list)  # types that may appear in the tiles
 
     @property
@@ -250,7 +253,10 @@ def load_task(path_or_name: str | Path) -> Task:
     if len(set(seeds)) != len(seeds):
         raise XbenchInputError(f"{f}: seeds", "duplicate seed", found=seeds)
 
-    data, rule = _load_data(doc["data"], f)
+    if isinstance(doc["data"], dict) and "pack" in doc["data"]:
+        data, rule = _load_pack_data(doc["data"], f), None
+    else:
+        data, rule = _load_data(doc["data"], f)
     models = _load_models(doc["models"], f)
 
     explainers_sec = _expect(doc.get("explainers", {}), (dict,), f"{f}: explainers", "a table")
@@ -277,8 +283,11 @@ def load_task(path_or_name: str | Path) -> Task:
                                expected=f"<= run.explain_tiles ({run['explain_tiles']})",
                                found=run["gallery_tiles"])
 
-    class_names = [str(c) for c in rule.classes]
-    driving = {i: list(rule.driving_types(i)) for i in range(len(class_names))}
+    if rule is None:
+        class_names, driving = list(data.pack_classes or []), dict(data.pack_drives or {})
+    else:
+        class_names = [str(c) for c in rule.classes]
+        driving = {i: list(rule.driving_types(i)) for i in range(len(class_names))}
     if data.lookalikes is not None:
         lookalikes = list(data.lookalikes)
     else:
@@ -359,6 +368,63 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
                     label_noise=label_noise, cue=cue, cue_rates=rates, lookalikes=lookalikes,
                     raw=json.loads(json.dumps(sec, default=str)), possible_types=possible)
     return spec, rule
+
+
+PACK_DATA_KEYS = {"pack", "train", "val", "test", "drives", "lookalikes"}
+
+
+def _load_pack_data(sec: dict[str, Any], f: str) -> DataSpec:
+    """`[data]` naming a user's tile pack: its tiles, in order, fill the train, val and test splits.
+
+    ``drives`` maps a class name to the structure types (mask names) that make it: they are the planted
+    truth of localization metrics and of the `oracle`. Packs carry no scenes, so per-instance
+    (model-verified) truth and the synthesizer's concept sets are not available for them.
+    """
+    from xbench.data import load_pack
+
+    w = f"{f}: data"
+    _unknown(sec, PACK_DATA_KEYS, w)
+    for key in ("train", "val", "test", "drives"):
+        if key not in sec:
+            raise XbenchInputError(f"{w}.{key}", "missing required key (data.pack is set)")
+    ref = Path(_expect(sec["pack"], (str,), f"{w}.pack", "a path to a .npz tile pack"))
+    path = ref if ref.is_absolute() else Path(f).parent / ref
+    try:
+        pack = load_pack(path)  # every array validated; errors name the file and the array
+    except XbenchInputError as exc:
+        raise XbenchInputError(f"{w}.pack", str(exc)) from None
+    counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
+    if sum(counts.values()) > len(pack):
+        raise XbenchInputError(f"{w}.train/val/test", "more tiles than the pack holds",
+                               expected=f"a sum <= {len(pack)}", found=sum(counts.values()))
+    drives = _expect(sec["drives"], (dict,), f"{w}.drives", "a table: class name -> structure types")
+    classes = list(pack.class_names)
+    driving: dict[int, list[str]] = {i: [] for i in range(len(classes))}
+    for name, types in drives.items():
+        if name not in classes:
+            raise XbenchInputError(f"{w}.drives.{name}", "not a class of the pack", expected=", ".join(classes),
+                                   found=name)
+        types = _str_list(types, f"{w}.drives.{name}", allow_empty=True)
+        for t in types:
+            if t not in pack.mask_names:
+                raise XbenchInputError(f"{w}.drives.{name}", "not a mask of the pack",
+                                       expected=", ".join(pack.mask_names), found=t)
+        driving[classes.index(name)] = types
+    used = {t for types in driving.values() for t in types}
+    if "lookalikes" in sec:
+        lookalikes = _str_list(sec["lookalikes"], f"{w}.lookalikes", allow_empty=True)
+        for t in lookalikes:
+            if t not in pack.mask_names:
+                raise XbenchInputError(f"{w}.lookalikes", "not a mask of the pack",
+                                       expected=", ".join(pack.mask_names), found=t)
+    else:
+        lookalikes = [t for t in pack.mask_names if t in NATURAL_TYPES and t not in used]
+    raw = json.loads(json.dumps(sec, default=str)) | {
+        "pack_sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
+    return DataSpec(recipe="", size=int(pack.images.shape[-1]), counts=counts, seed=0, presence=None,
+                    labels={}, label_noise=0.0, cue=None, cue_rates={}, lookalikes=lookalikes, raw=raw,
+                    pack=str(path.resolve()), pack_classes=classes, pack_drives=driving,
+                    possible_types=list(pack.mask_names))
 
 
 def _recipe_ref(recipe: str, task_file: str) -> str:
@@ -475,12 +541,25 @@ def _synthesize_split(task: Task, split: str) -> tuple[TilePack, list[Any]]:
         label_noise=d.label_noise if split == "train" else 0.0, cue=d.cue, cue_rate=d.cue_rates[split])
 
 
+def _split_user_pack(task: Task) -> TaskData:
+    """A user's pack, in order: the first tiles train, the next validate, the next test (no scenes)."""
+    from xbench.data import load_pack
+
+    pack = load_pack(task.data.pack)
+    n = task.data.counts
+    edges = np.cumsum([0, n["train"], n["val"], n["test"]])
+    train, val, test = (pack.subset(slice(int(a), int(b))) for a, b in zip(edges[:-1], edges[1:], strict=True))
+    return TaskData(train=train, val=val, test=test, test_scenes=[])
+
+
 def build_task_data(task: Task, *, use_cache: bool = True) -> TaskData:
     """The task's train/val/test packs (test with twins) and test scenes; deterministic from the data
     section. Train and val packs are cached under ``$XBENCH_CACHE/data/<hash of the data section>``;
     the test split is synthesised each time because its scenes are kept in memory."""
     from xbench import __version__
 
+    if task.data.pack:
+        return _split_user_pack(task)
     packs: dict[str, TilePack] = {}
     key = hashlib.sha256(f"{task.data.hash}:{__version__}".encode()).hexdigest()[:32]
     folder = cache_root() / "data" / key

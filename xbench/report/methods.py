@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -78,14 +79,18 @@ def data_paragraph(task: str, m: dict[str, Any], bands: list[str] | None) -> str
         return f"Task *{task}*: the run folder has no manifest data description."
     counts = d.get("counts") or {}
     size = d.get("size")
-    parts = [f"Task *{task}*" + (f" ({m['description']})" if m.get("description") else "") + " uses synthetic"]
+    source = "a user-supplied tile pack of" if d.get("pack") else "synthetic"
+    parts = [f"Task *{task}*" + (f" ({m['description']})" if m.get("description") else "") + f" uses {source}"]
     if size:
         parts[-1] += f" {size} × {size}-pixel tiles"
     else:
         parts[-1] += " tiles"
     if bands:
         parts[-1] += f" with {len(bands)} bands ({', '.join(bands)})"
-    parts[-1] += f" rendered from the landscape recipe `{d.get('recipe', 'unknown')}`"
+    if d.get("pack"):
+        parts[-1] += f" (`{Path(str(d['pack'])).name}`)"
+    else:
+        parts[-1] += f" rendered from the landscape recipe `{d.get('recipe', 'unknown')}`"
     if counts:
         parts[-1] += (
             f": {counts.get('train', '?')} training, {counts.get('val', '?')} validation and "

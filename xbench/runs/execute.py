@@ -40,7 +40,7 @@ class Prepared:
     masks: np.ndarray
     mask_names: list[str]
     planted: np.ndarray
-    reliance: Any
+    reliance: Any  # None for a user's tile pack (no scenes to intervene on)
     fit_images: np.ndarray
     fit_labels: np.ndarray
     fit_masks: np.ndarray
@@ -111,8 +111,9 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     index = choose_explain_tiles(task, test.labels, int(task.run["explain_tiles"]))
     targets = test.labels[index].astype(np.int64)
     sub = test.subset(index)
-    scenes = [data.test_scenes[i] for i in index]
-    reliance = compute_reliance(trained.handle, scenes, targets, seed=int(seed))
+    scenes = [data.test_scenes[i] for i in index] if data.test_scenes else []
+    # A user's tile pack has no scenes: no per-instance twins, so no model-verified truth.
+    reliance = compute_reliance(trained.handle, scenes, targets, seed=int(seed)) if scenes else None
     planted = np.zeros((len(index),) + sub.images.shape[2:], dtype=bool)
     for row, cls in enumerate(targets):
         planted[row] = _union(sub, row, task.class_driving_types.get(int(cls), []))
@@ -152,12 +153,14 @@ def explain_context(prep: Prepared, cell: Cell) -> Any:
     )
 
 
-def type_groups(prep: Prepared) -> tuple[dict[str, float], list[str], list[str], list[str]]:
+def type_groups(prep: Prepared) -> tuple[dict[str, float] | None, list[str], list[str], list[str]]:
     """Interventional importance per type, and the relied-on, look-alike and unused types."""
+    lookalikes = [t for t in prep.task.lookalike_types if t in prep.mask_names]
+    if prep.reliance is None:
+        return None, [], lookalikes, [t for t in prep.mask_names if t not in lookalikes]
     table = prep.reliance.type_table
     importance = {str(k): float(v) for k, v in zip(table["kind"], table["mean_drop"], strict=True) if k != "cue"}
     relied = [t for t in prep.reliance.relied_types() if t != "cue"]
-    lookalikes = [t for t in prep.task.lookalike_types if t in prep.mask_names]
     unused = [t for t in prep.mask_names if t not in relied and t not in lookalikes]
     return importance, relied, lookalikes, unused
 
@@ -191,7 +194,8 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
     importance, relied, lookalikes, unused = type_groups(prep)
     full = MetricInputs(
         attributions=explanation.attributions, images=prep.images, targets=prep.targets, model=handle,
-        planted=prep.planted, verified=prep.reliance.verified_masks, evidence=prep.reliance.evidence,
+        planted=prep.planted, verified=None if prep.reliance is None else prep.reliance.verified_masks,
+        evidence=None if prep.reliance is None else prep.reliance.evidence,
         twins=prep.twins, type_masks=prep.masks, mask_names=prep.mask_names,
         explain_fn=make_explain_fn(cell, context, len(prep.targets)), concept_report=explanation.concepts,
         type_importance=importance, relied_types=relied, lookalike_types=lookalikes, unused_types=unused,

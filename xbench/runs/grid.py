@@ -107,10 +107,14 @@ def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[
         for seed in run_seeds:
             for key in keys:
                 needs = set(get_explainer(key).needs)
+                reason = None
                 if black_box and needs & {"gradients", "layer"}:
+                    reason = "needs gradients or a layer; the model is a black box"
+                elif task.data.pack and "concept-sets" in needs:
+                    reason = "needs concept example sets from the synthesizer; the task uses a tile pack"
+                if reason:
                     if seed == run_seeds[0]:
-                        skipped.append({"model": spec.name, "explainer": key,
-                                        "reason": "needs gradients or a layer; the model is a black box"})
+                        skipped.append({"model": spec.name, "explainer": key, "reason": reason})
                     continue
                 settings = dict(task.explainer_settings.get(key, {}))
                 payload = base | {"model": spec.name, "model_kind": spec.kind, "model_params": spec.params,

@@ -146,6 +146,8 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
     write_table(out / "concepts.parquet", concepts.astype({c: "object" for c in ("matched_type",)}))
     reliance_rows = []
     for (name, seed), prep in preps.items():
+        if prep.reliance is None:
+            continue
         for row in prep.reliance.type_table.to_dict("records"):
             reliance_rows.append({"task": task.name, "model": name, "seed": seed, "kind": row["kind"],
                                   "mean_drop": row["mean_drop"], "ci_low": row["ci_low"],
@@ -163,10 +165,12 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
         g = min(int(task.run["gallery_tiles"]), len(prep.explain_index))
         arrays: dict[str, np.ndarray] = {
             "images": prep.images[:g], "band_names": np.array(prep.data.test.band_names),
-            "planted": prep.planted[:g], "evidence": prep.reliance.evidence[:g].astype(np.float32),
-            "tiles": prep.explain_index[:g].astype(np.int64), "class_names": np.array(task.class_names),
+            "planted": prep.planted[:g], "tiles": prep.explain_index[:g].astype(np.int64),
+            "class_names": np.array(task.class_names),
             "targets": prep.targets[:g],
         }
+        if prep.reliance is not None:
+            arrays["evidence"] = prep.reliance.evidence[:g].astype(np.float32)
         for cell in grid.cells:
             if cell.model == name and cell.seed == seed:
                 maps = store.arrays(cell.cell_id, "gallery")
@@ -187,8 +191,8 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
                                                  "processor": platform.machine(),
                                                  "python": platform.python_version()},
         "seeds": sorted({c.seed for c in grid.cells}),
-        "data": {"recipe": data.recipe, "size": int(data.size), "counts": counts,
-                 "label_rule": describe_label_rule(data.labels),
+        "data": {"recipe": data.recipe or None, "pack": data.pack, "size": int(data.size), "counts": counts,
+                 "label_rule": "labels of the tile pack" if data.pack else describe_label_rule(data.labels),
                  "class_names": list(task.class_names), "label_noise": float(data.label_noise),
                  "cue": describe_cue(data), "presence": data.presence,
                  "driving_types": {task.class_names[k]: v for k, v in task.class_driving_types.items()},
