@@ -127,3 +127,12 @@ def trained_small(tmp_path_factory: pytest.TempPathFactory, small_task_file: Pat
         else:
             os.environ["XBENCH_CACHE"] = old
     yield TrainedSmall(task=task, data=data, handle=trained.handle, trained=trained, cache_dir=cache_dir)
+
+
+@pytest.fixture(scope="module")
+def one_torch_thread():
+    """Tiny models run fastest on one torch thread (and do not fight other processes for cores)."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)

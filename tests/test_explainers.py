@@ -30,13 +30,8 @@ from xbench.models.base import ModelHandle
 C, H, W, K = 3, 16, 16, 3
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_torch_thread():
-    """Tiny models run fastest on one thread (and do not fight other processes for cores)."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+# Tiny models run fastest on one torch thread (fixture in conftest.py).
+pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
 
 class SmallNet(nn.Module):

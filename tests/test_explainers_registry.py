@@ -34,12 +34,8 @@ BUILTIN = ["gradient", "input-x-gradient", "integrated-gradients", "smoothgrad",
            "random", "edges", "oracle"]
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_torch_thread():
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+# Tiny models run fastest on one torch thread (fixture in conftest.py).
+pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
 
 class Net(nn.Module):

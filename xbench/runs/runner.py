@@ -15,7 +15,7 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from xbench import __version__
-from xbench.runs.execute import prepare, task_and_data, train_or_load
+from xbench.runs.execute import prepare, task_and_data
 from xbench.runs.executors import executor_for
 from xbench.runs.grid import Grid, content_hash, expand_grid
 from xbench.runs.store import (
@@ -99,8 +99,8 @@ def run_task(
     task_and_data(task_path)
     model_rows, preps = [], {}
     for name, seed in tqdm(pairs, desc="models + truth", disable=not progress, unit="model"):
-        trained = train_or_load(task_path, name, seed)
-        preps[(name, seed)] = prepare(task_path, name, seed)
+        preps[(name, seed)] = prep = prepare(task_path, name, seed)  # trains or loads the model once
+        trained = prep.trained
         model_rows.append({"name": name, "kind": next(m.kind for m in task_obj.models if m.name == name),
                            "seed": seed, "accuracy": accuracy_summary(trained.accuracy), "seconds": trained.seconds,
                            "cached": bool(trained.cached),
