@@ -1,6 +1,6 @@
 """Shared fixtures: an isolated model/data cache for the session, and one small trained model.
 
-``trained_small`` builds a small roads-like task (32x32 tiles from the Orrin Vale recipe, a few hundred
+``trained_small`` builds a small roads-like task (32x32 tiles from the Vellardine recipe, a few hundred
 tiles) and trains a ``cnn`` on it with ``XBENCH_CACHE`` pointed at a session temporary folder. It returns
 an object with ``.task``, ``.data`` (TaskData, test split with twins and scenes), ``.handle``
 (ModelHandle), ``.trained`` (TrainedModel) and ``.cache_dir``. Tests of other stages share it.
@@ -28,7 +28,7 @@ description = "A small roads-like task for the test suite."
 seeds = [0]
 
 [data]
-recipe = "orrin-vale"
+recipe = "conifer-upland"
 size = 32
 train = 320
 val = 80

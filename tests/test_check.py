@@ -45,7 +45,7 @@ def planted_masks(seed: int) -> np.ndarray:
     for i in range(TILES - 1):
         h, w = rng.integers(3, 7, size=2)
         r, c = rng.integers(0, SIZE - h), rng.integers(0, SIZE - w)
-        masks[i, r:r + h, c:c + w] = True
+        masks[i, r : r + h, c : c + w] = True
     return masks
 
 
@@ -86,8 +86,13 @@ def rank_accuracy(maps: np.ndarray, masks: np.ndarray) -> np.ndarray:
     return out
 
 
-def fabricate_records(degrade: dict[str, str] | None = None, drop: tuple[str, ...] = (),
-                      slow: float = 1.0, task: str = "orrin-mini", model: str = "cnn") -> pd.DataFrame:
+def fabricate_records(
+    degrade: dict[str, str] | None = None,
+    drop: tuple[str, ...] = (),
+    slow: float = 1.0,
+    task: str = "upland-mini",
+    model: str = "cnn",
+) -> pd.DataFrame:
     """Records of a fabricated run; ``degrade`` maps explainer -> "shuffle" | "blur"."""
     degrade = degrade or {}
     rows = []
@@ -183,8 +188,21 @@ def test_identical_rerun_passes_every_gate(runs, tmp_path, capsys):
     rerun = tmp_path / "rerun"
     shutil.copytree(runs["baseline"], rerun)
     js, ju = tmp_path / "out" / "check.json", tmp_path / "out" / "check.xml"
-    code, out, err = run_cli(["--baseline", str(runs["baseline"]), "--current", str(rerun),
-                              "--gates", str(runs["gates"]), "--json", str(js), "--junit", str(ju)], capsys)
+    code, out, err = run_cli(
+        [
+            "--baseline",
+            str(runs["baseline"]),
+            "--current",
+            str(rerun),
+            "--gates",
+            str(runs["gates"]),
+            "--json",
+            str(js),
+            "--junit",
+            str(ju),
+        ],
+        capsys,
+    )
     assert code == 0, out + err
     assert "all gates pass" in out and "FAIL" not in out
     summary = json.loads(js.read_text())
@@ -212,9 +230,11 @@ def test_identical_rerun_passes_builtin_gates(runs, tmp_path, capsys):
         get_metric("mass-accuracy"), get_metric("rank-accuracy")
     except Exception:  # noqa: BLE001 - registry not there: state directions with the built-in defaults
         gates = tmp_path / "g.toml"
-        gates.write_text('[default]\nmax_relative_drop = 0.05\npaired_test = true\n'
-                         '[[gate]]\nmetric = "seconds"\nskip = true\n'
-                         '[[gate]]\nmetric = ["mass-accuracy", "rank-accuracy"]\nhigher_is_better = true\n')
+        gates.write_text(
+            "[default]\nmax_relative_drop = 0.05\npaired_test = true\n"
+            '[[gate]]\nmetric = "seconds"\nskip = true\n'
+            '[[gate]]\nmetric = ["mass-accuracy", "rank-accuracy"]\nhigher_is_better = true\n'
+        )
         args += ["--gates", str(gates)]
     code, out, err = run_cli(args, capsys)
     assert code == 0, out + err
@@ -222,27 +242,42 @@ def test_identical_rerun_passes_builtin_gates(runs, tmp_path, capsys):
 
 def test_shuffled_explainer_fails_and_the_table_names_it(runs, tmp_path, capsys):
     js, ju = tmp_path / "check.json", tmp_path / "check.xml"
-    code, out, err = run_cli(["--baseline", str(runs["baseline"]), "--current", str(runs["shuffled"]),
-                              "--gates", str(runs["gates"]), "--json", str(js), "--junit", str(ju)], capsys)
+    code, out, err = run_cli(
+        [
+            "--baseline",
+            str(runs["baseline"]),
+            "--current",
+            str(runs["shuffled"]),
+            "--gates",
+            str(runs["gates"]),
+            "--json",
+            str(js),
+            "--junit",
+            str(ju),
+        ],
+        capsys,
+    )
     assert code == 1, out + err
     summary = json.loads(js.read_text())
     failed = {(g["explainer"], g["metric"], g["check"]) for g in summary["gates"] if g["status"] == "fail"}
     assert failed == {
-        ("gradient", "mass-accuracy", "max-drop"), ("gradient", "mass-accuracy", "paired-test"),
-        ("gradient", "rank-accuracy", "max-drop"), ("gradient", "rank-accuracy", "paired-test"),
+        ("gradient", "mass-accuracy", "max-drop"),
+        ("gradient", "mass-accuracy", "paired-test"),
+        ("gradient", "rank-accuracy", "max-drop"),
+        ("gradient", "rank-accuracy", "paired-test"),
         ("gradient", "mass-accuracy", "at-least"),
     }
     fail_lines = [line for line in out.splitlines() if line.strip().startswith("FAIL")]
     assert len(fail_lines) == 5
     assert all("gradient" in line for line in fail_lines)
-    assert any("mass-accuracy" in line and "paired test" in line and "Wilcoxon" in line
-               for line in fail_lines)
+    assert any("mass-accuracy" in line and "paired test" in line and "Wilcoxon" in line for line in fail_lines)
     assert "5 FAILED" in out.splitlines()[0]
     # JUnit: the failing testcases carry a <failure> with the reason
     root = ET.parse(ju).getroot()
     failing = [c for c in root.iter("testcase") if c.find("failure") is not None]
     assert {(c.get("classname"), c.get("name")) for c in failing} >= {
-        ("xbench.orrin-mini.cnn.gradient", "mass-accuracy[planted] max drop")}
+        ("xbench.upland-mini.cnn.gradient", "mass-accuracy[planted] max drop")
+    }
     messages = [c.find("failure").get("message") for c in failing]
     assert all("worse" in m or "significantly" in m or "below" in m for m in messages)
 
@@ -258,9 +293,12 @@ def test_blurred_explainer_fails_its_gates_only(runs):
 
 
 def test_absolute_gates_work_without_a_baseline(runs):
-    gates = {"gate": [{"metric": "mass-accuracy", "explainer": "gradient", "truth": "planted",
-                       "at_least": 0.3},
-                      {"metric": "mass-accuracy", "explainer": "random", "at_most": 0.6}]}
+    gates = {
+        "gate": [
+            {"metric": "mass-accuracy", "explainer": "gradient", "truth": "planted", "at_least": 0.3},
+            {"metric": "mass-accuracy", "explainer": "random", "at_most": 0.6},
+        ]
+    }
     ok = assert_faithful(runs["baseline"], gates=gates)
     assert ok.passed and len(ok.outcomes) == 2  # only the absolute gates, no drop rows
     with pytest.raises(AssertionError) as info:
@@ -270,8 +308,9 @@ def test_absolute_gates_work_without_a_baseline(runs):
 
 
 def test_missing_explainer_fails_with_a_clear_reason(runs, capsys):
-    code, out, _ = run_cli(["--baseline", str(runs["baseline"]), "--current", str(runs["missing"]),
-                            "--gates", str(runs["gates"])], capsys)
+    code, out, _ = run_cli(
+        ["--baseline", str(runs["baseline"]), "--current", str(runs["missing"]), "--gates", str(runs["gates"])], capsys
+    )
     assert code == 1
     missing = [line for line in out.splitlines() if line.strip().startswith("FAIL")]
     assert missing and all("occlusion" in line and "missing from the current run" in line for line in missing)
@@ -283,8 +322,9 @@ def test_missing_explainer_fails_with_a_clear_reason(runs, capsys):
 
 
 def test_new_group_in_current_is_not_a_failure(runs):
-    result = compare(runs["baseline"], baseline=runs["missing"], gates={"default": {"max_drop": 0.01},
-                                                                      "gate": DIRECTIONS})
+    result = compare(
+        runs["baseline"], baseline=runs["missing"], gates={"default": {"max_drop": 0.01}, "gate": DIRECTIONS}
+    )
     assert result.passed
     new = [o for o in result.outcomes if o.explainer == "occlusion"]
     assert new and all(o.status == "skip" and "not in the baseline" in o.message for o in new)
@@ -302,12 +342,18 @@ def test_lower_is_better_metrics_fail_on_a_rise(runs):
 def test_zero_allowed_drop_means_no_worsening_at_all(runs, tmp_path):
     frame = fabricate_records()
     frame.loc[(frame["metric"] == "seconds") & (frame["explainer"] == "random"), "value"] *= 1.01
-    gates = {"gate": [{"metric": "seconds", "higher_is_better": False, "max_relative_drop": 0.0},
-                      {"metric": ["mass-accuracy", "rank-accuracy"], "skip": True}]}
+    gates = {
+        "gate": [
+            {"metric": "seconds", "higher_is_better": False, "max_relative_drop": 0.0},
+            {"metric": ["mass-accuracy", "rank-accuracy"], "skip": True},
+        ]
+    }
     result = compare(frame, baseline=runs["baseline"], gates=gates)
     assert [(o.explainer, o.check, o.status) for o in result.outcomes] == [
-        ("gradient", "max-relative-drop", "pass"), ("occlusion", "max-relative-drop", "pass"),
-        ("random", "max-relative-drop", "fail")]
+        ("gradient", "max-relative-drop", "pass"),
+        ("occlusion", "max-relative-drop", "pass"),
+        ("random", "max-relative-drop", "fail"),
+    ]
 
 
 def test_metric_without_direction_counts_any_change(runs, monkeypatch):
@@ -324,15 +370,13 @@ def test_metric_without_direction_counts_any_change(runs, monkeypatch):
 
 def test_gate_precedence_and_switching_off(runs):
     spec = load_gates(runs["gates"])
-    group = {"task": "orrin-mini", "model": "cnn", "explainer": "gradient", "metric": "seconds",
-             "truth": "none"}
+    group = {"task": "upland-mini", "model": "cnn", "explainer": "gradient", "metric": "seconds", "truth": "none"}
     rule = spec.rule_for(group)
     assert "max_drop" not in rule and rule["max_relative_drop"] == 0.5 and rule["paired_test"] is False
     rule = spec.rule_for({**group, "metric": "mass-accuracy", "truth": "planted"})
     assert rule["max_drop"] == 0.05 and rule["at_least"] == 0.3 and rule["paired_test"] is True
     # a more specific rule wins over a less specific one, whatever the order in the file
-    spec = load_gates({"gate": [{"metric": "m", "explainer": "e", "max_drop": 0.1},
-                                {"metric": "m", "max_drop": 0.9}]})
+    spec = load_gates({"gate": [{"metric": "m", "explainer": "e", "max_drop": 0.1}, {"metric": "m", "max_drop": 0.9}]})
     assert spec.rule_for({**group, "metric": "m", "explainer": "e"})["max_drop"] == 0.1
     assert spec.rule_for({**group, "metric": "m", "explainer": "x"})["max_drop"] == 0.9
 
@@ -344,7 +388,8 @@ def test_paired_test_catches_a_small_consistent_drop(runs, tmp_path):
     frame.loc[sel, "value"] -= 0.01
     result = compare(write_run(tmp_path / "small", frame), baseline=runs["baseline"], gates=runs["gates"])
     assert [(o.explainer, o.metric, o.check) for o in result.failures] == [
-        ("occlusion", "mass-accuracy", "paired-test")]
+        ("occlusion", "mass-accuracy", "paired-test")
+    ]
     assert result.failures[0].p_value < 0.01 and result.failures[0].n_pairs == 2 * (TILES - 1)
 
 
@@ -353,20 +398,23 @@ def test_holm_correction_and_min_pairs(runs):
     rng = np.random.default_rng(7)
     sel = frame["metric"].isin(["mass-accuracy", "rank-accuracy"])
     frame.loc[sel, "value"] += rng.normal(-0.003, 0.02, sel.sum())  # small noisy drift everywhere
-    plain = compare(frame, baseline=runs["baseline"], gates={"default": {"paired_test": True},
-                                                              "gate": DIRECTIONS})
-    holm = compare(frame, baseline=runs["baseline"], gates={"settings": {"correction": "holm"},
-                                                             "default": {"paired_test": True},
-                                                             "gate": DIRECTIONS})
+    plain = compare(frame, baseline=runs["baseline"], gates={"default": {"paired_test": True}, "gate": DIRECTIONS})
+    holm = compare(
+        frame,
+        baseline=runs["baseline"],
+        gates={"settings": {"correction": "holm"}, "default": {"paired_test": True}, "gate": DIRECTIONS},
+    )
     p_plain = [o.p_value for o in plain.outcomes if o.check == "paired-test" and o.metric != "seconds"]
     p_holm = [o.p_value for o in holm.outcomes if o.check == "paired-test" and o.metric != "seconds"]
     assert len(p_plain) == len(p_holm) == 6
     assert all(h >= p - 1e-12 for p, h in zip(p_plain, p_holm, strict=True))
     assert min(p_holm) == pytest.approx(min(1.0, 6 * min(p_plain)))  # Holm 1979: smallest p times m
     assert len(plain.failures) > len(holm.failures)
-    few = compare(frame, baseline=runs["baseline"], gates={"settings": {"min_pairs": 1000},
-                                                           "default": {"paired_test": True},
-                                                           "gate": DIRECTIONS})
+    few = compare(
+        frame,
+        baseline=runs["baseline"],
+        gates={"settings": {"min_pairs": 1000}, "default": {"paired_test": True}, "gate": DIRECTIONS},
+    )
     skipped = [o for o in few.outcomes if o.check == "paired-test" and o.metric != "seconds"]
     assert few.passed and len(skipped) == 6 and all(o.status == "skip" for o in skipped)
     assert "min_pairs = 1000" in skipped[0].message
@@ -374,8 +422,11 @@ def test_holm_correction_and_min_pairs(runs):
 
 def test_nan_values_are_ignored_in_means_and_pairs(runs):
     result = compare(runs["baseline"], baseline=runs["baseline"], gates=runs["gates"])
-    row = next(o for o in result.outcomes if o.explainer == "gradient" and o.metric == "mass-accuracy"
-               and o.check == "paired-test")
+    row = next(
+        o
+        for o in result.outcomes
+        if o.explainer == "gradient" and o.metric == "mass-accuracy" and o.check == "paired-test"
+    )
     assert np.isfinite(row.current) and row.n_pairs == 2 * (TILES - 1)
 
 
@@ -397,10 +448,15 @@ def test_registry_directions_are_used_when_available(runs):
     except Exception:  # noqa: BLE001
         pytest.skip("the metric registry has no mass-accuracy")
     assert info.higher_is_better is True
-    result = compare(runs["shuffled"], baseline=runs["baseline"],
-                     gates={"default": {"max_drop": 0.05}, "gate": [{"metric": "seconds", "skip": True}]})
-    assert {(o.explainer, o.metric) for o in result.failures} == {("gradient", "mass-accuracy"),
-                                                                   ("gradient", "rank-accuracy")}
+    result = compare(
+        runs["shuffled"],
+        baseline=runs["baseline"],
+        gates={"default": {"max_drop": 0.05}, "gate": [{"metric": "seconds", "skip": True}]},
+    )
+    assert {(o.explainer, o.metric) for o in result.failures} == {
+        ("gradient", "mass-accuracy"),
+        ("gradient", "rank-accuracy"),
+    }
 
 
 def metric_records(degrade: dict[str, str] | None = None) -> pd.DataFrame:
@@ -413,17 +469,17 @@ def metric_records(degrade: dict[str, str] | None = None) -> pd.DataFrame:
         masks = planted_masks(seed)
         images = np.random.default_rng(seed).random((TILES, 6, SIZE, SIZE)).astype(np.float32)
         for ex in ("oracle", "gradient", "random"):
-            maps = (masks.astype(np.float32) if ex == "oracle"
-                    else explainer_maps(ex, masks, seed, degrade.get(ex)))
-            inputs = MetricInputs(attributions=maps, images=images, targets=np.zeros(TILES, int),
-                                  planted=masks, seed=seed)
+            maps = masks.astype(np.float32) if ex == "oracle" else explainer_maps(ex, masks, seed, degrade.get(ex))
+            inputs = MetricInputs(
+                attributions=maps, images=images, targets=np.zeros(TILES, int), planted=masks, seed=seed
+            )
             for metric in ("mass-accuracy", "rank-accuracy", "mask-auroc", "pointing-game"):
                 for res in compute_metric(metric, inputs):  # planted, and verified (all NaN: no twins)
                     for tile, v in enumerate(res.values):
-                        rows.append(("real", "orrin-mini", "cnn", seed, ex, metric, res.truth, tile,
-                                     float(v)))
-    return pd.DataFrame(rows, columns=["run_id", "task", "model", "seed", "explainer", "metric", "truth",
-                                       "tile", "value"])
+                        rows.append(("real", "upland-mini", "cnn", seed, ex, metric, res.truth, tile, float(v)))
+    return pd.DataFrame(
+        rows, columns=["run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value"]
+    )
 
 
 def test_shipped_gates_on_values_from_the_metric_registry(tmp_path, capsys):
@@ -436,12 +492,12 @@ def test_shipped_gates_on_values_from_the_metric_registry(tmp_path, capsys):
     rerun = tmp_path / "rerun"
     shutil.copytree(base, rerun)
     js = tmp_path / "ok.json"
-    code, out, err = run_cli(["--baseline", str(base), "--current", str(rerun), "--gates", gates,
-                              "--json", str(js)], capsys)
+    code, out, err = run_cli(
+        ["--baseline", str(base), "--current", str(rerun), "--gates", gates, "--json", str(js)], capsys
+    )
     assert code == 0, out + err
     summary = json.loads(js.read_text())
-    controls = {(g["explainer"], g["check"]): g for g in summary["gates"]
-                if g["check"] in ("at-least", "at-most")}
+    controls = {(g["explainer"], g["check"]): g for g in summary["gates"] if g["check"] in ("at-least", "at-most")}
     assert set(controls) == {("oracle", "at-least"), ("random", "at-most")}
     assert all(g["status"] == "pass" for g in controls.values())
     # the verified truth is undefined here (no twins): reported as skipped, never failed
@@ -449,21 +505,26 @@ def test_shipped_gates_on_values_from_the_metric_registry(tmp_path, capsys):
     assert "explainer = oracle" not in out and "explainer = random" not in out  # no "matched no records"
 
     shuffled = write_run(tmp_path / "shuffled", metric_records({"gradient": "shuffle"}))
-    code, out, err = run_cli(["--baseline", str(base), "--current", str(shuffled), "--gates", gates,
-                              "--failures-only"], capsys)
+    code, out, err = run_cli(
+        ["--baseline", str(base), "--current", str(shuffled), "--gates", gates, "--failures-only"], capsys
+    )
     assert code == 1, out + err
     failing = {tuple(line.split()[1:3]) for line in out.splitlines() if line.strip().startswith("FAIL")}
-    assert failing == {("gradient", m) for m in ("mass-accuracy", "rank-accuracy", "mask-auroc",
-                                                 "pointing-game")}
+    assert failing == {("gradient", m) for m in ("mass-accuracy", "rank-accuracy", "mask-auroc", "pointing-game")}
 
 
 # ------------------------------------------------------------------------------------ input errors
 MALFORMED = [
-    ("unknown key", "[default]\nmax_drop = 0.1\nmax_dorp = 0.2\n", ["line 3", "[default] key 'max_dorp'",
-                                                                     "unknown key"]),
-    ("unknown key in a gate",
-     '[[gate]]\nmetric = "x"\nmax_drop = 0.1\n\n[[gate]]\nmetric = "y"\nat_leest = 1\n',
-     ["line 7", "[[gate]] 2 key 'at_leest'", "unknown key"]),
+    (
+        "unknown key",
+        "[default]\nmax_drop = 0.1\nmax_dorp = 0.2\n",
+        ["line 3", "[default] key 'max_dorp'", "unknown key"],
+    ),
+    (
+        "unknown key in a gate",
+        '[[gate]]\nmetric = "x"\nmax_drop = 0.1\n\n[[gate]]\nmetric = "y"\nat_leest = 1\n',
+        ["line 7", "[[gate]] 2 key 'at_leest'", "unknown key"],
+    ),
     ("wrong type", '[default]\nmax_drop = "0.1"\n', ["line 2", "key 'max_drop'", "a number >= 0"]),
     ("negative drop", "[default]\nmax_relative_drop = -1\n", ["key 'max_relative_drop'"]),
     ("bad alpha", "[settings]\nalpha = 5\n", ["[settings] key 'alpha'", "(0, 1)"]),
@@ -480,8 +541,9 @@ MALFORMED = [
 def test_malformed_gate_file_exits_2_with_a_clear_message(runs, tmp_path, capsys, case, text, expected):
     gates = tmp_path / "bad-gates.toml"
     gates.write_text(text)
-    code, out, err = run_cli(["--baseline", str(runs["baseline"]), "--current", str(runs["baseline"]),
-                              "--gates", str(gates)], capsys)
+    code, out, err = run_cli(
+        ["--baseline", str(runs["baseline"]), "--current", str(runs["baseline"]), "--gates", str(gates)], capsys
+    )
     assert code == 2, (case, out, err)
     lines = err.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("xbench check: error: "), err
@@ -501,8 +563,17 @@ def test_missing_baseline_or_records_exits_2(runs, tmp_path, capsys):
     assert code == 2 and str(empty) in err and "no records.parquet" in err
     code, _, err = run_cli(["--baseline", str(runs["baseline"]), "--current", str(nowhere)], capsys)
     assert code == 2 and "current run folder not found" in err
-    code, _, err = run_cli(["--baseline", str(runs["baseline"]), "--current", str(runs["baseline"]),
-                            "--gates", str(tmp_path / "none.toml")], capsys)
+    code, _, err = run_cli(
+        [
+            "--baseline",
+            str(runs["baseline"]),
+            "--current",
+            str(runs["baseline"]),
+            "--gates",
+            str(tmp_path / "none.toml"),
+        ],
+        capsys,
+    )
     assert code == 2 and "gate file not found" in err
 
 
@@ -516,13 +587,14 @@ def test_bad_records_exit_2(runs, tmp_path, capsys):
 
 def test_unknown_metric_direction_exits_2(runs, tmp_path, capsys):
     frame = fabricate_records()
-    frame.loc[frame["metric"] == "seconds", "metric"] = "orrin-score"
+    frame.loc[frame["metric"] == "seconds", "metric"] = "upland-score"
     run = write_run(tmp_path / "odd", frame)
     gates = tmp_path / "g.toml"
-    gates.write_text('[default]\nmax_drop = 0.1\n[[gate]]\nmetric = ["mass-accuracy", "rank-accuracy"]\n'
-                     "higher_is_better = true\n")
+    gates.write_text(
+        '[default]\nmax_drop = 0.1\n[[gate]]\nmetric = ["mass-accuracy", "rank-accuracy"]\nhigher_is_better = true\n'
+    )
     code, _, err = run_cli(["--baseline", str(run), "--current", str(run), "--gates", str(gates)], capsys)
-    assert code == 2 and "orrin-score" in err and "higher_is_better" in err
+    assert code == 2 and "upland-score" in err and "higher_is_better" in err
 
 
 def test_usage_errors_exit_2(runs, capsys):
@@ -555,16 +627,19 @@ def test_task_option_runs_the_task_then_checks(runs, tmp_path, capsys, monkeypat
     if not task.is_file():
         pytest.skip("the runner's tiny test task is not there")
     out = tmp_path / "task-run"
-    code, stdout, err = run_cli(["--task", str(task), "--baseline", str(runs["baseline"]), "--out", str(out),
-                                 "--gates", str(runs["gates"])], capsys)
+    code, stdout, err = run_cli(
+        ["--task", str(task), "--baseline", str(runs["baseline"]), "--out", str(out), "--gates", str(runs["gates"])],
+        capsys,
+    )
     assert code == 1 and "5 FAILED" in stdout and f"into {out}" in err
     assert calls == [(str(task), out, {"jobs": 1})]
     # a missing baseline (here: results/<task name>/ by default) stops before the task runs
     if not (repo_root() / "results" / "tiny").exists():
         code, _, err = run_cli(["--task", str(task), "--out", str(tmp_path / "x")], capsys)
         assert code == 2 and "baseline run folder not found" in err and "tiny" in err
-    code, _, err = run_cli(["--task", str(task), "--baseline", str(runs["baseline"]),
-                            "--gates", str(tmp_path / "nope.toml")], capsys)
+    code, _, err = run_cli(
+        ["--task", str(task), "--baseline", str(runs["baseline"]), "--gates", str(tmp_path / "nope.toml")], capsys
+    )
     assert code == 2 and "gate file not found" in err
     assert len(calls) == 1
 
@@ -585,15 +660,18 @@ def test_plugin_import_is_light():
     import subprocess
     import sys
 
-    code = ("import sys, xbench.pytest_plugin; "
-            "print(sorted(m for m in ('torch', 'pandas', 'scipy', 'xbench.check') if m in sys.modules))")
+    code = (
+        "import sys, xbench.pytest_plugin; "
+        "print(sorted(m for m in ('torch', 'pandas', 'scipy', 'xbench.check') if m in sys.modules))"
+    )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
 
 
 def test_plugin_in_a_user_test_suite(pytester, runs):
     """A user's suite: one faithful explainer passes, one shuffled between tiles fails with the table."""
-    pytester.makepyfile(test_user_explainer=f"""
+    pytester.makepyfile(
+        test_user_explainer=f"""
         from xbench.pytest_plugin import assert_faithful
 
         GATES = {{
@@ -611,15 +689,18 @@ def test_plugin_in_a_user_test_suite(pytester, runs):
 
         def test_shuffled_explainer(xbench_assert_faithful):
             xbench_assert_faithful({str(runs["shuffled"])!r}, gates=GATES, baseline={str(runs["baseline"])!r})
-    """)
+    """
+    )
     result = pytester.runpytest("-p", "no:cacheprovider")
     result.assert_outcomes(passed=1, failed=1)
-    result.stdout.fnmatch_lines([
-        "*test_shuffled_explainer*",
-        "*xbench check: 5 FAILED*",
-        "*FAIL*gradient*mass-accuracy*planted*max drop*",
-        "*FAIL*gradient*rank-accuracy*planted*paired test*Wilcoxon*",
-    ])
+    result.stdout.fnmatch_lines(
+        [
+            "*test_shuffled_explainer*",
+            "*xbench check: 5 FAILED*",
+            "*FAIL*gradient*mass-accuracy*planted*max drop*",
+            "*FAIL*gradient*rank-accuracy*planted*paired test*Wilcoxon*",
+        ]
+    )
     assert "test_faithful_explainer FAILED" not in result.stdout.str()
 
 
@@ -654,7 +735,8 @@ def test_plugin_fixture_runs_a_task_with_a_user_explainer(pytester, runs):
         [pytest]
         xbench_task = tasks/tiny.toml
     """)
-    pytester.makepyfile(test_user_run="""
+    pytester.makepyfile(
+        test_user_run="""
         from conftest import CALLS
         from xbench.pytest_plugin import assert_faithful
 
@@ -671,7 +753,8 @@ def test_plugin_fixture_runs_a_task_with_a_user_explainer(pytester, runs):
 
         def test_listed_fixtures(pytestconfig):
             assert pytestconfig.pluginmanager.has_plugin("xbench")
-    """)
+    """
+    )
     result = pytester.runpytest("-p", "no:cacheprovider")
     result.assert_outcomes(passed=2)
 
@@ -708,7 +791,8 @@ def test_plugin_end_to_end_with_a_user_explainer(pytester, tmp_path, monkeypatch
         pytest.skip("the runner's tiny test task is not there")
     monkeypatch.setenv("XBENCH_CACHE", str(tmp_path / "cache"))
     pytester.makeconftest(USER_CONFTEST)
-    pytester.makepyfile(test_user_faithfulness=f"""
+    pytester.makepyfile(
+        test_user_faithfulness=f"""
         import pytest
         from xbench.pytest_plugin import assert_faithful
 
@@ -727,11 +811,11 @@ def test_plugin_end_to_end_with_a_user_explainer(pytester, tmp_path, monkeypatch
 
         def test_random_control_does_not(run_dir):
             assert_faithful(run_dir, gates=bounds("random"))
-    """)
+    """
+    )
     try:
         result = pytester.runpytest("-p", "no:cacheprovider")
     finally:
         unregister_explainer("smooth-saliency")
     result.assert_outcomes(passed=1, failed=1)
-    result.stdout.fnmatch_lines(["*test_random_control_does_not*",
-                                 "*FAIL*random*mask-auroc*planted*at least*"])
+    result.stdout.fnmatch_lines(["*test_random_control_does_not*", "*FAIL*random*mask-auroc*planted*at least*"])

@@ -16,9 +16,14 @@ def make_pack(n: int = 4, c: int = 6, size: int = 8, twins: bool = True) -> Tile
     images = rng.uniform(0, 1, (n, c, size, size)).astype(np.float32)
     masks = rng.uniform(0, 1, (n, 2, size, size)) > 0.7
     return TilePack(
-        images=images, labels=np.arange(n, dtype=np.int64) % 2, class_names=["intact", "road"],
-        band_names=["blue", "green", "red", "nir", "swir1", "swir2"][:c], masks=masks,
-        mask_names=["road", "river"], twins=images * 0.5 if twins else None, meta={"recipe": "orrin-vale"},
+        images=images,
+        labels=np.arange(n, dtype=np.int64) % 2,
+        class_names=["intact", "road"],
+        band_names=["blue", "green", "red", "nir", "swir1", "swir2"][:c],
+        masks=masks,
+        mask_names=["road", "river"],
+        twins=images * 0.5 if twins else None,
+        meta={"recipe": "conifer-upland"},
     )
 
 
@@ -30,7 +35,7 @@ def test_roundtrip_keeps_every_array(tmp_path):
     np.testing.assert_array_equal(back.masks, pack.masks)
     np.testing.assert_array_equal(back.twins, pack.twins)
     assert back.class_names == pack.class_names and back.mask_names == pack.mask_names
-    assert back.meta == {"recipe": "orrin-vale"}
+    assert back.meta == {"recipe": "conifer-upland"}
     assert not list(tmp_path.glob("*.tmp*")), "the temporary file of the atomic write is left behind"
 
 
@@ -77,8 +82,13 @@ def test_toml_syntax_error_names_file_and_line(tmp_path):
 
 def tiny_torch_model() -> torch.nn.Module:
     torch.manual_seed(0)
-    return torch.nn.Sequential(torch.nn.Conv2d(6, 4, 3, padding=1), torch.nn.ReLU(),
-                               torch.nn.AdaptiveAvgPool2d(1), torch.nn.Flatten(), torch.nn.Linear(4, 2))
+    return torch.nn.Sequential(
+        torch.nn.Conv2d(6, 4, 3, padding=1),
+        torch.nn.ReLU(),
+        torch.nn.AdaptiveAvgPool2d(1),
+        torch.nn.Flatten(),
+        torch.nn.Linear(4, 2),
+    )
 
 
 def test_handle_counts_images_forward_and_backward():

@@ -158,8 +158,8 @@ def test_linear_model_occlusion_patch_drop():
     for i, t in enumerate(TARGETS):
         for r in range(0, H, 4):
             for c in range(0, W, 4):
-                drop = float((w[t, :, r:r + 4, c:c + 4] * x[i, :, r:r + 4, c:c + 4]).sum())
-                np.testing.assert_allclose(exp.attributions[i, r:r + 4, c:c + 4], drop, rtol=1e-4, atol=1e-4)
+                drop = float((w[t, :, r : r + 4, c : c + 4] * x[i, :, r : r + 4, c : c + 4]).sum())
+                np.testing.assert_allclose(exp.attributions[i, r : r + 4, c : c + 4], drop, rtol=1e-4, atol=1e-4)
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -210,8 +210,16 @@ def test_grad_cam_pp_matches_paper_formula():
 
 
 def test_grad_cam_upsamples_a_coarse_layer():
-    net = nn.Sequential(nn.Conv2d(C, 4, 3, padding=1), nn.ReLU(), nn.MaxPool2d(4), nn.Conv2d(4, 4, 1),
-                        nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(4, K))
+    net = nn.Sequential(
+        nn.Conv2d(C, 4, 3, padding=1),
+        nn.ReLU(),
+        nn.MaxPool2d(4),
+        nn.Conv2d(4, 4, 1),
+        nn.ReLU(),
+        nn.AdaptiveAvgPool2d(1),
+        nn.Flatten(),
+        nn.Linear(4, K),
+    )
     model = handle(net)
     exp = explain("grad-cam", model, images(), TARGETS, layer="3")
     assert exp.attributions.shape == (4, H, W) and exp.attributions.dtype == np.float32
@@ -242,22 +250,29 @@ def test_wrappers_equal_direct_captum_calls():
     np.testing.assert_allclose(ours("gradient"), np.abs(sal).max(axis=1), rtol=1e-5, atol=1e-7)
     ixg = _direct(lambda a, b: InputXGradient(net).attribute(a, target=b), x, t)
     np.testing.assert_allclose(ours("input-x-gradient"), ixg.sum(axis=1), rtol=1e-5, atol=1e-7)
-    ig = _direct(lambda a, b: IntegratedGradients(net).attribute(a, baselines=a * 0, target=b, n_steps=64),
-                 x, t)
+    ig = _direct(lambda a, b: IntegratedGradients(net).attribute(a, baselines=a * 0, target=b, n_steps=64), x, t)
     np.testing.assert_allclose(ours("integrated-gradients"), ig.sum(axis=1), rtol=1e-4, atol=1e-6)
     gb = _direct(lambda a, b: GuidedBackprop(net).attribute(a, target=b), x, t)
     np.testing.assert_allclose(ours("guided-backprop"), np.abs(gb).max(axis=1), rtol=1e-5, atol=1e-7)
     dl = _direct(lambda a, b: DeepLift(net).attribute(a, baselines=a * 0, target=b), x, t)
     np.testing.assert_allclose(ours("deeplift"), dl.sum(axis=1), rtol=1e-4, atol=1e-6)
-    gc = _direct(lambda a, b: LayerAttribution.interpolate(
-        LayerGradCam(net, net.conv2).attribute(a, target=b, relu_attributions=True), (H, W), "bilinear"),
-        x, t)
+    gc = _direct(
+        lambda a, b: LayerAttribution.interpolate(
+            LayerGradCam(net, net.conv2).attribute(a, target=b, relu_attributions=True), (H, W), "bilinear"
+        ),
+        x,
+        t,
+    )
     np.testing.assert_allclose(ours("grad-cam", layer="conv2"), gc[:, 0], rtol=1e-5, atol=1e-7)
     with torch.random.fork_rng():
         torch.manual_seed(5)
-        sg = _direct(lambda a, b: NoiseTunnel(Saliency(net)).attribute(
-            a, nt_type="smoothgrad", nt_samples=8, stdevs=0.05, nt_samples_batch_size=16, target=b, abs=False),
-            x, t)
+        sg = _direct(
+            lambda a, b: NoiseTunnel(Saliency(net)).attribute(
+                a, nt_type="smoothgrad", nt_samples=8, stdevs=0.05, nt_samples_batch_size=16, target=b, abs=False
+            ),
+            x,
+            t,
+        )
     ours_sg = explain("smoothgrad", model, x, t, ExplainContext(seed=5, batch_size=64), n_samples=8).attributions
     np.testing.assert_allclose(ours_sg, np.abs(sg).max(axis=1), rtol=1e-5, atol=1e-7)
 
@@ -265,11 +280,16 @@ def test_wrappers_equal_direct_captum_calls():
         return torch.softmax(net(a).double(), dim=1).float()
 
     with torch.no_grad():
-        occ = _direct(lambda a, b: Occlusion(probs).attribute(a, sliding_window_shapes=(C, 4, 4),
-                                                              strides=(C, 2, 2), baselines=a * 0, target=b),
-                      x, t)
-    np.testing.assert_allclose(ours("occlusion", window=4, stride=2, baseline="zero"), occ.mean(axis=1),
-                               rtol=1e-4, atol=1e-6)
+        occ = _direct(
+            lambda a, b: Occlusion(probs).attribute(
+                a, sliding_window_shapes=(C, 4, 4), strides=(C, 2, 2), baselines=a * 0, target=b
+            ),
+            x,
+            t,
+        )
+    np.testing.assert_allclose(
+        ours("occlusion", window=4, stride=2, baseline="zero"), occ.mean(axis=1), rtol=1e-4, atol=1e-6
+    )
 
 
 def test_kernel_shap_equals_direct_captum_call():
@@ -278,8 +298,9 @@ def test_kernel_shap_equals_direct_captum_call():
     model = handle(net)
     x = images(2)
     t = TARGETS[:2]
-    ours = explain("kernel-shap", model, x, t, ExplainContext(seed=3), n_segments=12, n_samples=40,
-                   baseline="zero").attributions
+    ours = explain(
+        "kernel-shap", model, x, t, ExplainContext(seed=3), n_segments=12, n_samples=40, baseline="zero"
+    ).attributions
     for i in range(2):
         seg = superpixels(x[i], 12, 1.0)
         assert seg.shape == (H, W) and seg.min() == 0
@@ -287,8 +308,13 @@ def test_kernel_shap_equals_direct_captum_call():
         with torch.random.fork_rng():
             torch.manual_seed(int(np.random.SeedSequence([3, i]).generate_state(1)[0]))
             ref = KernelShap(lambda a: torch.softmax(net(a).double(), 1).float()).attribute(
-                torch.from_numpy(x[i:i + 1]), baselines=0.0, target=int(t[i]), feature_mask=mask,
-                n_samples=40, perturbations_per_eval=64)
+                torch.from_numpy(x[i : i + 1]),
+                baselines=0.0,
+                target=int(t[i]),
+                feature_mask=mask,
+                n_samples=40,
+                perturbations_per_eval=64,
+            )
         np.testing.assert_allclose(ours[i], ref[0].mean(dim=0).numpy(), rtol=1e-4, atol=1e-6)
         # each superpixel carries one value
         for s in np.unique(seg):
@@ -335,18 +361,29 @@ def black_box():
     return ModelHandle("callable", K, predict_fn=predict), predict
 
 
-@pytest.mark.parametrize("key,settings", [("occlusion", {"window": 4, "stride": 4}),
-                                          ("rise", {"n_masks": 64}),
-                                          ("kernel-shap", {"n_segments": 10, "n_samples": 30}),
-                                          ("random", {}), ("edges", {}), ("oracle", {})])
+@pytest.mark.parametrize(
+    "key,settings",
+    [
+        ("occlusion", {"window": 4, "stride": 4}),
+        ("rise", {"n_masks": 64}),
+        ("kernel-shap", {"n_segments": 10, "n_samples": 30}),
+        ("random", {}),
+        ("edges", {}),
+        ("oracle", {}),
+    ],
+)
 def test_black_box_explainers_run_on_a_plain_callable(key, settings):
     model, predict = black_box()
     x = images()
     masks = np.zeros((4, 2, H, W), bool)
     masks[:, 0, 2:5] = True
     masks[:, 1, 8:12, 8:12] = True
-    ctx = ExplainContext(masks=masks, mask_names=["road", "building"],
-                         driving_types={0: [], 1: ["road"], 2: ["road", "building"]}, batch_size=16)
+    ctx = ExplainContext(
+        masks=masks,
+        mask_names=["road", "building"],
+        driving_types={0: [], 1: ["road"], 2: ["road", "building"]},
+        batch_size=16,
+    )
     exp = explain(key, model, x, TARGETS, ctx, **settings)
     assert exp.attributions.shape == (4, H, W) and exp.attributions.dtype == np.float32
     assert np.isfinite(exp.attributions).all()
@@ -364,9 +401,9 @@ def test_black_box_occlusion_matches_probability_drop():
     x = images(2)
     exp = explain("occlusion", model, x, TARGETS[:2], window=8, stride=8, baseline="zero")
     for i in range(2):
-        occluded = x[i:i + 1].copy()
+        occluded = x[i : i + 1].copy()
         occluded[:, :, 8:, :8] = 0
-        drop = predict(x[i:i + 1])[0, TARGETS[i]] - predict(occluded)[0, TARGETS[i]]
+        drop = predict(x[i : i + 1])[0, TARGETS[i]] - predict(occluded)[0, TARGETS[i]]
         np.testing.assert_allclose(exp.attributions[i, 8:, :8], drop, rtol=1e-4, atol=1e-6)
 
 
@@ -391,8 +428,12 @@ def test_controls():
     masks = np.zeros((4, 2, H, W), bool)
     masks[:, 0, 2:5] = True
     masks[:, 1, 8:12, 8:12] = True
-    ctx = ExplainContext(seed=9, masks=masks, mask_names=["road", "building"],
-                         driving_types={0: [], 1: ["road"], 2: ["road", "building"]})
+    ctx = ExplainContext(
+        seed=9,
+        masks=masks,
+        mask_names=["road", "building"],
+        driving_types={0: [], 1: ["road"], 2: ["road", "building"]},
+    )
     # edges: Sobel magnitude (reference: scikit-image sobel), mean over bands; ignores the model
     ref = np.stack([np.mean([sobel(x[i, b].astype(np.float64)) for b in range(C)], axis=0) for i in range(4)])
     edges = explain("edges", model, x, TARGETS, ctx)
@@ -412,8 +453,13 @@ def test_controls():
     with pytest.raises(XbenchInputError, match="driving"):
         explain("oracle", model, x, TARGETS, ExplainContext(masks=masks, mask_names=["road", "building"]))
     with pytest.raises(XbenchInputError, match="unknown structure types"):
-        explain("oracle", model, x, TARGETS, ExplainContext(masks=masks, mask_names=["road", "building"],
-                                                            driving_types={1: ["field"]}))
+        explain(
+            "oracle",
+            model,
+            x,
+            TARGETS,
+            ExplainContext(masks=masks, mask_names=["road", "building"], driving_types={1: ["field"]}),
+        )
     with pytest.raises(XbenchInputError, match="masks"):
         explain("oracle", model, x, TARGETS)
 
@@ -423,8 +469,10 @@ def test_controls():
 # ---------------------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("key,settings", [("smoothgrad", {"n_samples": 4}), ("rise", {"n_masks": 32}),
-                                          ("kernel-shap", {"n_segments": 8, "n_samples": 20})])
+@pytest.mark.parametrize(
+    "key,settings",
+    [("smoothgrad", {"n_samples": 4}), ("rise", {"n_masks": 32}), ("kernel-shap", {"n_segments": 8, "n_samples": 20})],
+)
 def test_deterministic_for_a_seed_and_batch_independent(key, settings):
     model = handle(SmallNet())
     x = images()
@@ -456,9 +504,13 @@ def test_batching_does_not_change_gradient_maps_and_costs_are_counted():
 def test_every_pixel_explainer_gives_finite_float32_maps():
     model = handle(SmallNet())
     x = images()
-    fast = {"rise": {"n_masks": 16}, "kernel-shap": {"n_segments": 6, "n_samples": 12},
-            "integrated-gradients": {"n_steps": 4}, "smoothgrad": {"n_samples": 2},
-            "occlusion": {"window": 8, "stride": 8}}
+    fast = {
+        "rise": {"n_masks": 16},
+        "kernel-shap": {"n_segments": 6, "n_samples": 12},
+        "integrated-gradients": {"n_steps": 4},
+        "smoothgrad": {"n_samples": 2},
+        "occlusion": {"window": 8, "stride": 8},
+    }
     masks = np.zeros((4, 1, H, W), bool)
     masks[:, 0, 4:8] = True
     ctx = ExplainContext(masks=masks, mask_names=["road"], driving_types={1: ["road"]})

@@ -36,10 +36,10 @@ def planted(n: int, seed: int):
         kind = i % 3
         if kind == 1:
             r = rng.integers(1, H - 4)
-            masks[i, 0, r:r + 3] = True
+            masks[i, 0, r : r + 3] = True
         if kind == 2:
             r, c = rng.integers(1, H - 6, 2)
-            masks[i, 1, r:r + 5, c:c + 5] = True
+            masks[i, 1, r : r + 5, c : c + 5] = True
         labels[i] = kind
     x[:, 0][masks[:, 0]] = 0.9
     x[:, 1][masks[:, 1]] = 0.9
@@ -83,8 +83,15 @@ def test_activation_clusters_recover_planted_regions(width, n_clusters):
     model = ModelHandle("regions", 3, module=RegionNet(width).eval())
     fit_x, fit_m, fit_y = planted(30, seed=1)
     x, m, y = planted(12, seed=2)
-    ctx = ExplainContext(seed=0, fit_images=fit_x, fit_labels=fit_y, fit_masks=fit_m, masks=m,
-                         mask_names=["road", "building"], class_names=["none", "road", "building"])
+    ctx = ExplainContext(
+        seed=0,
+        fit_images=fit_x,
+        fit_labels=fit_y,
+        fit_masks=fit_m,
+        masks=m,
+        mask_names=["road", "building"],
+        class_names=["none", "road", "building"],
+    )
     exp = explain("activation-clusters", model, x, y, ctx, n_clusters=n_clusters, cluster_range=[2, 5])
     rep = exp.concepts
     assert rep.iou.max(axis=0).min() >= 0.9, rep.iou
@@ -92,8 +99,7 @@ def test_activation_clusters_recover_planted_regions(width, n_clusters):
     assert matched == {"road", "building"}
     k = rep.n_clusters
     assert rep.cluster_maps.shape == (12, H, W) and rep.score_changes.shape == (k, 12, 3)
-    assert set(rep.rows[0]) == {"concept", "class_name", "score", "spread", "p_value", "matched_type", "iou",
-                                "purity"}
+    assert set(rep.rows[0]) == {"concept", "class_name", "score", "spread", "p_value", "matched_type", "iou", "purity"}
     # the road cluster carries the road class, the building cluster the building class
     assert rep.type_importance["road"] > 0.2 and rep.type_importance["building"] > 0.2
     assert rep.flagged == {"road": True, "building": True}
@@ -156,18 +162,20 @@ class TinyUNet(nn.Module):
         return self.head(d.mean(dim=(2, 3)))
 
 
-@pytest.mark.parametrize("net,layer", [(TinyResidual, "relu_out"), (TinyResidual, "conv_b"),
-                                       (TinyUNet, "dec"), (TinyUNet, "bottom")])
+@pytest.mark.parametrize(
+    "net,layer", [(TinyResidual, "relu_out"), (TinyResidual, "conv_b"), (TinyUNet, "dec"), (TinyUNet, "bottom")]
+)
 def test_concept_explainers_run_on_residual_and_u_shaped_networks(net, layer):
     torch.manual_seed(0)
     model = ModelHandle("arch", 3, module=net().eval())
     fit_x, fit_m, fit_y = planted(12, seed=3)
     x, m, y = planted(6, seed=4)
     rng = np.random.default_rng(0)
-    sets = {"road": planted(9, seed=5)[0][1::3].repeat(2, axis=0),
-            **{f"random-{i}": rng.random((5, C, H, W)).astype(np.float32) * 0.2 for i in range(10)}}
-    ctx = ExplainContext(fit_images=fit_x, fit_masks=fit_m, mask_names=["road", "building"],
-                         concept_sets=sets)
+    sets = {
+        "road": planted(9, seed=5)[0][1::3].repeat(2, axis=0),
+        **{f"random-{i}": rng.random((5, C, H, W)).astype(np.float32) * 0.2 for i in range(10)},
+    }
+    ctx = ExplainContext(fit_images=fit_x, fit_masks=fit_m, mask_names=["road", "building"], concept_sets=sets)
     exp = explain("activation-clusters", model, x, y, ctx, layer=layer, n_clusters=3)
     assert exp.attributions.shape == (6, H, W) and np.isfinite(exp.attributions).all()
     assert exp.concepts.score_changes.shape[:2] == (3, 6)
@@ -182,8 +190,10 @@ def test_concept_explainers_run_on_the_zoo_models():
     x = np.repeat(np.repeat(x, 2, axis=2), 2, axis=3)  # 32 x 32
     m = np.repeat(np.repeat(m, 2, axis=2), 2, axis=3)
     rng = np.random.default_rng(0)
-    sets = {"road": x[1:2].repeat(4, axis=0),
-            **{f"random-{i}": rng.random((4, C, 32, 32)).astype(np.float32) * 0.2 for i in range(10)}}
+    sets = {
+        "road": x[1:2].repeat(4, axis=0),
+        **{f"random-{i}": rng.random((4, C, 32, 32)).astype(np.float32) * 0.2 for i in range(10)},
+    }
     ctx = ExplainContext(fit_images=x, fit_masks=m, mask_names=["road", "building"], concept_sets=sets)
     for kind in ("cnn", "resnet", "bottleneck"):
         torch.manual_seed(0)
@@ -236,8 +246,9 @@ def test_tcav_random_versus_random_concepts_are_not_significant():
         sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(10)}
         sets["noise"] = rng.random((10, C, H, W), dtype=np.float32)
         x = rng.random((12, C, H, W), dtype=np.float32)
-        rep = explain("tcav", model, x, np.ones(12, int), ExplainContext(seed=trial, concept_sets=sets),
-                      layer="feat").concepts
+        rep = explain(
+            "tcav", model, x, np.ones(12, int), ExplainContext(seed=trial, concept_sets=sets), layer="feat"
+        ).concepts
         significant += rep.rows[0]["p_value"] < 0.05
     assert significant <= 0.1 * trials, significant
 
@@ -251,14 +262,18 @@ def test_tcav_detects_a_concept_the_model_uses():
     concept = rng.random((20, C, H, W), dtype=np.float32)
     for i in range(20):
         r = rng.integers(0, H - 4)
-        concept[i, 0, r:r + 3] += 1.0
+        concept[i, 0, r : r + 3] += 1.0
     other = rng.random((20, C, H, W), dtype=np.float32)
     other[:, 2] += 0.5
-    sets = {"band0-lines": concept, "band2-wash": other,
-            **{f"random-{i}": rng.random((20, C, H, W), dtype=np.float32) for i in range(10)}}
+    sets = {
+        "band0-lines": concept,
+        "band2-wash": other,
+        **{f"random-{i}": rng.random((20, C, H, W), dtype=np.float32) for i in range(10)},
+    }
     x = rng.random((16, C, H, W), dtype=np.float32)
-    exp = explain("tcav", model, x, np.ones(16, int), ExplainContext(concept_sets=sets, class_names=["a", "b"]),
-                  layer="feat")
+    exp = explain(
+        "tcav", model, x, np.ones(16, int), ExplainContext(concept_sets=sets, class_names=["a", "b"]), layer="feat"
+    )
     rep = exp.concepts
     row = next(r for r in rep.rows if r["concept"] == "band0-lines")
     assert row["score"] > 0.8 and row["class_name"] == "b" and row["matched_type"] == "band0-lines"

@@ -29,9 +29,24 @@ from xbench.explainers import (
 from xbench.models.base import ModelHandle
 
 C, H, W, K = 3, 8, 8, 3
-BUILTIN = ["gradient", "input-x-gradient", "integrated-gradients", "smoothgrad", "guided-backprop", "deeplift",
-           "grad-cam", "grad-cam-pp", "occlusion", "rise", "kernel-shap", "activation-clusters", "tcav",
-           "random", "edges", "oracle"]
+BUILTIN = [
+    "gradient",
+    "input-x-gradient",
+    "integrated-gradients",
+    "smoothgrad",
+    "guided-backprop",
+    "deeplift",
+    "grad-cam",
+    "grad-cam-pp",
+    "occlusion",
+    "rise",
+    "kernel-shap",
+    "activation-clusters",
+    "tcav",
+    "random",
+    "edges",
+    "oracle",
+]
 
 
 # Tiny models run fastest on one torch thread (fixture in conftest.py).
@@ -144,8 +159,14 @@ def test_unknown_and_bad_settings():
     with pytest.raises(XbenchInputError, match="twins"):
         explain("integrated-gradients", model(), images(), np.zeros(3, int), baseline="twin")
     with pytest.raises(XbenchInputError, match="shape differs"):
-        explain("integrated-gradients", model(), images(), np.zeros(3, int),
-                ExplainContext(twins=images(2)), baseline="twin")
+        explain(
+            "integrated-gradients",
+            model(),
+            images(),
+            np.zeros(3, int),
+            ExplainContext(twins=images(2)),
+            baseline="twin",
+        )
     with pytest.raises(XbenchInputError, match="n_masks"):
         explain("rise", model(), images(), np.zeros(3, int), n_masks=0)
     with pytest.raises(XbenchInputError, match="batch_size"):
@@ -153,8 +174,13 @@ def test_unknown_and_bad_settings():
     with pytest.raises(XbenchInputError, match="fitting set"):
         explain("activation-clusters", model(), images(), np.zeros(3, int))
     with pytest.raises(XbenchInputError, match="wrong dtype"):
-        explain("oracle", model(), images(), np.zeros(3, int),
-                ExplainContext(masks=np.zeros((3, 1, H, W)), mask_names=["road"], driving_types={}))
+        explain(
+            "oracle",
+            model(),
+            images(),
+            np.zeros(3, int),
+            ExplainContext(masks=np.zeros((3, 1, H, W)), mask_names=["road"], driving_types={}),
+        )
 
 
 def test_non_finite_attributions_are_reported_with_explainer_and_tile():
@@ -180,8 +206,7 @@ def test_non_finite_attributions_from_a_model_are_not_zeroed():
             return super().forward(x) * torch.exp(x.sum() * 1e4)
 
     with pytest.raises(NonFiniteAttributionError, match="'gradient'"):
-        explain("gradient", ModelHandle("exploding", K, module=Exploding().eval()), images(),
-                np.zeros(3, int))
+        explain("gradient", ModelHandle("exploding", K, module=Exploding().eval()), images(), np.zeros(3, int))
 
 
 def test_wrong_output_shape_from_an_explainer():
@@ -210,8 +235,13 @@ def test_context_is_not_modified_and_empty_input_works():
 
 
 def test_plugin_by_decorator():
-    @register_explainer("center-bias", citation="Plugin author. A centre prior. 2024.", needs=set(),
-                        defaults={"sigma": 2.0}, description="a Gaussian bump in the middle of the tile")
+    @register_explainer(
+        "center-bias",
+        citation="Plugin author. A centre prior. 2024.",
+        needs=set(),
+        defaults={"sigma": 2.0},
+        description="a Gaussian bump in the middle of the tile",
+    )
     def center_bias(model, images, targets, context, *, sigma):
         h, w = images.shape[2:]
         yy, xx = np.mgrid[:h, :w]
@@ -240,15 +270,18 @@ def test_plugins_by_entry_point(tmp_path, monkeypatch):
     pkg = tmp_path / "acme_xai"
     pkg.mkdir()
     (pkg / "__init__.py").write_text("")
-    (pkg / "module_plugin.py").write_text(textwrap.dedent('''
+    (pkg / "module_plugin.py").write_text(
+        textwrap.dedent("""
         import numpy as np
         from xbench.explainers import register_explainer
 
         @register_explainer("acme-flat", citation="Acme. Flat maps. 2024.", needs=set(), defaults={})
         def flat(model, images, targets, context):
             return np.ones((images.shape[0],) + images.shape[2:], dtype=np.float32)
-    '''))
-    (pkg / "hook_plugin.py").write_text(textwrap.dedent('''
+    """)
+    )
+    (pkg / "hook_plugin.py").write_text(
+        textwrap.dedent("""
         import numpy as np
         from xbench.explainers import register_explainer
 
@@ -256,15 +289,18 @@ def test_plugins_by_entry_point(tmp_path, monkeypatch):
             @register_explainer("acme-grad", citation="Acme. 2024.", needs={"gradients"}, defaults={"k": 1})
             def grad(model, images, targets, context, *, k):
                 return np.full((images.shape[0],) + images.shape[2:], float(k), dtype=np.float32)
-    '''))
+    """)
+    )
     (pkg / "broken_plugin.py").write_text("raise RuntimeError('acme is broken')\n")
     monkeypatch.syspath_prepend(str(tmp_path))
     group = registry.ENTRY_POINT_GROUP
-    eps = importlib.metadata.EntryPoints([
-        importlib.metadata.EntryPoint("acme-flat", "acme_xai.module_plugin", group),
-        importlib.metadata.EntryPoint("acme-grad", "acme_xai.hook_plugin:register", group),
-        importlib.metadata.EntryPoint("acme-broken", "acme_xai.broken_plugin", group),
-    ])
+    eps = importlib.metadata.EntryPoints(
+        [
+            importlib.metadata.EntryPoint("acme-flat", "acme_xai.module_plugin", group),
+            importlib.metadata.EntryPoint("acme-grad", "acme_xai.hook_plugin:register", group),
+            importlib.metadata.EntryPoint("acme-broken", "acme_xai.broken_plugin", group),
+        ]
+    )
 
     def fake_entry_points(**kwargs):
         assert kwargs == {"group": group}

@@ -19,16 +19,8 @@ from torch import nn
 
 from xbench.errors import XbenchInputError
 from xbench.metrics import METRIC_KEYS, MetricInputs, compute_metric, get_metric, list_metrics
-from xbench.metrics.concentration import gini_sparseness, normalised_entropy
-from xbench.metrics.faithfulness import (
-    aopc,
-    curve_auc,
-    make_baseline,
-    perturbation_curves,
-    perturbation_curves_loop,
-    pixel_order,
-)
-from xbench.metrics.localization import (
+from xbench.metrics.model_dependence import spearman_rows, ssim_rows
+from xbench.metrics.overlap import (
     mask_ap,
     mask_auroc,
     mass_accuracy,
@@ -36,14 +28,40 @@ from xbench.metrics.localization import (
     rank_accuracy,
     topk_iou,
 )
-from xbench.metrics.sanity import spearman_rows, ssim_rows
+from xbench.metrics.response import (
+    aopc,
+    curve_auc,
+    make_baseline,
+    perturbation_curves,
+    perturbation_curves_loop,
+    pixel_order,
+)
+from xbench.metrics.spread import gini_index, normalised_entropy
 from xbench.models.base import ModelHandle
 
 EXPECTED_KEYS = [
-    "mass-accuracy", "rank-accuracy", "pointing-game", "mask-auroc", "mask-ap", "topk-iou", "deletion-auc",
-    "insertion-auc", "aopc-morf", "aopc-lerf", "faithfulness-corr", "randomization-spearman",
-    "randomization-ssim", "max-sensitivity", "infidelity", "sparseness", "entropy", "concept-agreement",
-    "concept-detection", "concept-false-alarm", "model-calls", "seconds",
+    "mass-accuracy",
+    "rank-accuracy",
+    "pointing-game",
+    "mask-auroc",
+    "mask-ap",
+    "topk-iou",
+    "deletion-auc",
+    "insertion-auc",
+    "aopc-morf",
+    "aopc-lerf",
+    "subset-drop-corr",
+    "randomization-spearman",
+    "randomization-ssim",
+    "max-sensitivity",
+    "infidelity",
+    "gini",
+    "entropy",
+    "concept-agreement",
+    "concept-detection",
+    "concept-false-alarm",
+    "model-calls",
+    "seconds",
 ]
 
 
@@ -77,10 +95,16 @@ def full_inputs(n=4, h=10, w=10, seed=0, **over):
     images = rng.random((n, 3, h, w)).astype(np.float32)
     planted = np.zeros((n, h, w), dtype=bool)
     planted[:, 2:5, 3:7] = True
-    kw = dict(attributions=rng.normal(size=(n, h, w)).astype(np.float32), images=images,
-              targets=rng.integers(0, 2, n), model=tiny_handle(), planted=planted, verified=planted.copy(),
-              twins=(images * 0.5).astype(np.float32),
-              explain_fn=lambda model, im, t: np.asarray(im).mean(axis=1) ** 2)
+    kw = dict(
+        attributions=rng.normal(size=(n, h, w)).astype(np.float32),
+        images=images,
+        targets=rng.integers(0, 2, n),
+        model=tiny_handle(),
+        planted=planted,
+        verified=planted.copy(),
+        twins=(images * 0.5).astype(np.float32),
+        rerun_explainer=lambda model, im, t: np.asarray(im).mean(axis=1) ** 2,
+    )
     kw.update(over)
     return MetricInputs(**kw)
 
@@ -140,13 +164,13 @@ def test_localization_hand_values():
     assert topk_iou(a, m, fraction=0.125)[0] == pytest.approx(1 / 3)
 
 
-def test_sparseness_and_entropy_hand_values():
+def test_gini_and_entropy_hand_values():
     one_hot = np.zeros((1, 5, 5))
     one_hot[0, 2, 2] = -4.0
     flat = np.full((1, 5, 5), 0.3)
     # Gini (Hurley & Rickard; Chalasani et al. 2020): 1 - 1/n for one non-zero entry, 0 for a uniform map.
-    assert gini_sparseness(one_hot)[0] == pytest.approx(1 - 1 / 25)
-    assert gini_sparseness(flat)[0] == pytest.approx(0.0, abs=1e-12)
+    assert gini_index(one_hot)[0] == pytest.approx(1 - 1 / 25)
+    assert gini_index(flat)[0] == pytest.approx(0.0, abs=1e-12)
     assert normalised_entropy(one_hot)[0] == pytest.approx(0.0)
     assert normalised_entropy(flat)[0] == pytest.approx(1.0)
 
@@ -205,8 +229,9 @@ def test_repeated_steps_are_not_rescored_and_curves_stay_exact():
         for mode in ("deletion", "insertion"):
             with handle.counting() as calls:
                 fast = perturbation_curves(handle.probabilities, x, t, twin, order, 12, mode)
-            np.testing.assert_allclose(fast, perturbation_curves_loop(handle.probabilities, x, t, twin, order, 12,
-                                                                      mode), atol=1e-6)
+            np.testing.assert_allclose(
+                fast, perturbation_curves_loop(handle.probabilities, x, t, twin, order, 12, mode), atol=1e-6
+            )
             if saves:  # the region enters within the first step: steps 2..12 repeat step 1
                 assert calls.forward == 3 * 2
 
@@ -268,7 +293,7 @@ def test_unknown_key_and_setting_errors_list_the_valid_ones():
     with pytest.raises(XbenchInputError, match="baseline"):
         compute_metric("deletion-auc", inputs, baseline="grey")
     with pytest.raises(XbenchInputError, match="attributions"):
-        compute_metric("sparseness", MetricInputs(np.zeros((2, 3)), np.zeros((2, 1, 3, 3)), np.zeros(2, int)))
+        compute_metric("gini", MetricInputs(np.zeros((2, 3)), np.zeros((2, 1, 3, 3)), np.zeros(2, int)))
 
 
 def test_localization_reports_planted_and_verified_separately():
@@ -280,28 +305,27 @@ def test_localization_reports_planted_and_verified_separately():
     assert -1 in res[1].reasons
 
 
-@pytest.mark.parametrize("key", ["deletion-auc", "insertion-auc", "aopc-morf", "aopc-lerf",
-                                 "faithfulness-corr"])
+@pytest.mark.parametrize("key", ["deletion-auc", "insertion-auc", "aopc-morf", "aopc-lerf", "subset-drop-corr"])
 def test_faithfulness_without_twins_skips_with_a_reason_and_other_baselines_run(key):
     inputs = full_inputs(twins=None)
     (res,) = compute_metric(key, inputs)
     assert res.skipped and "twins" in res.skipped and np.isnan(res.values).all()
-    extra = {"runs": 5} if key == "faithfulness-corr" else {}
+    extra = {"runs": 5} if key == "subset-drop-corr" else {}
     (res,) = compute_metric(key, inputs, baseline="mean", **extra)
     assert res.skipped is None and np.isfinite(res.values).all()
 
 
 def test_missing_needs_skip_with_reasons():
     black_box = ModelHandle("bb", 2, predict_fn=lambda x: np.tile([0.3, 0.7], (len(x), 1)))
-    inputs = full_inputs(model=black_box, explain_fn=None, cost=None)
+    inputs = full_inputs(model=black_box, rerun_explainer=None, cost=None)
     for key in ("randomization-spearman", "randomization-ssim"):
         (res,) = compute_metric(key, inputs)
         assert res.skipped and "torch model" in res.skipped
     inputs.model = tiny_handle()
     (res,) = compute_metric("randomization-ssim", inputs)
-    assert res.skipped and "explain_fn" in res.skipped
+    assert res.skipped and "rerun_explainer" in res.skipped
     (res,) = compute_metric("max-sensitivity", inputs)
-    assert res.skipped and "explain_fn" in res.skipped
+    assert res.skipped and "rerun_explainer" in res.skipped
     for key in ("model-calls", "seconds"):
         (res,) = compute_metric(key, inputs)
         assert res.skipped and "cost" in res.skipped and res.values.shape == (1,)
@@ -311,8 +335,7 @@ def test_missing_needs_skip_with_reasons():
 
 
 def test_black_box_models_run_the_perturbation_metrics():
-    black_box = ModelHandle("bb", 2,
-                            predict_fn=lambda x: np.stack([x.mean((1, 2, 3)), 1 - x.mean((1, 2, 3))], 1))
+    black_box = ModelHandle("bb", 2, predict_fn=lambda x: np.stack([x.mean((1, 2, 3)), 1 - x.mean((1, 2, 3))], 1))
     inputs = full_inputs(model=black_box)
     for key in ("deletion-auc", "insertion-auc", "infidelity"):
         (res,) = compute_metric(key, inputs)
@@ -330,8 +353,8 @@ def test_cost_per_tile():
 
 
 def test_same_seed_same_values():
-    a = compute_metric("faithfulness-corr", full_inputs(seed=5), runs=6)[0].values
-    b = compute_metric("faithfulness-corr", full_inputs(seed=5), runs=6)[0].values
+    a = compute_metric("subset-drop-corr", full_inputs(seed=5), runs=6)[0].values
+    b = compute_metric("subset-drop-corr", full_inputs(seed=5), runs=6)[0].values
     np.testing.assert_array_equal(a, b)
 
 
@@ -343,19 +366,26 @@ def concept_inputs(attributions, **over):
     masks[:, 1, 5:8, 5:8] = True  # clearing
     masks[:, 2, 0:2, 6:9] = True  # river (look-alike)
     masks[:, 3, 7:9, 0:2] = True  # outcrop
-    kw = dict(attributions=attributions, images=np.zeros((n, 3, h, w), np.float32), targets=np.zeros(n, int),
-              type_masks=masks, mask_names=["road", "clearing", "river", "outcrop"],
-              type_importance={"road": 0.5, "clearing": 0.2, "river": 0.01, "outcrop": -0.05},
-              relied_types=["road", "clearing"], lookalike_types=["river"], unused_types=["outcrop"])
+    kw = dict(
+        attributions=attributions,
+        images=np.zeros((n, 3, h, w), np.float32),
+        targets=np.zeros(n, int),
+        type_masks=masks,
+        mask_names=["road", "clearing", "river", "outcrop"],
+        type_importance={"road": 0.5, "clearing": 0.2, "river": 0.01, "outcrop": -0.05},
+        relied_types=["road", "clearing"],
+        lookalike_types=["river"],
+        unused_types=["outcrop"],
+    )
     kw.update(over)
     return MetricInputs(**kw)
 
 
 def test_concept_metrics_for_a_pixel_method():
     a = np.zeros((3, 10, 10), np.float32)
-    a[:, 0:3, 0:3] = 5.0   # strongest on road
-    a[:, 5:8, 5:8] = 2.0   # then clearing
-    a[:, 0:2, 6:9] = 0.2   # a little on the river
+    a[:, 0:3, 0:3] = 5.0  # strongest on road
+    a[:, 5:8, 5:8] = 2.0  # then clearing
+    a[:, 0:2, 6:9] = 0.2  # a little on the river
     a[:, 7:9, 0:2] = -0.5  # negative on the outcrop
     inputs = concept_inputs(a)
     # same order of importance per type as the interventions: Spearman 1 (scipy.stats.spearmanr definition)
@@ -368,35 +398,49 @@ def test_concept_metrics_for_a_pixel_method():
 
 
 def test_concept_metrics_for_a_concept_method_and_missing_pieces():
-    report = SimpleNamespace(type_importance={"road": 0.1, "clearing": 0.3, "river": 0.0, "outcrop": 0.2},
-                             flagged={"road": True, "clearing": False, "river": True})
-    inputs = concept_inputs(np.zeros((2, 10, 10), np.float32), concept_report=report, type_masks=None,
-                            mask_names=None)
+    report = SimpleNamespace(
+        type_importance={"road": 0.1, "clearing": 0.3, "river": 0.0, "outcrop": 0.2},
+        flagged={"road": True, "clearing": False, "river": True},
+    )
+    inputs = concept_inputs(np.zeros((2, 10, 10), np.float32), concept_report=report, type_masks=None, mask_names=None)
     rho = compute_metric("concept-agreement", inputs)[0].values[0]
     types = ["road", "clearing", "river", "outcrop"]
     # reference: scipy.stats.spearmanr across types
-    assert rho == pytest.approx(spearmanr([report.type_importance[t] for t in types],
-                                          [inputs.type_importance[t] for t in types]).statistic)
+    assert rho == pytest.approx(
+        spearmanr([report.type_importance[t] for t in types], [inputs.type_importance[t] for t in types]).statistic
+    )
     assert compute_metric("concept-detection", inputs)[0].values[0] == 0.5
     # outcrop is not in the report: only river is assessed
     assert compute_metric("concept-false-alarm", inputs)[0].values[0] == 1.0
-    bare = concept_inputs(np.ones((2, 10, 10), np.float32), type_masks=None, mask_names=None,
-                          type_importance=None, relied_types=None, lookalike_types=None, unused_types=None)
+    bare = concept_inputs(
+        np.ones((2, 10, 10), np.float32),
+        type_masks=None,
+        mask_names=None,
+        type_importance=None,
+        relied_types=None,
+        lookalike_types=None,
+        unused_types=None,
+    )
     for key in ("concept-agreement", "concept-detection", "concept-false-alarm"):
         (res,) = compute_metric(key, bare)
         assert np.isnan(res.values[0]) and res.reasons[-1].startswith("needs")
 
 
 # -- degenerate inputs ---------------------------------------------------------------------------------
-ARRAY_ONLY = ["mass-accuracy", "rank-accuracy", "pointing-game", "mask-auroc", "mask-ap", "topk-iou",
-              "sparseness", "entropy"]
+ARRAY_ONLY = ["mass-accuracy", "rank-accuracy", "pointing-game", "mask-auroc", "mask-ap", "topk-iou", "gini", "entropy"]
 
 
 def _all_results(inputs, fast=True):
     out = {}
-    small = {"deletion-auc": {"steps": 4}, "insertion-auc": {"steps": 4}, "aopc-morf": {"steps": 4},
-             "aopc-lerf": {"steps": 4}, "faithfulness-corr": {"runs": 4}, "max-sensitivity": {"samples": 2},
-             "infidelity": {"samples": 3}}
+    small = {
+        "deletion-auc": {"steps": 4},
+        "insertion-auc": {"steps": 4},
+        "aopc-morf": {"steps": 4},
+        "aopc-lerf": {"steps": 4},
+        "subset-drop-corr": {"runs": 4},
+        "max-sensitivity": {"samples": 2},
+        "infidelity": {"samples": 3},
+    }
     for key in METRIC_KEYS:
         out[key] = compute_metric(key, inputs, **(small.get(key, {}) if fast else {}))
     return out
@@ -414,23 +458,34 @@ def _assert_no_silent_values(results):
 def test_degenerate_inputs_give_values_or_reasons_never_crashes():
     n, h, w = 4, 10, 10
     a = np.zeros((n, h, w), np.float32)
-    a[1] = 0.7                      # constant
-    a[2] = np.nan                   # NaN
-    a[3, 4, 4] = 1.0                # ordinary, one hot
+    a[1] = 0.7  # constant
+    a[2] = np.nan  # NaN
+    a[3, 4, 4] = 1.0  # ordinary, one hot
     planted = np.zeros((n, h, w), bool)
     planted[:, 4:6, 4:6] = True
-    planted[3] = False              # empty mask on tile 3
+    planted[3] = False  # empty mask on tile 3
     verified = np.ones((n, h, w), bool)  # whole-tile mask
-    inputs = full_inputs(n=n, h=h, w=w, attributions=a, planted=planted, verified=verified,
-                         cost=SimpleNamespace(forward_calls=0, backward_calls=0, seconds=0.0),
-                         type_masks=planted[:, None], mask_names=["road"], type_importance={"road": 0.3},
-                         relied_types=["road"], lookalike_types=[], unused_types=[])
+    inputs = full_inputs(
+        n=n,
+        h=h,
+        w=w,
+        attributions=a,
+        planted=planted,
+        verified=verified,
+        cost=SimpleNamespace(forward_calls=0, backward_calls=0, seconds=0.0),
+        type_masks=planted[:, None],
+        mask_names=["road"],
+        type_importance={"road": 0.3},
+        relied_types=["road"],
+        lookalike_types=[],
+        unused_types=[],
+    )
     res = _all_results(inputs)
     _assert_no_silent_values(res)
     ma = {r.truth: r for r in res["mass-accuracy"]}
     # zeros: no positive mass -> NaN with a reason, not a silent 0
     assert np.isnan(ma["planted"].values[0]) and "positive" in ma["planted"].reasons[0]
-    assert ma["planted"].values[1] == pytest.approx(0.04)   # constant: area share 4/100
+    assert ma["planted"].values[1] == pytest.approx(0.04)  # constant: area share 4/100
     assert np.isnan(ma["planted"].values[2]) and "non-finite" in ma["planted"].reasons[2]
     assert np.isnan(ma["planted"].values[3]) and "empty" in ma["planted"].reasons[3]
     auc = {r.truth: r for r in res["mask-auroc"]}
@@ -438,13 +493,13 @@ def test_degenerate_inputs_give_values_or_reasons_never_crashes():
     assert np.isnan(auc["verified"].values).all() and "whole tile" in auc["verified"].reasons[0]
     rank = {r.truth: r for r in res["rank-accuracy"]}["planted"]
     assert rank.values[1] == pytest.approx(0.04)  # ties split fractionally: chance level
-    assert res["sparseness"][0].values[1] == pytest.approx(0.0, abs=1e-12)
-    assert np.isnan(res["sparseness"][0].values[0])
+    assert res["gini"][0].values[1] == pytest.approx(0.0, abs=1e-12)
+    assert np.isnan(res["gini"][0].values[0])
     assert res["entropy"][0].values[1] == pytest.approx(1.0)
     for key in ("deletion-auc", "insertion-auc", "aopc-morf", "aopc-lerf", "infidelity"):
         v = res[key][0].values
         assert np.isfinite(v[[0, 1, 3]]).all() and np.isnan(v[2]), key
-    fc = res["faithfulness-corr"][0]
+    fc = res["subset-drop-corr"][0]
     assert np.isnan(fc.values[1]) and "constant" in fc.reasons[1]
     rs = res["randomization-spearman"][0]
     assert np.isnan(rs.values[0]) and "zero everywhere" in rs.reasons[0]

@@ -16,8 +16,8 @@ from scipy import ndimage
 from torch import nn
 
 from xbench.metrics import MetricInputs, compute_metric
-from xbench.metrics.sanity import parametrised_layers
-from xbench.metrics.stability import infidelity_perturbations, sensitivity_perturbations
+from xbench.metrics.model_dependence import parametrised_layers
+from xbench.metrics.steadiness import infidelity_perturbations, sensitivity_perturbations
 from xbench.models.base import ModelHandle
 
 H = W = 16
@@ -47,7 +47,7 @@ def make_tiles(n: int, seed: int):
     images = twins.copy()
     for i in np.flatnonzero(labels):
         r, c = rng.integers(0, H - 4, 2)
-        masks[i, r:r + 4, c:c + 4] = True
+        masks[i, r : r + 4, c : c + 4] = True
         images[i, 0][masks[i]] += 0.45
         images[i, 1][masks[i]] -= 0.1
     return images, labels, masks, twins
@@ -96,8 +96,9 @@ def test_oracle_deletes_faster_and_inserts_faster_than_random(trained):
     results = {}
     for name, attr in (("oracle", oracle), ("random", random)):
         inputs = MetricInputs(attr, images, np.ones(n, int), model=handle, twins=twins, planted=masks, seed=3)
-        results[name] = {k: compute_metric(k, inputs, steps=16)[0].values
-                         for k in ("deletion-auc", "insertion-auc", "aopc-morf")}
+        results[name] = {
+            k: compute_metric(k, inputs, steps=16)[0].values for k in ("deletion-auc", "insertion-auc", "aopc-morf")
+        }
         results[name]["mass"] = compute_metric("mass-accuracy", inputs)[0].values
     # Petsiuk et al. 2018: a faithful map deletes faster (lower AUC) and inserts faster (higher AUC).
     assert results["oracle"]["deletion-auc"].mean() + 0.2 < results["random"]["deletion-auc"].mean()
@@ -119,11 +120,16 @@ def test_max_sensitivity_agrees_with_captum(fresh):
     handle, images = fresh
     images, n, samples, radius, seed = images[:5], 5, 4, 0.05, 11
     targets = np.ones(n, int)
-    inputs = MetricInputs(_input_gradient(handle, images, targets), images, targets, model=handle,
-                          explain_fn=_input_gradient, seed=seed)
+    inputs = MetricInputs(
+        _input_gradient(handle, images, targets),
+        images,
+        targets,
+        model=handle,
+        rerun_explainer=_input_gradient,
+        seed=seed,
+    )
     ours = compute_metric("max-sensitivity", inputs, samples=samples, radius=radius)[0].values
-    noise = np.concatenate([sensitivity_perturbations(seed, i, images.shape[1:], samples, radius)
-                            for i in range(n)])
+    noise = np.concatenate([sensitivity_perturbations(seed, i, images.shape[1:], samples, radius) for i in range(n)])
 
     def perturb(x, r):  # captum repeats each tile `samples` times (repeat_interleave): same layout as ours
         return x + torch.from_numpy(noise)
@@ -134,8 +140,13 @@ def test_max_sensitivity_agrees_with_captum(fresh):
         return torch.from_numpy(_input_gradient(handle, x.detach().numpy(), target.numpy()))
 
     # reference: captum.metrics.sensitivity_max on the same perturbations (Yeh et al. 2019)
-    ref = captum_sensitivity_max(explain, torch.from_numpy(images), perturb_func=perturb,
-                                 n_perturb_samples=samples, target=torch.from_numpy(targets)).numpy()
+    ref = captum_sensitivity_max(
+        explain,
+        torch.from_numpy(images),
+        perturb_func=perturb,
+        n_perturb_samples=samples,
+        target=torch.from_numpy(targets),
+    ).numpy()
     np.testing.assert_allclose(ours, ref, rtol=1e-4, atol=1e-7)
     assert np.all(ours > 0)
 
@@ -163,9 +174,15 @@ def test_infidelity_agrees_with_captum(fresh, normalize):
     # so that the dot product with a band-shared perturbation is the same as ours.
     spread = torch.from_numpy(np.repeat(attr[:, None] / c, c, axis=1))
     # reference: captum.metrics.infidelity on the same perturbations (Yeh et al. 2019)
-    ref = captum_infidelity(forward, perturb, torch.from_numpy(images), spread,
-                            target=torch.from_numpy(targets), n_perturb_samples=samples,
-                            normalize=normalize).numpy()
+    ref = captum_infidelity(
+        forward,
+        perturb,
+        torch.from_numpy(images),
+        spread,
+        target=torch.from_numpy(targets),
+        n_perturb_samples=samples,
+        normalize=normalize,
+    ).numpy()
     assert np.all(ref > 1e-9)  # not a vacuous comparison
     np.testing.assert_allclose(ours, ref, rtol=1e-3, atol=0)
 
@@ -175,8 +192,9 @@ def test_cascading_randomization(trained):
     images = images[:6]
     targets = np.ones(6, int)
     state = {k: v.clone() for k, v in handle.module.state_dict().items()}
-    inputs = MetricInputs(_input_gradient(handle, images, targets), images, targets, model=handle,
-                          explain_fn=_input_gradient, seed=2)
+    inputs = MetricInputs(
+        _input_gradient(handle, images, targets), images, targets, model=handle, rerun_explainer=_input_gradient, seed=2
+    )
     with handle.counting() as calls:
         (sp,) = compute_metric("randomization-spearman", inputs)
         (ss,) = compute_metric("randomization-ssim", inputs)
@@ -199,7 +217,7 @@ def test_cascading_randomization(trained):
         g = np.asarray(ims).mean(axis=1)
         return np.hypot(ndimage.sobel(g, axis=1), ndimage.sobel(g, axis=2))
 
-    inputs = MetricInputs(edges(None, images, None), images, targets, model=handle, explain_fn=edges)
+    inputs = MetricInputs(edges(None, images, None), images, targets, model=handle, rerun_explainer=edges)
     (sp,) = compute_metric("randomization-spearman", inputs)
     (ss,) = compute_metric("randomization-ssim", inputs)
     np.testing.assert_allclose(sp.curves["randomization-spearman"], 1.0)

@@ -104,8 +104,7 @@ def test_cache_entry_written_atomically(trained_small) -> None:
     assert state_dict_hash(state) == trained_small.trained.weights_hash
 
 
-def test_retrained_weights_identical_and_damaged_entry_replaced(trained_small, tmp_path: Path,
-                                                                monkeypatch) -> None:
+def test_retrained_weights_identical_and_damaged_entry_replaced(trained_small, tmp_path: Path, monkeypatch) -> None:
     """Training again from scratch with the same seed gives bit-identical weights; a damaged cache
     entry is not trusted but retrained and overwritten."""
     import shutil
@@ -174,8 +173,7 @@ def weights_file(tmp_path: Path) -> Path:
 
 def test_load_user_model(weights_file: Path) -> None:
     with pytest.warns(UserWarning, match="training mode"):
-        handle = load_user_torch_model(FACTORY, weights_file, 2, name="mine",
-                                       probe=np.zeros((2, 6, 8, 8), np.float32))
+        handle = load_user_torch_model(FACTORY, weights_file, 2, name="mine", probe=np.zeros((2, 6, 8, 8), np.float32))
     assert handle.name == "mine" and not handle.module.training
     ref = make_user_net().eval()
     x = np.random.default_rng(0).random((3, 6, 8, 8), dtype=np.float32)
@@ -183,12 +181,15 @@ def test_load_user_model(weights_file: Path) -> None:
     np.testing.assert_allclose(handle.probabilities(x), expected, atol=1e-6)
 
 
-@pytest.mark.parametrize("spec,needle", [
-    ("no_colon_here", "no_colon_here"),
-    ("no_such_module_xyz:f", "no_such_module_xyz"),
-    ("test_models:missing_factory", "missing_factory"),
-    ("test_models:make_not_a_module", "torch module"),
-])
+@pytest.mark.parametrize(
+    "spec,needle",
+    [
+        ("no_colon_here", "no_colon_here"),
+        ("no_such_module_xyz:f", "no_such_module_xyz"),
+        ("test_models:missing_factory", "missing_factory"),
+        ("test_models:make_not_a_module", "torch module"),
+    ],
+)
 def test_bad_factory_named(spec: str, needle: str, weights_file: Path) -> None:
     with pytest.raises(XbenchInputError) as exc:
         load_user_torch_model(spec, weights_file, 2)
@@ -253,23 +254,33 @@ def test_wrong_output_shape_of_torch_model(weights_file: Path) -> None:
 
 def _pack_arrays(n: int = 4) -> dict[str, np.ndarray]:
     rng = np.random.default_rng(0)
-    return {"images": rng.random((n, 6, 8, 8), dtype=np.float32), "labels": np.zeros(n, np.int64),
-            "class_names": np.array(["intact", "road"]),
-            "band_names": np.array(["blue", "green", "red", "nir", "swir1", "swir2"]),
-            "masks": np.zeros((n, 1, 8, 8), bool), "mask_names": np.array(["road"])}
+    return {
+        "images": rng.random((n, 6, 8, 8), dtype=np.float32),
+        "labels": np.zeros(n, np.int64),
+        "class_names": np.array(["intact", "road"]),
+        "band_names": np.array(["blue", "green", "red", "nir", "swir1", "swir2"]),
+        "masks": np.zeros((n, 1, 8, 8), bool),
+        "mask_names": np.array(["road"]),
+    }
 
 
-@pytest.mark.parametrize("array,change,needle", [
-    ("images", lambda a: a[0], "images"),                                   # wrong shape
-    ("images", lambda a: a.astype(np.float64), "images"),                   # wrong dtype
-    ("images", lambda a: np.where(np.arange(a.size).reshape(a.shape) == 5, np.nan, a).astype(np.float32),
-     "images"),                                                             # NaN
-    ("images", lambda a: a + 2, "images"),                                  # reflectance out of range
-    ("masks", lambda a: a.astype(np.uint8), "masks"),                       # non-boolean masks
-    ("labels", lambda a: a + 5, "labels"),                                  # labels outside the classes
-    ("labels", lambda a: a.astype(np.float32), "labels"),                   # wrong dtype
-    ("masks", lambda a: a[:, :, :4], "masks"),                              # wrong shape
-])
+@pytest.mark.parametrize(
+    "array,change,needle",
+    [
+        ("images", lambda a: a[0], "images"),  # wrong shape
+        ("images", lambda a: a.astype(np.float64), "images"),  # wrong dtype
+        (
+            "images",
+            lambda a: np.where(np.arange(a.size).reshape(a.shape) == 5, np.nan, a).astype(np.float32),
+            "images",
+        ),  # NaN
+        ("images", lambda a: a + 2, "images"),  # reflectance out of range
+        ("masks", lambda a: a.astype(np.uint8), "masks"),  # non-boolean masks
+        ("labels", lambda a: a + 5, "labels"),  # labels outside the classes
+        ("labels", lambda a: a.astype(np.float32), "labels"),  # wrong dtype
+        ("masks", lambda a: a[:, :, :4], "masks"),  # wrong shape
+    ],
+)
 def test_user_pack_validation_names_array(tmp_path: Path, array: str, change, needle: str) -> None:
     arrays = _pack_arrays()
     arrays[array] = change(arrays[array])
@@ -292,8 +303,9 @@ def test_user_pack_without_twins_loads(tmp_path: Path) -> None:
 # the `xbench train` command
 
 
-def test_train_command_prints_and_writes_tables(trained_small, small_task_file: Path, tmp_path: Path,
-                                                monkeypatch, capsys) -> None:
+def test_train_command_prints_and_writes_tables(
+    trained_small, small_task_file: Path, tmp_path: Path, monkeypatch, capsys
+) -> None:
     import pandas as pd
 
     from xbench.cli import main

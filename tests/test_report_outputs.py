@@ -74,9 +74,7 @@ def make_run(
                     (f"run-{task}", task, model, seed, e, "deletion-auc", "none", t, float(x)) for t, x in enumerate(dl)
                 ]
                 sp = np.clip(0.3 + 0.4 * rng.random() + rng.normal(0, 0.05, n_tiles), 0, 1)
-                rows += [
-                    (f"run-{task}", task, model, seed, e, "sparseness", "none", t, float(x)) for t, x in enumerate(sp)
-                ]
+                rows += [(f"run-{task}", task, model, seed, e, "gini", "none", t, float(x)) for t, x in enumerate(sp)]
                 rows.append(
                     (
                         f"run-{task}",
@@ -125,7 +123,7 @@ def make_run(
         "machine": {"python": "3.11"},
         "seeds": seeds,
         "data": {
-            "recipe": "orrin-vale",
+            "recipe": "conifer-upland",
             "size": 32,
             "counts": {"train": 800, "val": 200, "test": 200},
             "label_rule": "logged if a road or a clearing covers at least 2 % of the tile",
@@ -155,7 +153,7 @@ def make_run(
             "mass-accuracy": {},
             "pointing-game": {},
             "deletion-auc": {"baseline": "blur"},
-            "sparseness": {},
+            "gini": {},
             "seconds": {},
         },
         "explain_tiles": n_tiles,
@@ -544,7 +542,7 @@ def test_methods_text_and_bibliography(report):
     bib = (report.out_dir / "refs.bib").read_text()
     for expected in (
         "800 training, 200 validation and 200 test tiles",
-        "orrin-vale",
+        "conifer-upland",
         "24 test tiles",
         "steps = 32",
         "Holm",

@@ -88,8 +88,12 @@ def test_killed_run_resumes_to_the_same_records(first_run, tmp_path, cache_dir):
     out, _ = first_run
     target = tmp_path / "killed"
     env = dict(os.environ, XBENCH_CACHE=str(cache_dir))
-    proc = subprocess.Popen([sys.executable, "-m", "xbench.cli", "run", str(TINY), "--out", str(target),
-                             "--quiet"], env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "xbench.cli", "run", str(TINY), "--out", str(target), "--quiet"],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     deadline = time.time() + 120
     while time.time() < deadline and proc.poll() is None:
         if len(list((target / "cells").glob("*.json"))) >= 2:
@@ -110,8 +114,7 @@ def test_killed_run_resumes_to_the_same_records(first_run, tmp_path, cache_dir):
 def test_dask_executor_matches_local(first_run, tmp_path):
     pytest.importorskip("dask.distributed")
     out, _ = first_run
-    summary = run_task(TINY, tmp_path / "dask", executor="dask", jobs=2,
-                       explainers=["gradient", "oracle"])
+    summary = run_task(TINY, tmp_path / "dask", executor="dask", jobs=2, explainers=["gradient", "oracle"])
     assert summary.ok, summary.failures
     local = comparable(load_records(out))
     local = local[local["explainer"].isin(["gradient", "oracle"])].reset_index(drop=True)
@@ -121,14 +124,24 @@ def test_dask_executor_matches_local(first_run, tmp_path):
 def test_failing_explainer_is_recorded_and_the_rest_completes(first_run, tmp_path, capsys):
     from xbench.explainers import registry
 
-    @registry.register_explainer("broken-for-test", citation="none (test plugin)", needs=set(), defaults={},
-                                 description="always raises")
+    @registry.register_explainer(
+        "broken-for-test", citation="none (test plugin)", needs=set(), defaults={}, description="always raises"
+    )
     def broken(model, images, targets, context, **settings):
         raise RuntimeError("this plugin is broken on purpose")
 
     try:
-        code = cli_main(["run", str(TINY), "--out", str(tmp_path / "broken"), "--quiet",
-                         "--explainers", "random,broken-for-test,edges"])
+        code = cli_main(
+            [
+                "run",
+                str(TINY),
+                "--out",
+                str(tmp_path / "broken"),
+                "--quiet",
+                "--explainers",
+                "random,broken-for-test,edges",
+            ]
+        )
     finally:
         registry.unregister_explainer("broken-for-test")
     assert code == 1

@@ -14,7 +14,7 @@ from xbench.runs import load_records, run_task
 
 TINY = Path(__file__).parent / "data" / "tiny_task.toml"
 
-USER_MODULE = '''
+USER_MODULE = """
 import numpy as np
 import torch
 from torch import nn
@@ -33,7 +33,7 @@ def ndvi_scorer():
         p_road = 1.0 / (1.0 + np.exp(20.0 * (ndvi - 0.6)))  # less green -> more likely a road
         return np.stack([1.0 - p_road, p_road], axis=1)
     return scores
-'''
+"""
 
 
 @pytest.fixture()
@@ -46,7 +46,7 @@ def user_task(tmp_path, monkeypatch):
     text = TINY.read_text()
     head, _, rest = text.partition("[[models]]")
     _, _, tail = rest.partition("[explainers]")
-    models = textwrap.dedent('''
+    models = textwrap.dedent("""
         [[models]]
         name = "mine"
         kind = "user-torch"
@@ -58,24 +58,34 @@ def user_task(tmp_path, monkeypatch):
         kind = "user-callable"
         factory = "byo_models_for_test:ndvi_scorer"
 
-        ''')
+        """)
     path = tmp_path / "byo.toml"
     path.write_text(head + models + "[explainers]" + tail)
     return path
 
 
 def test_user_models_run_through_the_grid(user_task, tmp_path):
-    summary = run_task(user_task, tmp_path / "out", explainers=["gradient", "occlusion", "oracle"],
-                       metrics=["mass-accuracy", "deletion-auc"])
+    summary = run_task(
+        user_task,
+        tmp_path / "out",
+        explainers=["gradient", "occlusion", "oracle"],
+        metrics=["mass-accuracy", "deletion-auc"],
+    )
     assert summary.ok, summary.failures
     records = load_records(tmp_path / "out")
     pairs = set(zip(records["model"], records["explainer"], strict=True))
     # The black box gets only the explainers that need no gradients; the skip is stated in the manifest.
-    assert pairs == {("mine", "gradient"), ("mine", "occlusion"), ("mine", "oracle"),
-                     ("ndvi-box", "occlusion"), ("ndvi-box", "oracle")}
+    assert pairs == {
+        ("mine", "gradient"),
+        ("mine", "occlusion"),
+        ("mine", "oracle"),
+        ("ndvi-box", "occlusion"),
+        ("ndvi-box", "oracle"),
+    }
     manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
-    assert manifest["skipped"] == [{"model": "ndvi-box", "explainer": "gradient",
-                                    "reason": "needs gradients or a layer; the model is a black box"}]
+    assert manifest["skipped"] == [
+        {"model": "ndvi-box", "explainer": "gradient", "reason": "needs gradients or a layer; the model is a black box"}
+    ]
 
 
 def test_missing_weights_file_is_named_before_any_work(user_task, tmp_path):

@@ -13,14 +13,18 @@ from xbench.errors import XbenchInputError
 from xbench.runs import load_records, run_task
 from xbench.scenes import load_recipe, parse_label_rule, synthesize
 
-RULE = {"classes": ["intact", "road"], "default": "intact",
-        "rule": [{"class": "road", "type": "road", "stat": "coverage", "above": 0.005}]}
+RULE = {
+    "classes": ["intact", "road"],
+    "default": "intact",
+    "rule": [{"class": "road", "type": "road", "stat": "coverage", "above": 0.005}],
+}
 
 
 def write_task(folder):
     """A task file next to `mine.npz` in `folder`."""
     path = folder / "mine.toml"
-    path.write_text(textwrap.dedent('''
+    path.write_text(
+        textwrap.dedent("""
         name = "my-pack"
         seeds = [0]
 
@@ -50,16 +54,31 @@ def write_task(folder):
         explain_tiles = 8
         gallery_tiles = 4
         fit_tiles = 40
-        '''))
+        """)
+    )
     return path
 
 
 @pytest.fixture(scope="module")
 def user_pack():
-    presence = {"road": 0.5, "river": 0.4, "clearing": 0.0, "building": 0.0, "corridor": 0.0,
-                "natural-gap": 0.0, "outcrop": 0.0}
-    pack, _ = synthesize(load_recipe("orrin-vale"), 240, 5, size=32, twins=True, presence=presence,
-                         label_rule=parse_label_rule(RULE, "test rule"))
+    presence = {
+        "road": 0.5,
+        "river": 0.4,
+        "clearing": 0.0,
+        "building": 0.0,
+        "corridor": 0.0,
+        "natural-gap": 0.0,
+        "outcrop": 0.0,
+    }
+    pack, _ = synthesize(
+        load_recipe("conifer-upland"),
+        240,
+        5,
+        size=32,
+        twins=True,
+        presence=presence,
+        label_rule=parse_label_rule(RULE, "test rule"),
+    )
     return pack
 
 
@@ -83,9 +102,15 @@ def test_a_pack_task_runs_with_planted_truth_only(user_pack, tmp_path):
 def test_a_broken_pack_is_named_before_any_work(user_pack, tmp_path):
     images = user_pack.images.copy()
     images[3, 0, 0, 0] = np.nan
-    np.savez(tmp_path / "mine.npz", images=images, labels=user_pack.labels,
-             class_names=np.array(user_pack.class_names), band_names=np.array(user_pack.band_names),
-             masks=user_pack.masks, mask_names=np.array(user_pack.mask_names))
+    np.savez(
+        tmp_path / "mine.npz",
+        images=images,
+        labels=user_pack.labels,
+        class_names=np.array(user_pack.class_names),
+        band_names=np.array(user_pack.band_names),
+        masks=user_pack.masks,
+        mask_names=np.array(user_pack.mask_names),
+    )
     with pytest.raises(XbenchInputError) as info:
         run_task(write_task(tmp_path), tmp_path / "never")
     message = str(info.value)

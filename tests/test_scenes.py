@@ -37,7 +37,7 @@ NIR, RED = BANDS.index("nir"), BANDS.index("red")
 
 
 def test_shipped_recipes():
-    assert {"orrin-vale", "lowland-farmland", "wetland-mosaic"} <= set(RECIPES)
+    assert {"conifer-upland", "lowland-farmland", "wetland-mosaic"} <= set(RECIPES)
     assert set(HUMAN_TYPES) == {"road", "clearing", "building", "corridor", "field"}
     assert set(LOOKALIKE_TYPES) == {"river", "natural-gap", "outcrop"}
 
@@ -100,7 +100,7 @@ def test_rendered_background_spectra(name):
 
 
 def test_rendered_structures_keep_their_spectra():
-    recipe = load_recipe("orrin-vale")
+    recipe = load_recipe("conifer-upland")
     soil_ndvi = []
     for seed in range(8):
         scene = sample_scene(recipe, 64, seed, presence={"road": 1.0})
@@ -197,11 +197,9 @@ def test_twin_differs_exactly_where_structures_are(name):
 
 
 def test_per_instance_twins():
-    recipe = load_recipe("orrin-vale")
+    recipe = load_recipe("conifer-upland")
     for seed in range(3):
-        scene = sample_scene(
-            recipe, 64, 100 + seed, presence=ALL_ON, cue={"kind": "haze-patch", "strength": 0.05}
-        )
+        scene = sample_scene(recipe, 64, 100 + seed, presence=ALL_ON, cue={"kind": "haze-patch", "strength": 0.05})
         full = render(scene)
         total = np.zeros((64, 64), dtype=np.float32)
         for inst in scene.instances:
@@ -216,9 +214,7 @@ def test_per_instance_twins():
 @settings(max_examples=12, deadline=None)
 @given(st.sampled_from(RECIPES), st.integers(0, 2**40), st.sampled_from([24, 40, 64]))
 def test_twins_property_over_seeds(name, seed, size):
-    scene = sample_scene(
-        name, size, seed, presence={"road": 0.7, "clearing": 0.7, "building": 0.5, "river": 0.5}
-    )
+    scene = sample_scene(name, size, seed, presence={"road": 0.7, "clearing": 0.7, "building": 0.5, "river": 0.5})
     full = render(scene)
     assert full.shape == (6, size, size)
     union = scene.type_coverage(ALL_TYPES) > 0
@@ -229,7 +225,7 @@ def test_twins_property_over_seeds(name, seed, size):
 
 
 def test_pack_twins_and_masks():
-    pack, scenes = synthesize("orrin-vale", 12, seed=5, twins=True, presence={"road": 1, "clearing": 0.5})
+    pack, scenes = synthesize("conifer-upland", 12, seed=5, twins=True, presence={"road": 1, "clearing": 0.5})
     assert pack.twins is not None and pack.twins.shape == pack.images.shape
     for i, scene in enumerate(scenes):
         changed = _changed(pack.images[i], pack.twins[i])
@@ -254,7 +250,7 @@ def test_scenes_rebuild_from_pack_meta_and_serialise():
 
 
 def test_cue_on_and_off():
-    scene = sample_scene("orrin-vale", 64, 3, cue={"kind": "band-offset", "band": "blue", "strength": 0.03})
+    scene = sample_scene("conifer-upland", 64, 3, cue={"kind": "band-offset", "band": "blue", "strength": 0.03})
     assert scene.cue_on
     on, off = render(scene), render(scene, cue=False)
     diff = on - off
@@ -269,19 +265,19 @@ def test_cue_on_and_off():
 
 
 def test_determinism():
-    a, sa = synthesize("orrin-vale", 6, seed=11, twins=True, label_noise=0.3)
-    b, sb = synthesize("orrin-vale", 6, seed=11, twins=True, label_noise=0.3)
+    a, sa = synthesize("conifer-upland", 6, seed=11, twins=True, label_noise=0.3)
+    b, sb = synthesize("conifer-upland", 6, seed=11, twins=True, label_noise=0.3)
     for name in ("images", "twins", "masks", "coverage", "labels", "clean_labels"):
         assert np.array_equal(getattr(a, name), getattr(b, name)), name
     assert scenes_to_json(sa) == scenes_to_json(sb)
-    c, _ = synthesize("orrin-vale", 6, seed=12)
+    c, _ = synthesize("conifer-upland", 6, seed=12)
     assert not np.array_equal(a.images, c.images)
     # the first tiles of a longer run are the tiles of a shorter one
-    d, _ = synthesize("orrin-vale", 9, seed=11, twins=True, label_noise=0.3)
+    d, _ = synthesize("conifer-upland", 9, seed=11, twins=True, label_noise=0.3)
     assert np.array_equal(d.images[:6], a.images)
     # presence of one type leaves the landscape (and the other types) as they were
-    s1 = sample_scene("orrin-vale", 64, 7, presence={"road": 0.0})
-    s2 = sample_scene("orrin-vale", 64, 7, presence={"road": 1.0})
+    s1 = sample_scene("conifer-upland", 64, 7, presence={"road": 0.0})
+    s2 = sample_scene("conifer-upland", 64, 7, presence={"road": 1.0})
     assert np.array_equal(s1.fields()["background"], s2.fields()["background"])
     assert [i.params for i in s1.instances if i.kind == "clearing"] == [
         i.params for i in s2.instances if i.kind == "clearing"
@@ -305,12 +301,10 @@ def test_label_rules_match_planted_statistics():
         "test",
     )
     presence = {"road": 0.5, "corridor": 0.2, "clearing": 0.5, "building": 0.3}
-    pack, scenes = synthesize("orrin-vale", 40, seed=2, presence=presence, label_rule=rule)
+    pack, scenes = synthesize("conifer-upland", 40, seed=2, presence=presence, label_rule=rule)
     assert pack.class_names == ["intact", "road", "clearing", "building"]
     names = pack.mask_names
-    road_cov = np.clip(
-        pack.coverage[:, names.index("road")] + pack.coverage[:, names.index("corridor")], 0, 1
-    )
+    road_cov = np.clip(pack.coverage[:, names.index("road")] + pack.coverage[:, names.index("corridor")], 0, 1)
     seen = set()
     for i, scene in enumerate(scenes):
         n_build = sum(inst.kind == "building" for inst in scene.instances)
@@ -338,7 +332,7 @@ def test_label_noise_flips_the_stated_fraction():
 def test_cue_correlates_with_label_at_the_chosen_rate():
     n, rate = 300, 0.85
     pack, scenes = synthesize(
-        "orrin-vale", n, seed=9, size=24, cue={"kind": "band-offset", "strength": 0.02}, cue_rate=rate
+        "conifer-upland", n, seed=9, size=24, cue={"kind": "band-offset", "strength": 0.02}, cue_rate=rate
     )
     default = pack.class_names.index("intact")
     pos = pack.clean_labels != default
@@ -455,9 +449,7 @@ def test_unknown_recipe_lists_shipped():
     ],
 )
 def test_bad_label_rule(table, key):
-    with pytest.raises(
-        XbenchInputError, match=rf"tasks/t\.toml: labels\.{key.replace('[', '.').replace(']', '.')}"
-    ):
+    with pytest.raises(XbenchInputError, match=rf"tasks/t\.toml: labels\.{key.replace('[', '.').replace(']', '.')}"):
         parse_label_rule(table, "tasks/t.toml: labels")
 
 
@@ -467,7 +459,7 @@ def test_bad_cue_and_presence():
     with pytest.raises(XbenchInputError, match=r"cue\.strength"):
         parse_cue({"strength": 2}, "cue")
     with pytest.raises(XbenchInputError, match=r"presence\.canal"):
-        sample_scene("orrin-vale", 32, 0, presence={"canal": 1})
+        sample_scene("conifer-upland", 32, 0, presence={"canal": 1})
 
 
 # -------------------------------------------------------------------------------------------------- CLI
@@ -476,24 +468,22 @@ def test_bad_cue_and_presence():
 def test_cli_synth_writes_three_files(tmp_path, capsys):
     out = tmp_path / "out"
     assert (
-        cli_main(
-            ["synth", "--recipe", "orrin-vale", "--count", "5", "--seed", "3", "--twins", "--out", str(out)]
-        )
+        cli_main(["synth", "--recipe", "conifer-upland", "--count", "5", "--seed", "3", "--twins", "--out", str(out)])
         == 0
     )
     for f in ("tiles.npz", "scenes.json", "preview.png"):
         assert (out / f).is_file() and (out / f).stat().st_size > 0, f
     pack = load_pack(out / "tiles.npz")
     assert pack.images.shape == (5, 6, 64, 64) and pack.twins is not None and pack.coverage is not None
-    assert pack.meta["recipe"] == "orrin-vale" and pack.meta["seed"] == 3
+    assert pack.meta["recipe"] == "conifer-upland" and pack.meta["seed"] == 3
     scenes = json.loads((out / "scenes.json").read_text())
     assert len(scenes["tiles"]) == 5 and all("instances" in t for t in scenes["tiles"])
     assert (out / "preview.png").read_bytes()[:4] == b"\x89PNG"
     assert cli_main(["synth", "--list"]) == 0
-    assert "orrin-vale" in capsys.readouterr().out
+    assert "conifer-upland" in capsys.readouterr().out
 
 
 def test_cli_synth_bad_recipe_one_line(tmp_path, capsys):
     assert cli_main(["synth", "--recipe", "nowhere", "--count", "2", "--out", str(tmp_path)]) == 2
     err = capsys.readouterr().err.strip()
-    assert "\n" not in err and "unknown recipe" in err and "orrin-vale" in err
+    assert "\n" not in err and "unknown recipe" in err and "conifer-upland" in err

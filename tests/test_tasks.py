@@ -11,16 +11,50 @@ import pytest
 from xbench.errors import XbenchInputError
 from xbench.tasks import build_task_data, list_tasks, load_task
 
-SHIPPED = ["clearings", "demo", "disturbance-type", "roads", "shortcut", "weak-labels"]
+SHIPPED = ["clearings", "demo", "disturbance-type", "roads", "shortcut", "label-noise"]
 # Keys from DESIGN.md ("Names"): every shipped task lists all of them.
-DESIGN_EXPLAINERS = {"gradient", "input-x-gradient", "integrated-gradients", "smoothgrad", "guided-backprop",
-                     "deeplift", "grad-cam", "grad-cam-pp", "occlusion", "rise", "kernel-shap",
-                     "activation-clusters", "tcav", "random", "edges", "oracle"}
-DESIGN_METRICS = {"mass-accuracy", "rank-accuracy", "pointing-game", "mask-auroc", "mask-ap", "topk-iou",
-                  "deletion-auc", "insertion-auc", "aopc-morf", "aopc-lerf", "faithfulness-corr",
-                  "randomization-spearman", "randomization-ssim", "max-sensitivity", "infidelity",
-                  "sparseness", "entropy", "concept-agreement", "concept-detection", "concept-false-alarm",
-                  "model-calls", "seconds"}
+DESIGN_EXPLAINERS = {
+    "gradient",
+    "input-x-gradient",
+    "integrated-gradients",
+    "smoothgrad",
+    "guided-backprop",
+    "deeplift",
+    "grad-cam",
+    "grad-cam-pp",
+    "occlusion",
+    "rise",
+    "kernel-shap",
+    "activation-clusters",
+    "tcav",
+    "random",
+    "edges",
+    "oracle",
+}
+DESIGN_METRICS = {
+    "mass-accuracy",
+    "rank-accuracy",
+    "pointing-game",
+    "mask-auroc",
+    "mask-ap",
+    "topk-iou",
+    "deletion-auc",
+    "insertion-auc",
+    "aopc-morf",
+    "aopc-lerf",
+    "subset-drop-corr",
+    "randomization-spearman",
+    "randomization-ssim",
+    "max-sensitivity",
+    "infidelity",
+    "gini",
+    "entropy",
+    "concept-agreement",
+    "concept-detection",
+    "concept-false-alarm",
+    "model-calls",
+    "seconds",
+}
 
 
 def test_shipped_tasks_load() -> None:
@@ -49,7 +83,7 @@ def test_task_semantics() -> None:
     shortcut = load_task("shortcut")
     assert shortcut.data.cue is not None
     assert shortcut.data.cue_rates == {"train": 0.95, "val": 0.95, "test": 0.5}
-    assert load_task("weak-labels").data.label_noise == pytest.approx(0.15)
+    assert load_task("label-noise").data.label_noise == pytest.approx(0.15)
     demo = load_task("demo")
     assert [m.kind for m in demo.models] == ["cnn"] and demo.seeds == [0]
     assert demo.run["explain_tiles"] <= 40 and demo.run["gallery_tiles"] <= 8
@@ -74,31 +108,34 @@ def _variant(old: str, new: str, count: int = 1) -> str:
     return text.replace(old, new, count)
 
 
-@pytest.mark.parametrize("old,new,key", [
-    ('name = "roads"', 'name = "roads"\ncolour = "red"', "colour"),                    # unknown top-level key
-    ("label_noise = 0.0", "label_noise = 0.0\nwidth = 3", "data.width"),                # unknown data key
-    ("size = 48", 'size = "48"', "data.size"),                                          # wrong type
-    ("size = 48", "size = 50", "data.size"),                                            # not a multiple of 4
-    ("size = 48", "size = true", "data.size"),                                          # bool is not an int
-    ("label_noise = 0.0", "label_noise = 0.7", "data.label_noise"),                     # out of range
-    ("train = 800", "train = -5", "data.train"),                                       # bad count
-    ("road = 0.5", "road = 1.5", "data.presence.road"),                                 # not a probability
-    ("road = 0.5", "roads = 0.5", "data.presence.roads"),                               # unknown type
-    ('recipe = "orrin-vale"', 'recipe = "atlantis"', "data.recipe"),                    # unknown recipe
-    ('lookalikes = ["river"]', 'lookalikes = ["road"]', "data.lookalikes[0]"),          # human type
-    ('kind = "cnn"', 'kind = "transformer"', "models[0].kind"),                         # unknown kind
-    ("epochs = 16", "epochs = 16\nlearning_rate = 0.1", "models[0].learning_rate"),     # unknown hyper-param
-    ("epochs = 16", "epochs = 2.5", "models[0].epochs"),                                # wrong type
-    ("epochs = 16", "epochs = 0", "models[0].epochs"),                                  # bad value
-    ('name = "resnet"', 'name = "cnn"', "models[1].name"),                              # duplicate name
-    ("n_trees = 200", 'n_trees = 200\nmax_features = "half"', "models[3].max_features"),
-    ("seeds = [0, 1]", "seeds = [0, -1]", "seeds[1]"),
-    ("explain_tiles = 64", "explain_tiles = 5000", "run.explain_tiles"),                # > test tiles
-    ("explain_tiles = 64", "explain_tiles = 64\nworkers = 2", "run.workers"),           # unknown run key
-    ("gallery_tiles = 8", "gallery_tiles = 0", "run.gallery_tiles"),
-    ('keys = ["gradient"', 'keys = [3, "gradient"', "explainers.keys[0]"),              # wrong type
-    ("stat = \"coverage\"", "stat = \"length\"", "data.labels.rule[0].stat"),           # bad label rule
-])
+@pytest.mark.parametrize(
+    "old,new,key",
+    [
+        ('name = "roads"', 'name = "roads"\ncolour = "red"', "colour"),  # unknown top-level key
+        ("label_noise = 0.0", "label_noise = 0.0\nwidth = 3", "data.width"),  # unknown data key
+        ("size = 48", 'size = "48"', "data.size"),  # wrong type
+        ("size = 48", "size = 50", "data.size"),  # not a multiple of 4
+        ("size = 48", "size = true", "data.size"),  # bool is not an int
+        ("label_noise = 0.0", "label_noise = 0.7", "data.label_noise"),  # out of range
+        ("train = 800", "train = -5", "data.train"),  # bad count
+        ("road = 0.5", "road = 1.5", "data.presence.road"),  # not a probability
+        ("road = 0.5", "roads = 0.5", "data.presence.roads"),  # unknown type
+        ('recipe = "conifer-upland"', 'recipe = "atlantis"', "data.recipe"),  # unknown recipe
+        ('lookalikes = ["river"]', 'lookalikes = ["road"]', "data.lookalikes[0]"),  # human type
+        ('kind = "cnn"', 'kind = "transformer"', "models[0].kind"),  # unknown kind
+        ("epochs = 16", "epochs = 16\nlearning_rate = 0.1", "models[0].learning_rate"),  # unknown hyper-param
+        ("epochs = 16", "epochs = 2.5", "models[0].epochs"),  # wrong type
+        ("epochs = 16", "epochs = 0", "models[0].epochs"),  # bad value
+        ('name = "resnet"', 'name = "cnn"', "models[1].name"),  # duplicate name
+        ("n_trees = 200", 'n_trees = 200\nmax_features = "half"', "models[3].max_features"),
+        ("seeds = [0, 1]", "seeds = [0, -1]", "seeds[1]"),
+        ("explain_tiles = 64", "explain_tiles = 5000", "run.explain_tiles"),  # > test tiles
+        ("explain_tiles = 64", "explain_tiles = 64\nworkers = 2", "run.workers"),  # unknown run key
+        ("gallery_tiles = 8", "gallery_tiles = 0", "run.gallery_tiles"),
+        ('keys = ["gradient"', 'keys = [3, "gradient"', "explainers.keys[0]"),  # wrong type
+        ('stat = "coverage"', 'stat = "length"', "data.labels.rule[0].stat"),  # bad label rule
+    ],
+)
 def test_bad_task_names_file_and_key(tmp_path: Path, old: str, new: str, key: str) -> None:
     path = _write(tmp_path, _variant(old, new))
     with pytest.raises(XbenchInputError) as exc:
@@ -115,8 +152,9 @@ def test_settings_for_unlisted_key(tmp_path: Path) -> None:
 
 
 def test_cue_rates_required_with_cue(tmp_path: Path) -> None:
-    text = _variant("[data.presence]", '[data.cue]\nkind = "band-offset"\nband = "blue"\nstrength = 0.02\n\n'
-                    "[data.presence]")
+    text = _variant(
+        "[data.presence]", '[data.cue]\nkind = "band-offset"\nband = "blue"\nstrength = 0.02\n\n[data.presence]'
+    )
     with pytest.raises(XbenchInputError, match=re.escape("data.cue_rate_train")):
         load_task(_write(tmp_path, text))
     text = _variant("label_noise = 0.0", "label_noise = 0.0\ncue_rate_test = 0.5")
@@ -162,8 +200,10 @@ def test_label_noise_only_in_train(tmp_path: Path, small_task_file: Path) -> Non
 
 def test_shortcut_cue_rates_per_split(tmp_path: Path, small_task_file: Path) -> None:
     text = small_task_file.read_text().replace(
-        "[data.presence]", 'cue_rate_train = 0.95\ncue_rate_val = 0.95\ncue_rate_test = 0.5\n\n'
-        '[data.cue]\nkind = "band-offset"\nband = "blue"\nstrength = 0.02\n\n[data.presence]')
+        "[data.presence]",
+        "cue_rate_train = 0.95\ncue_rate_val = 0.95\ncue_rate_test = 0.5\n\n"
+        '[data.cue]\nkind = "band-offset"\nband = "blue"\nstrength = 0.02\n\n[data.presence]',
+    )
     task = load_task(_write(tmp_path, text))
     data = build_task_data(task, use_cache=False)
     pos = data.train.clean_labels == 1

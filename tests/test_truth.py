@@ -13,8 +13,8 @@ from xbench.truth import VERIFIED_MIN_DROP, VERIFIED_REL_DROP, compute_reliance
 
 BANDS = list(scenes.BANDS)
 BLUE, RED, NIR = BANDS.index("blue"), BANDS.index("red"), BANDS.index("nir")
-K = 1.0      # slope of the analytic detector
-BASE = 0.3   # its intercept
+K = 1.0  # slope of the analytic detector
+BASE = 0.3  # its intercept
 CUE_STRENGTH = 0.02
 
 
@@ -28,12 +28,16 @@ def index_detector(images: np.ndarray) -> np.ndarray:
 
 @pytest.fixture(scope="module")
 def analytic_scenes():
-    _, sc = scenes.synthesize("orrin-vale", 12, seed=3, size=32,
-                              presence={"road": 0.7, "river": 0.5, "clearing": 0.4, "outcrop": 0.3},
-                              label_rule={"classes": ["intact", "road"],
-                                          "rule": [{"class": "road", "type": "road", "above": 0.005}]},
-                              cue={"kind": "band-offset", "band": "blue", "strength": CUE_STRENGTH},
-                              cue_rate=0.8)
+    _, sc = scenes.synthesize(
+        "conifer-upland",
+        12,
+        seed=3,
+        size=32,
+        presence={"road": 0.7, "river": 0.5, "clearing": 0.4, "outcrop": 0.3},
+        label_rule={"classes": ["intact", "road"], "rule": [{"class": "road", "type": "road", "above": 0.005}]},
+        cue={"kind": "band-offset", "band": "blue", "strength": CUE_STRENGTH},
+        cue_rate=0.8,
+    )
     return sc
 
 
@@ -57,7 +61,7 @@ def test_analytic_detector_drops(analytic_scenes) -> None:
         # times the summed index change, confined to the instance's footprint (the twin contract).
         cov = inst.coverage > 0
         delta = (tile.astype(np.float64) - twin)[[NIR, RED, BLUE]]
-        changed = (delta[0] - delta[1] + delta[2])
+        changed = delta[0] - delta[1] + delta[2]
         assert np.all(changed[~cov] == 0)
         expected = sign[row.tile] * K * changed[cov].sum() / cov.size
         assert row.drop == pytest.approx(expected, abs=1e-5)

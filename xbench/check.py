@@ -67,8 +67,7 @@ BUILTIN_GATES: dict[str, Any] = {
     "gate": [{"metric": "seconds", "skip": True}],
 }
 
-RELATIVE_CHECKS = (("max-drop", "max_drop"), ("max-relative-drop", "max_relative_drop"),
-                   ("paired-test", "paired_test"))
+RELATIVE_CHECKS = (("max-drop", "max_drop"), ("max-relative-drop", "max_relative_drop"), ("paired-test", "paired_test"))
 CHECK_ORDER = ("present", "at-least", "at-most", "max-drop", "max-relative-drop", "paired-test")
 CHECK_LABEL = {
     "present": "present",
@@ -198,8 +197,9 @@ def parse_gates(data: dict[str, Any], source: str = "<gates>", text: str | None 
         raise XbenchInputError(source, "a gate file is a table", found=type(data).__name__)
     for key in data:
         if key not in TOP_KEYS:
-            raise XbenchInputError(where("top level", key), "unknown key",
-                                   expected="one of " + ", ".join(sorted(TOP_KEYS)))
+            raise XbenchInputError(
+                where("top level", key), "unknown key", expected="one of " + ", ".join(sorted(TOP_KEYS))
+            )
 
     raw_settings = data.get("settings", {})
     if not isinstance(raw_settings, dict):
@@ -258,11 +258,15 @@ def parse_gates(data: dict[str, Any], source: str = "<gates>", text: str | None 
             elif key in RULE_KEYS:
                 values[key] = _check_rule_value(w, key, v)
             else:
-                raise XbenchInputError(w, "unknown key", expected="one of " + ", ".join(
-                    sorted(RULE_KEYS | set(SELECTOR_KEYS))))
+                raise XbenchInputError(
+                    w, "unknown key", expected="one of " + ", ".join(sorted(RULE_KEYS | set(SELECTOR_KEYS)))
+                )
         if not values:
-            raise XbenchInputError(where(label, None, "[[gate]]", i), "a gate rule sets no gate",
-                                   expected="at least one of " + ", ".join(sorted(RULE_KEYS)))
+            raise XbenchInputError(
+                where(label, None, "[[gate]]", i),
+                "a gate rule sets no gate",
+                expected="at least one of " + ", ".join(sorted(RULE_KEYS)),
+            )
         rules.append(Rule(selectors=selectors, values=values, index=i, label=label))
     return GateSpec(settings=Settings(**settings), rules=tuple(rules), source=source)
 
@@ -319,8 +323,9 @@ def validate_records(frame: pd.DataFrame, where: str = "records") -> pd.DataFram
     """Check the record columns and normalise their types (a copy)."""
     missing = [c for c in RECORD_COLUMNS if c not in frame.columns and c != "run_id"]
     if missing:
-        raise XbenchInputError(where, "missing record columns", expected=", ".join(RECORD_COLUMNS),
-                               found=sorted(frame.columns))
+        raise XbenchInputError(
+            where, "missing record columns", expected=", ".join(RECORD_COLUMNS), found=sorted(frame.columns)
+        )
     out = frame.loc[:, [c for c in RECORD_COLUMNS if c in frame.columns]].copy()
     for c in GROUP_KEYS:
         out[c] = out[c].fillna("none").astype(str)
@@ -397,8 +402,10 @@ class CheckResult:
     def summary_line(self) -> str:
         c = self.counts()
         verdict = "all gates pass" if self.passed else f"{c['failed']} FAILED"
-        return (f"xbench check: {verdict} ({c['gates']} gates: {c['passed']} passed, {c['failed']} failed, "
-                f"{c['skipped']} skipped)")
+        return (
+            f"xbench check: {verdict} ({c['gates']} gates: {c['passed']} passed, {c['failed']} failed, "
+            f"{c['skipped']} skipped)"
+        )
 
     def table(self, only_failures: bool = False) -> str:
         return format_table(self, only_failures=only_failures)
@@ -458,8 +465,9 @@ def _fmt(v: float | None) -> str:
     return f"{v:.4g}"
 
 
-def _paired_test(cur: pd.DataFrame, base: pd.DataFrame, hib: bool | None, tolerance: float
-                 ) -> tuple[float | None, int, str]:
+def _paired_test(
+    cur: pd.DataFrame, base: pd.DataFrame, hib: bool | None, tolerance: float
+) -> tuple[float | None, int, str]:
     """One-sided Wilcoxon signed-rank p-value for "current is worse", pairs by (seed, tile)."""
     a = cur.groupby(list(PAIR_KEYS))["value"].mean()
     b = base.groupby(list(PAIR_KEYS))["value"].mean()
@@ -493,8 +501,11 @@ def _holm(pvalues: list[float]) -> list[float]:
     return adjusted
 
 
-def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFrame | None = None,
-            gates: str | Path | dict | GateSpec | None = None) -> CheckResult:
+def compare(
+    current: str | Path | pd.DataFrame,
+    baseline: str | Path | pd.DataFrame | None = None,
+    gates: str | Path | dict | GateSpec | None = None,
+) -> CheckResult:
     """Apply gates to ``current`` (a run folder or records frame), against ``baseline`` when given.
 
     Without a baseline only the absolute gates (``at_least``, ``at_most``) are applied.
@@ -549,9 +560,12 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
             if not _is_on(limit):
                 continue
             if vrange is not None and not (vrange[0] <= limit <= vrange[1]):
-                raise XbenchInputError(f"{spec.source}, gate '{key_name}' for metric '{group['metric']}'",
-                                       "threshold outside the metric's value range",
-                                       expected=f"a value in [{vrange[0]}, {vrange[1]}]", found=limit)
+                raise XbenchInputError(
+                    f"{spec.source}, gate '{key_name}' for metric '{group['metric']}'",
+                    "threshold outside the metric's value range",
+                    expected=f"a value in [{vrange[0]}, {vrange[1]}]",
+                    found=limit,
+                )
             kw = dict(limit=limit, current=c_mean, baseline=b_mean if has_base else None, difference=diff)
             if c_n == 0:
                 row(check, "fail", "no finite value in the current run", **kw)
@@ -573,7 +587,8 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
             raise XbenchInputError(
                 f"{spec.source}, metric '{group['metric']}'",
                 "the metric registry does not know this metric, so 'worse' is undefined; "
-                "set higher_is_better in a [[gate]] for it (or skip = true)")
+                "set higher_is_better in a [[gate]] for it (or skip = true)",
+            )
         direction = "higher is better" if hib else ("lower is better" if hib is False else "no direction")
 
         both_undefined = c_n == 0 and not np.isfinite(b_mean)
@@ -598,8 +613,13 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
                     row(check, "pass", **kw)
                 else:
                     unit = "" if check == "max-drop" else f" ({amount:.1%} of the baseline)"
-                    row(check, "fail", f"worse by {_fmt(worse)}{unit}, more than the allowed "
-                        f"{_fmt(limit) if check == 'max-drop' else f'{limit:.1%}'} ({direction})", **kw)
+                    row(
+                        check,
+                        "fail",
+                        f"worse by {_fmt(worse)}{unit}, more than the allowed "
+                        f"{_fmt(limit) if check == 'max-drop' else f'{limit:.1%}'} ({direction})",
+                        **kw,
+                    )
 
         if rule.get("paired_test"):
             alpha = rule.get("alpha", settings.alpha)
@@ -608,11 +628,23 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
             if p is None:
                 row("paired-test", "skip", note, n_pairs=n, **kw)
             elif n < settings.min_pairs and note == "":
-                row("paired-test", "skip", f"only {n} pairs (min_pairs = {settings.min_pairs})",
-                    n_pairs=n, p_value=p, **kw)
+                row(
+                    "paired-test",
+                    "skip",
+                    f"only {n} pairs (min_pairs = {settings.min_pairs})",
+                    n_pairs=n,
+                    p_value=p,
+                    **kw,
+                )
             else:
-                o = row("paired-test", "pass", note or ("one-sided" if hib is not None else "two-sided"),
-                        n_pairs=n, p_value=p, **kw)
+                o = row(
+                    "paired-test",
+                    "pass",
+                    note or ("one-sided" if hib is not None else "two-sided"),
+                    n_pairs=n,
+                    p_value=p,
+                    **kw,
+                )
                 if note == "":
                     tests.append((o, alpha, hib))
 
@@ -625,8 +657,10 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
         if o.p_value < alpha:
             way = "lower" if hib else ("higher" if hib is False else "different")
             o.status = "fail"
-            o.message = (f"per-tile values significantly {way} than the baseline's "
-                         f"(Wilcoxon, {o.message}, p = {_fmt(o.p_value)} < {_fmt(alpha)})")
+            o.message = (
+                f"per-tile values significantly {way} than the baseline's "
+                f"(Wilcoxon, {o.message}, p = {_fmt(o.p_value)} < {_fmt(alpha)})"
+            )
 
     for r in spec.rules:
         if r.selectors and r.index not in used_rules:
@@ -637,10 +671,14 @@ def compare(current: str | Path | pd.DataFrame, baseline: str | Path | pd.DataFr
     outcomes.sort(key=lambda o: (o.group, order[o.check]))
     return CheckResult(
         outcomes=outcomes,
-        baseline=None if baseline is None else (str(baseline) if not isinstance(baseline, pd.DataFrame)
-                                                else "<records>"),
+        baseline=None
+        if baseline is None
+        else (str(baseline) if not isinstance(baseline, pd.DataFrame) else "<records>"),
         current=str(current) if not isinstance(current, pd.DataFrame) else "<records>",
-        gates=spec.source, settings=settings, warnings=warnings)
+        gates=spec.source,
+        settings=settings,
+        warnings=warnings,
+    )
 
 
 # ------------------------------------------------------------------------------------------ outputs
@@ -652,18 +690,45 @@ def format_table(result: CheckResult, only_failures: bool = False) -> str:
         src = f"baseline {result.baseline}  ·  " + src
     lines.append(f"{src}  ·  gates {result.gates}")
     rows = [o for o in result.outcomes if o.status == "fail" or not only_failures]
-    header = ("result", "explainer", "metric", "truth", "gate", "limit", "baseline", "current", "change",
-              "p", "n", "note")
+    header = (
+        "result",
+        "explainer",
+        "metric",
+        "truth",
+        "gate",
+        "limit",
+        "baseline",
+        "current",
+        "change",
+        "p",
+        "n",
+        "note",
+    )
     blocks: dict[tuple[str, str], list[tuple[str, ...]]] = {}
     for o in rows:
         limit = o.limit
-        limit_s = (f"{limit:.1%}" if o.check == "max-relative-drop" and limit is not None else
-                   (f"p<{_fmt(limit)}" if o.check == "paired-test" else _fmt(limit)))
+        limit_s = (
+            f"{limit:.1%}"
+            if o.check == "max-relative-drop" and limit is not None
+            else (f"p<{_fmt(limit)}" if o.check == "paired-test" else _fmt(limit))
+        )
         change = "-" if o.difference is None or not np.isfinite(o.difference) else f"{o.difference:+.4g}"
-        blocks.setdefault((o.task, o.model), []).append((
-            {"pass": "ok", "fail": "FAIL", "skip": "skip"}[o.status], o.explainer, o.metric, o.truth,
-            CHECK_LABEL[o.check], limit_s, _fmt(o.baseline), _fmt(o.current), change, _fmt(o.p_value),
-            "-" if o.n_pairs is None else str(o.n_pairs), o.message))
+        blocks.setdefault((o.task, o.model), []).append(
+            (
+                {"pass": "ok", "fail": "FAIL", "skip": "skip"}[o.status],
+                o.explainer,
+                o.metric,
+                o.truth,
+                CHECK_LABEL[o.check],
+                limit_s,
+                _fmt(o.baseline),
+                _fmt(o.current),
+                change,
+                _fmt(o.p_value),
+                "-" if o.n_pairs is None else str(o.n_pairs),
+                o.message,
+            )
+        )
     all_rows = [header] + [r for b in blocks.values() for r in b]
     widths = [max(len(r[i]) for r in all_rows) for i in range(len(header) - 1)]
     numeric = {5, 6, 7, 8, 9, 10}
@@ -719,18 +784,37 @@ def junit_xml(result: CheckResult, suite_name: str = "xbench check") -> str:
     import xml.etree.ElementTree as ET
 
     c = result.counts()
-    suites = ET.Element("testsuites", name=suite_name, tests=str(c["gates"]), failures=str(c["failed"]),
-                        errors="0", skipped=str(c["skipped"]))
-    suite = ET.SubElement(suites, "testsuite", name=suite_name, tests=str(c["gates"]),
-                          failures=str(c["failed"]), errors="0", skipped=str(c["skipped"]))
+    suites = ET.Element(
+        "testsuites",
+        name=suite_name,
+        tests=str(c["gates"]),
+        failures=str(c["failed"]),
+        errors="0",
+        skipped=str(c["skipped"]),
+    )
+    suite = ET.SubElement(
+        suites,
+        "testsuite",
+        name=suite_name,
+        tests=str(c["gates"]),
+        failures=str(c["failed"]),
+        errors="0",
+        skipped=str(c["skipped"]),
+    )
     props = ET.SubElement(suite, "properties")
     for k, v in (("baseline", result.baseline), ("current", result.current), ("gates", result.gates)):
         ET.SubElement(props, "property", name=k, value=str(v))
     for o in result.outcomes:
-        case = ET.SubElement(suite, "testcase", classname=f"xbench.{o.task}.{o.model}.{o.explainer}",
-                             name=f"{o.metric}[{o.truth}] {CHECK_LABEL[o.check]}")
-        detail = (f"limit {_fmt(o.limit)}, baseline {_fmt(o.baseline)}, current {_fmt(o.current)}, "
-                  f"change {_fmt(o.difference)}, p {_fmt(o.p_value)}, pairs {o.n_pairs}")
+        case = ET.SubElement(
+            suite,
+            "testcase",
+            classname=f"xbench.{o.task}.{o.model}.{o.explainer}",
+            name=f"{o.metric}[{o.truth}] {CHECK_LABEL[o.check]}",
+        )
+        detail = (
+            f"limit {_fmt(o.limit)}, baseline {_fmt(o.baseline)}, current {_fmt(o.current)}, "
+            f"change {_fmt(o.difference)}, p {_fmt(o.p_value)}, pairs {o.n_pairs}"
+        )
         if o.status == "fail":
             f = ET.SubElement(case, "failure", message=o.message, type=o.check)
             f.text = detail
@@ -740,8 +824,9 @@ def junit_xml(result: CheckResult, suite_name: str = "xbench check") -> str:
     return ET.tostring(suites, encoding="unicode", xml_declaration=True) + "\n"
 
 
-def write_outputs(result: CheckResult, json_path: str | Path | None = None,
-                  junit_path: str | Path | None = None) -> None:
+def write_outputs(
+    result: CheckResult, json_path: str | Path | None = None, junit_path: str | Path | None = None
+) -> None:
     """Write the JSON summary and/or JUnit XML files (folders are created)."""
     if json_path is not None:
         p = Path(json_path)
@@ -754,8 +839,11 @@ def write_outputs(result: CheckResult, json_path: str | Path | None = None,
 
 
 # -------------------------------------------------------------------------------- assertion helper
-def assert_faithful(run_dir: str | Path | pd.DataFrame, gates: str | Path | dict | GateSpec | None = None,
-                    baseline: str | Path | pd.DataFrame | None = None) -> CheckResult:
+def assert_faithful(
+    run_dir: str | Path | pd.DataFrame,
+    gates: str | Path | dict | GateSpec | None = None,
+    baseline: str | Path | pd.DataFrame | None = None,
+) -> CheckResult:
     """Apply gates to a run (absolute gates only without a baseline); raise AssertionError with the table.
 
     ``gates`` is a gate file path, gate data shaped like the TOML (``{"default": {...}, "gate": [...]}``)
@@ -764,8 +852,7 @@ def assert_faithful(run_dir: str | Path | pd.DataFrame, gates: str | Path | dict
     __tracebackhide__ = True
     result = compare(run_dir, baseline=baseline, gates=gates)
     if not result.outcomes:
-        raise AssertionError("xbench: no gate applied to this run (check the gate selectors)\n"
-                             + result.table())
+        raise AssertionError("xbench: no gate applied to this run (check the gate selectors)\n" + result.table())
     if not result.passed:
         raise AssertionError(result.table())
     return result

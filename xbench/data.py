@@ -61,10 +61,17 @@ class TilePack:
             return None if a is None else a[index]
 
         return TilePack(
-            images=self.images[index], labels=self.labels[index], class_names=list(self.class_names),
-            band_names=list(self.band_names), masks=self.masks[index], mask_names=list(self.mask_names),
-            twins=pick(self.twins), clean_labels=pick(self.clean_labels), cue=pick(self.cue),
-            coverage=pick(self.coverage), meta=dict(self.meta),
+            images=self.images[index],
+            labels=self.labels[index],
+            class_names=list(self.class_names),
+            band_names=list(self.band_names),
+            masks=self.masks[index],
+            mask_names=list(self.mask_names),
+            twins=pick(self.twins),
+            clean_labels=pick(self.clean_labels),
+            cue=pick(self.cue),
+            coverage=pick(self.coverage),
+            meta=dict(self.meta),
         )
 
     def type_mask(self, names: list[str] | tuple[str, ...]) -> np.ndarray:
@@ -84,8 +91,13 @@ def _check(cond: bool, where: str, problem: str, expected: str, found: Any) -> N
 def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
     """Check every array of a pack against the contract; returns the pack or raises XbenchInputError."""
     img = pack.images
-    _check(isinstance(img, np.ndarray) and img.ndim == 4, f"{source}: array 'images'", "wrong shape",
-           "4-d array (N, C, H, W)", getattr(img, "shape", type(img).__name__))
+    _check(
+        isinstance(img, np.ndarray) and img.ndim == 4,
+        f"{source}: array 'images'",
+        "wrong shape",
+        "4-d array (N, C, H, W)",
+        getattr(img, "shape", type(img).__name__),
+    )
     n, c, h, w = img.shape
     _check(img.dtype == np.float32, f"{source}: array 'images'", "wrong dtype", "float32", str(img.dtype))
     _check(n > 0, f"{source}: array 'images'", "no tiles", "N >= 1", n)
@@ -94,26 +106,54 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
         bad = int(np.argwhere(~finite)[0][0])
         raise XbenchInputError(f"{source}: array 'images'", f"non-finite values (NaN or inf), first in tile {bad}")
     lo, hi = float(img.min()), float(img.max())
-    _check(lo >= 0.0 and hi <= 1.0, f"{source}: array 'images'", "reflectance out of range",
-           "values in [0, 1]", f"min {lo:.4g}, max {hi:.4g}")
+    _check(
+        lo >= 0.0 and hi <= 1.0,
+        f"{source}: array 'images'",
+        "reflectance out of range",
+        "values in [0, 1]",
+        f"min {lo:.4g}, max {hi:.4g}",
+    )
     lab = pack.labels
-    _check(isinstance(lab, np.ndarray) and lab.shape == (n,), f"{source}: array 'labels'", "wrong shape",
-           f"({n},)", getattr(lab, "shape", None))
-    _check(np.issubdtype(lab.dtype, np.integer), f"{source}: array 'labels'", "wrong dtype", "int64",
-           str(lab.dtype))
+    _check(
+        isinstance(lab, np.ndarray) and lab.shape == (n,),
+        f"{source}: array 'labels'",
+        "wrong shape",
+        f"({n},)",
+        getattr(lab, "shape", None),
+    )
+    _check(np.issubdtype(lab.dtype, np.integer), f"{source}: array 'labels'", "wrong dtype", "int64", str(lab.dtype))
     k = len(pack.class_names)
     _check(k >= 2, f"{source}: array 'class_names'", "too few classes", ">= 2 names", k)
     if lab.size and (lab.min() < 0 or lab.max() >= k):
-        raise XbenchInputError(f"{source}: array 'labels'", "label outside the classes",
-                               expected=f"integers in [0, {k - 1}]", found=f"{int(lab.min())}..{int(lab.max())}")
-    _check(len(pack.band_names) == c, f"{source}: array 'band_names'", "length differs from the band axis",
-           f"{c} names", len(pack.band_names))
+        raise XbenchInputError(
+            f"{source}: array 'labels'",
+            "label outside the classes",
+            expected=f"integers in [0, {k - 1}]",
+            found=f"{int(lab.min())}..{int(lab.max())}",
+        )
+    _check(
+        len(pack.band_names) == c,
+        f"{source}: array 'band_names'",
+        "length differs from the band axis",
+        f"{c} names",
+        len(pack.band_names),
+    )
     m = pack.masks
-    _check(isinstance(m, np.ndarray) and m.ndim == 4 and m.shape[0] == n and m.shape[2:] == (h, w),
-           f"{source}: array 'masks'", "wrong shape", f"({n}, K, {h}, {w})", getattr(m, "shape", None))
+    _check(
+        isinstance(m, np.ndarray) and m.ndim == 4 and m.shape[0] == n and m.shape[2:] == (h, w),
+        f"{source}: array 'masks'",
+        "wrong shape",
+        f"({n}, K, {h}, {w})",
+        getattr(m, "shape", None),
+    )
     _check(m.dtype == np.bool_, f"{source}: array 'masks'", "masks must be boolean", "bool", str(m.dtype))
-    _check(len(pack.mask_names) == m.shape[1], f"{source}: array 'mask_names'",
-           "length differs from the masks' type axis", f"{m.shape[1]} names", len(pack.mask_names))
+    _check(
+        len(pack.mask_names) == m.shape[1],
+        f"{source}: array 'mask_names'",
+        "length differs from the masks' type axis",
+        f"{m.shape[1]} names",
+        len(pack.mask_names),
+    )
     for name, arr in (("twins", pack.twins), ("coverage", pack.coverage)):
         if arr is None:
             continue
@@ -133,9 +173,12 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
     path = Path(path)
     validate_pack(pack, str(path))
     arrays: dict[str, np.ndarray] = {
-        "images": pack.images, "labels": pack.labels.astype(np.int64),
-        "class_names": np.array(pack.class_names), "band_names": np.array(pack.band_names),
-        "masks": pack.masks, "mask_names": np.array(pack.mask_names),
+        "images": pack.images,
+        "labels": pack.labels.astype(np.int64),
+        "class_names": np.array(pack.class_names),
+        "band_names": np.array(pack.band_names),
+        "masks": pack.masks,
+        "mask_names": np.array(pack.mask_names),
         "meta_json": np.array(json.dumps(pack.meta, sort_keys=True)),
     }
     for name in ("twins", "clean_labels", "cue", "coverage"):
@@ -169,13 +212,20 @@ def load_pack(path: str | Path) -> TilePack:
     with data:
         missing = [k for k in REQUIRED_ARRAYS if k not in data.files]
         if missing:
-            raise XbenchInputError(str(path), f"missing array(s) {', '.join(missing)}",
-                                   expected=", ".join(REQUIRED_ARRAYS), found=sorted(data.files))
+            raise XbenchInputError(
+                str(path),
+                f"missing array(s) {', '.join(missing)}",
+                expected=", ".join(REQUIRED_ARRAYS),
+                found=sorted(data.files),
+            )
         meta = json.loads(str(data["meta_json"])) if "meta_json" in data.files else {}
         pack = TilePack(
-            images=data["images"], labels=data["labels"],
-            class_names=[str(s) for s in data["class_names"]], band_names=[str(s) for s in data["band_names"]],
-            masks=data["masks"], mask_names=[str(s) for s in data["mask_names"]],
+            images=data["images"],
+            labels=data["labels"],
+            class_names=[str(s) for s in data["class_names"]],
+            band_names=[str(s) for s in data["band_names"]],
+            masks=data["masks"],
+            mask_names=[str(s) for s in data["mask_names"]],
             twins=data["twins"] if "twins" in data.files else None,
             clean_labels=data["clean_labels"] if "clean_labels" in data.files else None,
             cue=data["cue"] if "cue" in data.files else None,

@@ -75,9 +75,14 @@ def xbench_task_run(request: pytest.FixtureRequest, tmp_path_factory: pytest.Tem
     """
     done: dict[tuple, Path] = {}
 
-    def run(task: str | Path | None = None, *, explainers: str | Iterable[str] | None = None,
-            models: str | Iterable[str] | None = None, seeds: int | Iterable[int] | None = None,
-            jobs: int = 1) -> Path:
+    def run(
+        task: str | Path | None = None,
+        *,
+        explainers: str | Iterable[str] | None = None,
+        models: str | Iterable[str] | None = None,
+        seeds: int | Iterable[int] | None = None,
+        jobs: int = 1,
+    ) -> Path:
         __tracebackhide__ = True
         from xbench.runs import run_task
 
@@ -86,8 +91,11 @@ def xbench_task_run(request: pytest.FixtureRequest, tmp_path_factory: pytest.Tem
             if task is None:
                 raise pytest.UsageError("xbench_task_run: give a task, or set the ini option xbench_task")
         wanted = (_keys(explainers), _keys(models), _keys(seeds, int))
-        key = (str(Path(task).resolve()) if Path(task).is_file() else str(task),
-               *(None if w is None else tuple(w) for w in wanted), jobs)
+        key = (
+            str(Path(task).resolve()) if Path(task).is_file() else str(task),
+            *(None if w is None else tuple(w) for w in wanted),
+            jobs,
+        )
         if key in done:
             return done[key]
         out = tmp_path_factory.mktemp("xbench-run")

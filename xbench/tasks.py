@@ -28,10 +28,9 @@ import numpy as np
 
 from xbench.data import TilePack, load_pack, save_pack
 from xbench.errors import XbenchInputError, load_toml, repo_root
+from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, RENAMED, renamed_hint
 
 # Natural look-alikes (DESIGN.md "Structure types"): never positive evidence for a human class.
-NATURAL_TYPES = ("river", "natural-gap", "outcrop")
-HUMAN_TYPES = ("road", "clearing", "building", "corridor", "field")
 MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-callable")
 # Bring your own model: `factory` is an import path `package.module:function`. For `user-torch` it returns a
 # torch module (raw reflectance in, logits out) and `weights` (a state_dict file, relative to the task file)
@@ -39,27 +38,44 @@ MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-call
 USER_KINDS = ("user-torch", "user-callable")
 
 TOP_KEYS = {"name", "description", "seeds", "data", "models", "explainers", "metrics", "run"}
-DATA_KEYS = {"recipe", "size", "train", "val", "test", "seed", "presence", "labels", "label_noise",
-             "lookalikes", "cue", "cue_rate_train", "cue_rate_val", "cue_rate_test"}
+DATA_KEYS = {
+    "recipe",
+    "size",
+    "train",
+    "val",
+    "test",
+    "seed",
+    "presence",
+    "labels",
+    "label_noise",
+    "lookalikes",
+    "cue",
+    "cue_rate_train",
+    "cue_rate_val",
+    "cue_rate_test",
+}
 RUN_DEFAULTS: dict[str, int] = {
-    "explain_tiles": 64,      # test tiles explained and scored per (model, seed)
-    "gallery_tiles": 8,       # tiles kept with every explainer's map for figures
-    "batch_size": 64,         # images per model call in explainers and metrics
-    "concept_set_size": 40,   # example tiles per concept set (tcav)
-    "fit_tiles": 200,         # training tiles used to fit concept explainers (activation-clusters)
-    "random_sets": 10,        # random example sets for concept significance tests (tcav)
+    "explain_tiles": 64,  # test tiles explained and scored per (model, seed)
+    "gallery_tiles": 8,  # tiles kept with every explainer's map for figures
+    "batch_size": 64,  # images per model call in explainers and metrics
+    "concept_set_size": 40,  # example tiles per concept set (tcav)
+    "fit_tiles": 200,  # training tiles used to fit concept explainers (activation-clusters)
+    "random_sets": 10,  # random example sets for concept significance tests (tcav)
 }
 # Hyper-parameters per model kind: architecture (see models/zoo.py) and training (see models/train.py).
 TORCH_TRAIN_PARAMS: dict[str, tuple[type, ...]] = {
-    "epochs": (int,), "patience": (int,), "lr": (int, float), "weight_decay": (int, float),
-    "batch_size": (int,), "augment": (bool,),
+    "epochs": (int,),
+    "patience": (int,),
+    "lr": (int, float),
+    "weight_decay": (int, float),
+    "batch_size": (int,),
+    "augment": (bool,),
 }
 MODEL_PARAMS: dict[str, dict[str, tuple[type, ...]]] = {
     "cnn": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
     "resnet": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
     "bottleneck": {"width": (int,), "n_maps": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
-    "forest": {"n_trees": (int,), "max_depth": (int,), "min_samples_leaf": (int,),
-               "max_features": (int, float, str)},
+    "forest": {"n_trees": (int,), "max_depth": (int,), "min_samples_leaf": (int,), "max_features": (int, float, str)},
     "user-torch": {"factory": (str,), "weights": (str,)},
     "user-callable": {"factory": (str,), "output": (str,)},
 }
@@ -127,8 +143,12 @@ class Task:
         for spec in self.models:
             if spec.name == name:
                 return spec
-        raise XbenchInputError(f"task '{self.name}'", f"no model named '{name}'",
-                               expected="one of " + ", ".join(m.name for m in self.models), found=name)
+        raise XbenchInputError(
+            f"task '{self.name}'",
+            f"no model named '{name}'",
+            expected="one of " + ", ".join(m.name for m in self.models),
+            found=name,
+        )
 
 
 @dataclass
@@ -164,8 +184,7 @@ def _unknown(table: dict[str, Any], allowed: set[str], where: str) -> None:
     extra = sorted(set(table) - allowed)
     if extra:
         at = f"{where} {extra[0]}" if where.endswith(":") else f"{where}.{extra[0]}"
-        raise XbenchInputError(at, "unknown key",
-                               expected="one of " + ", ".join(sorted(allowed)), found=extra[0])
+        raise XbenchInputError(at, "unknown key", expected="one of " + ", ".join(sorted(allowed)), found=extra[0])
 
 
 def _int_in(value: Any, where: str, lo: int, hi: int | None = None) -> int:
@@ -201,8 +220,12 @@ def _settings(section: dict[str, Any], keys: list[str], where: str) -> dict[str,
     out: dict[str, dict[str, Any]] = {}
     for key, table in raw.items():
         if key not in keys:
-            raise XbenchInputError(f"{where}.settings.{key}", "settings for a key that is not listed",
-                                   expected=f"one of {where}.keys: " + ", ".join(keys), found=key)
+            raise XbenchInputError(
+                f"{where}.settings.{key}",
+                "settings for a key that is not listed",
+                expected=f"one of {where}.keys: " + ", ".join(keys),
+                found=key,
+            )
         _expect(table, (dict,), f"{where}.settings.{key}", "a table")
         out[key] = dict(table)
     return out
@@ -228,8 +251,17 @@ def resolve_task_path(path_or_name: str | Path) -> Path:
         return path
     shipped = tasks_dir() / f"{text}.toml"
     if not shipped.is_file():
-        raise XbenchInputError(f"task '{text}'", "unknown task",
-                               expected="a task file path or one of: " + ", ".join(list_tasks()), found=text)
+        hint = renamed_hint("task", text)
+        if hint:
+            raise XbenchInputError(
+                f"task '{text}'", f"unknown task: {hint}", expected=RENAMED["task"][text], found=text
+            )
+        raise XbenchInputError(
+            f"task '{text}'",
+            "unknown task",
+            expected="a task file path or one of: " + ", ".join(list_tasks()),
+            found=text,
+        )
     return shipped
 
 
@@ -276,12 +308,19 @@ def load_task(path_or_name: str | Path) -> Task:
     test_count = data.counts["test"]
     for key in ("explain_tiles", "gallery_tiles"):
         if run[key] > test_count:
-            raise XbenchInputError(f"{f}: run.{key}", "more tiles than the test split holds",
-                                   expected=f"<= data.test ({test_count})", found=run[key])
+            raise XbenchInputError(
+                f"{f}: run.{key}",
+                "more tiles than the test split holds",
+                expected=f"<= data.test ({test_count})",
+                found=run[key],
+            )
     if run["gallery_tiles"] > run["explain_tiles"]:
-        raise XbenchInputError(f"{f}: run.gallery_tiles", "gallery tiles must be among the explained tiles",
-                               expected=f"<= run.explain_tiles ({run['explain_tiles']})",
-                               found=run["gallery_tiles"])
+        raise XbenchInputError(
+            f"{f}: run.gallery_tiles",
+            "gallery tiles must be among the explained tiles",
+            expected=f"<= run.explain_tiles ({run['explain_tiles']})",
+            found=run["gallery_tiles"],
+        )
 
     if rule is None:
         class_names, driving = list(data.pack_classes or []), dict(data.pack_drives or {})
@@ -293,16 +332,30 @@ def load_task(path_or_name: str | Path) -> Task:
     else:
         lookalikes = _default_lookalikes(data, driving)
 
-    return Task(name=name, path=path, file_hash=file_hash, description=description, data=data,
-                models=models, seeds=seeds, explainers=explainers, explainer_settings=explainer_settings,
-                metrics=metrics, metric_settings=metric_settings, run=run, class_names=class_names,
-                class_driving_types=driving, lookalike_types=lookalikes, label_rule=rule)
+    return Task(
+        name=name,
+        path=path,
+        file_hash=file_hash,
+        description=description,
+        data=data,
+        models=models,
+        seeds=seeds,
+        explainers=explainers,
+        explainer_settings=explainer_settings,
+        metrics=metrics,
+        metric_settings=metric_settings,
+        run=run,
+        class_names=class_names,
+        class_driving_types=driving,
+        lookalike_types=lookalikes,
+        label_rule=rule,
+    )
 
 
 def _default_lookalikes(data: DataSpec, driving: dict[int, list[str]]) -> list[str]:
     """Natural types that can appear in the task's tiles and drive no class."""
     driving_all = {t for types in driving.values() for t in types}
-    return [t for t in NATURAL_TYPES if t in data.possible_types and t not in driving_all]
+    return [t for t in LOOKALIKE_TYPES if t in data.possible_types and t not in driving_all]
 
 
 def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
@@ -329,9 +382,13 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
         _expect(sec["presence"], (dict,), f"{w}.presence", "a table of structure type -> probability")
         presence = {}
         for kind, p in sec["presence"].items():
-            if kind not in HUMAN_TYPES + NATURAL_TYPES:
-                raise XbenchInputError(f"{w}.presence.{kind}", "unknown structure type",
-                                       expected=", ".join(HUMAN_TYPES + NATURAL_TYPES), found=kind)
+            if kind not in HUMAN_TYPES + LOOKALIKE_TYPES:
+                raise XbenchInputError(
+                    f"{w}.presence.{kind}",
+                    "unknown structure type",
+                    expected=", ".join(HUMAN_TYPES + LOOKALIKE_TYPES),
+                    found=kind,
+                )
             presence[kind] = _float_in(p, f"{w}.presence.{kind}", 0.0, 1.0)
     labels = _expect(sec["labels"], (dict,), f"{w}.labels", "a label-rule table")
     rule = scenes.parse_label_rule(labels, f"{w}.labels")
@@ -340,9 +397,13 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
     if "lookalikes" in sec:
         lookalikes = _str_list(sec["lookalikes"], f"{w}.lookalikes", allow_empty=True)
         for i, kind in enumerate(lookalikes):
-            if kind not in NATURAL_TYPES:
-                raise XbenchInputError(f"{w}.lookalikes[{i}]", "not a natural look-alike type",
-                                       expected=", ".join(NATURAL_TYPES), found=kind)
+            if kind not in LOOKALIKE_TYPES:
+                raise XbenchInputError(
+                    f"{w}.lookalikes[{i}]",
+                    "not a natural look-alike type",
+                    expected=", ".join(LOOKALIKE_TYPES),
+                    found=kind,
+                )
     cue = None
     rates = {s: 0.5 for s in SPLITS}
     cue_keys = [k for k in sec if k.startswith("cue_")]
@@ -357,16 +418,27 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
     elif cue_keys:
         raise XbenchInputError(f"{w}.{cue_keys[0]}", "cue settings without a [data.cue] table")
     possible = []
-    for kind in HUMAN_TYPES + NATURAL_TYPES:
+    for kind in HUMAN_TYPES + LOOKALIKE_TYPES:
         if presence is not None and kind in presence:
             p = presence[kind]
         else:
             p = recipe_obj.spec(kind).probability if kind in recipe_obj.types() else 0.0
         if p > 0:
             possible.append(kind)
-    spec = DataSpec(recipe=recipe, size=size, counts=counts, seed=seed, presence=presence, labels=labels,
-                    label_noise=label_noise, cue=cue, cue_rates=rates, lookalikes=lookalikes,
-                    raw=json.loads(json.dumps(sec, default=str)), possible_types=possible)
+    spec = DataSpec(
+        recipe=recipe,
+        size=size,
+        counts=counts,
+        seed=seed,
+        presence=presence,
+        labels=labels,
+        label_noise=label_noise,
+        cue=cue,
+        cue_rates=rates,
+        lookalikes=lookalikes,
+        raw=json.loads(json.dumps(sec, default=str)),
+        possible_types=possible,
+    )
     return spec, rule
 
 
@@ -395,36 +467,55 @@ def _load_pack_data(sec: dict[str, Any], f: str) -> DataSpec:
         raise XbenchInputError(f"{w}.pack", str(exc)) from None
     counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
     if sum(counts.values()) > len(pack):
-        raise XbenchInputError(f"{w}.train/val/test", "more tiles than the pack holds",
-                               expected=f"a sum <= {len(pack)}", found=sum(counts.values()))
+        raise XbenchInputError(
+            f"{w}.train/val/test",
+            "more tiles than the pack holds",
+            expected=f"a sum <= {len(pack)}",
+            found=sum(counts.values()),
+        )
     drives = _expect(sec["drives"], (dict,), f"{w}.drives", "a table: class name -> structure types")
     classes = list(pack.class_names)
     driving: dict[int, list[str]] = {i: [] for i in range(len(classes))}
     for name, types in drives.items():
         if name not in classes:
-            raise XbenchInputError(f"{w}.drives.{name}", "not a class of the pack", expected=", ".join(classes),
-                                   found=name)
+            raise XbenchInputError(
+                f"{w}.drives.{name}", "not a class of the pack", expected=", ".join(classes), found=name
+            )
         types = _str_list(types, f"{w}.drives.{name}", allow_empty=True)
         for t in types:
             if t not in pack.mask_names:
-                raise XbenchInputError(f"{w}.drives.{name}", "not a mask of the pack",
-                                       expected=", ".join(pack.mask_names), found=t)
+                raise XbenchInputError(
+                    f"{w}.drives.{name}", "not a mask of the pack", expected=", ".join(pack.mask_names), found=t
+                )
         driving[classes.index(name)] = types
     used = {t for types in driving.values() for t in types}
     if "lookalikes" in sec:
         lookalikes = _str_list(sec["lookalikes"], f"{w}.lookalikes", allow_empty=True)
         for t in lookalikes:
             if t not in pack.mask_names:
-                raise XbenchInputError(f"{w}.lookalikes", "not a mask of the pack",
-                                       expected=", ".join(pack.mask_names), found=t)
+                raise XbenchInputError(
+                    f"{w}.lookalikes", "not a mask of the pack", expected=", ".join(pack.mask_names), found=t
+                )
     else:
-        lookalikes = [t for t in pack.mask_names if t in NATURAL_TYPES and t not in used]
-    raw = json.loads(json.dumps(sec, default=str)) | {
-        "pack_sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
-    return DataSpec(recipe="", size=int(pack.images.shape[-1]), counts=counts, seed=0, presence=None,
-                    labels={}, label_noise=0.0, cue=None, cue_rates={}, lookalikes=lookalikes, raw=raw,
-                    pack=str(path.resolve()), pack_classes=classes, pack_drives=driving,
-                    possible_types=list(pack.mask_names))
+        lookalikes = [t for t in pack.mask_names if t in LOOKALIKE_TYPES and t not in used]
+    raw = json.loads(json.dumps(sec, default=str)) | {"pack_sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
+    return DataSpec(
+        recipe="",
+        size=int(pack.images.shape[-1]),
+        counts=counts,
+        seed=0,
+        presence=None,
+        labels={},
+        label_noise=0.0,
+        cue=None,
+        cue_rates={},
+        lookalikes=lookalikes,
+        raw=raw,
+        pack=str(path.resolve()),
+        pack_classes=classes,
+        pack_drives=driving,
+        possible_types=list(pack.mask_names),
+    )
 
 
 def _recipe_ref(recipe: str, task_file: str) -> str:
@@ -447,20 +538,22 @@ def _load_models(raw: Any, f: str) -> list[ModelSpec]:
                 raise XbenchInputError(f"{w}.{key}", "missing required key")
         name = _expect(entry["name"], (str,), f"{w}.name", "a string")
         if not name or any(c in name for c in "/\\ "):
-            raise XbenchInputError(f"{w}.name", "model names must be non-empty, without spaces or slashes",
-                                   found=name)
+            raise XbenchInputError(f"{w}.name", "model names must be non-empty, without spaces or slashes", found=name)
         kind = _expect(entry["kind"], (str,), f"{w}.kind", "a string")
         if kind not in MODEL_KINDS:
-            raise XbenchInputError(f"{w}.kind", "unknown model kind", expected=" | ".join(MODEL_KINDS),
-                                   found=kind)
+            raise XbenchInputError(f"{w}.kind", "unknown model kind", expected=" | ".join(MODEL_KINDS), found=kind)
         allowed = MODEL_PARAMS[kind]
         params: dict[str, Any] = {}
         for key, value in entry.items():
             if key in ("name", "kind"):
                 continue
             if key not in allowed:
-                raise XbenchInputError(f"{w}.{key}", f"unknown hyper-parameter for kind '{kind}'",
-                                       expected="one of " + ", ".join(sorted(allowed)), found=key)
+                raise XbenchInputError(
+                    f"{w}.{key}",
+                    f"unknown hyper-parameter for kind '{kind}'",
+                    expected="one of " + ", ".join(sorted(allowed)),
+                    found=key,
+                )
             _expect(value, allowed[key], f"{w}.{key}", " or ".join(t.__name__ for t in allowed[key]))
             params[key] = value
         _check_model_values(params, w)
@@ -476,11 +569,11 @@ def _check_user_model(params: dict[str, Any], kind: str, w: str, task_file: Path
     """A user model's keys are checked before any work: import path form and the weights file."""
     factory = params.get("factory")
     if factory is None:
-        raise XbenchInputError(f"{w}.factory", f"missing required key for kind '{kind}'",
-                               expected="'package.module:function'")
+        raise XbenchInputError(
+            f"{w}.factory", f"missing required key for kind '{kind}'", expected="'package.module:function'"
+        )
     if factory.count(":") != 1 or not all(factory.split(":")):
-        raise XbenchInputError(f"{w}.factory", "bad import path", expected="'package.module:function'",
-                               found=factory)
+        raise XbenchInputError(f"{w}.factory", "bad import path", expected="'package.module:function'", found=factory)
     if "weights" in params:
         weights = Path(params["weights"])
         if not weights.is_absolute():
@@ -489,8 +582,7 @@ def _check_user_model(params: dict[str, Any], kind: str, w: str, task_file: Path
             raise XbenchInputError(f"{w}.weights", "weights file not found", found=str(weights))
         params["weights"] = str(weights.resolve())
     if params.get("output", "probabilities") not in ("probabilities", "logits"):
-        raise XbenchInputError(f"{w}.output", "bad value", expected="probabilities | logits",
-                               found=params["output"])
+        raise XbenchInputError(f"{w}.output", "bad value", expected="probabilities | logits", found=params["output"])
 
 
 def _check_model_values(params: dict[str, Any], w: str) -> None:
@@ -511,8 +603,7 @@ def _check_model_values(params: dict[str, Any], w: str) -> None:
     if "max_features" in params:
         mf = params["max_features"]
         if isinstance(mf, str) and mf not in ("sqrt", "log2"):
-            raise XbenchInputError(f"{w}.max_features", "bad value", expected="sqrt | log2 | a number",
-                                   found=mf)
+            raise XbenchInputError(f"{w}.max_features", "bad value", expected="sqrt | log2 | a number", found=mf)
         if isinstance(mf, float) and not 0 < mf <= 1:
             raise XbenchInputError(f"{w}.max_features", "value out of range", expected="in (0, 1]", found=mf)
 
@@ -536,9 +627,17 @@ def _synthesize_split(task: Task, split: str) -> tuple[TilePack, list[Any]]:
 
     d = task.data
     return scenes.synthesize(
-        _recipe_ref(d.recipe, str(task.path)), d.counts[split], split_seed(d.seed, split), size=d.size,
-        twins=(split == "test"), presence=d.presence, label_rule=task.label_rule,
-        label_noise=d.label_noise if split == "train" else 0.0, cue=d.cue, cue_rate=d.cue_rates[split])
+        _recipe_ref(d.recipe, str(task.path)),
+        d.counts[split],
+        split_seed(d.seed, split),
+        size=d.size,
+        twins=(split == "test"),
+        presence=d.presence,
+        label_rule=task.label_rule,
+        label_noise=d.label_noise if split == "train" else 0.0,
+        cue=d.cue,
+        cue_rate=d.cue_rates[split],
+    )
 
 
 def _split_user_pack(task: Task) -> TaskData:

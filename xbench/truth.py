@@ -39,10 +39,10 @@ CUE_KIND = "cue"
 class Reliance:
     """What a model relies on, per instance, per pixel and per structure type (see module docstring)."""
 
-    instance_table: pd.DataFrame   # tile, instance_id, kind, human, drop, coverage_px
-    evidence: np.ndarray           # float32 (N, H, W)
-    verified_masks: np.ndarray     # bool (N, H, W)
-    type_table: pd.DataFrame       # kind, mean_drop, ci_low, ci_high, n
+    instance_table: pd.DataFrame  # tile, instance_id, kind, human, drop, coverage_px
+    evidence: np.ndarray  # float32 (N, H, W)
+    verified_masks: np.ndarray  # bool (N, H, W)
+    type_table: pd.DataFrame  # kind, mean_drop, ci_low, ci_high, n
     scores: np.ndarray = field(default_factory=lambda: np.zeros(0))  # (N,) target score of each tile
     targets: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     type_drops: dict[str, np.ndarray] = field(default_factory=dict)  # kind -> per-tile drops (n,)
@@ -62,10 +62,10 @@ class Reliance:
 @dataclass
 class _Render:
     tile: int
-    what: str          # "base" | "instance" | "type" | "cue"
-    key: Any           # instance id, type name or None
+    what: str  # "base" | "instance" | "type" | "cue"
+    key: Any  # instance id, type name or None
     omit: tuple[int, ...]
-    cue: bool | None   # None = the scene's own cue; False = cue removed
+    cue: bool | None  # None = the scene's own cue; False = cue removed
 
 
 def _plan(scenes: Sequence[Any], cue_tiles: np.ndarray) -> list[_Render]:
@@ -92,7 +92,7 @@ def _batches(plan: list[_Render], scenes: Sequence[Any], batch_size: int) -> Ite
     from xbench.scenes import render  # earlier stage
 
     for start in range(0, len(plan), batch_size):
-        chunk = plan[start:start + batch_size]
+        chunk = plan[start : start + batch_size]
         yield np.stack([render(scenes[r.tile], omit=r.omit, cue=r.cue) for r in chunk]).astype(np.float32)
 
 
@@ -104,14 +104,22 @@ def bootstrap_ci(values: np.ndarray, rng: np.random.Generator, n_boot: int) -> t
         return float("nan"), float("nan")
     if np.ptp(v) == 0:
         return float(v[0]), float(v[0])
-    res = stats.bootstrap((v,), np.mean, n_resamples=n_boot, confidence_level=0.95, method="percentile",
-                          random_state=rng, vectorized=True)
+    res = stats.bootstrap(
+        (v,), np.mean, n_resamples=n_boot, confidence_level=0.95, method="percentile", random_state=rng, vectorized=True
+    )
     return float(res.confidence_interval.low), float(res.confidence_interval.high)
 
 
-def compute_reliance(model: ModelHandle, scenes: list[Any], targets: np.ndarray, *, seed: int = 0,
-                     batch_size: int = 128, n_boot: int = 1000,
-                     cue_classes: Sequence[int] | None = None) -> Reliance:
+def compute_reliance(
+    model: ModelHandle,
+    scenes: list[Any],
+    targets: np.ndarray,
+    *,
+    seed: int = 0,
+    batch_size: int = 128,
+    n_boot: int = 1000,
+    cue_classes: Sequence[int] | None = None,
+) -> Reliance:
     """Per-instance drops, evidence maps, verified masks and per-type importance (see module docstring).
 
     ``cue_classes``: the cue row averages over cue-on tiles whose target is one of these classes
@@ -121,13 +129,16 @@ def compute_reliance(model: ModelHandle, scenes: list[Any], targets: np.ndarray,
     """
     targets = np.asarray(targets)
     if targets.shape != (len(scenes),):
-        raise XbenchInputError("array 'targets'", "wrong shape", expected=f"({len(scenes)},)",
-                               found=targets.shape)
-    if len(scenes) and (not np.issubdtype(targets.dtype, np.integer) or targets.min() < 0
-                        or targets.max() >= model.n_classes):
-        raise XbenchInputError("array 'targets'", "target outside the model's classes",
-                               expected=f"integers in [0, {model.n_classes - 1}]",
-                               found=f"{targets.dtype} {targets.min()}..{targets.max()}")
+        raise XbenchInputError("array 'targets'", "wrong shape", expected=f"({len(scenes)},)", found=targets.shape)
+    if len(scenes) and (
+        not np.issubdtype(targets.dtype, np.integer) or targets.min() < 0 or targets.max() >= model.n_classes
+    ):
+        raise XbenchInputError(
+            "array 'targets'",
+            "target outside the model's classes",
+            expected=f"integers in [0, {model.n_classes - 1}]",
+            found=f"{targets.dtype} {targets.min()}..{targets.max()}",
+        )
     if len(scenes) == 0:
         raise XbenchInputError("scenes", "no scenes given", expected="at least one scene")
     cue_tiles = np.ones(len(scenes), dtype=bool) if cue_classes is None else np.isin(targets, list(cue_classes))
@@ -156,8 +167,16 @@ def compute_reliance(model: ModelHandle, scenes: list[Any], targets: np.ndarray,
         if r.what == "instance":
             inst = inst_lookup[(r.tile, r.key)]
             cov = np.asarray(inst.coverage, dtype=np.float64)
-            rows.append({"tile": r.tile, "instance_id": r.key, "kind": str(inst.kind),
-                         "human": bool(inst.human), "drop": drop, "coverage_px": float(cov.sum())})
+            rows.append(
+                {
+                    "tile": r.tile,
+                    "instance_id": r.key,
+                    "kind": str(inst.kind),
+                    "human": bool(inst.human),
+                    "drop": drop,
+                    "coverage_px": float(cov.sum()),
+                }
+            )
             evidence[r.tile] += max(drop, 0.0) * cov
         elif r.what in ("type", "cue"):
             type_drops.setdefault(str(r.key), []).append(drop)
@@ -176,10 +195,14 @@ def compute_reliance(model: ModelHandle, scenes: list[Any], targets: np.ndarray,
     for kind in sorted(type_drops, key=lambda k: (k == CUE_KIND, k)):
         v = np.asarray(type_drops[kind])
         lo, hi = bootstrap_ci(v, rng, n_boot)
-        type_rows.append({"kind": kind, "mean_drop": float(v.mean()), "ci_low": lo, "ci_high": hi,
-                          "n": int(v.size)})
+        type_rows.append({"kind": kind, "mean_drop": float(v.mean()), "ci_low": lo, "ci_high": hi, "n": int(v.size)})
     type_table = pd.DataFrame(type_rows, columns=["kind", "mean_drop", "ci_low", "ci_high", "n"])
-    return Reliance(instance_table=instance_table, evidence=evidence.astype(np.float32),
-                    verified_masks=verified, type_table=type_table, scores=base,
-                    targets=targets.astype(np.int64),
-                    type_drops={k: np.asarray(v) for k, v in type_drops.items()})
+    return Reliance(
+        instance_table=instance_table,
+        evidence=evidence.astype(np.float32),
+        verified_masks=verified,
+        type_table=type_table,
+        scores=base,
+        targets=targets.astype(np.int64),
+        type_drops={k: np.asarray(v) for k, v in type_drops.items()},
+    )

@@ -31,7 +31,7 @@ import torch
 from torch import nn
 
 from xbench.metrics.base import model_scorer
-from xbench.metrics.faithfulness import perturbation_curves, perturbation_curves_loop, pixel_order
+from xbench.metrics.response import perturbation_curves, perturbation_curves_loop, pixel_order
 from xbench.models.base import ModelHandle
 
 
@@ -41,10 +41,19 @@ def demo_model(bands: int, classes: int) -> nn.Module:
     except ImportError:  # the zoo is not there: a local equivalent of its plain CNN
         w = 32
         return nn.Sequential(
-            nn.Conv2d(bands, w // 2, 3, padding=1), nn.ReLU(), nn.MaxPool2d(2),
-            nn.Conv2d(w // 2, w, 3, padding=1), nn.ReLU(), nn.MaxPool2d(2),
-            nn.Conv2d(w, 2 * w, 3, padding=1), nn.ReLU(), nn.Conv2d(2 * w, 2 * w, 3, padding=1), nn.ReLU(),
-            nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(2 * w, classes),
+            nn.Conv2d(bands, w // 2, 3, padding=1),
+            nn.ReLU(),
+            nn.MaxPool2d(2),
+            nn.Conv2d(w // 2, w, 3, padding=1),
+            nn.ReLU(),
+            nn.MaxPool2d(2),
+            nn.Conv2d(w, 2 * w, 3, padding=1),
+            nn.ReLU(),
+            nn.Conv2d(2 * w, 2 * w, 3, padding=1),
+            nn.ReLU(),
+            nn.AdaptiveAvgPool2d(1),
+            nn.Flatten(),
+            nn.Linear(2 * w, classes),
         )
     return build_torch_model("cnn", bands, classes)
 
@@ -56,8 +65,14 @@ def timed(fn):
 
 
 def per_tile_batch(prob, images, targets, baseline, order, steps, mode):
-    return np.concatenate([perturbation_curves(prob, images[i:i + 1], targets[i:i + 1], baseline[i:i + 1],
-                                               order[i:i + 1], steps, mode) for i in range(len(images))])
+    return np.concatenate(
+        [
+            perturbation_curves(
+                prob, images[i : i + 1], targets[i : i + 1], baseline[i : i + 1], order[i : i + 1], steps, mode
+            )
+            for i in range(len(images))
+        ]
+    )
 
 
 def main() -> None:
@@ -80,8 +95,9 @@ def main() -> None:
     # like a structure-free twin: the tile differs from it only on a planted blob (about 8% of pixels)
     yy, xx = np.mgrid[:s, :s]
     centres = rng.uniform(0.25 * s, 0.75 * s, (n, 2))
-    planted = (yy[None] - centres[:, 0, None, None]) ** 2 + (xx[None] - centres[:, 1, None, None]) ** 2 \
-        < 0.08 * s * s / np.pi
+    planted = (yy[None] - centres[:, 0, None, None]) ** 2 + (
+        xx[None] - centres[:, 1, None, None]
+    ) ** 2 < 0.08 * s * s / np.pi
     images = np.where(planted[:, None], np.float32(0.6), twins).astype(np.float32)
     targets = rng.integers(0, 4, n)
     orders = {
@@ -90,9 +106,11 @@ def main() -> None:
     }
     prob = handle.probabilities
     fast = model_scorer(handle)
-    print(f"deletion + insertion curves: {n} tiles {c}x{s}x{s}, {args.steps} steps, "
-          f"{2 * n * (args.steps + 1)} images per curve pair, twin baseline, torch threads "
-          f"{torch.get_num_threads()}, best of {args.repeat} (wall and CPU seconds)")
+    print(
+        f"deletion + insertion curves: {n} tiles {c}x{s}x{s}, {args.steps} steps, "
+        f"{2 * n * (args.steps + 1)} images per curve pair, twin baseline, torch threads "
+        f"{torch.get_num_threads()}, best of {args.repeat} (wall and CPU seconds)"
+    )
     perturbation_curves(fast, images, targets, twins, orders["random map"], args.steps, "deletion")  # warm-up
     for label, order in orders.items():
         engines = {
@@ -114,10 +132,11 @@ def main() -> None:
         print(f"{label}:")
         base_wall, base_cpu = results["loop"][1], results["loop"][2]
         for name, (_, wall, cpu) in results.items():
-            print(f"  {name:16s} {wall:7.2f} s wall  {cpu:7.2f} s CPU   speed-up x{base_wall / wall:5.1f} wall, "
-                  f"x{base_cpu / cpu:5.1f} CPU")
-        print(f"  batched vs per-tile loop: x{results['loop'][1] / results['batched'][1]:.1f} wall  "
-              f"[target >= 10x]")
+            print(
+                f"  {name:16s} {wall:7.2f} s wall  {cpu:7.2f} s CPU   speed-up x{base_wall / wall:5.1f} wall, "
+                f"x{base_cpu / cpu:5.1f} CPU"
+            )
+        print(f"  batched vs per-tile loop: x{results['loop'][1] / results['batched'][1]:.1f} wall  [target >= 10x]")
 
     order = orders["random map"]
     stack = np.repeat(images, args.steps + 1, axis=0)
@@ -126,11 +145,12 @@ def main() -> None:
     def free(x):
         return np.zeros((len(x), 4))
 
-    _, free_wall, _ = timed(lambda: perturbation_curves(free, images, targets, twins, order, args.steps,
-                                                        "deletion"))
-    print(f"harness overhead (random-map deletion curves): {free_wall:.2f} s engine without the model vs "
-          f"{model_wall:.2f} s for the model alone on the same {len(stack)} images "
-          f"({100 * free_wall / model_wall:.0f}%)")
+    _, free_wall, _ = timed(lambda: perturbation_curves(free, images, targets, twins, order, args.steps, "deletion"))
+    print(
+        f"harness overhead (random-map deletion curves): {free_wall:.2f} s engine without the model vs "
+        f"{model_wall:.2f} s for the model alone on the same {len(stack)} images "
+        f"({100 * free_wall / model_wall:.0f}%)"
+    )
 
 
 if __name__ == "__main__":

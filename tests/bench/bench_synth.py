@@ -1,6 +1,6 @@
 """Scene synthesis speed: tiles per second at 64x64x6 in one process (target >= 300 tiles/s).
 
-    python tests/bench/bench_synth.py [--count 1000] [--batch 50] [--recipe orrin-vale] [--size 64]
+    python tests/bench/bench_synth.py [--count 1000] [--batch 50] [--recipe conifer-upland] [--size 64]
 
 Synthesises ``count`` tiles (after a warm-up run) in batches of ``batch`` tiles with `synthesize`,
 without and with twins, and prints:
@@ -41,7 +41,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--count", type=int, default=1000)
     ap.add_argument("--batch", type=int, default=50)
-    ap.add_argument("--recipe", default="orrin-vale")
+    ap.add_argument("--recipe", default="conifer-upland")
     ap.add_argument("--size", type=int, default=64)
     args = ap.parse_args()
     recipe = load_recipe(args.recipe)

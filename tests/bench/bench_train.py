@@ -35,15 +35,19 @@ def main() -> int:
     from xbench.truth import compute_reliance
 
     threads = os.environ.get("XBENCH_TORCH_THREADS", "1")
-    print(f"torch {torch.__version__}, threads per training run: {threads}, "
-          f"cpu count {os.cpu_count()}, load average {os.getloadavg()[0]:.1f}")
+    print(
+        f"torch {torch.__version__}, threads per training run: {threads}, "
+        f"cpu count {os.cpu_count()}, load average {os.getloadavg()[0]:.1f}"
+    )
     failed = False
     for name in args.tasks:
         task = load_task(name)
         t0 = time.perf_counter()
         data = build_task_data(task, use_cache=False)
-        print(f"\n== task {name}: {len(data.train)}/{len(data.val)}/{len(data.test)} tiles of "
-              f"{task.data.size}x{task.data.size}, built in {time.perf_counter() - t0:.1f} s")
+        print(
+            f"\n== task {name}: {len(data.train)}/{len(data.val)}/{len(data.test)} tiles of "
+            f"{task.data.size}x{task.data.size}, built in {time.perf_counter() - t0:.1f} s"
+        )
         wanted = args.models.split(",") if args.models else [m.name for m in task.models]
         n = min(args.reliance_tiles, len(data.test_scenes))
         targets = data.test.clean_labels[:n]
@@ -53,21 +57,30 @@ def main() -> int:
             tm = train_model(task, data, spec, args.seed)
             acc = tm.accuracy
             target = TARGETS.get(name)
-            ok = target is None or spec.kind == "forest" or (
-                acc["test_balanced_accuracy"] >= target and min(tm.seconds, tm.cpu_seconds) <= 60)
+            ok = (
+                target is None
+                or spec.kind == "forest"
+                or (acc["test_balanced_accuracy"] >= target and min(tm.seconds, tm.cpu_seconds) <= 60)
+            )
             failed |= not ok
-            print(f"{spec.name:11s} params {tm.n_parameters:7d}  epochs {tm.epochs:2d}  "
-                  f"train/val/test acc {acc['train_accuracy']:.3f}/{acc['val_accuracy']:.3f}/"
-                  f"{acc['test_accuracy']:.3f}  test balanced acc {acc['test_balanced_accuracy']:.3f}  "
-                  f"{tm.seconds:5.1f} s wall, {tm.cpu_seconds:5.1f} s cpu  {'ok' if ok else 'MISSED TARGET'}",
-                  flush=True)
+            print(
+                f"{spec.name:11s} params {tm.n_parameters:7d}  epochs {tm.epochs:2d}  "
+                f"train/val/test acc {acc['train_accuracy']:.3f}/{acc['val_accuracy']:.3f}/"
+                f"{acc['test_accuracy']:.3f}  test balanced acc {acc['test_balanced_accuracy']:.3f}  "
+                f"{tm.seconds:5.1f} s wall, {tm.cpu_seconds:5.1f} s cpu  {'ok' if ok else 'MISSED TARGET'}",
+                flush=True,
+            )
             t1 = time.perf_counter()
             cue_classes = [c for c, types in task.class_driving_types.items() if types]
-            rel = compute_reliance(tm.handle, data.test_scenes[:n], targets, seed=args.seed,
-                                   cue_classes=cue_classes)
-            print(f"   reliance on {n} test tiles ({time.perf_counter() - t1:.1f} s): " + "; ".join(
-                f"{r.kind} {r.mean_drop:+.3f} [{r.ci_low:+.3f}, {r.ci_high:+.3f}] n={r.n}"
-                for r in rel.type_table.itertuples()), flush=True)
+            rel = compute_reliance(tm.handle, data.test_scenes[:n], targets, seed=args.seed, cue_classes=cue_classes)
+            print(
+                f"   reliance on {n} test tiles ({time.perf_counter() - t1:.1f} s): "
+                + "; ".join(
+                    f"{r.kind} {r.mean_drop:+.3f} [{r.ci_low:+.3f}, {r.ci_high:+.3f}] n={r.n}"
+                    for r in rel.type_table.itertuples()
+                ),
+                flush=True,
+            )
     return 1 if failed else 0
 
 

@@ -13,22 +13,25 @@ from pathlib import Path
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--baseline", metavar="BASE_DIR",
-                        help="baseline run folder (default with --task: results/<task name>/)")
+    parser.add_argument(
+        "--baseline", metavar="BASE_DIR", help="baseline run folder (default with --task: results/<task name>/)"
+    )
     what = parser.add_mutually_exclusive_group(required=True)
     what.add_argument("--current", metavar="CUR_DIR", help="run folder to check")
-    what.add_argument("--task", metavar="TASK.toml",
-                      help="run this task first (into --out) and check that run")
-    parser.add_argument("--gates", metavar="GATES.toml",
-                        help="gate file (default: built-in gates: at most 5%% worse than the baseline and no "
-                             "significant per-tile drop, seconds not gated)")
+    what.add_argument("--task", metavar="TASK.toml", help="run this task first (into --out) and check that run")
+    parser.add_argument(
+        "--gates",
+        metavar="GATES.toml",
+        help="gate file (default: built-in gates: at most 5%% worse than the baseline and no "
+        "significant per-tile drop, seconds not gated)",
+    )
     parser.add_argument("--json", metavar="OUT", help="write a JSON summary here")
     parser.add_argument("--junit", metavar="OUT", help="write JUnit XML here (one testcase per gate)")
-    parser.add_argument("--out", metavar="DIR",
-                        help="with --task: run folder to write (default: a new temporary folder)")
+    parser.add_argument(
+        "--out", metavar="DIR", help="with --task: run folder to write (default: a new temporary folder)"
+    )
     parser.add_argument("--jobs", type=int, default=1, metavar="N", help="with --task: worker processes")
-    parser.add_argument("--failures-only", action="store_true",
-                        help="print only the failing gates in the table")
+    parser.add_argument("--failures-only", action="store_true", help="print only the failing gates in the table")
 
 
 def _run_task(args: argparse.Namespace, task) -> Path:
@@ -42,8 +45,11 @@ def _run_task(args: argparse.Namespace, task) -> Path:
     print(f"xbench check: running task {task.name} into {out}", file=sys.stderr)
     summary = run_task(args.task, out, jobs=args.jobs)
     if summary.cells_failed:
-        print(f"xbench check: warning: {summary.cells_failed} cell(s) failed in the run "
-              f"(see {out}/manifest.json); their values will be missing", file=sys.stderr)
+        print(
+            f"xbench check: warning: {summary.cells_failed} cell(s) failed in the run "
+            f"(see {out}/manifest.json); their values will be missing",
+            file=sys.stderr,
+        )
     return Path(summary.out_dir)
 
 

@@ -1,4 +1,4 @@
-"""`xbench demo`: the whole pipeline on the small demo task (Orrin Vale), report included."""
+"""`xbench demo`: the whole pipeline on the small demo task (Vellardine), report included."""
 
 from __future__ import annotations
 
@@ -22,7 +22,7 @@ def run(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     run_dir = args.out / "run"
     report_dir = args.out / "report"
-    print("xbench demo: Orrin Vale forest district (synthetic), task 'demo'")
+    print("xbench demo: Vellardine forest district (synthetic), task 'demo'")
     summary = run_task("demo", run_dir, jobs=args.jobs, progress=not args.quiet)
     print_summary(summary)
     report = write_report([run_dir], report_dir)

@@ -1,8 +1,8 @@
 """`xbench explainers`: list every explainer (built-in and plugins) with its citation, needs and defaults.
 
-    xbench explainers                 one block per explainer, grouped by kind
-    xbench explainers --key rise      one explainer in full (description, needs, every default)
-    xbench explainers --json          the same information as JSON
+xbench explainers                 one block per explainer, grouped by kind
+xbench explainers --key rise      one explainer in full (description, needs, every default)
+xbench explainers --json          the same information as JSON
 """
 
 from __future__ import annotations
@@ -16,10 +16,19 @@ from typing import Any
 from xbench.explainers import get_explainer, list_explainers, load_plugins
 from xbench.explainers.registry import NEEDS, ExplainerSpec
 
-KIND_TITLES = {"pixel": "Pixel explainers", "concept": "Concept explainers",
-               "control": "Controls (run through every metric like real explainers)"}
-NEED_WORDS = {"gradients": "gradients", "layer": "a layer", "twins": "twins", "masks": "planted masks",
-              "fit-set": "fitting set", "concept-sets": "concept sets"}
+KIND_TITLES = {
+    "pixel": "Pixel explainers",
+    "concept": "Concept explainers",
+    "control": "Controls (run through every metric like real explainers)",
+}
+NEED_WORDS = {
+    "gradients": "gradients",
+    "layer": "a layer",
+    "twins": "twins",
+    "masks": "planted masks",
+    "fit-set": "fitting set",
+    "concept-sets": "concept sets",
+}
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -51,9 +60,16 @@ def defaults_text(spec: ExplainerSpec) -> str:
 
 
 def as_dict(spec: ExplainerSpec) -> dict[str, Any]:
-    return {"key": spec.key, "kind": spec.kind, "source": spec.source, "citation": spec.citation,
-            "needs": sorted(spec.needs), "black_box_ok": spec.black_box_ok, "defaults": spec.defaults,
-            "description": spec.description}
+    return {
+        "key": spec.key,
+        "kind": spec.kind,
+        "source": spec.source,
+        "citation": spec.citation,
+        "needs": sorted(spec.needs),
+        "black_box_ok": spec.black_box_ok,
+        "defaults": spec.defaults,
+        "description": spec.description,
+    }
 
 
 def render_table(specs: list[ExplainerSpec], width: int = 100) -> str:
@@ -87,8 +103,9 @@ def _group(title: str, specs: list[ExplainerSpec], key_w: int, need_w: int, text
 
 
 def render_one(spec: ExplainerSpec, width: int = 100) -> str:
-    wrap = lambda label, text: textwrap.wrap(text, width, initial_indent=f"{label:<13}",  # noqa: E731
-                                             subsequent_indent=" " * 13)
+    def wrap(label: str, text: str) -> list[str]:
+        return textwrap.wrap(text, width, initial_indent=f"{label:<13}", subsequent_indent=" " * 13)
+
     lines = [f"{spec.key} ({spec.kind}, from {spec.source})"]
     lines += wrap("description", spec.description or "-")
     lines += wrap("citation", spec.citation)
@@ -114,8 +131,10 @@ def run(args: argparse.Namespace) -> int:
         print(json.dumps({"explainers": [as_dict(s) for s in specs], "plugin_errors": errors}, indent=2))
         return 0
     n_plugins = sum(s.source != "xbench" for s in specs)
-    print(f"{len(specs)} explainers ({len(specs) - n_plugins} built in, {n_plugins} from plugins). "
-          "Settings are set per explainer in a task file under [explainers.settings.<key>].\n")
+    print(
+        f"{len(specs)} explainers ({len(specs) - n_plugins} built in, {n_plugins} from plugins). "
+        "Settings are set per explainer in a task file under [explainers.settings.<key>].\n"
+    )
     print(render_table(specs, width))
     for label, err in errors.items():
         print(f"plugin failed to load: {label}: {err}")

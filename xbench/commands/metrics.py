@@ -1,9 +1,9 @@
 """`xbench metrics`: list the metrics with their definitions, citations, ranges, directions and needs.
 
-    xbench metrics                  the catalogue, grouped by family
-    xbench metrics KEY [KEY ...]    full detail of some metrics (settings with defaults)
-    xbench metrics --family NAME    one family only
-    xbench metrics --format markdown | json
+xbench metrics                  the catalogue, grouped by family
+xbench metrics KEY [KEY ...]    full detail of some metrics (settings with defaults)
+xbench metrics --family NAME    one family only
+xbench metrics --format markdown | json
 """
 
 from __future__ import annotations
@@ -17,11 +17,11 @@ from typing import Any
 from xbench.errors import XbenchInputError
 
 FAMILY_NOTES = {
-    "localization": "scored separately against the planted masks and the model-verified evidence",
-    "faithfulness": "perturb the tile in the attribution's order and watch the target probability",
-    "sanity": "cascading randomization of the model's layers, top first; explainer re-run at each step",
-    "stability": "explanations of nearby inputs, and how well they predict score changes",
-    "concentration": "how much of the absolute attribution sits on few pixels",
+    "overlap": "scored separately against the planted masks and the model-verified evidence",
+    "response": "perturb the tile in the attribution's order and watch the target probability",
+    "model-dependence": "cascading randomization of the model's layers, top first; explainer re-run at each step",
+    "steadiness": "explanations of nearby inputs, and how well they predict score changes",
+    "spread": "how much of the absolute attribution sits on few pixels",
     "concepts": "importance per structure type vs. the interventional importance and type roles",
     "cost": "what the explanation took, per tile",
 }
@@ -30,10 +30,13 @@ ARROW = {True: "higher", False: "lower", None: "-"}
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("keys", nargs="*", metavar="KEY", help="show full detail of these metrics")
-    parser.add_argument("--family", help="only this family (localization, faithfulness, sanity, stability, "
-                                         "concentration, concepts, cost)")
-    parser.add_argument("--format", choices=("text", "markdown", "json"), default="text",
-                        help="output format (default text)")
+    parser.add_argument(
+        "--family",
+        help="only this family (localization, faithfulness, sanity, stability, concentration, concepts, cost)",
+    )
+    parser.add_argument(
+        "--format", choices=("text", "markdown", "json"), default="text", help="output format (default text)"
+    )
 
 
 def _needs(spec: Any) -> str:
@@ -43,10 +46,17 @@ def _needs(spec: Any) -> str:
 def _as_dict(spec: Any) -> dict[str, Any]:
     lo, hi = spec.value_range
     return {
-        "key": spec.key, "family": spec.family, "definition": spec.definition, "citation": spec.citation,
+        "key": spec.key,
+        "family": spec.family,
+        "definition": spec.definition,
+        "citation": spec.citation,
         "range": [None if abs(lo) == float("inf") else lo, None if abs(hi) == float("inf") else hi],
-        "higher_is_better": spec.higher_is_better, "per_tile": spec.per_tile, "needs": list(spec.needs),
-        "truths": list(spec.truths), "settings": dict(spec.defaults), "settings_doc": dict(spec.settings_doc),
+        "higher_is_better": spec.higher_is_better,
+        "per_tile": spec.per_tile,
+        "needs": list(spec.needs),
+        "truths": list(spec.truths),
+        "settings": dict(spec.defaults),
+        "settings_doc": dict(spec.settings_doc),
     }
 
 
@@ -57,8 +67,11 @@ def _text_catalogue(specs: list[Any], width: int) -> str:
     range_w = max(len(s.range_text) for s in specs)
     head = f"  {'metric':<{key_w}}  {'better':<6}  {'range':<{range_w}}  {'values':<8}  needs"
     indent = " " * (key_w + 4)
-    lines = [f"xbench metrics: {len(specs)} of {len(list_metrics())} metrics. 'values': one per tile or one "
-             "per result;", "undefined values are NaN with a recorded reason.", ""]
+    lines = [
+        f"xbench metrics: {len(specs)} of {len(list_metrics())} metrics. 'values': one per tile or one per result;",
+        "undefined values are NaN with a recorded reason.",
+        "",
+    ]
     family = None
     for s in specs:
         if s.family != family:
@@ -68,11 +81,13 @@ def _text_catalogue(specs: list[Any], width: int) -> str:
             lines.append(f"{family.upper()}: {FAMILY_NOTES.get(family, '')}")
             lines.append(head)
         per = "per tile" if s.per_tile else "one"
-        lines.append(f"  {s.key:<{key_w}}  {ARROW[s.higher_is_better]:<6}  {s.range_text:<{range_w}}  "
-                     f"{per:<8}  {_needs(s)}")
+        lines.append(
+            f"  {s.key:<{key_w}}  {ARROW[s.higher_is_better]:<6}  {s.range_text:<{range_w}}  {per:<8}  {_needs(s)}"
+        )
         for text in (s.definition, s.citation):
-            lines.extend(textwrap.wrap(text, width=max(40, width), initial_indent=indent,
-                                       subsequent_indent=indent + "  "))
+            lines.extend(
+                textwrap.wrap(text, width=max(40, width), initial_indent=indent, subsequent_indent=indent + "  ")
+            )
     used = {n for s in specs for n in s.needs}
     lines += ["", "NEEDS"]
     lines += [f"  {k:<26}{v}" for k, v in _needs_text().items() if k in used]
@@ -82,16 +97,21 @@ def _text_catalogue(specs: list[Any], width: int) -> str:
 
 def _needs_text() -> dict[str, str]:
     from xbench.metrics import NEEDS_TEXT
+
     return NEEDS_TEXT
 
 
 def _text_detail(spec: Any, width: int) -> str:
     wrap = dict(width=max(40, width), subsequent_indent=" " * 16)
-    truths = ("planted and verified (one result each)" if spec.truths != ("none",) else "none")
+    truths = "planted and verified (one result each)" if spec.truths != ("none",) else "none"
     rows = [
-        ("definition", spec.definition), ("citation", spec.citation), ("family", spec.family),
-        ("range", spec.range_text), ("better", ARROW[spec.higher_is_better]),
-        ("values", "one per tile" if spec.per_tile else "one per result"), ("truth", truths),
+        ("definition", spec.definition),
+        ("citation", spec.citation),
+        ("family", spec.family),
+        ("range", spec.range_text),
+        ("better", ARROW[spec.higher_is_better]),
+        ("values", "one per tile" if spec.per_tile else "one per result"),
+        ("truth", truths),
         ("needs", "; ".join(f"{n} ({_needs_text()[n]})" for n in spec.needs) or "attributions only"),
     ]
     lines = [spec.key]
@@ -100,19 +120,30 @@ def _text_detail(spec: Any, width: int) -> str:
         lines.append("  settings")
         for name, default in spec.defaults.items():
             doc = spec.settings_doc.get(name, "")
-            lines.append(textwrap.fill(f"    {name} = {default!r}: {doc}", width=max(40, width),
-                                       subsequent_indent=" " * 8))
+            lines.append(
+                textwrap.fill(f"    {name} = {default!r}: {doc}", width=max(40, width), subsequent_indent=" " * 8)
+            )
     else:
         lines.append("  settings      none")
     return "\n".join(lines)
 
 
 def _markdown(specs: list[Any]) -> str:
-    lines = ["| metric | family | definition | range | better | per tile | needs | citation |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- |"]
+    lines = [
+        "| metric | family | definition | range | better | per tile | needs | citation |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- |",
+    ]
     for s in specs:
-        cells = [f"`{s.key}`", s.family, s.definition, s.range_text, ARROW[s.higher_is_better],
-                 "yes" if s.per_tile else "no", _needs(s), s.citation]
+        cells = [
+            f"`{s.key}`",
+            s.family,
+            s.definition,
+            s.range_text,
+            ARROW[s.higher_is_better],
+            "yes" if s.per_tile else "no",
+            _needs(s),
+            s.citation,
+        ]
         lines.append("| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |")
     return "\n".join(lines)
 
@@ -121,8 +152,7 @@ def run(args: argparse.Namespace) -> int:
     from xbench.metrics import FAMILIES, get_metric, list_metrics
 
     if args.family is not None and args.family not in FAMILIES:
-        raise XbenchInputError("--family", "unknown metric family", expected=" | ".join(FAMILIES),
-                               found=args.family)
+        raise XbenchInputError("--family", "unknown metric family", expected=" | ".join(FAMILIES), found=args.family)
     specs = [get_metric(k) for k in args.keys] if args.keys else list_metrics(args.family)
     if args.keys and args.family:
         specs = [s for s in specs if s.family == args.family]

@@ -26,8 +26,10 @@ def _split(text: str | None, cast: type = str) -> list | None:
 
 
 def print_summary(summary: RunSummary) -> None:
-    print(f"cells: {summary.cells_done} run, {summary.cells_cached} reused from an earlier attempt, "
-          f"{summary.cells_failed} failed, {summary.cells_skipped} not applicable (of {summary.cells_total})")
+    print(
+        f"cells: {summary.cells_done} run, {summary.cells_cached} reused from an earlier attempt, "
+        f"{summary.cells_failed} failed, {summary.cells_skipped} not applicable (of {summary.cells_total})"
+    )
     for failure in summary.failures:
         print(f"  failed: {failure['cell']}: {failure['error']}")
     print(f"time: {summary.seconds:.1f} s")
@@ -39,8 +41,17 @@ def run(args: argparse.Namespace) -> int:
 
     task = load_task(args.task)
     out = args.out or Path("runs") / task.name
-    summary = run_task(args.task, out, jobs=args.jobs, executor=args.executor, scheduler=args.scheduler,
-                       progress=not args.quiet, explainers=_split(args.explainers), models=_split(args.models),
-                       seeds=_split(args.seeds, int), metrics=_split(args.metrics))
+    summary = run_task(
+        args.task,
+        out,
+        jobs=args.jobs,
+        executor=args.executor,
+        scheduler=args.scheduler,
+        progress=not args.quiet,
+        explainers=_split(args.explainers),
+        models=_split(args.models),
+        seeds=_split(args.seeds, int),
+        metrics=_split(args.metrics),
+    )
     print_summary(summary)
     return 0 if summary.ok else 1

@@ -36,12 +36,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--count", type=int, default=16, help="number of tiles (default 16)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--size", type=int, default=64, help="tile size in pixels (default 64)")
-    parser.add_argument(
-        "--twins", action="store_true", help="also store every tile with all structures removed"
-    )
-    parser.add_argument(
-        "--label-noise", type=float, default=0.0, help="fraction of labels flipped (default 0)"
-    )
+    parser.add_argument("--twins", action="store_true", help="also store every tile with all structures removed")
+    parser.add_argument("--label-noise", type=float, default=0.0, help="fraction of labels flipped (default 0)")
     parser.add_argument(
         "--presence",
         action="append",

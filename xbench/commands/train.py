@@ -20,14 +20,26 @@ from xbench.errors import XbenchInputError
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("task", help="a shipped task name (see tasks/) or a task file path")
-    parser.add_argument("--model", action="append", default=None,
-                        help="train only this model (repeatable; default: all of the task's models)")
-    parser.add_argument("--seed", type=int, action="append", default=None,
-                        help="train only this seed (repeatable; default: the task's seeds)")
-    parser.add_argument("--out", default="xbench-train",
-                        help="folder for the tables (default: ./xbench-train)")
-    parser.add_argument("--reliance-tiles", type=int, default=None,
-                        help="test tiles used for the reliance table (default: all test tiles)")
+    parser.add_argument(
+        "--model",
+        action="append",
+        default=None,
+        help="train only this model (repeatable; default: all of the task's models)",
+    )
+    parser.add_argument(
+        "--seed",
+        type=int,
+        action="append",
+        default=None,
+        help="train only this seed (repeatable; default: the task's seeds)",
+    )
+    parser.add_argument("--out", default="xbench-train", help="folder for the tables (default: ./xbench-train)")
+    parser.add_argument(
+        "--reliance-tiles",
+        type=int,
+        default=None,
+        help="test tiles used for the reliance table (default: all test tiles)",
+    )
     parser.add_argument("--no-reliance", action="store_true", help="skip the reliance table")
     parser.add_argument("--no-cache", action="store_true", help="retrain even if a cached model exists")
 
@@ -52,35 +64,55 @@ def run(args: argparse.Namespace) -> int:
     t0 = time.perf_counter()
     print(f"task {task.name}: building tiles ...", file=sys.stderr, flush=True)
     data = build_task_data(task)
-    print(f"task {task.name}: {len(data.train)}/{len(data.val)}/{len(data.test)} tiles "
-          f"({time.perf_counter() - t0:.1f} s)", file=sys.stderr, flush=True)
+    print(
+        f"task {task.name}: {len(data.train)}/{len(data.val)}/{len(data.test)} tiles "
+        f"({time.perf_counter() - t0:.1f} s)",
+        file=sys.stderr,
+        flush=True,
+    )
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    n_rel = len(data.test_scenes) if args.reliance_tiles is None else min(args.reliance_tiles,
-                                                                          len(data.test_scenes))
+    n_rel = len(data.test_scenes) if args.reliance_tiles is None else min(args.reliance_tiles, len(data.test_scenes))
     targets = (data.test.clean_labels if data.test.clean_labels is not None else data.test.labels)[:n_rel]
     # the cue is switched on in tiles of the classes with driving types (the non-default classes)
     cue_classes = [c for c, types in task.class_driving_types.items() if types]
     rows, rel_rows = [], []
     for spec in specs:
         for seed in seeds:
-            tm = train_model(task, data, spec, seed, use_cache=not args.no_cache,
-                             batch_size=task.run["batch_size"] * 2)
+            tm = train_model(task, data, spec, seed, use_cache=not args.no_cache, batch_size=task.run["batch_size"] * 2)
             acc = tm.accuracy
-            rows.append({"model": spec.name, "kind": spec.kind, "seed": seed,
-                         "train_acc": acc["train_accuracy"], "val_acc": acc["val_accuracy"],
-                         "test_acc": acc["test_accuracy"], "train_bacc": acc["train_balanced_accuracy"],
-                         "val_bacc": acc["val_balanced_accuracy"], "test_bacc": acc["test_balanced_accuracy"],
-                         "seconds": round(tm.seconds, 1), "status": "cached" if tm.cached else "trained"})
+            rows.append(
+                {
+                    "model": spec.name,
+                    "kind": spec.kind,
+                    "seed": seed,
+                    "train_acc": acc["train_accuracy"],
+                    "val_acc": acc["val_accuracy"],
+                    "test_acc": acc["test_accuracy"],
+                    "train_bacc": acc["train_balanced_accuracy"],
+                    "val_bacc": acc["val_balanced_accuracy"],
+                    "test_bacc": acc["test_balanced_accuracy"],
+                    "seconds": round(tm.seconds, 1),
+                    "status": "cached" if tm.cached else "trained",
+                }
+            )
             print(_fmt(pd.DataFrame([rows[-1]])), flush=True)
             if args.no_reliance:
                 continue
-            rel = compute_reliance(tm.handle, data.test_scenes[:n_rel], targets, seed=seed,
-                                   batch_size=task.run["batch_size"] * 2, cue_classes=cue_classes)
+            rel = compute_reliance(
+                tm.handle,
+                data.test_scenes[:n_rel],
+                targets,
+                seed=seed,
+                batch_size=task.run["batch_size"] * 2,
+                cue_classes=cue_classes,
+            )
             table = rel.type_table.copy()
             table["role"] = [_role(task, k) for k in table["kind"]]
-            print(f"\nreliance of {spec.name} (seed {seed}) on {n_rel} test tiles: mean drop of the "
-                  "target-class probability when the type is removed (95% bootstrap CI)")
+            print(
+                f"\nreliance of {spec.name} (seed {seed}) on {n_rel} test tiles: mean drop of the "
+                "target-class probability when the type is removed (95% bootstrap CI)"
+            )
             print(_fmt(table[["kind", "role", "mean_drop", "ci_low", "ci_high", "n"]]))
             print("relied on:", ", ".join(rel.relied_types()) or "(nothing)", "\n", flush=True)
             for rec in table.to_dict("records"):
@@ -89,8 +121,9 @@ def run(args: argparse.Namespace) -> int:
     print(f"\naccuracy of the models of task {task.name}")
     print(_fmt(acc_df))
     acc_df.to_csv(out / f"{task.name}__train.csv", index=False)
-    (out / f"{task.name}__train.md").write_text(acc_df.to_markdown(index=False, floatfmt=".3f")
-                                                if _has_tabulate() else _fmt(acc_df))
+    (out / f"{task.name}__train.md").write_text(
+        acc_df.to_markdown(index=False, floatfmt=".3f") if _has_tabulate() else _fmt(acc_df)
+    )
     if rel_rows:
         pd.DataFrame(rel_rows).to_csv(out / f"{task.name}__reliance.csv", index=False)
     print(f"\nwrote {out}/{task.name}__train.csv" + (f" and {task.name}__reliance.csv" if rel_rows else ""))
@@ -104,9 +137,9 @@ def _role(task, kind: str) -> str:
         return "label-driving"
     if kind in task.lookalike_types:
         return "look-alike"
-    from xbench.tasks import NATURAL_TYPES
+    from xbench.names import LOOKALIKE_TYPES
 
-    return "natural" if kind in NATURAL_TYPES else "human, not driving"
+    return "look-alike" if kind in LOOKALIKE_TYPES else "human, not driving"
 
 
 def _has_tabulate() -> bool:

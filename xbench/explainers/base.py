@@ -72,8 +72,11 @@ class Cost:
 
     def per_tile(self, n: int) -> dict[str, float]:
         n = max(int(n), 1)
-        return {"forward_calls": self.forward_calls / n, "backward_calls": self.backward_calls / n,
-                "seconds": self.seconds / n}
+        return {
+            "forward_calls": self.forward_calls / n,
+            "backward_calls": self.backward_calls / n,
+            "seconds": self.seconds / n,
+        }
 
 
 ROW_KEYS = ("concept", "class_name", "score", "spread", "p_value", "matched_type", "iou", "purity")
@@ -128,28 +131,38 @@ class NonFiniteAttributionError(XbenchInputError):
 
 def check_choice(key: str, name: str, value: Any, options: tuple[str, ...]) -> str:
     if value not in options:
-        raise XbenchInputError(f"explainer '{key}': setting '{name}'", "unknown value",
-                               expected="one of " + ", ".join(options), found=value)
+        raise XbenchInputError(
+            f"explainer '{key}': setting '{name}'",
+            "unknown value",
+            expected="one of " + ", ".join(options),
+            found=value,
+        )
     return str(value)
 
 
 def check_int(key: str, name: str, value: Any, minimum: int = 1) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or int(value) < minimum:
-        raise XbenchInputError(f"explainer '{key}': setting '{name}'", "bad value",
-                               expected=f"an integer >= {minimum}", found=value)
+        raise XbenchInputError(
+            f"explainer '{key}': setting '{name}'", "bad value", expected=f"an integer >= {minimum}", found=value
+        )
     return int(value)
 
 
-def check_float(key: str, name: str, value: Any, minimum: float = 0.0, maximum: float = float("inf"),
-                inclusive_min: bool = True) -> float:
+def check_float(
+    key: str, name: str, value: Any, minimum: float = 0.0, maximum: float = float("inf"), inclusive_min: bool = True
+) -> float:
     ok = isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(value, bool)
     if ok:
         v = float(value)
         ok = np.isfinite(v) and (v >= minimum if inclusive_min else v > minimum) and v <= maximum
     if not ok:
         bound = ">=" if inclusive_min else ">"
-        raise XbenchInputError(f"explainer '{key}': setting '{name}'", "bad value",
-                               expected=f"a number {bound} {minimum} and <= {maximum}", found=value)
+        raise XbenchInputError(
+            f"explainer '{key}': setting '{name}'",
+            "bad value",
+            expected=f"a number {bound} {minimum} and <= {maximum}",
+            found=value,
+        )
     return float(value)
 
 
@@ -223,8 +236,9 @@ def nearest_index_upsample(maps: np.ndarray, size: tuple[int, int]) -> np.ndarra
 BASELINES = ("zero", "mean", "blur", "twin")
 
 
-def make_baseline(key: str, kind: str, images: np.ndarray, context: ExplainContext,
-                  blur_sigma: float = 4.0) -> np.ndarray:
+def make_baseline(
+    key: str, kind: str, images: np.ndarray, context: ExplainContext, blur_sigma: float = 4.0
+) -> np.ndarray:
     """A reference input per tile, float32 (N, C, H, W).
 
     ``zero``: all bands 0 (black); ``mean``: each band filled with the tile's own band mean;
@@ -236,15 +250,19 @@ def make_baseline(key: str, kind: str, images: np.ndarray, context: ExplainConte
     if kind == "mean":
         return np.broadcast_to(images.mean(axis=(2, 3), keepdims=True), images.shape).astype(np.float32)
     if kind == "blur":
-        return ndimage.gaussian_filter(images, sigma=(0, 0, blur_sigma, blur_sigma), mode="reflect"
-                                       ).astype(np.float32)
+        return ndimage.gaussian_filter(images, sigma=(0, 0, blur_sigma, blur_sigma), mode="reflect").astype(np.float32)
     if kind == "twin":
         if context.twins is None:
-            raise XbenchInputError(f"explainer '{key}': baseline 'twin'", "needs the tiles' twins",
-                                   expected="ExplainContext.twins (N, C, H, W)", found=None)
+            raise XbenchInputError(
+                f"explainer '{key}': baseline 'twin'",
+                "needs the tiles' twins",
+                expected="ExplainContext.twins (N, C, H, W)",
+                found=None,
+            )
         return np.asarray(context.twins, dtype=np.float32)
-    raise XbenchInputError(f"explainer '{key}': setting 'baseline'", "unknown value",
-                           expected="one of " + ", ".join(BASELINES), found=kind)
+    raise XbenchInputError(
+        f"explainer '{key}': setting 'baseline'", "unknown value", expected="one of " + ", ".join(BASELINES), found=kind
+    )
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -264,9 +282,12 @@ def score_function(key: str, model: ModelHandle, score: str) -> Callable[[torch.
     score = check_choice(key, "score", score, SCORES)
     if model.is_black_box:
         if score == "logit":
-            raise XbenchInputError(f"explainer '{key}': setting 'score'",
-                                   f"model '{model.name}' is a black box and has no logits",
-                                   expected="score = 'probability'", found=score)
+            raise XbenchInputError(
+                f"explainer '{key}': setting 'score'",
+                f"model '{model.name}' is a black box and has no logits",
+                expected="score = 'probability'",
+                found=score,
+            )
 
         def black_box(x: torch.Tensor) -> torch.Tensor:
             return torch.from_numpy(model.probabilities(as_numpy(x)).astype(np.float32))
@@ -314,8 +335,11 @@ def backward_counted(model: ModelHandle, n: int) -> Iterator[None]:
 
 def grad_enabled_module(model: ModelHandle, key: str) -> torch.nn.Module:
     if model.module is None:  # guarded by explain(); kept for direct calls
-        raise XbenchInputError(f"explainer '{key}'", f"model '{model.name}' is a black box: "
-                               "this explainer needs gradients", expected="a torch model")
+        raise XbenchInputError(
+            f"explainer '{key}'",
+            f"model '{model.name}' is a black box: this explainer needs gradients",
+            expected="a torch model",
+        )
     return model.module
 
 
@@ -327,9 +351,12 @@ def grad_enabled_module(model: ModelHandle, key: str) -> torch.nn.Module:
 def _layer_output_tensor(key: str, layer_name: str, out: Any) -> torch.Tensor:
     if not isinstance(out, torch.Tensor) or out.ndim != 4:
         shape = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
-        raise XbenchInputError(f"explainer '{key}': layer '{layer_name}'",
-                               "output is not a spatial feature map",
-                               expected="a 4-D tensor (N, channels, h, w), e.g. a conv layer", found=shape)
+        raise XbenchInputError(
+            f"explainer '{key}': layer '{layer_name}'",
+            "output is not a spatial feature map",
+            expected="a 4-D tensor (N, channels, h, w), e.g. a conv layer",
+            found=shape,
+        )
     return out
 
 
@@ -342,8 +369,14 @@ class LayerTap:
     the output. A layer called more than once in a forward pass is an error (ambiguous activations).
     """
 
-    def __init__(self, key: str, model: ModelHandle, layer_name: str, mode: str = "read",
-                 replace: Callable[[torch.Tensor], torch.Tensor] | None = None):
+    def __init__(
+        self,
+        key: str,
+        model: ModelHandle,
+        layer_name: str,
+        mode: str = "read",
+        replace: Callable[[torch.Tensor], torch.Tensor] | None = None,
+    ):
         self.key = key
         self.layer_name = layer_name
         self.layer = model.get_layer(layer_name)
@@ -357,9 +390,11 @@ class LayerTap:
     def _hook(self, _module, _args, out):
         self.calls += 1
         if self.calls > 1:
-            raise XbenchInputError(f"explainer '{self.key}': layer '{self.layer_name}'",
-                                   "the layer runs more than once per forward pass (a reused module)",
-                                   expected="a layer used once, e.g. a distinct conv layer")
+            raise XbenchInputError(
+                f"explainer '{self.key}': layer '{self.layer_name}'",
+                "the layer runs more than once per forward pass (a reused module)",
+                expected="a layer used once, e.g. a distinct conv layer",
+            )
         out = _layer_output_tensor(self.key, self.layer_name, out)
         if self.replace is not None:
             out = self.replace(out)
@@ -385,14 +420,14 @@ class LayerTap:
         self.activation = None
         out = self.module(x)
         if self.activation is None:
-            raise XbenchInputError(f"explainer '{self.key}': layer '{self.layer_name}'",
-                                   "the layer did not run in the model's forward pass")
+            raise XbenchInputError(
+                f"explainer '{self.key}': layer '{self.layer_name}'",
+                "the layer did not run in the model's forward pass",
+            )
         return out
 
 
-
-def layer_activations(key: str, model: ModelHandle, layer_name: str, images: np.ndarray,
-                      batch_size: int) -> np.ndarray:
+def layer_activations(key: str, model: ModelHandle, layer_name: str, images: np.ndarray, batch_size: int) -> np.ndarray:
     """The layer's output for all images, float32 (N, C, h, w), computed without gradients."""
     out = []
     with LayerTap(key, model, layer_name) as t, torch.no_grad():

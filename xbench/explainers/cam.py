@@ -26,17 +26,25 @@ from xbench.explainers.base import (
 )
 from xbench.explainers.registry import register_explainer
 
-CITE_GRADCAM = ("Selvaraju, Cogswell, Das, Vedantam, Parikh, Batra. Grad-CAM: visual explanations from deep "
-                "networks via gradient-based localization. ICCV 2017.")
-CITE_GRADCAMPP = ("Chattopadhay, Sarkar, Howlader, Balasubramanian. Grad-CAM++: generalized gradient-based "
-                  "visual explanations for deep convolutional networks. WACV 2018.")
+CITE_GRADCAM = (
+    "Selvaraju, Cogswell, Das, Vedantam, Parikh, Batra. Grad-CAM: visual explanations from deep "
+    "networks via gradient-based localization. ICCV 2017."
+)
+CITE_GRADCAMPP = (
+    "Chattopadhay, Sarkar, Howlader, Balasubramanian. Grad-CAM++: generalized gradient-based "
+    "visual explanations for deep convolutional networks. WACV 2018."
+)
 UPSAMPLE = ("bilinear", "nearest")
 
 
-@register_explainer("grad-cam", citation=CITE_GRADCAM, needs={"gradients", "layer"},
-                    defaults={"layer": None, "relu": True, "upsample": "bilinear"},
-                    description="layer feature maps weighted by their spatially averaged gradients, ReLU, "
-                                "upsampled (captum LayerGradCam + LayerAttribution.interpolate)")
+@register_explainer(
+    "grad-cam",
+    citation=CITE_GRADCAM,
+    needs={"gradients", "layer"},
+    defaults={"layer": None, "relu": True, "upsample": "bilinear"},
+    description="layer feature maps weighted by their spatially averaged gradients, ReLU, "
+    "upsampled (captum LayerGradCam + LayerAttribution.interpolate)",
+)
 def grad_cam(model, images, targets, context, *, layer, relu, upsample):
     key = "grad-cam"
     mode = check_choice(key, "upsample", upsample, UPSAMPLE)
@@ -49,18 +57,25 @@ def grad_cam(model, images, targets, context, *, layer, relu, upsample):
         with backward_counted(model, x.shape[0]):
             attr = method.attribute(x, target=torch.from_numpy(targets[sl]), relu_attributions=bool(relu))
         if not isinstance(attr, torch.Tensor) or attr.ndim != 4:
-            raise XbenchInputError(f"explainer '{key}': layer '{layer}'", "output is not a spatial "
-                                   "feature map", expected="a 4-D conv output (N, K, h, w)",
-                                   found=getattr(attr, "shape", type(attr).__name__))
+            raise XbenchInputError(
+                f"explainer '{key}': layer '{layer}'",
+                "output is not a spatial feature map",
+                expected="a 4-D conv output (N, K, h, w)",
+                found=getattr(attr, "shape", type(attr).__name__),
+            )
         up = attr if attr.shape[-2:] == (h, w) else LayerAttribution.interpolate(attr, (h, w), mode)
         out[sl] = as_numpy(up[:, 0])
     return out
 
 
-@register_explainer("grad-cam-pp", citation=CITE_GRADCAMPP, needs={"gradients", "layer"},
-                    defaults={"layer": None, "upsample": "bilinear"},
-                    description="Grad-CAM++: feature maps weighted by positive gradients with per-position "
-                                "weights from higher-order terms (exponential score), ReLU, upsampled")
+@register_explainer(
+    "grad-cam-pp",
+    citation=CITE_GRADCAMPP,
+    needs={"gradients", "layer"},
+    defaults={"layer": None, "upsample": "bilinear"},
+    description="Grad-CAM++: feature maps weighted by positive gradients with per-position "
+    "weights from higher-order terms (exponential score), ReLU, upsampled",
+)
 def grad_cam_pp(model, images, targets, context, *, layer, upsample):
     """Grad-CAM++ (Chattopadhay et al. 2018, eqs. 19 and 9 with Y = exp(S)).
 
@@ -82,7 +97,7 @@ def grad_cam_pp(model, images, targets, context, *, layer, upsample):
                 (g,) = torch.autograd.grad(score, t.activation)
             a = t.activation.detach().double()
             g = g.double()
-            g2, g3 = g ** 2, g ** 3
+            g2, g3 = g**2, g**3
             denom = 2.0 * g2 + a.sum(dim=(2, 3), keepdim=True) * g3
             denom = torch.where(denom != 0, denom, torch.ones_like(denom))
             alpha = g2 / denom
@@ -90,4 +105,3 @@ def grad_cam_pp(model, images, targets, context, *, layer, upsample):
             cam = torch.relu((weights * a).sum(dim=1))
             out[sl] = resize_maps(cam.float(), (h, w), mode)
     return out
-

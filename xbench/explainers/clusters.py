@@ -61,8 +61,10 @@ from xbench.explainers.base import (
 )
 from xbench.explainers.registry import register_explainer
 
-CITE_CLUSTERS = ("Ghorbani, Wexler, Zou, Kim. Towards automatic concept-based explanations. NeurIPS 2019; "
-                 "Gaussian mixtures by EM: Dempster, Laird, Rubin. J. Royal Statistical Society B, 1977.")
+CITE_CLUSTERS = (
+    "Ghorbani, Wexler, Zou, Kim. Towards automatic concept-based explanations. NeurIPS 2019; "
+    "Gaussian mixtures by EM: Dempster, Laird, Rubin. J. Royal Statistical Society B, 1977."
+)
 KEY = "activation-clusters"
 
 
@@ -72,8 +74,9 @@ def _positions(acts: np.ndarray) -> np.ndarray:
     return acts.transpose(0, 2, 3, 1).reshape(-1, k).astype(np.float64)
 
 
-def _fit_mixture(x: np.ndarray, n_clusters, cluster_range, covariance: str, seed: int
-                 ) -> tuple[GaussianMixture, dict[int, float]]:
+def _fit_mixture(
+    x: np.ndarray, n_clusters, cluster_range, covariance: str, seed: int
+) -> tuple[GaussianMixture, dict[int, float]]:
     if n_clusters == "bic":
         lo, hi = cluster_range
         candidates = range(lo, hi + 1)
@@ -83,8 +86,9 @@ def _fit_mixture(x: np.ndarray, n_clusters, cluster_range, covariance: str, seed
     for k in candidates:
         if k > x.shape[0]:
             break
-        gm = GaussianMixture(n_components=k, covariance_type=covariance, reg_covar=1e-4, n_init=1,
-                             max_iter=200, random_state=seed)
+        gm = GaussianMixture(
+            n_components=k, covariance_type=covariance, reg_covar=1e-4, n_init=1, max_iter=200, random_state=seed
+        )
         with threadpool_limits(1):  # small problems: BLAS threads only add contention
             gm.fit(x)
             bic = float(gm.bic(x))
@@ -92,8 +96,12 @@ def _fit_mixture(x: np.ndarray, n_clusters, cluster_range, covariance: str, seed
         if best is None or bic < best_bic:
             best, best_bic = gm, bic
     if best is None:
-        raise XbenchInputError(f"explainer '{KEY}'", "too few activation positions to fit the mixture",
-                               expected=f"at least {min(candidates)} positions", found=x.shape[0])
+        raise XbenchInputError(
+            f"explainer '{KEY}'",
+            "too few activation positions to fit the mixture",
+            expected=f"at least {min(candidates)} positions",
+            found=x.shape[0],
+        )
     return best, bics
 
 
@@ -130,24 +138,60 @@ def _ttest(d: np.ndarray) -> float | None:
     return p if np.isfinite(p) else 1.0
 
 
-@register_explainer(KEY, citation=CITE_CLUSTERS, needs={"layer", "fit-set"}, kind="concept",
-                    defaults={"layer": None, "n_clusters": "bic", "cluster_range": [2, 8],
-                              "pca_components": 8, "covariance": "full", "max_positions": 4000,
-                              "baseline": "fit-mean", "score": "probability", "alpha": 0.05,
-                              "min_drop": 0.01, "min_iou": 0.1},
-                    description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
-                                "each replaced by a baseline inside the network; attribution = cluster "
-                                "maps weighted by the target-score drop; reports IoU/purity per type")
-def activation_clusters(model, images, targets, context, *, layer, n_clusters, cluster_range,
-                        pca_components, covariance, max_positions, baseline, score, alpha, min_drop, min_iou):
+@register_explainer(
+    KEY,
+    citation=CITE_CLUSTERS,
+    needs={"layer", "fit-set"},
+    kind="concept",
+    defaults={
+        "layer": None,
+        "n_clusters": "bic",
+        "cluster_range": [2, 8],
+        "pca_components": 8,
+        "covariance": "full",
+        "max_positions": 4000,
+        "baseline": "fit-mean",
+        "score": "probability",
+        "alpha": 0.05,
+        "min_drop": 0.01,
+        "min_iou": 0.1,
+    },
+    description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
+    "each replaced by a baseline inside the network; attribution = cluster "
+    "maps weighted by the target-score drop; reports IoU/purity per type",
+)
+def activation_clusters(
+    model,
+    images,
+    targets,
+    context,
+    *,
+    layer,
+    n_clusters,
+    cluster_range,
+    pca_components,
+    covariance,
+    max_positions,
+    baseline,
+    score,
+    alpha,
+    min_drop,
+    min_iou,
+):
     if n_clusters != "bic":
         n_clusters = check_int(KEY, "n_clusters", n_clusters, 1)
-    if (not isinstance(cluster_range, (list, tuple)) or len(cluster_range) != 2
-            or not all(isinstance(v, (int, np.integer)) for v in cluster_range)
-            or not 1 <= cluster_range[0] <= cluster_range[1]):
-        raise XbenchInputError(f"explainer '{KEY}': setting 'cluster_range'", "bad value",
-                               expected="[k_min, k_max] integers with 1 <= k_min <= k_max",
-                               found=cluster_range)
+    if (
+        not isinstance(cluster_range, (list, tuple))
+        or len(cluster_range) != 2
+        or not all(isinstance(v, (int, np.integer)) for v in cluster_range)
+        or not 1 <= cluster_range[0] <= cluster_range[1]
+    ):
+        raise XbenchInputError(
+            f"explainer '{KEY}': setting 'cluster_range'",
+            "bad value",
+            expected="[k_min, k_max] integers with 1 <= k_min <= k_max",
+            found=cluster_range,
+        )
     pca_components = check_int(KEY, "pca_components", pca_components, 1)
     covariance = check_choice(KEY, "covariance", covariance, ("full", "diag", "tied", "spherical"))
     max_positions = check_int(KEY, "max_positions", max_positions, 2)
@@ -164,8 +208,11 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
     _, width, h, w = fit_acts.shape
     fit_x = _positions(fit_acts)
     rng = context.rng(stream=3)
-    sample = fit_x if fit_x.shape[0] <= max_positions else \
-        fit_x[np.sort(rng.choice(fit_x.shape[0], max_positions, replace=False))]
+    sample = (
+        fit_x
+        if fit_x.shape[0] <= max_positions
+        else fit_x[np.sort(rng.choice(fit_x.shape[0], max_positions, replace=False))]
+    )
     pca = None
     if width > pca_components:
         with threadpool_limits(1):
@@ -184,9 +231,12 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
     # 4: assign positions
     acts = layer_activations(KEY, model, layer, images, bs)
     if acts.shape[1:] != fit_acts.shape[1:]:
-        raise XbenchInputError(f"explainer '{KEY}': layer '{layer}'", "feature map size differs between "
-                               "the fitting set and the explained tiles",
-                               expected=fit_acts.shape[1:], found=acts.shape[1:])
+        raise XbenchInputError(
+            f"explainer '{KEY}': layer '{layer}'",
+            "feature map size differs between the fitting set and the explained tiles",
+            expected=fit_acts.shape[1:],
+            found=acts.shape[1:],
+        )
     n = images.shape[0]
     cluster_maps = assign(_positions(acts)).reshape(n, h, w)
     fit_maps = assign(fit_x).reshape(-1, h, w)
@@ -219,7 +269,7 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
                 if not present.any():
                     continue
                 rows = np.flatnonzero(present)
-                current["mask"] = (maps[rows] == c)
+                current["mask"] = maps[rows] == c
                 drops[c, np.arange(sl.start, sl.stop)[rows]] = s0[rows] - scores(t.forward(x[rows]))
             current["mask"] = None
 
@@ -238,8 +288,9 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
         iou = purity = None
         names = []
 
-    class_names = list(context.class_names) if context.class_names is not None else \
-        [str(i) for i in range(model.n_classes)]
+    class_names = (
+        list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
+    )
     present_all = np.stack([(cluster_maps == c).reshape(n, -1).any(axis=1) for c in range(k)])  # (k, n)
     rows = []
     for c in range(k):
@@ -249,16 +300,18 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
             sel = present_all[c] & (targets == cls)
             d = drops[c, sel, cls]
             p = _ttest(d)
-            rows.append({
-                "concept": f"cluster-{c}",
-                "class_name": class_names[int(cls)] if int(cls) < len(class_names) else str(int(cls)),
-                "score": float(d.mean()) if d.size else None,
-                "spread": float(d.std(ddof=1)) if d.size > 1 else None,
-                "p_value": None if p is None else min(1.0, p * k),  # Bonferroni over the clusters
-                "matched_type": matched,
-                "iou": float(iou[c, best]) if matched is not None else None,
-                "purity": float(purity[c, best]) if matched is not None else None,
-            })
+            rows.append(
+                {
+                    "concept": f"cluster-{c}",
+                    "class_name": class_names[int(cls)] if int(cls) < len(class_names) else str(int(cls)),
+                    "score": float(d.mean()) if d.size else None,
+                    "spread": float(d.std(ddof=1)) if d.size > 1 else None,
+                    "p_value": None if p is None else min(1.0, p * k),  # Bonferroni over the clusters
+                    "matched_type": matched,
+                    "iou": float(iou[c, best]) if matched is not None else None,
+                    "purity": float(purity[c, best]) if matched is not None else None,
+                }
+            )
 
     importance: dict[str, float] = {}
     flagged: dict[str, bool] = {}
@@ -272,9 +325,23 @@ def activation_clusters(model, images, targets, context, *, layer, n_clusters, c
         p = _ttest(d)
         flagged[name] = bool(p is not None and p < alpha / max(len(names), 1) and d.mean() > min_drop)
 
-    report = ConceptReport(rows=rows, type_importance=importance, flagged=flagged, extras={
-        "cluster_maps": cluster_maps.astype(np.int64), "score_changes": drops.astype(np.float32),
-        "fit_cluster_maps": fit_maps.astype(np.int64), "iou": iou, "purity": purity,
-        "mask_names": names, "class_names": class_names, "n_clusters": k, "bic": bics, "layer": layer,
-        "score": score, "baseline_vector": base_vec.astype(np.float32)})
+    report = ConceptReport(
+        rows=rows,
+        type_importance=importance,
+        flagged=flagged,
+        extras={
+            "cluster_maps": cluster_maps.astype(np.int64),
+            "score_changes": drops.astype(np.float32),
+            "fit_cluster_maps": fit_maps.astype(np.int64),
+            "iou": iou,
+            "purity": purity,
+            "mask_names": names,
+            "class_names": class_names,
+            "n_clusters": k,
+            "bic": bics,
+            "layer": layer,
+            "score": score,
+            "baseline_vector": base_vec.astype(np.float32),
+        },
+    )
     return attributions, report

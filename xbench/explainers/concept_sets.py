@@ -23,31 +23,40 @@ def _scene_seed(seed: int, set_index: int, tile: int) -> int:
     return int(((int(a) << 32) | int(b)) & ((1 << 53) - 1))
 
 
-def make_concept_sets(recipe, size: int, types: Iterable[str], n_per_set: int, n_random: int,
-                      seed: int) -> dict[str, np.ndarray]:
+def make_concept_sets(
+    recipe, size: int, types: Iterable[str], n_per_set: int, n_random: int, seed: int
+) -> dict[str, np.ndarray]:
     """Concept and random example sets: {type: float32 (n_per_set, C, size, size), 'random-i': ...}.
 
     recipe: a recipe name, path or ``Recipe``; types: structure types of the recipe's catalogue;
     n_random: number of random sets (TCAV significance needs at least 10).
     """
     if not isinstance(recipe, (str, Path)) and not hasattr(recipe, "types"):
-        raise XbenchInputError("make_concept_sets: recipe", "not a recipe", expected="a name, path or Recipe",
-                               found=type(recipe).__name__)
+        raise XbenchInputError(
+            "make_concept_sets: recipe", "not a recipe", expected="a name, path or Recipe", found=type(recipe).__name__
+        )
     rec = load_recipe(recipe)
     catalogue = list(rec.types())
     types = list(types)
     unknown = [t for t in types if t not in catalogue]
     if unknown:
-        raise XbenchInputError("make_concept_sets: types", "structure types not in the recipe's catalogue",
-                               expected="some of " + ", ".join(catalogue), found=unknown)
+        raise XbenchInputError(
+            "make_concept_sets: types",
+            "structure types not in the recipe's catalogue",
+            expected="some of " + ", ".join(catalogue),
+            found=unknown,
+        )
     for name, value, minimum in (("n_per_set", n_per_set, 1), ("n_random", n_random, 0), ("size", size, 8)):
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-            raise XbenchInputError(f"make_concept_sets: {name}", "bad value",
-                                   expected=f"an integer >= {minimum}", found=value)
+            raise XbenchInputError(
+                f"make_concept_sets: {name}", "bad value", expected=f"an integer >= {minimum}", found=value
+            )
 
     def draw(set_index: int, presence: dict[str, float] | None) -> np.ndarray:
-        tiles = [render(sample_scene(rec, size, _scene_seed(seed, set_index, i), presence=presence))
-                 for i in range(int(n_per_set))]
+        tiles = [
+            render(sample_scene(rec, size, _scene_seed(seed, set_index, i), presence=presence))
+            for i in range(int(n_per_set))
+        ]
         return np.stack(tiles).astype(np.float32)
 
     sets: dict[str, np.ndarray] = {}

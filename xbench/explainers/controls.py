@@ -21,15 +21,21 @@ from xbench.explainers.base import check_choice, check_float
 from xbench.explainers.registry import register_explainer
 
 CITE_RANDOM = "Control (common practice): uniform noise from a seeded generator."
-CITE_EDGES = ("Control: Sobel edge magnitude; edge detectors as a baseline for saliency maps: Adebayo, "
-              "Gilmer, Muelly, Goodfellow, Hardt, Kim. Sanity checks for saliency maps. NeurIPS 2018.")
+CITE_EDGES = (
+    "Control: Sobel edge magnitude; edge detectors as a baseline for saliency maps: Adebayo, "
+    "Gilmer, Muelly, Goodfellow, Hardt, Kim. Sanity checks for saliency maps. NeurIPS 2018."
+)
 CITE_ORACLE = "Control: the planted structure masks of the synthetic scenes (ground truth by construction)."
 
 
-@register_explainer("random", citation=CITE_RANDOM, needs=set(), kind="control",
-                    defaults={"distribution": "uniform"},
-                    description="seeded noise, independent of model and image (uniform [0, 1) or "
-                                "standard normal)")
+@register_explainer(
+    "random",
+    citation=CITE_RANDOM,
+    needs=set(),
+    kind="control",
+    defaults={"distribution": "uniform"},
+    description="seeded noise, independent of model and image (uniform [0, 1) or standard normal)",
+)
 def random_map(model, images, targets, context, *, distribution):
     distribution = check_choice("random", "distribution", distribution, ("uniform", "normal"))
     rng = context.rng(stream=7)
@@ -39,10 +45,15 @@ def random_map(model, images, targets, context, *, distribution):
     return rng.standard_normal((n, h, w), dtype=np.float32)
 
 
-@register_explainer("edges", citation=CITE_EDGES, needs=set(), kind="control",
-                    defaults={"sigma": 0.0, "combine": "mean"},
-                    description="Sobel gradient magnitude of each band (optionally Gaussian-smoothed "
-                                "first), combined over bands by mean or max; ignores the model")
+@register_explainer(
+    "edges",
+    citation=CITE_EDGES,
+    needs=set(),
+    kind="control",
+    defaults={"sigma": 0.0, "combine": "mean"},
+    description="Sobel gradient magnitude of each band (optionally Gaussian-smoothed "
+    "first), combined over bands by mean or max; ignores the model",
+)
 def edges(model, images, targets, context, *, sigma, combine):
     sigma = check_float("edges", "sigma", sigma, 0.0)
     combine = check_choice("edges", "combine", combine, ("mean", "max"))
@@ -55,19 +66,32 @@ def edges(model, images, targets, context, *, sigma, combine):
     return out.astype(np.float32)
 
 
-@register_explainer("oracle", citation=CITE_ORACLE, needs={"masks"}, kind="control", defaults={},
-                    description="1 on the planted pixels of the target class's driving structure types "
-                                "(context.driving_types), 0 elsewhere; needs the planted masks")
+@register_explainer(
+    "oracle",
+    citation=CITE_ORACLE,
+    needs={"masks"},
+    kind="control",
+    defaults={},
+    description="1 on the planted pixels of the target class's driving structure types "
+    "(context.driving_types), 0 elsewhere; needs the planted masks",
+)
 def oracle(model, images, targets, context):
     names = list(context.mask_names)
     if context.driving_types is None:
-        raise XbenchInputError("explainer 'oracle': context.driving_types", "the oracle needs each "
-                               "class's driving structure types", expected="dict class index -> types")
+        raise XbenchInputError(
+            "explainer 'oracle': context.driving_types",
+            "the oracle needs each class's driving structure types",
+            expected="dict class index -> types",
+        )
     driving = {int(k): list(v) for k, v in context.driving_types.items()}
     unknown = sorted({t for ts in driving.values() for t in ts} - set(names))
     if unknown:
-        raise XbenchInputError("explainer 'oracle': context.driving_types", "unknown structure types",
-                               expected="names from mask_names: " + ", ".join(names), found=unknown)
+        raise XbenchInputError(
+            "explainer 'oracle': context.driving_types",
+            "unknown structure types",
+            expected="names from mask_names: " + ", ".join(names),
+            found=unknown,
+        )
     masks = np.asarray(context.masks, dtype=bool)
     n, _, h, w = images.shape
     out = np.zeros((n, h, w), dtype=np.float32)

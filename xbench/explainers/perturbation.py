@@ -32,19 +32,23 @@ from xbench.explainers.base import (
 from xbench.explainers.registry import register_explainer
 
 CITE_OCCLUSION = "Zeiler, Fergus. Visualizing and understanding convolutional networks. ECCV 2014."
-CITE_RISE = ("Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. "
-             "BMVC 2018.")
-CITE_KERNEL_SHAP = ("Lundberg, Lee. A unified approach to interpreting model predictions. NeurIPS 2017 "
-                    "(KernelSHAP); SLIC superpixels: Achanta et al. IEEE TPAMI 2012.")
+CITE_RISE = "Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. BMVC 2018."
+CITE_KERNEL_SHAP = (
+    "Lundberg, Lee. A unified approach to interpreting model predictions. NeurIPS 2017 "
+    "(KernelSHAP); SLIC superpixels: Achanta et al. IEEE TPAMI 2012."
+)
 PERTURB_BASELINES = ("zero", "mean", "blur")
 
 
-@register_explainer("occlusion", citation=CITE_OCCLUSION, needs=set(),
-                    defaults={"window": 8, "stride": 4, "baseline": "mean", "blur_sigma": 4.0,
-                              "score": "probability"},
-                    description="drop of the target score when a window x window patch (all bands) is "
-                                "replaced by a baseline, averaged over the windows covering each pixel "
-                                "(captum Occlusion); black box ok")
+@register_explainer(
+    "occlusion",
+    citation=CITE_OCCLUSION,
+    needs=set(),
+    defaults={"window": 8, "stride": 4, "baseline": "mean", "blur_sigma": 4.0, "score": "probability"},
+    description="drop of the target score when a window x window patch (all bands) is "
+    "replaced by a baseline, averaged over the windows covering each pixel "
+    "(captum Occlusion); black box ok",
+)
 def occlusion(model, images, targets, context, *, window, stride, baseline, blur_sigma, score):
     key = "occlusion"
     window = check_int(key, "window", window, 1)
@@ -59,35 +63,43 @@ def occlusion(model, images, targets, context, *, window, stride, baseline, blur
     for sl in batches(images.shape[0], context.batch_size):
         x = as_tensor(images[sl])
         per_eval = max(1, context.batch_size // x.shape[0])
-        attr = method.attribute(x, sliding_window_shapes=(c, window, window), strides=(c, stride, stride),
-                                baselines=as_tensor(base[sl]), target=torch.from_numpy(targets[sl]),
-                                perturbations_per_eval=per_eval)
+        attr = method.attribute(
+            x,
+            sliding_window_shapes=(c, window, window),
+            strides=(c, stride, stride),
+            baselines=as_tensor(base[sl]),
+            target=torch.from_numpy(targets[sl]),
+            perturbations_per_eval=per_eval,
+        )
         out[sl] = as_numpy(attr)
     return reduce_channels(out, "mean")
 
 
-def rise_masks(n_masks: int, grid: int, p: float, size: tuple[int, int],
-               rng: np.random.Generator) -> np.ndarray:
+def rise_masks(n_masks: int, grid: int, p: float, size: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
     """RISE masks (Petsiuk et al. 2018): a grid x grid binary grid with P(1) = p, upsampled bilinearly
     to (grid + 1) cells of ceil(H / grid) pixels and cropped at a random shift. float32 (n, H, W)."""
     h, w = size
     cell_h, cell_w = -(-h // grid), -(-w // grid)
     small = (rng.random((n_masks, 1, grid, grid)) < p).astype(np.float32)
-    up = F.interpolate(torch.from_numpy(small), size=((grid + 1) * cell_h, (grid + 1) * cell_w),
-                       mode="bilinear", align_corners=False)[:, 0].numpy()
+    up = F.interpolate(
+        torch.from_numpy(small), size=((grid + 1) * cell_h, (grid + 1) * cell_w), mode="bilinear", align_corners=False
+    )[:, 0].numpy()
     dy = rng.integers(0, cell_h, n_masks)
     dx = rng.integers(0, cell_w, n_masks)
     out = np.empty((n_masks, h, w), dtype=np.float32)
     for i in range(n_masks):
-        out[i] = up[i, dy[i]:dy[i] + h, dx[i]:dx[i] + w]
+        out[i] = up[i, dy[i] : dy[i] + h, dx[i] : dx[i] + w]
     return out
 
 
-@register_explainer("rise", citation=CITE_RISE, needs=set(),
-                    defaults={"n_masks": 500, "grid": 8, "p": 0.5, "baseline": "zero", "blur_sigma": 4.0,
-                              "score": "probability"},
-                    description="target score under random smooth masks, averaged per pixel weighted by "
-                                "the mask (masked-out pixels take the baseline); black box ok")
+@register_explainer(
+    "rise",
+    citation=CITE_RISE,
+    needs=set(),
+    defaults={"n_masks": 500, "grid": 8, "p": 0.5, "baseline": "zero", "blur_sigma": 4.0, "score": "probability"},
+    description="target score under random smooth masks, averaged per pixel weighted by "
+    "the mask (masked-out pixels take the baseline); black box ok",
+)
 def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_sigma, score):
     """RISE saliency S(x) = sum_i f_t(x * M_i + b * (1 - M_i)) M_i / (n * p) (Petsiuk et al. 2018;
     b = 0 in the paper). The same seeded masks serve every tile, so a tile's map does not depend on the
@@ -121,20 +133,36 @@ def superpixels(tile: np.ndarray, n_segments: int, compactness: float, seed: int
     lo = x.min(axis=(0, 1), keepdims=True)
     span = x.max(axis=(0, 1), keepdims=True) - lo
     x = (x - lo) / np.where(span > 0, span, 1.0)
-    seg = slic(x, n_segments=n_segments, compactness=compactness, channel_axis=-1, start_label=0,
-               convert2lab=False, enforce_connectivity=True)
+    seg = slic(
+        x,
+        n_segments=n_segments,
+        compactness=compactness,
+        channel_axis=-1,
+        start_label=0,
+        convert2lab=False,
+        enforce_connectivity=True,
+    )
     _, seg = np.unique(seg, return_inverse=True)  # consecutive labels
     return seg.reshape(tile.shape[1:]).astype(np.int64)
 
 
-@register_explainer("kernel-shap", citation=CITE_KERNEL_SHAP, needs=set(),
-                    defaults={"n_segments": 50, "compactness": 1.0, "n_samples": 200, "baseline": "mean",
-                              "blur_sigma": 4.0, "score": "probability"},
-                    description="Shapley values of SLIC superpixels by weighted linear regression on "
-                                "random coalitions (captum KernelShap with a feature mask); each pixel "
-                                "gets its superpixel's value; black box ok")
-def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_samples, baseline,
-                blur_sigma, score):
+@register_explainer(
+    "kernel-shap",
+    citation=CITE_KERNEL_SHAP,
+    needs=set(),
+    defaults={
+        "n_segments": 50,
+        "compactness": 1.0,
+        "n_samples": 200,
+        "baseline": "mean",
+        "blur_sigma": 4.0,
+        "score": "probability",
+    },
+    description="Shapley values of SLIC superpixels by weighted linear regression on "
+    "random coalitions (captum KernelShap with a feature mask); each pixel "
+    "gets its superpixel's value; black box ok",
+)
+def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_samples, baseline, blur_sigma, score):
     key = "kernel-shap"
     n_segments = check_int(key, "n_segments", n_segments, 2)
     compactness = check_float(key, "compactness", compactness, 0.0, inclusive_min=False)
@@ -151,8 +179,13 @@ def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_s
         mask = torch.from_numpy(np.broadcast_to(seg, (1, c, h, w)).copy())
         # coalitions drawn from a generator seeded per tile: a tile's map ignores the other tiles
         torch.manual_seed(int(np.random.SeedSequence([int(context.seed), i]).generate_state(1)[0]))
-        attr = method.attribute(as_tensor(images[i][None]), baselines=as_tensor(base[i][None]),
-                                target=int(targets[i]), feature_mask=mask, n_samples=n_samples,
-                                perturbations_per_eval=context.batch_size)
+        attr = method.attribute(
+            as_tensor(images[i][None]),
+            baselines=as_tensor(base[i][None]),
+            target=int(targets[i]),
+            feature_mask=mask,
+            n_samples=n_samples,
+            perturbations_per_eval=context.batch_size,
+        )
         out[i] = as_numpy(attr[0])
     return reduce_channels(out, "mean")

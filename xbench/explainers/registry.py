@@ -65,9 +65,15 @@ _STATE = {"builtins": False, "plugins": False}
 PLUGIN_ERRORS: dict[str, str] = {}
 
 
-def register_explainer(key: str, *, citation: str, needs: set[str] | frozenset[str] | tuple = (),
-                       defaults: dict[str, Any] | None = None, description: str = "",
-                       kind: str = "pixel") -> Callable[[ExplainerFn], ExplainerFn]:
+def register_explainer(
+    key: str,
+    *,
+    citation: str,
+    needs: set[str] | frozenset[str] | tuple = (),
+    defaults: dict[str, Any] | None = None,
+    description: str = "",
+    kind: str = "pixel",
+) -> Callable[[ExplainerFn], ExplainerFn]:
     """Decorator: register ``fn(model, images, targets, context, **settings)`` under ``key``.
 
     ``needs`` uses the vocabulary ``gradients, layer, twins, masks, fit-set, concept-sets``; black-box
@@ -95,13 +101,21 @@ def register_explainer(key: str, *, citation: str, needs: set[str] | frozenset[s
             raise XbenchInputError(where, "can only decorate a function")
         module = getattr(fn, "__module__", "") or ""
         source = "xbench" if module.startswith("xbench.") else module.split(".")[0] or "user"
-        spec = ExplainerSpec(key=key, fn=fn, citation=citation, needs=needs, defaults=defaults,
-                             description=description or (inspect.getdoc(fn) or "").split("\n")[0],
-                             kind=kind, source=source)
+        spec = ExplainerSpec(
+            key=key,
+            fn=fn,
+            citation=citation,
+            needs=needs,
+            defaults=defaults,
+            description=description or (inspect.getdoc(fn) or "").split("\n")[0],
+            kind=kind,
+            source=source,
+        )
         old = _REGISTRY.get(key)
         if old is not None and _qualname(old.fn) != _qualname(fn):
-            raise XbenchInputError(where, "already registered by another function",
-                                   expected="a new key", found=_qualname(old.fn))
+            raise XbenchInputError(
+                where, "already registered by another function", expected="a new key", found=_qualname(old.fn)
+            )
         _REGISTRY[key] = spec
         fn.__xbench_explainer__ = key  # type: ignore[attr-defined]
         return fn
@@ -141,13 +155,18 @@ def load_plugins(force: bool = False) -> dict[str, str]:
         try:
             obj = ep.load()
             if callable(obj) and not inspect.ismodule(obj) and not hasattr(obj, "__xbench_explainer__"):
-                params = [p for p in inspect.signature(obj).parameters.values()
-                          if p.default is inspect.Parameter.empty
-                          and p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)]
+                params = [
+                    p
+                    for p in inspect.signature(obj).parameters.values()
+                    if p.default is inspect.Parameter.empty
+                    and p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)
+                ]
                 if params:
-                    raise XbenchInputError(f"entry point '{label}'", "loads a function that is neither a "
-                                           "registered explainer nor a zero-argument registration hook",
-                                           expected="a module, a @register_explainer function, or f()")
+                    raise XbenchInputError(
+                        f"entry point '{label}'",
+                        "loads a function that is neither a registered explainer nor a zero-argument registration hook",
+                        expected="a module, a @register_explainer function, or f()",
+                    )
                 obj()
         except Exception as exc:  # noqa: BLE001 - a broken plugin must not break the others
             PLUGIN_ERRORS[label] = f"{type(exc).__name__}: {exc}"
@@ -164,21 +183,39 @@ def get_explainer(key: str) -> ExplainerSpec:
     """The spec registered under ``key``; unknown keys raise an error listing the valid ones."""
     _ensure_loaded()
     if key not in _REGISTRY:
-        raise XbenchInputError(f"explainer '{key}'", "unknown explainer",
-                               expected="one of " + ", ".join(sorted(_REGISTRY)), found=key)
+        raise XbenchInputError(
+            f"explainer '{key}'", "unknown explainer", expected="one of " + ", ".join(sorted(_REGISTRY)), found=key
+        )
     return _REGISTRY[key]
 
 
 def list_explainers() -> list[ExplainerSpec]:
     """Every registered explainer (built-ins first in their documented order, then plugins by key)."""
     _ensure_loaded()
-    return sorted(_REGISTRY.values(), key=lambda s: (s.source != "xbench", KINDS.index(s.kind)
-                                                     if s.source == "xbench" else 0, _order(s.key), s.key))
+    return sorted(
+        _REGISTRY.values(),
+        key=lambda s: (s.source != "xbench", KINDS.index(s.kind) if s.source == "xbench" else 0, _order(s.key), s.key),
+    )
 
 
-_BUILTIN_ORDER = ("gradient", "input-x-gradient", "integrated-gradients", "smoothgrad", "guided-backprop",
-                  "deeplift", "grad-cam", "grad-cam-pp", "occlusion", "rise", "kernel-shap",
-                  "activation-clusters", "tcav", "random", "edges", "oracle")
+_BUILTIN_ORDER = (
+    "gradient",
+    "input-x-gradient",
+    "integrated-gradients",
+    "smoothgrad",
+    "guided-backprop",
+    "deeplift",
+    "grad-cam",
+    "grad-cam-pp",
+    "occlusion",
+    "rise",
+    "kernel-shap",
+    "activation-clusters",
+    "tcav",
+    "random",
+    "edges",
+    "oracle",
+)
 
 
 def _order(key: str) -> int:
@@ -193,13 +230,11 @@ def _order(key: str) -> int:
 def _check_images(key: str, images: Any, name: str = "images") -> np.ndarray:
     where = f"explainer '{key}': {name}"
     if not isinstance(images, np.ndarray):
-        raise XbenchInputError(where, "not a numpy array", expected="float32 (N, C, H, W)",
-                               found=type(images).__name__)
+        raise XbenchInputError(where, "not a numpy array", expected="float32 (N, C, H, W)", found=type(images).__name__)
     if images.ndim != 4:
         raise XbenchInputError(where, "wrong shape", expected="(N, C, H, W)", found=images.shape)
     if not np.issubdtype(images.dtype, np.floating):
-        raise XbenchInputError(where, "wrong dtype", expected="float32 reflectance in [0, 1]",
-                               found=str(images.dtype))
+        raise XbenchInputError(where, "wrong dtype", expected="float32 reflectance in [0, 1]", found=str(images.dtype))
     images = np.ascontiguousarray(images, dtype=np.float32)
     if not np.isfinite(images).all():
         raise XbenchInputError(where, "non-finite values (NaN or inf)")
@@ -221,65 +256,91 @@ def _check_targets(key: str, targets: Any, n: int, n_classes: int) -> np.ndarray
     t = t.astype(np.int64)
     bad = np.flatnonzero((t < 0) | (t >= n_classes))
     if bad.size:
-        raise XbenchInputError(where, "target class out of range",
-                               expected=f"0 <= target < {n_classes}",
-                               found=f"{int(t[bad[0]])} at tile {int(bad[0])}")
+        raise XbenchInputError(
+            where,
+            "target class out of range",
+            expected=f"0 <= target < {n_classes}",
+            found=f"{int(t[bad[0]])} at tile {int(bad[0])}",
+        )
     return t
 
 
-def _check_context(spec: ExplainerSpec, model: ModelHandle, images: np.ndarray,
-                   context: ExplainContext, settings: dict[str, Any]) -> ExplainContext:
+def _check_context(
+    spec: ExplainerSpec, model: ModelHandle, images: np.ndarray, context: ExplainContext, settings: dict[str, Any]
+) -> ExplainContext:
     key = spec.key
     where = f"explainer '{key}': context"
     if not isinstance(context, ExplainContext):
         raise XbenchInputError(where, "wrong type", expected="ExplainContext", found=type(context).__name__)
     context = dataclasses.replace(context)  # never modify the caller's context
-    if isinstance(context.batch_size, bool) or not isinstance(context.batch_size, (int, np.integer)) \
-            or context.batch_size < 1:
-        raise XbenchInputError(f"{where}.batch_size", "bad value", expected="an integer >= 1",
-                               found=context.batch_size)
+    if (
+        isinstance(context.batch_size, bool)
+        or not isinstance(context.batch_size, (int, np.integer))
+        or context.batch_size < 1
+    ):
+        raise XbenchInputError(f"{where}.batch_size", "bad value", expected="an integer >= 1", found=context.batch_size)
     n, c, h, w = images.shape
     needs = set(spec.needs)
     if settings.get("baseline") == "twin":
         needs.add("twins")
     if context.twins is not None or "twins" in needs:
         if context.twins is None:
-            raise XbenchInputError(f"{where}.twins", f"explainer '{key}' needs the tiles' structure-free "
-                                   "twins", expected=f"float32 {images.shape}", found=None)
+            raise XbenchInputError(
+                f"{where}.twins",
+                f"explainer '{key}' needs the tiles' structure-free twins",
+                expected=f"float32 {images.shape}",
+                found=None,
+            )
         twins = _check_images(key, context.twins, "context.twins")
         if twins.shape != images.shape:
-            raise XbenchInputError(f"{where}.twins", "shape differs from the images",
-                                   expected=images.shape, found=twins.shape)
+            raise XbenchInputError(
+                f"{where}.twins", "shape differs from the images", expected=images.shape, found=twins.shape
+            )
         context.twins = twins
     if context.masks is not None or "masks" in needs:
         _check_masks(f"{where}.masks", context.masks, context.mask_names, (n, h, w), key)
     if "fit-set" in needs:
         if context.fit_images is None:
-            raise XbenchInputError(f"{where}.fit_images", f"explainer '{key}' needs a fitting set of "
-                                   "correctly classified tiles", expected=f"float32 (Nf, {c}, H, W)")
+            raise XbenchInputError(
+                f"{where}.fit_images",
+                f"explainer '{key}' needs a fitting set of correctly classified tiles",
+                expected=f"float32 (Nf, {c}, H, W)",
+            )
         fit = _check_images(key, context.fit_images, "context.fit_images")
         if fit.shape[1] != c:
-            raise XbenchInputError(f"{where}.fit_images", "band count differs from the images",
-                                   expected=c, found=fit.shape[1])
+            raise XbenchInputError(
+                f"{where}.fit_images", "band count differs from the images", expected=c, found=fit.shape[1]
+            )
         context.fit_images = fit
         if context.fit_labels is not None and np.asarray(context.fit_labels).shape != (fit.shape[0],):
-            raise XbenchInputError(f"{where}.fit_labels", "wrong shape", expected=(fit.shape[0],),
-                                   found=np.asarray(context.fit_labels).shape)
+            raise XbenchInputError(
+                f"{where}.fit_labels",
+                "wrong shape",
+                expected=(fit.shape[0],),
+                found=np.asarray(context.fit_labels).shape,
+            )
         if context.fit_masks is not None:
-            _check_masks(f"{where}.fit_masks", context.fit_masks, context.mask_names,
-                         (fit.shape[0],) + fit.shape[2:], key)
+            _check_masks(
+                f"{where}.fit_masks", context.fit_masks, context.mask_names, (fit.shape[0],) + fit.shape[2:], key
+            )
     if "concept-sets" in needs:
         sets = context.concept_sets
         if not sets:
-            raise XbenchInputError(f"{where}.concept_sets", f"explainer '{key}' needs concept example "
-                                   "sets (see xbench.explainers.concept_sets.make_concept_sets)",
-                                   expected="dict name -> images (n, C, H, W), with random-0, random-1, ...")
+            raise XbenchInputError(
+                f"{where}.concept_sets",
+                f"explainer '{key}' needs concept example sets (see xbench.explainers.concept_sets.make_concept_sets)",
+                expected="dict name -> images (n, C, H, W), with random-0, random-1, ...",
+            )
         checked = {}
         for name, arr in sets.items():
             arr = _check_images(key, arr, f"context.concept_sets['{name}']")
             if arr.shape[1] != c:
-                raise XbenchInputError(f"{where}.concept_sets['{name}']", "band count differs from the "
-                                       "images", expected=c, found=arr.shape[1])
+                raise XbenchInputError(
+                    f"{where}.concept_sets['{name}']",
+                    "band count differs from the images",
+                    expected=c,
+                    found=arr.shape[1],
+                )
             checked[str(name)] = arr
         context.concept_sets = checked
     return context
@@ -287,21 +348,31 @@ def _check_context(spec: ExplainerSpec, model: ModelHandle, images: np.ndarray,
 
 def _check_masks(where: str, masks: Any, names: Any, nhw: tuple[int, int, int], key: str) -> None:
     if masks is None:
-        raise XbenchInputError(where, f"explainer '{key}' needs the planted masks",
-                               expected=f"bool (N, K, H, W) with N, H, W = {nhw}")
+        raise XbenchInputError(
+            where, f"explainer '{key}' needs the planted masks", expected=f"bool (N, K, H, W) with N, H, W = {nhw}"
+        )
     m = np.asarray(masks)
     if m.ndim != 4 or (m.shape[0], m.shape[2], m.shape[3]) != nhw:
-        raise XbenchInputError(where, "wrong shape", expected=f"(N, K, H, W) with N, H, W = {nhw}",
-                               found=m.shape)
+        raise XbenchInputError(where, "wrong shape", expected=f"(N, K, H, W) with N, H, W = {nhw}", found=m.shape)
     if m.dtype != np.bool_:
         raise XbenchInputError(where, "wrong dtype", expected="bool", found=str(m.dtype))
     if names is None or len(names) != m.shape[1]:
-        raise XbenchInputError(where.rsplit(".", 1)[0] + ".mask_names", "one name per mask plane needed",
-                               expected=m.shape[1], found=None if names is None else len(names))
+        raise XbenchInputError(
+            where.rsplit(".", 1)[0] + ".mask_names",
+            "one name per mask plane needed",
+            expected=m.shape[1],
+            found=None if names is None else len(names),
+        )
 
 
-def explain(key: str, model: ModelHandle, images: np.ndarray, targets: np.ndarray,
-            context: ExplainContext | None = None, **settings: Any) -> Explanation:
+def explain(
+    key: str,
+    model: ModelHandle,
+    images: np.ndarray,
+    targets: np.ndarray,
+    context: ExplainContext | None = None,
+    **settings: Any,
+) -> Explanation:
     """Explain ``model``'s scores for ``targets`` on ``images`` with the explainer ``key``.
 
     Validates everything at the boundary (key, images, targets, settings, context, black box versus
@@ -311,28 +382,35 @@ def explain(key: str, model: ModelHandle, images: np.ndarray, targets: np.ndarra
     """
     spec = get_explainer(key)
     if not isinstance(model, ModelHandle):
-        raise XbenchInputError(f"explainer '{key}': model", "not a ModelHandle",
-                               expected="xbench.models.ModelHandle", found=type(model).__name__)
+        raise XbenchInputError(
+            f"explainer '{key}': model",
+            "not a ModelHandle",
+            expected="xbench.models.ModelHandle",
+            found=type(model).__name__,
+        )
     images = _check_images(key, images)
     n, _, h, w = images.shape
     targets = _check_targets(key, targets, n, model.n_classes)
     unknown = sorted(set(settings) - set(spec.defaults))
     if unknown:
         known = ", ".join(sorted(spec.defaults)) or "(none)"
-        raise XbenchInputError(f"explainer '{key}'", f"unknown setting(s) {', '.join(unknown)}",
-                               expected="one of " + known, found=unknown)
+        raise XbenchInputError(
+            f"explainer '{key}'", f"unknown setting(s) {', '.join(unknown)}", expected="one of " + known, found=unknown
+        )
     merged = {**spec.defaults, **settings}
     if model.is_black_box and ({"gradients", "layer"} & spec.needs):
         what = "gradients" if "gradients" in spec.needs else "a named layer"
         ok = ", ".join(s.key for s in list_explainers() if s.black_box_ok)
-        raise XbenchInputError(f"explainer '{key}'", f"needs {what}, but model '{model.name}' is a black "
-                               "box (a callable)", expected="a torch model, or a black-box explainer: " + ok)
+        raise XbenchInputError(
+            f"explainer '{key}'",
+            f"needs {what}, but model '{model.name}' is a black box (a callable)",
+            expected="a torch model, or a black-box explainer: " + ok,
+        )
     if "layer" in spec.needs:
         layer = merged.get("layer") or model.default_layer()
         model.get_layer(str(layer))  # raises, listing the model's layers
         merged["layer"] = str(layer)
-    context = _check_context(spec, model, images, context if context is not None else ExplainContext(),
-                             merged)
+    context = _check_context(spec, model, images, context if context is not None else ExplainContext(), merged)
 
     concepts: ConceptReport | None = None
     with model.counting() as calls:
@@ -349,8 +427,7 @@ def explain(key: str, model: ModelHandle, images: np.ndarray, targets: np.ndarra
         seconds = time.perf_counter() - start
     if isinstance(out, tuple):
         if len(out) != 2 or not isinstance(out[1], ConceptReport):
-            raise XbenchInputError(f"explainer '{key}'", "returned a tuple that is not "
-                                   "(attributions, ConceptReport)")
+            raise XbenchInputError(f"explainer '{key}'", "returned a tuple that is not (attributions, ConceptReport)")
         out, concepts = out
         _check_report(key, concepts)
     attributions = _check_attributions(key, out, (n, h, w))
@@ -365,16 +442,17 @@ def _check_attributions(key: str, out: Any, shape: tuple[int, int, int]) -> np.n
     a = np.asarray(out)
     if a.shape != shape:
         raise XbenchInputError(where, "wrong shape", expected=f"(N, H, W) = {shape}", found=a.shape)
-    if not (np.issubdtype(a.dtype, np.floating) or np.issubdtype(a.dtype, np.integer)
-            or a.dtype == np.bool_):
+    if not (np.issubdtype(a.dtype, np.floating) or np.issubdtype(a.dtype, np.integer) or a.dtype == np.bool_):
         raise XbenchInputError(where, "not numeric", found=str(a.dtype))
     with np.errstate(over="ignore"):
         a = a.astype(np.float32)
     bad = np.flatnonzero(~np.isfinite(a).reshape(shape[0], shape[1] * shape[2]).all(axis=1))
     if bad.size:
         tiles = ", ".join(str(int(i)) for i in bad[:10]) + (" ..." if bad.size > 10 else "")
-        raise NonFiniteAttributionError(f"explainer '{key}'", f"non-finite attributions (NaN or inf) on "
-                                        f"tile(s) {tiles} ({bad.size} of {shape[0]} tiles)")
+        raise NonFiniteAttributionError(
+            f"explainer '{key}'",
+            f"non-finite attributions (NaN or inf) on tile(s) {tiles} ({bad.size} of {shape[0]} tiles)",
+        )
     return np.ascontiguousarray(a)
 
 
@@ -382,5 +460,9 @@ def _check_report(key: str, report: ConceptReport) -> None:
     for i, row in enumerate(report.rows):
         missing = [k for k in ROW_KEYS if k not in row]
         if missing:
-            raise XbenchInputError(f"explainer '{key}': concept report row {i}", "missing keys",
-                                   expected=", ".join(ROW_KEYS), found=missing)
+            raise XbenchInputError(
+                f"explainer '{key}': concept report row {i}",
+                "missing keys",
+                expected=", ".join(ROW_KEYS),
+                found=missing,
+            )

@@ -67,8 +67,10 @@ from xbench.explainers.base import (
 )
 from xbench.explainers.registry import register_explainer
 
-CITE_TCAV = ("Kim, Wattenberg, Gilmer, Cai, Wexler, Viegas, Sayres. Interpretability beyond feature "
-             "attribution: quantitative testing with concept activation vectors (TCAV). ICML 2018.")
+CITE_TCAV = (
+    "Kim, Wattenberg, Gilmer, Cai, Wexler, Viegas, Sayres. Interpretability beyond feature "
+    "attribution: quantitative testing with concept activation vectors (TCAV). ICML 2018."
+)
 KEY = "tcav"
 _RANDOM = re.compile(r"random-(\d+)")
 
@@ -111,12 +113,16 @@ def _ttest_ind(a: np.ndarray, b: np.ndarray) -> float:
     return p if np.isfinite(p) else 1.0
 
 
-@register_explainer(KEY, citation=CITE_TCAV, needs={"gradients", "layer", "concept-sets"}, kind="concept",
-                    defaults={"layer": None, "pool": "mean", "regularization": 1.0, "test": "set",
-                              "alpha": 0.05, "min_random": 10},
-                    description="concept activation vectors from example sets (logistic regression at a "
-                                "layer); TCAV score per class and concept, t-test against >= 10 random "
-                                "concepts with Bonferroni; attribution = weighted concept-presence maps")
+@register_explainer(
+    KEY,
+    citation=CITE_TCAV,
+    needs={"gradients", "layer", "concept-sets"},
+    kind="concept",
+    defaults={"layer": None, "pool": "mean", "regularization": 1.0, "test": "set", "alpha": 0.05, "min_random": 10},
+    description="concept activation vectors from example sets (logistic regression at a "
+    "layer); TCAV score per class and concept, t-test against >= 10 random "
+    "concepts with Bonferroni; attribution = weighted concept-presence maps",
+)
 def tcav(model, images, targets, context, *, layer, pool, regularization, test, alpha, min_random):
     pool = check_choice(KEY, "pool", pool, ("mean", "none"))
     test = check_choice(KEY, "test", test, ("set", "runs"))
@@ -126,13 +132,19 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
     sets = context.concept_sets
     concepts, randoms = split_sets(sets)
     if len(randoms) < min_random:
-        raise XbenchInputError(f"explainer '{KEY}': context.concept_sets", "too few random sets",
-                               expected=f"at least {min_random} sets named random-0, random-1, ...",
-                               found=len(randoms))
+        raise XbenchInputError(
+            f"explainer '{KEY}': context.concept_sets",
+            "too few random sets",
+            expected=f"at least {min_random} sets named random-0, random-1, ...",
+            found=len(randoms),
+        )
     if not concepts:
-        raise XbenchInputError(f"explainer '{KEY}': context.concept_sets", "no concept sets",
-                               expected="structure type -> example tiles, besides the random sets",
-                               found=sorted(sets))
+        raise XbenchInputError(
+            f"explainer '{KEY}': context.concept_sets",
+            "no concept sets",
+            expected="structure type -> example tiles, besides the random sets",
+            found=sorted(sets),
+        )
     seed = int(context.seed)
     bs = context.batch_size
     n = images.shape[0]
@@ -149,16 +161,18 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
             grads.append(as_numpy(g))
             acts.append(as_numpy(t.activation))
     grads_a, acts_a = np.concatenate(grads), np.concatenate(acts)
-    gfeat = grads_a.sum(axis=(2, 3)).astype(np.float64) if pool == "mean" else \
-        grads_a.reshape(n, -1).astype(np.float64)
+    gfeat = grads_a.sum(axis=(2, 3)).astype(np.float64) if pool == "mean" else grads_a.reshape(n, -1).astype(np.float64)
 
     feats, raw = {}, {}
     for name in concepts + randoms:
         a = layer_activations(KEY, model, layer, sets[name], bs)
         if pool == "none" and a.shape[1:] != acts_a.shape[1:]:
-            raise XbenchInputError(f"explainer '{KEY}': context.concept_sets['{name}']", "layer map size "
-                                   "differs from the explained tiles' (pool = 'none' needs equal sizes)",
-                                   expected=acts_a.shape[1:], found=a.shape[1:])
+            raise XbenchInputError(
+                f"explainer '{KEY}': context.concept_sets['{name}']",
+                "layer map size differs from the explained tiles' (pool = 'none' needs equal sizes)",
+                expected=acts_a.shape[1:],
+                found=a.shape[1:],
+            )
         raw[name] = a
         feats[name] = _features(a, pool)
 
@@ -198,19 +212,27 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
             return _ttest_ind(np.array([c_runs.mean()]), null)
         return _ttest_ind(c_runs, kim)
 
-    class_names = list(context.class_names) if context.class_names is not None else \
-        [str(i) for i in range(model.n_classes)]
+    class_names = (
+        list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
+    )
     m_tests = len(concepts)  # Bonferroni family: the concepts tested for one class
     rows, importance, flagged, mean_scores, cavs, pooled_scores = [], {}, {}, {}, {}, {}
     for concept in concepts:
         c_class, c_pooled, vs = mean_scores_of(feats[concept], randoms, 0)
         for j, k in enumerate(classes):
             p = pvalue(c_class[:, j], null_class[:, j], kim_class[:, j])
-            rows.append({"concept": concept, "class_name": class_names[int(k)] if int(k) < len(class_names)
-                         else str(int(k)),
-                         "score": float(c_class[:, j].mean()), "spread": float(c_class[:, j].std(ddof=1)),
-                         "p_value": min(1.0, p * m_tests), "matched_type": concept, "iou": None,
-                         "purity": None})
+            rows.append(
+                {
+                    "concept": concept,
+                    "class_name": class_names[int(k)] if int(k) < len(class_names) else str(int(k)),
+                    "score": float(c_class[:, j].mean()),
+                    "spread": float(c_class[:, j].std(ddof=1)),
+                    "p_value": min(1.0, p * m_tests),
+                    "matched_type": concept,
+                    "iou": None,
+                    "purity": None,
+                }
+            )
         p_pooled = min(1.0, pvalue(c_pooled, null_pooled, kim_pooled) * m_tests)
         pooled_scores[concept] = float(c_pooled.mean())
         importance[concept] = pooled_scores[concept] - 0.5  # signed: 0 = no effect (as clusters, truth)
@@ -235,8 +257,20 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
         low += weight[:, None, None] * np.maximum(presence, 0.0)
     attributions = upsample(low.astype(np.float32), images.shape[2:], "bilinear")
 
-    report = ConceptReport(rows=rows, type_importance=importance, flagged=flagged, extras={
-        "layer": layer, "pool": pool, "n_random": len(randoms), "cavs": cavs,
-        "test": test, "null_scores": null_class, "tcav_scores": pooled_scores, "classes": [int(k) for k in classes],
-        "class_names": class_names})
+    report = ConceptReport(
+        rows=rows,
+        type_importance=importance,
+        flagged=flagged,
+        extras={
+            "layer": layer,
+            "pool": pool,
+            "n_random": len(randoms),
+            "cavs": cavs,
+            "test": test,
+            "null_scores": null_class,
+            "tcav_scores": pooled_scores,
+            "classes": [int(k) for k in classes],
+            "class_names": class_names,
+        },
+    )
     return attributions, report

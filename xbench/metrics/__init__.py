@@ -1,4 +1,6 @@
-"""Metrics: localization, faithfulness, sanity, stability, concentration, concept recovery and cost.
+"""Metrics grouped by what each compares against: overlap (truth masks), response (the model's output under
+removal), model-dependence (randomized models), steadiness (perturbed inputs), spread (the map alone),
+concepts and cost.
 
 ``compute_metric(key, inputs, **settings) -> list[MetricResult]`` is the entry point; ``list_metrics()``
 and ``get_metric(key)`` give the registry with each metric's definition, citation, range, direction and
@@ -6,13 +8,13 @@ needs. Importing this package registers every metric (family modules in the orde
 """
 
 from xbench.metrics import (  # noqa: F401  (imported to register the metrics)
-    concentration,
     concepts,
     cost,
-    faithfulness,
-    localization,
-    sanity,
-    stability,
+    model_dependence,
+    overlap,
+    response,
+    spread,
+    steadiness,
 )
 from xbench.metrics.base import (
     FAMILIES,

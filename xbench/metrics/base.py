@@ -27,9 +27,10 @@ import torch
 
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
+from xbench.names import RENAMED, renamed_hint
 
 TRUTH_KINDS = ("planted", "verified")
-FAMILIES = ("localization", "faithfulness", "sanity", "stability", "concentration", "concepts", "cost")
+FAMILIES = ("overlap", "response", "model-dependence", "steadiness", "spread", "concepts", "cost")
 
 # The vocabulary of needs shown by `xbench metrics`. Hard needs are checked before a runner is called;
 # the others are checked by the runner (they depend on settings or have alternatives).
@@ -57,7 +58,7 @@ class MetricInputs:
     model: the explained model.  planted: bool (N, H, W), union of the target class's driving types.
     verified: bool (N, H, W), model-verified evidence mask.  evidence: float (N, H, W) evidence map.
     twins: float32 (N, C, H, W) structure-free twins.  type_masks: bool (N, K, H, W) with ``mask_names``.
-    explain_fn(model, images, targets[, tiles=]) -> (N, H, W): the same explainer with the same settings;
+    rerun_explainer(model, images, targets[, tiles=]) -> (N, H, W): the same explainer with the same settings;
     the optional ``tiles`` gives, for each row of ``images``, the explained tile it is a perturbed copy of.
     concept_report: has ``type_importance: dict[str, float]`` and ``flagged: dict[str, bool]`` (concept
     methods) or None (pixel methods).  type_importance: interventional importance per structure type.
@@ -75,7 +76,7 @@ class MetricInputs:
     twins: np.ndarray | None = None
     type_masks: np.ndarray | None = None
     mask_names: list[str] | None = None
-    explain_fn: Callable[[ModelHandle, np.ndarray, np.ndarray], np.ndarray] | None = None
+    rerun_explainer: Callable[[ModelHandle, np.ndarray, np.ndarray], np.ndarray] | None = None
     concept_report: Any = None
     type_importance: dict[str, float] | None = None
     relied_types: list[str] | None = None
@@ -188,10 +189,18 @@ def register_metric(
         if key in _REGISTRY:
             raise ValueError(f"metric '{key}' is already registered")
         _REGISTRY[key] = MetricSpec(
-            key=key, family=family, definition=definition, citation=citation,
-            value_range=(float(value_range[0]), float(value_range[1])), higher_is_better=higher_is_better,
-            needs=tuple(needs), per_tile=per_tile, defaults=dict(defaults or {}),
-            settings_doc=dict(settings_doc or {}), truths=tuple(truths), runner=runner,
+            key=key,
+            family=family,
+            definition=definition,
+            citation=citation,
+            value_range=(float(value_range[0]), float(value_range[1])),
+            higher_is_better=higher_is_better,
+            needs=tuple(needs),
+            per_tile=per_tile,
+            defaults=dict(defaults or {}),
+            settings_doc=dict(settings_doc or {}),
+            truths=tuple(truths),
+            runner=runner,
         )
         return runner
 
@@ -200,8 +209,14 @@ def register_metric(
 
 def get_metric(key: str) -> MetricSpec:
     if key not in _REGISTRY:
-        raise XbenchInputError(f"metric '{key}'", "unknown metric key",
-                               expected="one of " + ", ".join(s.key for s in list_metrics()))
+        hint = renamed_hint("metric", key)
+        if hint:
+            raise XbenchInputError(
+                f"metric '{key}'", f"unknown metric key: {hint}", expected=RENAMED["metric"][key], found=key
+            )
+        raise XbenchInputError(
+            f"metric '{key}'", "unknown metric key", expected="one of " + ", ".join(s.key for s in list_metrics())
+        )
     return _REGISTRY[key]
 
 
@@ -219,59 +234,74 @@ def validate_inputs(inputs: MetricInputs) -> None:
     """Shapes and dtypes of the bundle; raises XbenchInputError naming the array."""
     a = np.asarray(inputs.attributions)
     if a.ndim != 3:
-        raise XbenchInputError("metric inputs: attributions", "wrong shape", expected="(N, H, W)",
-                               found=a.shape)
+        raise XbenchInputError("metric inputs: attributions", "wrong shape", expected="(N, H, W)", found=a.shape)
     n, h, w = a.shape
     im = np.asarray(inputs.images)
     if im.ndim != 4 or im.shape[0] != n or im.shape[2:] != (h, w):
-        raise XbenchInputError("metric inputs: images", "wrong shape", expected=f"({n}, C, {h}, {w})",
-                               found=im.shape)
+        raise XbenchInputError("metric inputs: images", "wrong shape", expected=f"({n}, C, {h}, {w})", found=im.shape)
     t = np.asarray(inputs.targets)
     if t.shape != (n,) or not np.issubdtype(t.dtype, np.integer):
-        raise XbenchInputError("metric inputs: targets", "wrong shape or dtype", expected=f"int ({n},)",
-                               found=f"{t.dtype} {t.shape}")
+        raise XbenchInputError(
+            "metric inputs: targets", "wrong shape or dtype", expected=f"int ({n},)", found=f"{t.dtype} {t.shape}"
+        )
     if inputs.model is not None and n and (t.min() < 0 or t.max() >= inputs.model.n_classes):
-        raise XbenchInputError("metric inputs: targets", "class index out of range",
-                               expected=f"0..{inputs.model.n_classes - 1}",
-                               found=(int(t.min()), int(t.max())))
+        raise XbenchInputError(
+            "metric inputs: targets",
+            "class index out of range",
+            expected=f"0..{inputs.model.n_classes - 1}",
+            found=(int(t.min()), int(t.max())),
+        )
     for name in ("planted", "verified", "evidence"):
         arr = getattr(inputs, name)
         if arr is not None and np.shape(arr) != (n, h, w):
-            raise XbenchInputError(f"metric inputs: {name}", "wrong shape", expected=f"({n}, {h}, {w})",
-                                   found=np.shape(arr))
+            raise XbenchInputError(
+                f"metric inputs: {name}", "wrong shape", expected=f"({n}, {h}, {w})", found=np.shape(arr)
+            )
     if inputs.twins is not None and np.shape(inputs.twins) != im.shape:
-        raise XbenchInputError("metric inputs: twins", "wrong shape", expected=str(im.shape),
-                               found=np.shape(inputs.twins))
+        raise XbenchInputError(
+            "metric inputs: twins", "wrong shape", expected=str(im.shape), found=np.shape(inputs.twins)
+        )
     if inputs.type_masks is not None:
         tm = np.shape(inputs.type_masks)
         if len(tm) != 4 or tm[0] != n or tm[2:] != (h, w):
-            raise XbenchInputError("metric inputs: type_masks", "wrong shape", expected=f"({n}, K, {h}, {w})",
-                                   found=tm)
+            raise XbenchInputError("metric inputs: type_masks", "wrong shape", expected=f"({n}, K, {h}, {w})", found=tm)
         names = inputs.mask_names
         if names is None or len(names) != tm[1]:
-            raise XbenchInputError("metric inputs: mask_names", "must name each type mask plane",
-                                   expected=f"{tm[1]} names", found=names)
+            raise XbenchInputError(
+                "metric inputs: mask_names", "must name each type mask plane", expected=f"{tm[1]} names", found=names
+            )
 
 
 def _hard_need_missing(need: str, inputs: MetricInputs) -> str | None:
     if need == "model" and inputs.model is None:
         return "needs a model"
     if need == "torch model" and (inputs.model is None or inputs.model.module is None):
-        return "needs a torch model (white box); this model is a black box" if inputs.model is not None \
+        return (
+            "needs a torch model (white box); this model is a black box"
+            if inputs.model is not None
             else "needs a torch model"
-    if need == "explainer re-runs" and inputs.explain_fn is None:
-        return "needs explainer re-runs (explain_fn)"
+        )
+    if need == "explainer re-runs" and inputs.rerun_explainer is None:
+        return "needs explainer re-runs (rerun_explainer)"
     if need == "cost" and inputs.cost is None:
         return "needs the explainer's recorded cost"
     return None
 
 
-def nan_result(spec: MetricSpec, inputs: MetricInputs, truth: str, reason: str,
-               settings: dict[str, Any]) -> MetricResult:
+def nan_result(
+    spec: MetricSpec, inputs: MetricInputs, truth: str, reason: str, settings: dict[str, Any]
+) -> MetricResult:
     """A skipped result: every value NaN, the reason recorded for the whole result."""
     size = inputs.n_tiles if spec.per_tile else 1
-    return MetricResult(metric=spec.key, truth=truth, values=np.full(size, np.nan), per_tile=spec.per_tile,
-                        reasons={-1: reason}, skipped=reason, settings=dict(settings))
+    return MetricResult(
+        metric=spec.key,
+        truth=truth,
+        values=np.full(size, np.nan),
+        per_tile=spec.per_tile,
+        reasons={-1: reason},
+        skipped=reason,
+        settings=dict(settings),
+    )
 
 
 def _finalise(result: MetricResult, spec: MetricSpec, inputs: MetricInputs) -> MetricResult:
@@ -292,8 +322,9 @@ def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[Metr
     unknown = sorted(set(settings) - set(spec.defaults))
     if unknown:
         known = ", ".join(f"{k}={v!r}" for k, v in spec.defaults.items()) or "none"
-        raise XbenchInputError(f"metric '{key}' settings", f"unknown setting(s) {', '.join(unknown)}",
-                               expected=f"known settings: {known}")
+        raise XbenchInputError(
+            f"metric '{key}' settings", f"unknown setting(s) {', '.join(unknown)}", expected=f"known settings: {known}"
+        )
     validate_inputs(inputs)
     merged = {**spec.defaults, **settings}
     results = []
@@ -303,8 +334,11 @@ def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[Metr
         if missing is None and inputs.n_tiles == 0:
             missing = "no tiles"
         if missing is None and truth in TRUTH_KINDS and inputs.truth_mask(truth) is None:
-            missing = ("needs the planted mask" if truth == "planted" else
-                       "needs the model-verified evidence mask (from counterfactual twins, truth module)")
+            missing = (
+                "needs the planted mask"
+                if truth == "planted"
+                else "needs the model-verified evidence mask (from counterfactual twins, truth module)"
+            )
         if missing is not None:
             results.append(nan_result(spec, inputs, truth, missing, merged))
             continue
@@ -347,11 +381,11 @@ def model_scorer(model: ModelHandle, chunk: int = SCORE_CHUNK) -> Callable[[np.n
         size = -(-m // max(1, -(-m // chunk))) if m else 1  # even chunks of at most `chunk` images
         with torch.inference_mode():
             for start in range(0, m, size):
-                part = images[start:start + size]
+                part = images[start : start + size]
                 logits = forward(torch.from_numpy(np.ascontiguousarray(part)))
                 probs = torch.softmax(logits.double(), dim=1).numpy()
                 model._check_output(probs, part.shape[0])
-                out[start:start + part.shape[0]] = probs
+                out[start : start + part.shape[0]] = probs
         return out
 
     return score
@@ -366,16 +400,25 @@ def bad_attribution_tiles(attributions: np.ndarray) -> np.ndarray:
 NONFINITE_REASON = "attribution has non-finite values (NaN or inf)"
 
 
-def tile_result(spec_key: str, truth: str, values: np.ndarray, reasons: dict[int, str],
-                settings: dict[str, Any], **extra: Any) -> MetricResult:
-    return MetricResult(metric=spec_key, truth=truth, values=np.asarray(values, dtype=np.float64),
-                        per_tile=True, reasons=reasons, settings=dict(settings), **extra)
+def tile_result(
+    spec_key: str, truth: str, values: np.ndarray, reasons: dict[int, str], settings: dict[str, Any], **extra: Any
+) -> MetricResult:
+    return MetricResult(
+        metric=spec_key,
+        truth=truth,
+        values=np.asarray(values, dtype=np.float64),
+        per_tile=True,
+        reasons=reasons,
+        settings=dict(settings),
+        **extra,
+    )
 
 
 def check_choice(key: str, name: str, value: Any, choices: tuple) -> None:
     if value not in choices:
-        raise XbenchInputError(f"metric '{key}' setting '{name}'", "unknown value",
-                               expected=" | ".join(map(str, choices)), found=value)
+        raise XbenchInputError(
+            f"metric '{key}' setting '{name}'", "unknown value", expected=" | ".join(map(str, choices)), found=value
+        )
 
 
 def check_number(key: str, name: str, value: Any, lo: float, hi: float, integer: bool = False) -> None:
@@ -384,5 +427,6 @@ def check_number(key: str, name: str, value: Any, lo: float, hi: float, integer:
         ok = float(value) == int(value)
     if not ok or not (lo <= float(value) <= hi):
         kind = "an integer" if integer else "a number"
-        raise XbenchInputError(f"metric '{key}' setting '{name}'", "out of range",
-                               expected=f"{kind} in [{lo:g}, {hi:g}]", found=value)
+        raise XbenchInputError(
+            f"metric '{key}' setting '{name}'", "out of range", expected=f"{kind} in [{lo:g}, {hi:g}]", found=value
+        )

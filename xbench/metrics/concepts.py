@@ -38,7 +38,7 @@ from xbench.metrics.base import (
     check_number,
     register_metric,
 )
-from xbench.metrics.sanity import spearman_rows
+from xbench.metrics.model_dependence import spearman_rows
 
 
 # -- pure cores -------------------------------------------------------------------------------------------
@@ -103,8 +103,14 @@ def _method_view(inputs: MetricInputs, factor: float) -> tuple[dict[str, float],
 
 def _one(key: str, truth: str, value: float, reason: str | None, settings: dict[str, Any]) -> MetricResult:
     reasons = {} if reason is None else {-1: reason}
-    return MetricResult(metric=key, truth=truth, values=np.array([value], dtype=np.float64), per_tile=False,
-                        reasons=reasons, settings=dict(settings))
+    return MetricResult(
+        metric=key,
+        truth=truth,
+        values=np.array([value], dtype=np.float64),
+        per_tile=False,
+        reasons=reasons,
+        settings=dict(settings),
+    )
 
 
 def _unusable_reason(inputs: MetricInputs) -> str | None:
@@ -114,21 +120,24 @@ def _unusable_reason(inputs: MetricInputs) -> str | None:
 
 
 _CONCEPT = dict(family="concepts", per_tile=False)
-_FLAG_DOC = {"factor": "pixel methods flag a type when its mass share exceeds this multiple of its "
-                       "area share"}
+_FLAG_DOC = {"factor": "pixel methods flag a type when its mass share exceeds this multiple of its area share"}
 
 
 @register_metric(
     "concept-agreement",
     definition="Spearman correlation (or sign agreement) across structure types between the method's "
-               "importance per type and the interventional importance",
+    "importance per type and the interventional importance",
     citation="Interventional importance vs. method importance per type (concept scores after Kim et al., "
-             "ICML 2018; Ghorbani et al., NeurIPS 2019); rank agreement: common practice.",
-    value_range=(-1, 1), higher_is_better=True, needs=("concepts", "interventional importance"),
+    "ICML 2018; Ghorbani et al., NeurIPS 2019); rank agreement: common practice.",
+    value_range=(-1, 1),
+    higher_is_better=True,
+    needs=("concepts", "interventional importance"),
     defaults={"measure": "spearman", "tolerance": 0.0, "min_types": 3},
-    settings_doc={"measure": "spearman (rank correlation) or sign (share of types whose signs agree)",
-                  "tolerance": "for sign: values with |v| <= tolerance count as 0",
-                  "min_types": "fewest types with both importances for a Spearman value"},
+    settings_doc={
+        "measure": "spearman (rank correlation) or sign (share of types whose signs agree)",
+        "tolerance": "for sign: values with |v| <= tolerance count as 0",
+        "min_types": "fewest types with both importances for a Spearman value",
+    },
     **_CONCEPT,
 )
 def _concept_agreement(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
@@ -137,16 +146,18 @@ def _concept_agreement(inputs: MetricInputs, truth: str, settings: dict[str, Any
     check_number(key, "tolerance", settings["tolerance"], 0, np.inf)
     check_number(key, "min_types", settings["min_types"], 2, 10_000, integer=True)
     if inputs.type_importance is None:
-        return _one(key, truth, np.nan, "needs the interventional importance per type (truth module)",
-                    settings)
+        return _one(key, truth, np.nan, "needs the interventional importance per type (truth module)", settings)
     if (reason := _unusable_reason(inputs)) is not None:
         return _one(key, truth, np.nan, reason, settings)
     view = _method_view(inputs, 2.0)
     if isinstance(view, str):
         return _one(key, truth, np.nan, view, settings)
     method, _, kind = view
-    types = [t for t in inputs.type_importance
-             if t in method and np.isfinite(method[t]) and np.isfinite(inputs.type_importance[t])]
+    types = [
+        t
+        for t in inputs.type_importance
+        if t in method and np.isfinite(method[t]) and np.isfinite(inputs.type_importance[t])
+    ]
     x = np.array([method[t] for t in types])
     y = np.array([float(inputs.type_importance[t]) for t in types])
     if settings["measure"] == "sign":
@@ -154,18 +165,26 @@ def _concept_agreement(inputs: MetricInputs, truth: str, settings: dict[str, Any
             return _one(key, truth, np.nan, "no structure type has both importances", settings)
         return _one(key, truth, sign_agreement(x, y, float(settings["tolerance"])), None, settings)
     if len(types) < int(settings["min_types"]):
-        return _one(key, truth, np.nan, f"only {len(types)} structure type(s) with both importances "
-                    f"(need {settings['min_types']}) for a rank correlation", settings)
+        return _one(
+            key,
+            truth,
+            np.nan,
+            f"only {len(types)} structure type(s) with both importances "
+            f"(need {settings['min_types']}) for a rank correlation",
+            settings,
+        )
     rho = spearman_rows(x[None, None, :], y[None, None, :])[0]
     if not np.isfinite(rho):
         which = "method's" if np.ptp(x) == 0 else "interventional"
-        return _one(key, truth, np.nan, f"the {which} importance is equal for every type: rank correlation "
-                    "undefined", settings)
+        return _one(
+            key, truth, np.nan, f"the {which} importance is equal for every type: rank correlation undefined", settings
+        )
     return _one(key, truth, float(rho), None, settings)
 
 
-def _flag_share(key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any], types: list[str] | None,
-                role: str) -> MetricResult:
+def _flag_share(
+    key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any], types: list[str] | None, role: str
+) -> MetricResult:
     check_number(key, "factor", settings["factor"], 0, np.inf)
     if types is None:
         return _one(key, truth, np.nan, f"needs the {role} types (type roles)", settings)
@@ -178,26 +197,35 @@ def _flag_share(key: str, inputs: MetricInputs, truth: str, settings: dict[str, 
     assessed = [t for t in dict.fromkeys(types) if t in flagged]
     if not assessed:
         where = "present in any tile" if kind == "pixel" else "in the concept report"
-        return _one(key, truth, np.nan, f"none of the {role} types ({', '.join(types) or 'none'}) is {where}",
-                    settings)
+        return _one(key, truth, np.nan, f"none of the {role} types ({', '.join(types) or 'none'}) is {where}", settings)
     return _one(key, truth, float(np.mean([flagged[t] for t in assessed])), None, settings)
 
 
 @register_metric(
-    "concept-detection", definition="share of the types the model relies on that the method flags",
+    "concept-detection",
+    definition="share of the types the model relies on that the method flags",
     citation="Common practice (detection rate against interventional reliance from counterfactual twins).",
-    value_range=(0, 1), higher_is_better=True, needs=("concepts", "type roles"),
-    defaults={"factor": 2.0}, settings_doc=_FLAG_DOC, **_CONCEPT,
+    value_range=(0, 1),
+    higher_is_better=True,
+    needs=("concepts", "type roles"),
+    defaults={"factor": 2.0},
+    settings_doc=_FLAG_DOC,
+    **_CONCEPT,
 )
 def _concept_detection(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _flag_share("concept-detection", inputs, truth, settings, inputs.relied_types, "relied-on")
 
 
 @register_metric(
-    "concept-false-alarm", definition="share of the look-alike and unused types that the method flags",
+    "concept-false-alarm",
+    definition="share of the look-alike and unused types that the method flags",
     citation="Common practice (false-alarm rate against look-alikes and unused types).",
-    value_range=(0, 1), higher_is_better=False, needs=("concepts", "type roles"),
-    defaults={"factor": 2.0}, settings_doc=_FLAG_DOC, **_CONCEPT,
+    value_range=(0, 1),
+    higher_is_better=False,
+    needs=("concepts", "type roles"),
+    defaults={"factor": 2.0},
+    settings_doc=_FLAG_DOC,
+    **_CONCEPT,
 )
 def _concept_false_alarm(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     types = None

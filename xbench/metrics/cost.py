@@ -15,8 +15,7 @@ import numpy as np
 from xbench.metrics.base import MetricInputs, MetricResult, register_metric
 
 
-def _per_tile(key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any],
-              total: Any) -> MetricResult:
+def _per_tile(key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any], total: Any) -> MetricResult:
     n = inputs.n_tiles
     reasons: dict[int, str] = {}
     try:
@@ -30,13 +29,21 @@ def _per_tile(key: str, inputs: MetricInputs, truth: str, settings: dict[str, An
         value = float("nan")
     else:
         value /= n
-    return MetricResult(metric=key, truth=truth, values=np.array([value]), per_tile=False, reasons=reasons,
-                        settings=dict(settings))
+    return MetricResult(
+        metric=key, truth=truth, values=np.array([value]), per_tile=False, reasons=reasons, settings=dict(settings)
+    )
 
 
-@register_metric("model-calls", definition="images passed forward and backward through the model, per tile",
-                 citation="Common practice (cost in model evaluations).", value_range=(0, np.inf),
-                 higher_is_better=False, family="cost", needs=("cost",), per_tile=False)
+@register_metric(
+    "model-calls",
+    definition="images passed forward and backward through the model, per tile",
+    citation="Common practice (cost in model evaluations).",
+    value_range=(0, np.inf),
+    higher_is_better=False,
+    family="cost",
+    needs=("cost",),
+    per_tile=False,
+)
 def _model_calls(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     c = inputs.cost
     try:
@@ -46,8 +53,15 @@ def _model_calls(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> 
     return _per_tile("model-calls", inputs, truth, settings, total)
 
 
-@register_metric("seconds", definition="wall-clock seconds spent by the explainer, per tile",
-                 citation="Common practice (wall-clock cost).", value_range=(0, np.inf),
-                 higher_is_better=False, family="cost", needs=("cost",), per_tile=False)
+@register_metric(
+    "seconds",
+    definition="wall-clock seconds spent by the explainer, per tile",
+    citation="Common practice (wall-clock cost).",
+    value_range=(0, np.inf),
+    higher_is_better=False,
+    family="cost",
+    needs=("cost",),
+    per_tile=False,
+)
 def _seconds(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _per_tile("seconds", inputs, truth, settings, getattr(inputs.cost, "seconds", None))

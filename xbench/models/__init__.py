@@ -6,7 +6,17 @@ from xbench.models.train import TrainedModel, cache_key, state_dict_hash, train_
 from xbench.models.zoo import ALL_KINDS, TORCH_KINDS, build_torch_model, count_parameters
 
 __all__ = [
-    "ALL_KINDS", "CallCount", "ModelHandle", "TORCH_KINDS", "TrainedModel", "build_torch_model",
-    "cache_key", "check_images", "count_parameters", "load_user_torch_model", "state_dict_hash",
-    "train_model", "wrap_callable",
+    "ALL_KINDS",
+    "CallCount",
+    "ModelHandle",
+    "TORCH_KINDS",
+    "TrainedModel",
+    "build_torch_model",
+    "cache_key",
+    "check_images",
+    "count_parameters",
+    "load_user_torch_model",
+    "state_dict_hash",
+    "train_model",
+    "wrap_callable",
 ]

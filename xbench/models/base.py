@@ -106,11 +106,12 @@ class ModelHandle:
         """Class probabilities (N, n_classes) float64 in batches; validates the model's output."""
         images = np.asarray(images, dtype=np.float32)
         if images.ndim != 4:
-            raise XbenchInputError(f"model '{self.name}' input", "wrong shape", expected="(N, C, H, W)",
-                                   found=images.shape)
+            raise XbenchInputError(
+                f"model '{self.name}' input", "wrong shape", expected="(N, C, H, W)", found=images.shape
+            )
         out = []
         for start in range(0, images.shape[0], self.batch_size):
-            chunk = images[start:start + self.batch_size]
+            chunk = images[start : start + self.batch_size]
             if self.module is not None:
                 with torch.no_grad():
                     logits = self.module(torch.from_numpy(np.ascontiguousarray(chunk)))
@@ -124,8 +125,9 @@ class ModelHandle:
 
     def _check_output(self, scores: np.ndarray, n: int) -> None:
         if scores.shape != (n, self.n_classes):
-            raise XbenchInputError(f"model '{self.name}' output", "wrong shape",
-                                   expected=f"({n}, {self.n_classes})", found=scores.shape)
+            raise XbenchInputError(
+                f"model '{self.name}' output", "wrong shape", expected=f"({n}, {self.n_classes})", found=scores.shape
+            )
         if not np.isfinite(scores).all():
             raise XbenchInputError(f"model '{self.name}' output", "non-finite class scores (NaN or inf)")
 
@@ -153,8 +155,12 @@ class ModelHandle:
             return str(name)
         convs = self.conv_layer_names()
         if not convs:
-            raise XbenchInputError(f"model '{self.name}'", "has no conv layer for layer-based explainers",
-                                   expected="a torch module with at least one Conv2d", found=self.layer_names())
+            raise XbenchInputError(
+                f"model '{self.name}'",
+                "has no conv layer for layer-based explainers",
+                expected="a torch module with at least one Conv2d",
+                found=self.layer_names(),
+            )
         return convs[-1]
 
     def get_layer(self, name: str) -> nn.Module:
@@ -162,6 +168,10 @@ class ModelHandle:
             raise XbenchInputError(f"model '{self.name}'", "is a black box: it has no layers")
         modules = dict(self.module.named_modules())
         if name not in modules or not name:
-            raise XbenchInputError(f"model '{self.name}': layer '{name}'", "layer not found",
-                                   expected="one of " + ", ".join(self.layer_names()), found=name)
+            raise XbenchInputError(
+                f"model '{self.name}': layer '{name}'",
+                "layer not found",
+                expected="one of " + ", ".join(self.layer_names()),
+                found=name,
+            )
         return modules[name]

@@ -22,8 +22,7 @@ import numpy as np
 from skimage.filters import sobel
 from sklearn.ensemble import ExtraTreesClassifier
 
-FOREST_DEFAULTS: dict[str, Any] = {"n_trees": 200, "max_depth": 14, "min_samples_leaf": 2,
-                                   "max_features": "sqrt"}
+FOREST_DEFAULTS: dict[str, Any] = {"n_trees": 200, "max_depth": 14, "min_samples_leaf": 2, "max_features": "sqrt"}
 
 
 def tile_features(images: np.ndarray, band_names: list[str] | None = None) -> np.ndarray:
@@ -48,13 +47,20 @@ def tile_features(images: np.ndarray, band_names: list[str] | None = None) -> np
     return np.concatenate(feats, axis=1).astype(np.float32)
 
 
-def fit_forest(features: np.ndarray, labels: np.ndarray, n_classes: int, seed: int,
-               params: dict[str, Any]) -> dict[str, np.ndarray]:
+def fit_forest(
+    features: np.ndarray, labels: np.ndarray, n_classes: int, seed: int, params: dict[str, Any]
+) -> dict[str, np.ndarray]:
     """Fit the ensemble (single-threaded, seeded) and export it to arrays."""
     p = {**FOREST_DEFAULTS, **params}
-    clf = ExtraTreesClassifier(n_estimators=p["n_trees"], max_depth=p["max_depth"],
-                               min_samples_leaf=p["min_samples_leaf"], max_features=p["max_features"],
-                               class_weight="balanced", random_state=seed, n_jobs=1)
+    clf = ExtraTreesClassifier(
+        n_estimators=p["n_trees"],
+        max_depth=p["max_depth"],
+        min_samples_leaf=p["min_samples_leaf"],
+        max_features=p["max_features"],
+        class_weight="balanced",
+        random_state=seed,
+        n_jobs=1,
+    )
     clf.fit(features, labels)
     return export_forest(clf, n_classes)
 
@@ -77,9 +83,14 @@ def export_forest(clf: ExtraTreesClassifier, n_classes: int) -> dict[str, np.nda
         full[:, classes] = v
         value.append(full)
         offsets.append(base + t.node_count)
-    return {"left": np.concatenate(left), "right": np.concatenate(right),
-            "feature": np.concatenate(feature), "threshold": np.concatenate(threshold),
-            "value": np.concatenate(value), "roots": np.asarray(offsets[:-1], dtype=np.int64)}
+    return {
+        "left": np.concatenate(left),
+        "right": np.concatenate(right),
+        "feature": np.concatenate(feature),
+        "threshold": np.concatenate(threshold),
+        "value": np.concatenate(value),
+        "roots": np.asarray(offsets[:-1], dtype=np.int64),
+    }
 
 
 def forest_predict_proba(arrays: dict[str, np.ndarray], features: np.ndarray) -> np.ndarray:

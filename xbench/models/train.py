@@ -40,8 +40,14 @@ from xbench.models.zoo import TORCH_KINDS, build_torch_model, count_parameters
 from xbench.tasks import cache_root
 
 TRAIN_CODE_VERSION = "1"
-TORCH_TRAIN_DEFAULTS: dict[str, Any] = {"epochs": 25, "patience": 6, "lr": 3e-3, "weight_decay": 1e-4,
-                                        "batch_size": 64, "augment": True}
+TORCH_TRAIN_DEFAULTS: dict[str, Any] = {
+    "epochs": 25,
+    "patience": 6,
+    "lr": 3e-3,
+    "weight_decay": 1e-4,
+    "batch_size": 64,
+    "augment": True,
+}
 ARCH_KEYS = {"width", "dropout", "n_maps"}
 
 
@@ -72,8 +78,13 @@ class TrainedModel:
 
 
 def cache_key(task: Any, spec: Any, seed: int) -> str:
-    payload = {"data": task.data.raw, "model": spec.as_dict(), "seed": int(seed), "xbench": __version__,
-               "train_code": TRAIN_CODE_VERSION}
+    payload = {
+        "data": task.data.raw,
+        "model": spec.as_dict(),
+        "seed": int(seed),
+        "xbench": __version__,
+        "train_code": TRAIN_CODE_VERSION,
+    }
     return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()
 
 
@@ -159,8 +170,9 @@ def _augment(batch: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     return out
 
 
-def _fit_torch(module: nn.Module, train: TilePack, val: TilePack, params: dict[str, Any], seed: int,
-               n_classes: int) -> tuple[list[dict[str, float]], int]:
+def _fit_torch(
+    module: nn.Module, train: TilePack, val: TilePack, params: dict[str, Any], seed: int, n_classes: int
+) -> tuple[list[dict[str, float]], int]:
     rng = np.random.default_rng(seed)
     x_train, y_train = train.images, train.labels.astype(np.int64)
     counts = np.bincount(y_train, minlength=n_classes).astype(np.float64)
@@ -180,7 +192,7 @@ def _fit_torch(module: nn.Module, train: TilePack, val: TilePack, params: dict[s
         order = rng.permutation(len(y_train))
         total = 0.0
         for start in range(0, len(order), bs):
-            idx = order[start:start + bs]
+            idx = order[start : start + bs]
             if len(idx) < 2:  # batch norm needs two samples
                 continue
             xb = x_train[idx]
@@ -195,12 +207,18 @@ def _fit_torch(module: nn.Module, train: TilePack, val: TilePack, params: dict[s
         sched.step()
         module.eval()
         with torch.no_grad():
-            val_logits = torch.cat([module(x_val[s:s + 256]) for s in range(0, len(y_val), 256)])
+            val_logits = torch.cat([module(x_val[s : s + 256]) for s in range(0, len(y_val), 256)])
             val_loss = float(nn.functional.cross_entropy(val_logits, torch.from_numpy(y_val)))
         pred = val_logits.argmax(dim=1).numpy()
         val_bacc = float(balanced_accuracy_score(y_val, pred))
-        history.append({"epoch": epoch + 1, "train_loss": total / len(y_train), "val_loss": val_loss,
-                        "val_balanced_accuracy": val_bacc})
+        history.append(
+            {
+                "epoch": epoch + 1,
+                "train_loss": total / len(y_train),
+                "val_loss": val_loss,
+                "val_balanced_accuracy": val_bacc,
+            }
+        )
         key = (val_bacc, -val_loss)
         if best_key is None or key > best_key:
             best_key, best_epoch, since_best = key, epoch + 1, 0
@@ -220,8 +238,9 @@ def _split_params(spec: Any) -> tuple[dict[str, Any], dict[str, Any]]:
     return arch, train
 
 
-def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: bool = True,
-                batch_size: int = 256) -> TrainedModel:
+def train_model(
+    task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: bool = True, batch_size: int = 256
+) -> TrainedModel:
     """Train one model of a task with one seed, or load it from the cache."""
     spec = model_spec
     n_classes = len(task.class_names)
@@ -253,16 +272,19 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
         if use_cache:
             _atomic_write(entry / weights_file, lambda tmp: torch.save(state, tmp))
     elif spec.kind == "forest":
-        arrays = fit_forest(tile_features(data.train.images, data.train.band_names), data.train.labels,
-                            n_classes, seed, spec.params)
+        arrays = fit_forest(
+            tile_features(data.train.images, data.train.band_names), data.train.labels, n_classes, seed, spec.params
+        )
         seconds, cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
         weights_hash = forest_hash(arrays)
-        handle = ModelHandle(name, n_classes, predict_fn=ForestPredictor(arrays, data.train.band_names),
-                             batch_size=batch_size)
+        handle = ModelHandle(
+            name, n_classes, predict_fn=ForestPredictor(arrays, data.train.band_names), batch_size=batch_size
+        )
         n_params = int(arrays["left"].size)  # number of tree nodes
         best_epoch = 0
         weights_file = "forest.npz"
         if use_cache:
+
             def write_arrays(tmp: str) -> None:
                 with open(tmp, "wb") as fh:
                     np.savez(fh, **arrays)
@@ -273,15 +295,39 @@ def train_model(task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: 
     accuracy = evaluate(handle, packs)
     handle.calls.forward = 0
     if use_cache:
-        _write_json(entry / "meta.json", {
-            "model": spec.as_dict(), "seed": int(seed), "task": task.name, "data_hash": task.data.hash,
-            "xbench": __version__, "train_code": TRAIN_CODE_VERSION, "weights_file": weights_file,
-            "weights_hash": weights_hash, "accuracy": accuracy, "seconds": seconds,
-            "cpu_seconds": cpu_seconds, "n_parameters": n_params, "epochs": best_epoch, "history": history,
-        })
-    return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=accuracy, seconds=seconds,
-                        cached=False, weights_hash=weights_hash, n_parameters=n_params, epochs=best_epoch,
-                        cpu_seconds=cpu_seconds, cache_dir=entry if use_cache else None, history=history)
+        _write_json(
+            entry / "meta.json",
+            {
+                "model": spec.as_dict(),
+                "seed": int(seed),
+                "task": task.name,
+                "data_hash": task.data.hash,
+                "xbench": __version__,
+                "train_code": TRAIN_CODE_VERSION,
+                "weights_file": weights_file,
+                "weights_hash": weights_hash,
+                "accuracy": accuracy,
+                "seconds": seconds,
+                "cpu_seconds": cpu_seconds,
+                "n_parameters": n_params,
+                "epochs": best_epoch,
+                "history": history,
+            },
+        )
+    return TrainedModel(
+        handle=handle,
+        spec=spec,
+        seed=int(seed),
+        accuracy=accuracy,
+        seconds=seconds,
+        cached=False,
+        weights_hash=weights_hash,
+        n_parameters=n_params,
+        epochs=best_epoch,
+        cpu_seconds=cpu_seconds,
+        cache_dir=entry if use_cache else None,
+        history=history,
+    )
 
 
 def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
@@ -291,29 +337,52 @@ def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size:
     t0 = time.perf_counter()
     probe = data.test.images[:2]
     if spec.kind == "user-torch":
-        handle = load_user_torch_model(spec.params["factory"], spec.params.get("weights"), n_classes,
-                                       name=spec.name, probe=probe, batch_size=batch_size)
+        handle = load_user_torch_model(
+            spec.params["factory"],
+            spec.params.get("weights"),
+            n_classes,
+            name=spec.name,
+            probe=probe,
+            batch_size=batch_size,
+        )
         state = handle.module.state_dict()
         weights_hash, n_params = state_dict_hash(state), count_parameters(handle.module)
     else:
         fn = import_factory(spec.params["factory"])()
         if not callable(fn):
-            raise XbenchInputError(f"model '{spec.name}': factory '{spec.params['factory']}'",
-                                   "did not return a callable", expected="f(images) -> class scores",
-                                   found=type(fn).__name__)
-        handle = wrap_callable(fn, n_classes, spec.name, output=spec.params.get("output", "probabilities"),
-                               probe=probe, batch_size=batch_size)
+            raise XbenchInputError(
+                f"model '{spec.name}': factory '{spec.params['factory']}'",
+                "did not return a callable",
+                expected="f(images) -> class scores",
+                found=type(fn).__name__,
+            )
+        handle = wrap_callable(
+            fn,
+            n_classes,
+            spec.name,
+            output=spec.params.get("output", "probabilities"),
+            probe=probe,
+            batch_size=batch_size,
+        )
         weights_hash, n_params = "", 0
     packs = {"train": data.train, "val": data.val, "test": data.test}
     accuracy = evaluate(handle, packs)
     handle.calls.forward = 0
-    return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=accuracy,
-                        seconds=time.perf_counter() - t0, cached=True, weights_hash=weights_hash,
-                        n_parameters=n_params)
+    return TrainedModel(
+        handle=handle,
+        spec=spec,
+        seed=int(seed),
+        accuracy=accuracy,
+        seconds=time.perf_counter() - t0,
+        cached=True,
+        weights_hash=weights_hash,
+        n_parameters=n_params,
+    )
 
 
-def _load_cached(entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int, band_names: list[str],
-                 batch_size: int) -> TrainedModel | None:
+def _load_cached(
+    entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int, band_names: list[str], batch_size: int
+) -> TrainedModel | None:
     meta_path = entry / "meta.json"
     if not meta_path.is_file():
         return None
@@ -334,12 +403,22 @@ def _load_cached(entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int
                 arrays = {k: z[k] for k in z.files}
             if forest_hash(arrays) != meta["weights_hash"]:
                 return None
-            handle = ModelHandle(spec.name, n_classes, predict_fn=ForestPredictor(arrays, band_names),
-                                 batch_size=batch_size)
+            handle = ModelHandle(
+                spec.name, n_classes, predict_fn=ForestPredictor(arrays, band_names), batch_size=batch_size
+            )
     except Exception:  # unreadable or unpicklable files, missing keys: retrain and overwrite the entry
         return None
-    return TrainedModel(handle=handle, spec=spec, seed=int(seed), accuracy=dict(meta["accuracy"]),
-                        seconds=float(meta["seconds"]), cached=True, weights_hash=meta["weights_hash"],
-                        n_parameters=int(meta.get("n_parameters", 0)), epochs=int(meta.get("epochs", 0)),
-                        cpu_seconds=float(meta.get("cpu_seconds", 0.0)), cache_dir=entry,
-                        history=list(meta.get("history", [])))
+    return TrainedModel(
+        handle=handle,
+        spec=spec,
+        seed=int(seed),
+        accuracy=dict(meta["accuracy"]),
+        seconds=float(meta["seconds"]),
+        cached=True,
+        weights_hash=meta["weights_hash"],
+        n_parameters=int(meta.get("n_parameters", 0)),
+        epochs=int(meta.get("epochs", 0)),
+        cpu_seconds=float(meta.get("cpu_seconds", 0.0)),
+        cache_dir=entry,
+        history=list(meta.get("history", [])),
+    )

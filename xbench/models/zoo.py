@@ -93,8 +93,7 @@ class BasicBlock(nn.Module):
         self.bn2 = nn.BatchNorm2d(c_out)
         self.shortcut: nn.Module
         if stride != 1 or c_in != c_out:
-            self.shortcut = nn.Sequential(nn.Conv2d(c_in, c_out, 1, stride=stride, bias=False),
-                                          nn.BatchNorm2d(c_out))
+            self.shortcut = nn.Sequential(nn.Conv2d(c_in, c_out, 1, stride=stride, bias=False), nn.BatchNorm2d(c_out))
         else:
             self.shortcut = nn.Identity()
         self.relu2 = nn.ReLU()
@@ -191,8 +190,12 @@ class EvidenceUNet(nn.Module):
         """The non-negative evidence maps (N, n_maps, H, W) at input resolution."""
         h, w = x.shape[-2:]
         if h % 4 or w % 4:
-            raise XbenchInputError("bottleneck model input", "tile size must be a multiple of 4",
-                                   expected="H, W divisible by 4", found=(h, w))
+            raise XbenchInputError(
+                "bottleneck model input",
+                "tile size must be a multiple of 4",
+                expected="H, W divisible by 4",
+                found=(h, w),
+            )
         e1 = self.enc1(self.norm(x))
         e2 = self.enc2(self.down1(e1))
         b = self.bottom(self.down2(e2))

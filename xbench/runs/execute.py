@@ -89,7 +89,11 @@ def concept_sets_for(task: Any, types: list[str]) -> dict[str, np.ndarray]:
     if key not in _CONCEPT_CACHE:
         run = task.run
         _CONCEPT_CACHE[key] = make_concept_sets(
-            task.data.recipe, task.data.size, types, int(run["concept_set_size"]), int(run.get("random_sets", 10)),
+            task.data.recipe,
+            task.data.size,
+            types,
+            int(run["concept_set_size"]),
+            int(run.get("random_sets", 10)),
             int(task.data.seed) + 7919,
         )
     return _CONCEPT_CACHE[key]
@@ -123,9 +127,20 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     pred = trained.handle.predict(train.images[: 4 * n_fit])
     correct = np.flatnonzero(pred == train.labels[: 4 * n_fit])[:n_fit]
     prep = Prepared(
-        task=task, data=data, trained=trained, seed=int(seed), explain_index=index, images=sub.images,
-        targets=targets, twins=sub.twins, masks=sub.masks, mask_names=list(sub.mask_names), planted=planted,
-        reliance=reliance, fit_images=train.images[correct], fit_labels=train.labels[correct],
+        task=task,
+        data=data,
+        trained=trained,
+        seed=int(seed),
+        explain_index=index,
+        images=sub.images,
+        targets=targets,
+        twins=sub.twins,
+        masks=sub.masks,
+        mask_names=list(sub.mask_names),
+        planted=planted,
+        reliance=reliance,
+        fit_images=train.images[correct],
+        fit_labels=train.labels[correct],
         fit_masks=train.masks[correct],
         concept_sets=concept_sets_for(task, list(sub.mask_names)) if need_concepts else None,
     )
@@ -146,10 +161,17 @@ def explain_context(prep: Prepared, cell: Cell) -> Any:
 
     task = prep.task
     return ExplainContext(
-        seed=int(cell.seed), batch_size=int(task.run["batch_size"]), twins=prep.twins, masks=prep.masks,
-        mask_names=prep.mask_names, driving_types=dict(task.class_driving_types),
-        class_names=list(task.class_names), fit_images=prep.fit_images, fit_labels=prep.fit_labels,
-        fit_masks=prep.fit_masks, concept_sets=prep.concept_sets,
+        seed=int(cell.seed),
+        batch_size=int(task.run["batch_size"]),
+        twins=prep.twins,
+        masks=prep.masks,
+        mask_names=prep.mask_names,
+        driving_types=dict(task.class_driving_types),
+        class_names=list(task.class_names),
+        fit_images=prep.fit_images,
+        fit_labels=prep.fit_labels,
+        fit_masks=prep.fit_masks,
+        concept_sets=prep.concept_sets,
     )
 
 
@@ -165,20 +187,28 @@ def type_groups(prep: Prepared) -> tuple[dict[str, float] | None, list[str], lis
     return importance, relied, lookalikes, unused
 
 
-def compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict],
-                 run_id: str) -> dict[str, Any]:
+def compute_cell(
+    task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict], run_id: str
+) -> dict[str, Any]:
     """Explain and score one cell; never raises: a failure comes back as a failed result."""
     started = time.perf_counter()
     try:
         return _compute_cell(task_path, cell, metric_keys, metric_settings, run_id, started)
     except Exception as exc:  # recorded and reported; the rest of the grid goes on
-        return {"status": "failed", "meta": {
-            "cell": cell.to_dict(), "error": f"{type(exc).__name__}: {exc}",
-            "traceback": traceback.format_exc(limit=8), "seconds": time.perf_counter() - started}}
+        return {
+            "status": "failed",
+            "meta": {
+                "cell": cell.to_dict(),
+                "error": f"{type(exc).__name__}: {exc}",
+                "traceback": traceback.format_exc(limit=8),
+                "seconds": time.perf_counter() - started,
+            },
+        }
 
 
-def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict],
-                  run_id: str, started: float) -> dict[str, Any]:
+def _compute_cell(
+    task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict], run_id: str, started: float
+) -> dict[str, Any]:
     from xbench.explainers import explain, get_explainer
     from xbench.metrics import MetricInputs, compute_metric
 
@@ -187,19 +217,30 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
     prep = prepare(task_path, cell.model, cell.seed, need_concepts="concept-sets" in needs)
     handle = prep.trained.handle
     context = explain_context(prep, cell)
-    explanation = explain(cell.explainer, handle, prep.images, prep.targets, context=context,
-                          **cell.explainer_settings)
+    explanation = explain(cell.explainer, handle, prep.images, prep.targets, context=context, **cell.explainer_settings)
     t_explained = time.perf_counter()
 
     importance, relied, lookalikes, unused = type_groups(prep)
     full = MetricInputs(
-        attributions=explanation.attributions, images=prep.images, targets=prep.targets, model=handle,
-        planted=prep.planted, verified=None if prep.reliance is None else prep.reliance.verified_masks,
+        attributions=explanation.attributions,
+        images=prep.images,
+        targets=prep.targets,
+        model=handle,
+        planted=prep.planted,
+        verified=None if prep.reliance is None else prep.reliance.verified_masks,
         evidence=None if prep.reliance is None else prep.reliance.evidence,
-        twins=prep.twins, type_masks=prep.masks, mask_names=prep.mask_names,
-        explain_fn=make_explain_fn(cell, context, len(prep.targets)), concept_report=explanation.concepts,
-        type_importance=importance, relied_types=relied, lookalike_types=lookalikes, unused_types=unused,
-        cost=explanation.cost, seed=int(cell.seed), batch_size=int(prep.task.run["batch_size"]),
+        twins=prep.twins,
+        type_masks=prep.masks,
+        mask_names=prep.mask_names,
+        rerun_explainer=make_rerun_explainer(cell, context, len(prep.targets)),
+        concept_report=explanation.concepts,
+        type_importance=importance,
+        relied_types=relied,
+        lookalike_types=lookalikes,
+        unused_types=unused,
+        cost=explanation.cost,
+        seed=int(cell.seed),
+        batch_size=int(prep.task.run["batch_size"]),
     )
     # Metrics that re-run the explainer many times (sanity, stability) may be scored on the first K explained
     # tiles only (metric setting `tiles`); metrics on the same K share one inputs object and its cache.
@@ -207,7 +248,7 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
 
     def inputs_for(size: int) -> Any:
         if size not in inputs_by_size:
-            inputs_by_size[size] = subset_inputs(full, size, make_explain_fn(cell, context, size))
+            inputs_by_size[size] = subset_inputs(full, size, make_rerun_explainer(cell, context, size))
         return inputs_by_size[size]
 
     rows: list[tuple] = []
@@ -226,11 +267,24 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
                 continue
             values = np.asarray(result.values, dtype=np.float64)
             if result.per_tile:
-                rows.extend((run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth,
-                             int(t), float(v)) for t, v in zip(tiles[:size], values, strict=True))
+                rows.extend(
+                    (run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth, int(t), float(v))
+                    for t, v in zip(tiles[:size], values, strict=True)
+                )
             else:
-                rows.append((run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth, -1,
-                             float(values.reshape(-1)[0])))
+                rows.append(
+                    (
+                        run_id,
+                        cell.task,
+                        cell.model,
+                        cell.seed,
+                        cell.explainer,
+                        key,
+                        result.truth,
+                        -1,
+                        float(values.reshape(-1)[0]),
+                    )
+                )
             if result.reasons:
                 notes[tag] = "; ".join(sorted({str(r) for r in result.reasons.values()}))[:500]
             curves.extend(curve_rows(cell, key, result))
@@ -245,12 +299,18 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
         "concepts": pd.DataFrame(concepts, columns=CONCEPT_COLUMNS),
         "gallery": {"map": explanation.attributions[:gallery_n].astype(np.float32)},
         "meta": {
-            "cell": cell.to_dict(), "error": None, "notes": notes,
-            "seconds": time.perf_counter() - started, "explain_seconds": t_explained - started,
+            "cell": cell.to_dict(),
+            "error": None,
+            "notes": notes,
+            "seconds": time.perf_counter() - started,
+            "explain_seconds": t_explained - started,
             "metric_seconds": metric_seconds,
-            "cost": {"forward_calls": int(explanation.cost.forward_calls),
-                     "backward_calls": int(explanation.cost.backward_calls),
-                     "seconds": float(explanation.cost.seconds), "tiles": int(len(tiles))},
+            "cost": {
+                "forward_calls": int(explanation.cost.forward_calls),
+                "backward_calls": int(explanation.cost.backward_calls),
+                "seconds": float(explanation.cost.seconds),
+                "tiles": int(len(tiles)),
+            },
         },
     }
     report = explanation.concepts
@@ -262,7 +322,7 @@ def _compute_cell(task_path: str, cell: Cell, metric_keys: list[str], metric_set
     return result
 
 
-def make_explain_fn(cell: Cell, context: Any, size: int) -> Any:
+def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
     """The cell's explainer with its settings, for metrics that re-run it (on another model or on perturbed
     copies of the first `size` tiles). Per-tile context (twins, masks) goes along when the row count matches
     those tiles; otherwise it is left out."""
@@ -273,8 +333,9 @@ def make_explain_fn(cell: Cell, context: Any, size: int) -> Any:
     def rows(array: np.ndarray | None, tiles: np.ndarray) -> np.ndarray | None:
         return None if array is None else array[tiles]
 
-    def explain_fn(model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
-                   ) -> np.ndarray:
+    def rerun_explainer(
+        model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
+    ) -> np.ndarray:
         # `tiles`: for each row of `images`, the index of the explained tile it is a copy of.
         if tiles is None and images.shape[0] == size:
             tiles = np.arange(size)
@@ -285,10 +346,10 @@ def make_explain_fn(cell: Cell, context: Any, size: int) -> Any:
             ctx = replace(context, twins=rows(context.twins, tiles), masks=rows(context.masks, tiles))
         return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
 
-    return explain_fn
+    return rerun_explainer
 
 
-def subset_inputs(full: Any, size: int, explain_fn: Any) -> Any:
+def subset_inputs(full: Any, size: int, rerun_explainer: Any) -> Any:
     """The metric inputs of the first `size` tiles."""
     from dataclasses import fields
 
@@ -300,7 +361,7 @@ def subset_inputs(full: Any, size: int, explain_fn: Any) -> Any:
         if isinstance(value, np.ndarray) and value.ndim >= 1 and value.shape[0] == full.n_tiles:
             value = value[:size]
         values[f.name] = value
-    values["explain_fn"] = explain_fn
+    values["rerun_explainer"] = rerun_explainer
     return type(full)(**values)
 
 
@@ -323,9 +384,22 @@ def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:
         for step in range(steps):
             label = names[step] if step < len(names) else ""
             x = step / max(steps - 1, 1) if name in ("deletion", "insertion") else float(step)
-            out.append({"task": cell.task, "model": cell.model, "seed": cell.seed, "explainer": cell.explainer,
-                        "curve": name, "baseline": baseline, "step": step, "x": float(x), "label": label,
-                        "mean": float(mean[step]), "sd": float(sd[step]), "n": int(n[step])})
+            out.append(
+                {
+                    "task": cell.task,
+                    "model": cell.model,
+                    "seed": cell.seed,
+                    "explainer": cell.explainer,
+                    "curve": name,
+                    "baseline": baseline,
+                    "step": step,
+                    "x": float(x),
+                    "label": label,
+                    "mean": float(mean[step]),
+                    "sd": float(sd[step]),
+                    "n": int(n[step]),
+                }
+            )
     return out
 
 
@@ -334,6 +408,8 @@ def concept_rows(cell: Cell, report: Any) -> list[dict[str, Any]]:
         return []
     out = []
     for row in report.rows:
-        out.append({"task": cell.task, "model": cell.model, "seed": cell.seed, "explainer": cell.explainer}
-                   | {k: row.get(k) for k in CONCEPT_COLUMNS[4:]})
+        out.append(
+            {"task": cell.task, "model": cell.model, "seed": cell.seed, "explainer": cell.explainer}
+            | {k: row.get(k) for k in CONCEPT_COLUMNS[4:]}
+        )
     return out

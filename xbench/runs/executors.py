@@ -43,19 +43,20 @@ def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int =
         from dask.distributed import Client, LocalCluster
         from dask.distributed import as_completed as dask_completed
     except ImportError:
-        raise XbenchInputError("--executor dask", "dask.distributed is not installed",
-                               expected="pip install 'xbench[cluster]'") from None
+        raise XbenchInputError(
+            "--executor dask", "dask.distributed is not installed", expected="pip install 'xbench[cluster]'"
+        ) from None
     cluster = None
     if scheduler:
         client = Client(scheduler)
     else:
-        cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
-                               host="127.0.0.1", dashboard_address=None)
+        cluster = LocalCluster(
+            n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
+        )
         client = Client(cluster)
     try:
         client.run(_init_worker)
-        futures = [client.submit(compute_cell, *job, key=f"xbench-cell-{job[1].cell_id}", pure=False)
-                   for job in jobs]
+        futures = [client.submit(compute_cell, *job, key=f"xbench-cell-{job[1].cell_id}", pure=False) for job in jobs]
         by_key = {f.key: job[1] for f, job in zip(futures, jobs, strict=True)}
         for future in dask_completed(futures):
             yield by_key[future.key], future.result()

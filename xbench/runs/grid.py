@@ -52,31 +52,46 @@ def validate_task_keys(task: Any) -> None:
         try:
             spec = get_explainer(key)
         except XbenchInputError as exc:
-            raise XbenchInputError(f"{where}: [explainers] keys", exc.problem, expected=exc.expected,
-                                   found=key) from None
+            raise XbenchInputError(
+                f"{where}: [explainers] keys", exc.problem, expected=exc.expected, found=key
+            ) from None
         known = set(spec.defaults)
         for name in task.explainer_settings.get(key, {}):
             if name not in known:
-                raise XbenchInputError(f"{where}: [explainers.settings.{key}] {name}", "unknown setting",
-                                       expected=", ".join(sorted(known)) or "no settings", found=name)
+                raise XbenchInputError(
+                    f"{where}: [explainers.settings.{key}] {name}",
+                    "unknown setting",
+                    expected=", ".join(sorted(known)) or "no settings",
+                    found=name,
+                )
     for key in task.metrics:
         try:
             spec = get_metric(key)
         except XbenchInputError as exc:
-            raise XbenchInputError(f"{where}: [metrics] keys", exc.problem, expected=exc.expected,
-                                   found=key) from None
+            raise XbenchInputError(f"{where}: [metrics] keys", exc.problem, expected=exc.expected, found=key) from None
         known = set(getattr(spec, "defaults", {}) or {}) | {"tiles"}  # `tiles`: see runs.execute
         for name, value in task.metric_settings.get(key, {}).items():
             if name not in known:
-                raise XbenchInputError(f"{where}: [metrics.settings.{key}] {name}", "unknown setting",
-                                       expected=", ".join(sorted(known)), found=name)
+                raise XbenchInputError(
+                    f"{where}: [metrics.settings.{key}] {name}",
+                    "unknown setting",
+                    expected=", ".join(sorted(known)),
+                    found=name,
+                )
             if name == "tiles" and (isinstance(value, bool) or not isinstance(value, int) or value < 1):
-                raise XbenchInputError(f"{where}: [metrics.settings.{key}] tiles", "bad value",
-                                       expected="a positive integer", found=value)
+                raise XbenchInputError(
+                    f"{where}: [metrics.settings.{key}] tiles", "bad value", expected="a positive integer", found=value
+                )
 
 
-def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[str] | None = None,
-                seeds: list[int] | None = None, metrics: list[str] | None = None) -> Grid:
+def expand_grid(
+    task: Any,
+    *,
+    explainers: list[str] | None = None,
+    models: list[str] | None = None,
+    seeds: list[int] | None = None,
+    metrics: list[str] | None = None,
+) -> Grid:
     """Cells of a task, in a fixed order (model, seed, explainer). Filters narrow the task's own lists."""
     from xbench.explainers import get_explainer
 
@@ -88,16 +103,23 @@ def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[
     model_specs = [m for m in task.models if models is None or m.name in models]
     if models is not None and len(model_specs) != len(set(models)):
         names = [m.name for m in task.models]
-        raise XbenchInputError(f"{task.path}: [[models]]", "model not in the task", expected=", ".join(names),
-                               found=sorted(set(models) - set(names)))
+        raise XbenchInputError(
+            f"{task.path}: [[models]]",
+            "model not in the task",
+            expected=", ".join(names),
+            found=sorted(set(models) - set(names)),
+        )
     run_seeds = list(task.seeds) if seeds is None else list(seeds)
     metric_keys = list(task.metrics) if metrics is None else list(metrics)
     missing = [k for k in metric_keys if k not in task.metrics]
     if missing:
-        raise XbenchInputError(f"{task.path}: [metrics] keys", "metric not in the task",
-                               expected=", ".join(task.metrics), found=missing)
+        raise XbenchInputError(
+            f"{task.path}: [metrics] keys", "metric not in the task", expected=", ".join(task.metrics), found=missing
+        )
     base = {
-        "xbench": __version__, "task_hash": task.file_hash, "run": task.run,
+        "xbench": __version__,
+        "task_hash": task.file_hash,
+        "run": task.run,
         "metrics": {k: task.metric_settings.get(k, {}) for k in metric_keys},
     }
     cells: list[Cell] = []
@@ -117,7 +139,13 @@ def expand_grid(task: Any, *, explainers: list[str] | None = None, models: list[
                         skipped.append({"model": spec.name, "explainer": key, "reason": reason})
                     continue
                 settings = dict(task.explainer_settings.get(key, {}))
-                payload = base | {"model": spec.name, "model_kind": spec.kind, "model_params": spec.params,
-                                  "seed": seed, "explainer": key, "settings": settings}
+                payload = base | {
+                    "model": spec.name,
+                    "model_kind": spec.kind,
+                    "model_params": spec.params,
+                    "seed": seed,
+                    "explainer": key,
+                    "settings": settings,
+                }
                 cells.append(Cell(content_hash(payload), task.name, spec.name, int(seed), key, settings))
     return Grid(cells, skipped, metric_keys)

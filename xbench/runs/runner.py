@@ -59,8 +59,9 @@ def _versions() -> dict[str, str]:
 
 def _git_commit() -> str | None:
     try:
-        res = subprocess.run(["git", "rev-parse", "HEAD"], cwd=Path(__file__).parent, capture_output=True,
-                             text=True, timeout=5)
+        res = subprocess.run(
+            ["git", "rev-parse", "HEAD"], cwd=Path(__file__).parent, capture_output=True, text=True, timeout=5
+        )
         return res.stdout.strip() or None if res.returncode == 0 else None
     except (OSError, subprocess.SubprocessError):
         return None
@@ -89,23 +90,33 @@ def run_task(
     run_for = executor_for(executor, jobs, scheduler)  # validates the executor name before any work
     out = Path(out_dir)
     store = CellStore(out)
-    run_id = content_hash({"task": task_obj.file_hash, "xbench": __version__,
-                           "cells": [c.cell_id for c in grid.cells]}, 12)
+    run_id = content_hash(
+        {"task": task_obj.file_hash, "xbench": __version__, "cells": [c.cell_id for c in grid.cells]}, 12
+    )
     summary = RunSummary(out_dir=out, cells_total=len(grid.cells), cells_skipped=len(grid.skipped))
 
     # Models first (on this process), so that workers only load from the training cache.
-    pairs = sorted({(c.model, c.seed) for c in grid.cells}, key=lambda p: ([m.name for m in task_obj.models]
-                                                                           .index(p[0]), p[1]))
+    pairs = sorted(
+        {(c.model, c.seed) for c in grid.cells}, key=lambda p: ([m.name for m in task_obj.models].index(p[0]), p[1])
+    )
     task_and_data(task_path)
     model_rows, preps = [], {}
     for name, seed in tqdm(pairs, desc="models + truth", disable=not progress, unit="model"):
         preps[(name, seed)] = prep = prepare(task_path, name, seed)  # trains or loads the model once
         trained = prep.trained
-        model_rows.append({"name": name, "kind": next(m.kind for m in task_obj.models if m.name == name),
-                           "seed": seed, "accuracy": accuracy_summary(trained.accuracy), "seconds": trained.seconds,
-                           "cached": bool(trained.cached),
-                           "params": int(sum(p.numel() for p in trained.handle.module.parameters()))
-                           if trained.handle.module is not None else None})
+        model_rows.append(
+            {
+                "name": name,
+                "kind": next(m.kind for m in task_obj.models if m.name == name),
+                "seed": seed,
+                "accuracy": accuracy_summary(trained.accuracy),
+                "seconds": trained.seconds,
+                "cached": bool(trained.cached),
+                "params": int(sum(p.numel() for p in trained.handle.module.parameters()))
+                if trained.handle.module is not None
+                else None,
+            }
+        )
 
     pending = [c for c in grid.cells if not store.is_done(c.cell_id)]
     summary.cells_cached = len(grid.cells) - len(pending)
@@ -128,8 +139,9 @@ def run_task(
     return summary
 
 
-def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, model_rows: list[dict],
-             run_id: str) -> None:
+def assemble(
+    out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, model_rows: list[dict], run_id: str
+) -> None:
     """Write the run folder's tables, artifacts and manifest from committed cells (atomic writes)."""
     ids = [c.cell_id for c in grid.cells]
     records = store.table(ids, "records", RECORD_COLUMNS)
@@ -149,23 +161,43 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
         if prep.reliance is None:
             continue
         for row in prep.reliance.type_table.to_dict("records"):
-            reliance_rows.append({"task": task.name, "model": name, "seed": seed, "kind": row["kind"],
-                                  "mean_drop": row["mean_drop"], "ci_low": row["ci_low"],
-                                  "ci_high": row["ci_high"], "n": int(row["n"])})
+            reliance_rows.append(
+                {
+                    "task": task.name,
+                    "model": name,
+                    "seed": seed,
+                    "kind": row["kind"],
+                    "mean_drop": row["mean_drop"],
+                    "ci_low": row["ci_low"],
+                    "ci_high": row["ci_high"],
+                    "n": int(row["n"]),
+                }
+            )
     write_table(out / "reliance.parquet", pd.DataFrame(reliance_rows, columns=RELIANCE_COLUMNS))
 
     cells_meta = []
     for cell in grid.cells:
         meta = store.meta(cell.cell_id) or {}
-        cells_meta.append({"cell_id": cell.cell_id, "model": cell.model, "seed": cell.seed,
-                           "explainer": cell.explainer, "status": meta.get("status", "missing"),
-                           "seconds": meta.get("seconds"), "error": meta.get("error"),
-                           "notes": meta.get("notes", {}), "cost": meta.get("cost")})
+        cells_meta.append(
+            {
+                "cell_id": cell.cell_id,
+                "model": cell.model,
+                "seed": cell.seed,
+                "explainer": cell.explainer,
+                "status": meta.get("status", "missing"),
+                "seconds": meta.get("seconds"),
+                "error": meta.get("error"),
+                "notes": meta.get("notes", {}),
+                "cost": meta.get("cost"),
+            }
+        )
     for (name, seed), prep in preps.items():
         g = min(int(task.run["gallery_tiles"]), len(prep.explain_index))
         arrays: dict[str, np.ndarray] = {
-            "images": prep.images[:g], "band_names": np.array(prep.data.test.band_names),
-            "planted": prep.planted[:g], "tiles": prep.explain_index[:g].astype(np.int64),
+            "images": prep.images[:g],
+            "band_names": np.array(prep.data.test.band_names),
+            "planted": prep.planted[:g],
+            "tiles": prep.explain_index[:g].astype(np.int64),
             "class_names": np.array(task.class_names),
             "targets": prep.targets[:g],
         }
@@ -178,32 +210,50 @@ def assemble(out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, mo
                     arrays[f"map__{cell.explainer}"] = maps["map"]
                 clusters = store.arrays(cell.cell_id, "clusters")
                 if clusters is not None:
-                    write_npz(out / "artifacts" / f"clusters__{task.name}__{name}__{seed}.npz",
-                              clusters | {"images": prep.images[:g], "class_names": np.array(task.class_names)})
+                    write_npz(
+                        out / "artifacts" / f"clusters__{task.name}__{name}__{seed}.npz",
+                        clusters | {"images": prep.images[:g], "class_names": np.array(task.class_names)},
+                    )
         write_npz(out / "artifacts" / f"gallery__{task.name}__{name}__{seed}.npz", arrays)
 
     data = task.data
     counts = {k: int(v) for k, v in data.counts.items()}
     manifest = {
-        "run_id": run_id, "task": task.name, "task_file": str(task.path), "task_hash": task.file_hash,
-        "description": task.description, "xbench_version": __version__, "versions": _versions(),
-        "git_commit": _git_commit(), "machine": {"platform": platform.platform(),
-                                                 "processor": platform.machine(),
-                                                 "python": platform.python_version()},
+        "run_id": run_id,
+        "task": task.name,
+        "task_file": str(task.path),
+        "task_hash": task.file_hash,
+        "description": task.description,
+        "xbench_version": __version__,
+        "versions": _versions(),
+        "git_commit": _git_commit(),
+        "machine": {
+            "platform": platform.platform(),
+            "processor": platform.machine(),
+            "python": platform.python_version(),
+        },
         "seeds": sorted({c.seed for c in grid.cells}),
-        "data": {"recipe": data.recipe or None, "pack": data.pack, "size": int(data.size), "counts": counts,
-                 "label_rule": "labels of the tile pack" if data.pack else describe_label_rule(data.labels),
-                 "class_names": list(task.class_names), "label_noise": float(data.label_noise),
-                 "cue": describe_cue(data), "presence": data.presence,
-                 "driving_types": {task.class_names[k]: v for k, v in task.class_driving_types.items()},
-                 "lookalike_types": list(task.lookalike_types)},
+        "data": {
+            "recipe": data.recipe or None,
+            "pack": data.pack,
+            "size": int(data.size),
+            "counts": counts,
+            "label_rule": "labels of the tile pack" if data.pack else describe_label_rule(data.labels),
+            "class_names": list(task.class_names),
+            "label_noise": float(data.label_noise),
+            "cue": describe_cue(data),
+            "presence": data.presence,
+            "driving_types": {task.class_names[k]: v for k, v in task.class_driving_types.items()},
+            "lookalike_types": list(task.lookalike_types),
+        },
         "models": model_rows,
         "explainers": {k: task.explainer_settings.get(k, {}) for k in dict.fromkeys(c.explainer for c in grid.cells)},
         "explainer_order": list(dict.fromkeys(c.explainer for c in grid.cells)),
         "metrics": {k: task.metric_settings.get(k, {}) for k in task.metrics},
         "metric_order": list(grid.metrics),
         "explain_tiles": int(len(next(iter(preps.values())).explain_index)) if preps else 0,
-        "skipped": grid.skipped, "cells": cells_meta,
+        "skipped": grid.skipped,
+        "cells": cells_meta,
     }
     write_json(out / "manifest.json", manifest)
 
@@ -215,12 +265,16 @@ def describe_label_rule(labels: dict[str, Any]) -> str:
     for rule in rules:
         stat = rule.get("stat", "coverage")
         above = rule.get("above", 0)
-        what = f"{rule.get('type')} {stat} above {above:g}" if stat == "coverage" else \
-            f"more than {above:g} {rule.get('type')} instance(s)"
+        what = (
+            f"{rule.get('type')} {stat} above {above:g}"
+            if stat == "coverage"
+            else f"more than {above:g} {rule.get('type')} instance(s)"
+        )
         parts.append(f"'{rule.get('class')}' when {what}")
     default = labels.get("default", (labels.get("classes") or ["?"])[0])
-    return ("first matching rule: " + "; ".join(parts) + f"; otherwise '{default}'") if parts else \
-        f"all tiles '{default}'"
+    return (
+        ("first matching rule: " + "; ".join(parts) + f"; otherwise '{default}'") if parts else f"all tiles '{default}'"
+    )
 
 
 def describe_cue(data: Any) -> str | None:

@@ -21,8 +21,20 @@ import pandas as pd
 RECORD_COLUMNS = ["run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value"]
 CURVE_COLUMNS = ["task", "model", "seed", "explainer", "curve", "baseline", "step", "x", "label", "mean", "sd", "n"]
 RELIANCE_COLUMNS = ["task", "model", "seed", "kind", "mean_drop", "ci_low", "ci_high", "n"]
-CONCEPT_COLUMNS = ["task", "model", "seed", "explainer", "concept", "class_name", "score", "spread", "p_value",
-                   "matched_type", "iou", "purity"]
+CONCEPT_COLUMNS = [
+    "task",
+    "model",
+    "seed",
+    "explainer",
+    "concept",
+    "class_name",
+    "score",
+    "spread",
+    "p_value",
+    "matched_type",
+    "iou",
+    "purity",
+]
 RECORD_SORT = ["model", "seed", "explainer", "metric", "truth", "tile"]
 
 

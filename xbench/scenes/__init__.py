@@ -12,10 +12,9 @@ Public API (see DEVELOPERS.md, "Scenes")::
     scenes_to_json(scenes) -> list[dict]
 """
 
+from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES
 from xbench.scenes.labels import (
     ALL_TYPES,
-    HUMAN_TYPES,
-    LOOKALIKE_TYPES,
     Condition,
     Cue,
     LabelRule,

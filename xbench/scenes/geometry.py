@@ -277,12 +277,7 @@ def walk(
 
 def clip_path(path: np.ndarray, size: int, margin: float) -> np.ndarray:
     """Cut a path at its first vertex beyond the tile (+ margin), keeping that vertex."""
-    out = (
-        (path[:, 0] < -margin)
-        | (path[:, 0] > size + margin)
-        | (path[:, 1] < -margin)
-        | (path[:, 1] > size + margin)
-    )
+    out = (path[:, 0] < -margin) | (path[:, 0] > size + margin) | (path[:, 1] < -margin) | (path[:, 1] > size + margin)
     out[0] = False
     idx = np.flatnonzero(out)
     return path if idx.size == 0 else path[: idx[0] + 1]

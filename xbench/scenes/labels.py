@@ -33,14 +33,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from xbench.errors import XbenchInputError
+from xbench.names import HUMAN_TYPES, STRUCTURE_TYPES
 from xbench.scenes.materials import BANDS
 
 if TYPE_CHECKING:
     from xbench.scenes.render import Scene
 
-HUMAN_TYPES: tuple[str, ...] = ("road", "clearing", "building", "corridor", "field")
-LOOKALIKE_TYPES: tuple[str, ...] = ("river", "natural-gap", "outcrop")
-ALL_TYPES: tuple[str, ...] = HUMAN_TYPES + LOOKALIKE_TYPES
+ALL_TYPES: tuple[str, ...] = STRUCTURE_TYPES
 
 STATS = ("coverage", "count")
 
@@ -48,9 +47,7 @@ STATS = ("coverage", "count")
 def _unknown_keys(table: dict, allowed: tuple[str, ...], where: str) -> None:
     for key in table:
         if key not in allowed:
-            raise XbenchInputError(
-                f"{where}.{key}", "unknown key", expected="one of " + ", ".join(allowed), found=key
-            )
+            raise XbenchInputError(f"{where}.{key}", "unknown key", expected="one of " + ", ".join(allowed), found=key)
 
 
 def _number(value: Any, where: str) -> float:
@@ -130,9 +127,9 @@ class LabelRule:
 
 
 def default_label_rule(types: list[str] | tuple[str, ...] = HUMAN_TYPES) -> LabelRule:
-    """``human`` when any human structure is planted, else ``no-human``."""
+    """``disturbed`` when any human structure is planted, else ``intact``."""
     types = tuple(t for t in types if t in HUMAN_TYPES) or HUMAN_TYPES
-    return LabelRule(["no-human", "human"], "no-human", [Condition("human", types, "count", 0.0)])
+    return LabelRule(["intact", "disturbed"], "intact", [Condition("disturbed", types, "count", 0.0)])
 
 
 def parse_label_rule(table: Any, where: str) -> LabelRule:
@@ -140,16 +137,10 @@ def parse_label_rule(table: Any, where: str) -> LabelRule:
     if isinstance(table, LabelRule):
         return table
     if not isinstance(table, dict):
-        raise XbenchInputError(
-            where, "label rule must be a table", expected="a TOML table", found=type(table).__name__
-        )
+        raise XbenchInputError(where, "label rule must be a table", expected="a TOML table", found=type(table).__name__)
     _unknown_keys(table, ("classes", "default", "rule"), where)
     classes = table.get("classes")
-    if (
-        not isinstance(classes, list)
-        or len(classes) < 2
-        or not all(isinstance(c, str) and c for c in classes)
-    ):
+    if not isinstance(classes, list) or len(classes) < 2 or not all(isinstance(c, str) and c for c in classes):
         raise XbenchInputError(
             f"{where}.classes",
             "need a list of at least two class names",
@@ -160,9 +151,7 @@ def parse_label_rule(table: Any, where: str) -> LabelRule:
         raise XbenchInputError(f"{where}.classes", "class names repeat", found=classes)
     default = table.get("default", classes[0])
     if default not in classes:
-        raise XbenchInputError(
-            f"{where}.default", "not one of the classes", expected=", ".join(classes), found=default
-        )
+        raise XbenchInputError(f"{where}.default", "not one of the classes", expected=", ".join(classes), found=default)
     rules_raw = table.get("rule", [])
     if isinstance(rules_raw, dict):
         rules_raw = [rules_raw]
@@ -184,9 +173,7 @@ def parse_label_rule(table: Any, where: str) -> LabelRule:
                 raise XbenchInputError(f"{w}.{key}", "missing key")
         cls = r["class"]
         if cls not in classes:
-            raise XbenchInputError(
-                f"{w}.class", "not one of the classes", expected=", ".join(classes), found=cls
-            )
+            raise XbenchInputError(f"{w}.class", "not one of the classes", expected=", ".join(classes), found=cls)
         if cls == default:
             raise XbenchInputError(f"{w}.class", "a rule cannot name the default class", found=cls)
         types = r["type"]
@@ -195,9 +182,7 @@ def parse_label_rule(table: Any, where: str) -> LabelRule:
             raise XbenchInputError(f"{w}.type", "need a structure type or a list of them", found=r["type"])
         for t in types:
             if t not in ALL_TYPES:
-                raise XbenchInputError(
-                    f"{w}.type", "unknown structure type", expected=", ".join(ALL_TYPES), found=t
-                )
+                raise XbenchInputError(f"{w}.type", "unknown structure type", expected=", ".join(ALL_TYPES), found=t)
         stat = r.get("stat", "coverage")
         if stat not in STATS:
             raise XbenchInputError(f"{w}.stat", "unknown statistic", expected=" or ".join(STATS), found=stat)
@@ -249,20 +234,14 @@ def parse_cue(table: Any, where: str) -> Cue:
     if isinstance(table, Cue):
         return table
     if not isinstance(table, dict):
-        raise XbenchInputError(
-            where, "cue must be a table", expected="a TOML table", found=type(table).__name__
-        )
+        raise XbenchInputError(where, "cue must be a table", expected="a TOML table", found=type(table).__name__)
     _unknown_keys(table, ("kind", "band", "strength", "radius"), where)
     kind = table.get("kind", "band-offset")
     if kind not in CUE_KINDS:
-        raise XbenchInputError(
-            f"{where}.kind", "unknown cue kind", expected=" or ".join(CUE_KINDS), found=kind
-        )
+        raise XbenchInputError(f"{where}.kind", "unknown cue kind", expected=" or ".join(CUE_KINDS), found=kind)
     strength = _number(table.get("strength", 0.03), f"{where}.strength")
     if not 0 < strength <= 0.5:
-        raise XbenchInputError(
-            f"{where}.strength", "out of range", expected="0 < strength <= 0.5", found=strength
-        )
+        raise XbenchInputError(f"{where}.strength", "out of range", expected="0 < strength <= 0.5", found=strength)
     band = table.get("band", "blue")
     if band not in BANDS:
         raise XbenchInputError(f"{where}.band", "unknown band", expected=", ".join(BANDS), found=band)

@@ -2,7 +2,7 @@
 
 Layout of a recipe (every key is validated; errors name the file and the key)::
 
-    name = "orrin-vale"
+    name = "conifer-upland"
     description = "..."
     [terrain]      beta, texture_beta, texture, relief, edge
     [sensor]       noise_sigma (one value or six), haze
@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 
 from xbench.errors import XbenchInputError, load_toml, repo_root
+from xbench.names import RENAMED, renamed_hint
 from xbench.scenes.labels import ALL_TYPES, HUMAN_TYPES, LabelRule, _number, _unknown_keys, parse_label_rule
 from xbench.scenes.materials import BANDS, LIBRARY, MATERIAL_KINDS, Material
 
@@ -160,9 +161,7 @@ class Recipe:
             return self.structures[kind]
         spec = self._defaults.get(kind)
         if spec is None:
-            spec = self._defaults[kind] = _structure(
-                kind, {}, f"{self.path}: structures.{kind}", self.materials
-            )
+            spec = self._defaults[kind] = _structure(kind, {}, f"{self.path}: structures.{kind}", self.materials)
         return spec
 
     def types(self) -> list[str]:
@@ -192,6 +191,11 @@ def load_recipe(name_or_path: str | Path | Recipe) -> Recipe:
     if not (text.endswith(".toml") or path.is_file() or "/" in text):
         shipped = recipe_dir() / f"{text}.toml"
         if not shipped.is_file():
+            hint = renamed_hint("recipe", text)
+            if hint:
+                raise XbenchInputError(
+                    f"recipe '{text}'", f"unknown recipe: {hint}", expected=RENAMED["recipe"][text], found=text
+                )
             raise XbenchInputError(
                 f"recipe '{text}'",
                 "unknown recipe",
@@ -241,13 +245,9 @@ def _check_value(check: str, value: Any, where: str, materials: dict[str, Materi
             or len(value) != 2
             or not all(isinstance(v, int) and not isinstance(v, bool) for v in value)
         ):
-            raise XbenchInputError(
-                where, "need an integer range [low, high]", expected="two integers", found=value
-            )
+            raise XbenchInputError(where, "need an integer range [low, high]", expected="two integers", found=value)
         if value[0] < least or value[0] > value[1]:
-            raise XbenchInputError(
-                where, "bad integer range", expected=f"{least} <= low <= high", found=value
-            )
+            raise XbenchInputError(where, "bad integer range", expected=f"{least} <= low <= high", found=value)
         return [int(value[0]), int(value[1])]
     if check == "material":
         if value not in materials:
@@ -320,9 +320,7 @@ def parse_recipe(data: dict[str, Any], where: str, default_name: str = "recipe")
         if key in t:
             v = _number(t[key], f"{where}: terrain.{key}")
             if not lo <= v <= hi:
-                raise XbenchInputError(
-                    f"{where}: terrain.{key}", "out of range", expected=f"{lo} to {hi}", found=v
-                )
+                raise XbenchInputError(f"{where}: terrain.{key}", "out of range", expected=f"{lo} to {hi}", found=v)
             tv[key] = v
     terrain = Terrain(**tv)
     s = _table(data, "sensor", where)
@@ -338,9 +336,7 @@ def parse_recipe(data: dict[str, Any], where: str, default_name: str = "recipe")
         )
     sig = tuple(_number(v, f"{where}: sensor.noise_sigma") for v in sigmas)
     if any(v < 0 or v > 0.1 for v in sig):
-        raise XbenchInputError(
-            f"{where}: sensor.noise_sigma", "out of range", expected="0 to 0.1", found=sigma_raw
-        )
+        raise XbenchInputError(f"{where}: sensor.noise_sigma", "out of range", expected="0 to 0.1", found=sigma_raw)
     haze = _number(s.get("haze", 0.015), f"{where}: sensor.haze")
     if not 0 <= haze <= 0.3:
         raise XbenchInputError(f"{where}: sensor.haze", "out of range", expected="0 to 0.3", found=haze)
@@ -351,9 +347,7 @@ def parse_recipe(data: dict[str, Any], where: str, default_name: str = "recipe")
     for mname, m in _table(data, "materials", where).items():
         w = f"{where}: materials.{mname}"
         if not isinstance(m, dict):
-            raise XbenchInputError(
-                w, "material must be a table", expected="{reflectance = [...], kind = ...}", found=m
-            )
+            raise XbenchInputError(w, "material must be a table", expected="{reflectance = [...], kind = ...}", found=m)
         _unknown_keys(m, ("reflectance", "kind", "note"), w)
         refl = m.get("reflectance")
         if not isinstance(refl, list) or len(refl) != len(BANDS):
@@ -370,9 +364,7 @@ def parse_recipe(data: dict[str, Any], where: str, default_name: str = "recipe")
             )
         kind = m.get("kind")
         if kind not in MATERIAL_KINDS:
-            raise XbenchInputError(
-                f"{w}.kind", "unknown material kind", expected=", ".join(MATERIAL_KINDS), found=kind
-            )
+            raise XbenchInputError(f"{w}.kind", "unknown material kind", expected=", ".join(MATERIAL_KINDS), found=kind)
         materials[mname] = Material(mname, tuple(vals), kind, str(m.get("note", "")))
 
     # land cover
@@ -407,9 +399,7 @@ def parse_recipe(data: dict[str, Any], where: str, default_name: str = "recipe")
         if not 0 <= share <= 1:
             raise XbenchInputError(f"{w}.share", "out of range", expected="a share in [0, 1]", found=share)
         if not 0 <= mix_share <= 1:
-            raise XbenchInputError(
-                f"{w}.mix_share", "out of range", expected="a share in [0, 1]", found=mix_share
-            )
+            raise XbenchInputError(f"{w}.mix_share", "out of range", expected="a share in [0, 1]", found=mix_share)
         classes.append(
             {
                 "name": cname,

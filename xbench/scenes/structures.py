@@ -114,9 +114,7 @@ def _pick_point(
     return pts[int(np.argmax(s))]
 
 
-def _crossing_path(
-    rng: np.random.Generator, n: int, wander: float, wavelength: tuple[float, float]
-) -> np.ndarray:
+def _crossing_path(rng: np.random.Generator, n: int, wander: float, wavelength: tuple[float, float]) -> np.ndarray:
     """A path entering at a random border point, heading across the tile, cut where it leaves it."""
     side = int(rng.integers(4))
     t = rng.uniform(0.1, 0.9) * n
@@ -161,9 +159,7 @@ def plant_road(rng, spec: StructureSpec, ctx: Context) -> list[Planted]:
                 d = main[k + 1] - main[k]
                 head = float(np.arctan2(d[1], d[0])) + rng.choice([-1.0, 1.0]) * rng.uniform(0.8, 1.5)
                 steps = max(2, int(_u(rng, p["branch_length"]) / STEP))
-                br = g.clip_path(
-                    g.walk(rng, main[k], head, steps, STEP, 0.5 * p["curvature"], ROAD_WAVELENGTH), n, 3.0
-                )
+                br = g.clip_path(g.walk(rng, main[k], head, steps, STEP, 0.5 * p["curvature"], ROAD_WAVELENGTH), n, 3.0)
                 bw = width * 0.8
                 polys.append(g.stroke_polygon(br, bw / 2))
                 branches.append({"path": _r(br), "width": round(bw, 3)})
@@ -253,9 +249,7 @@ def _blob_planter(kind: str):
             }
             if kind == "clearing":
                 regrowth = _u(rng, p["regrowth"])
-                look = _look(
-                    ctx.recipe, spec, rng, p["material"], p["regrowth_material"], ("field", regrowth, 0.35)
-                )
+                look = _look(ctx.recipe, spec, rng, p["material"], p["regrowth_material"], ("field", regrowth, 0.35))
                 params.update(material=p["material"], regrowth=round(regrowth, 4))
             elif kind == "natural-gap":
                 mat = str(rng.choice(p["materials"]))

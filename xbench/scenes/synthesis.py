@@ -49,13 +49,9 @@ def check_presence(presence: Any, where: str = "presence") -> dict[str, float] |
     out = {}
     for k, v in presence.items():
         if k not in ALL_TYPES:
-            raise XbenchInputError(
-                f"{where}.{k}", "unknown structure type", expected=", ".join(ALL_TYPES), found=k
-            )
+            raise XbenchInputError(f"{where}.{k}", "unknown structure type", expected=", ".join(ALL_TYPES), found=k)
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v <= 1:
-            raise XbenchInputError(
-                f"{where}.{k}", "not a probability", expected="a number in [0, 1]", found=v
-            )
+            raise XbenchInputError(f"{where}.{k}", "not a probability", expected="a number in [0, 1]", found=v)
         out[k] = float(v)
     return out
 
@@ -175,7 +171,7 @@ def synthesize(
 ) -> tuple[TilePack, list[Scene]]:
     """Synthesise ``count`` tiles: a validated :class:`TilePack` and the scenes (fields released).
 
-    Labels follow ``label_rule`` (default: the recipe's ``[labels]``, else human/no-human); the clean
+    Labels follow ``label_rule`` (default: the recipe's ``[labels]``, else disturbed/intact); the clean
     labels are kept in ``clean_labels``, and each label is flipped to another class with probability
     ``label_noise`` (seeded). With a ``cue``, it is switched on with probability ``cue_rate`` in tiles
     of non-default (clean) classes and ``1 - cue_rate`` in default-class tiles. ``twins`` renders every
@@ -186,9 +182,7 @@ def synthesize(
     if count < 1:
         raise XbenchInputError("count", "need at least one tile", found=count)
     if not 0 <= label_noise <= 1:
-        raise XbenchInputError(
-            "label_noise", "not a probability", expected="a number in [0, 1]", found=label_noise
-        )
+        raise XbenchInputError("label_noise", "not a probability", expected="a number in [0, 1]", found=label_noise)
     if not 0 <= cue_rate <= 1:
         raise XbenchInputError("cue_rate", "not a probability", expected="a number in [0, 1]", found=cue_rate)
     presence = check_presence(presence)
@@ -290,9 +284,7 @@ def rebuild_scenes(meta: dict[str, Any], cue_flags: Any = None) -> list[Scene]:
         source = meta.get("recipe_path")
         recipe = load_recipe(source if source and Path(source).is_file() else meta["recipe"])
         cue = meta.get("cue")
-        scenes = [
-            sample_scene(recipe, meta["size"], s, meta.get("presence"), cue) for s in meta["tile_seeds"]
-        ]
+        scenes = [sample_scene(recipe, meta["size"], s, meta.get("presence"), cue) for s in meta["tile_seeds"]]
     except KeyError as exc:
         raise XbenchInputError(
             "pack meta", f"missing key {exc}", expected="a pack written by xbench.scenes.synthesize"

@@ -2,7 +2,7 @@
 
 - ``max-sensitivity``: max over ``samples`` perturbations y ~ U(-radius, radius)^(C x H x W) of
   ||Phi(x + y) - Phi(x)||_F / ||Phi(x)||_F, where Phi(x) is the attribution given to the metric and
-  Phi(x + y) comes from re-running the explainer (``explain_fn``) on the perturbed tiles. The same
+  Phi(x + y) comes from re-running the explainer (``rerun_explainer``) on the perturbed tiles. The same
   quantity as ``captum.metrics.sensitivity_max`` (default perturbation: uniform in the L-infinity ball,
   no clipping). A map that is zero everywhere has no relative sensitivity: NaN with a reason (captum then
   divides by 1 instead).
@@ -35,20 +35,17 @@ from xbench.metrics.base import (
     tile_result,
 )
 
-_YEH = ("Yeh, Hsieh, Suggala, Inouye, Ravikumar. On the (in)fidelity and sensitivity of explanations. "
-        "NeurIPS 2019.")
+_YEH = "Yeh, Hsieh, Suggala, Inouye, Ravikumar. On the (in)fidelity and sensitivity of explanations. NeurIPS 2019."
 
 
 # -- perturbations ----------------------------------------------------------------------------------------
-def sensitivity_perturbations(seed: int, tile: int, shape: tuple[int, ...], samples: int,
-                              radius: float) -> np.ndarray:
+def sensitivity_perturbations(seed: int, tile: int, shape: tuple[int, ...], samples: int, radius: float) -> np.ndarray:
     """(samples, C, H, W) float32 noise uniform in [-radius, radius] for one tile."""
     rng = np.random.default_rng([int(seed), int(tile), 13])
     return rng.uniform(-radius, radius, size=(samples, *shape)).astype(np.float32)
 
 
-def infidelity_perturbations(seed: int, tile: int, shape: tuple[int, int], samples: int,
-                             noise: float) -> np.ndarray:
+def infidelity_perturbations(seed: int, tile: int, shape: tuple[int, int], samples: int, noise: float) -> np.ndarray:
     """(samples, H, W) float32 Gaussian perturbations I ~ N(0, noise^2) for one tile (shared by all bands)."""
     rng = np.random.default_rng([int(seed), int(tile), 17])
     return rng.normal(0.0, noise, size=(samples, *shape)).astype(np.float32)
@@ -71,8 +68,9 @@ def max_sensitivity(original: np.ndarray, perturbed: np.ndarray) -> np.ndarray:
     return out
 
 
-def infidelity(attributions: np.ndarray, perturbations: np.ndarray, score_drops: np.ndarray,
-               normalize: bool = True) -> np.ndarray:
+def infidelity(
+    attributions: np.ndarray, perturbations: np.ndarray, score_drops: np.ndarray, normalize: bool = True
+) -> np.ndarray:
     """Mean squared difference between I . Phi and the score drop f(x) - f(x - I), per tile.
 
     attributions (N, H, W); perturbations (N, S, H, W); score_drops (N, S). Follows captum's arithmetic
@@ -93,16 +91,17 @@ def infidelity(attributions: np.ndarray, perturbations: np.ndarray, score_drops:
 
 
 # -- runners ----------------------------------------------------------------------------------------------
-def call_explain_fn(explain_fn: Any, model: Any, images: np.ndarray, targets: np.ndarray,
-                    tiles: np.ndarray) -> np.ndarray:
-    """Call ``explain_fn`` with the row-to-tile index when it accepts one (the runner's does)."""
+def call_rerun_explainer(
+    rerun_explainer: Any, model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray
+) -> np.ndarray:
+    """Call ``rerun_explainer`` with the row-to-tile index when it accepts one (the runner's does)."""
     try:
-        params = inspect.signature(explain_fn).parameters
+        params = inspect.signature(rerun_explainer).parameters
     except (TypeError, ValueError):
         params = {}
     if "tiles" in params:
-        return explain_fn(model, images, targets, tiles=tiles)
-    return explain_fn(model, images, targets)
+        return rerun_explainer(model, images, targets, tiles=tiles)
+    return rerun_explainer(model, images, targets)
 
 
 def _chunks(n_items: int, per_item: int, limit: int) -> range:
@@ -112,18 +111,25 @@ def _chunks(n_items: int, per_item: int, limit: int) -> range:
 @register_metric(
     "max-sensitivity",
     definition="largest relative change of the attribution (Frobenius) when the explainer is re-run on "
-               "tiles perturbed uniformly within `radius`",
-    citation=_YEH, value_range=(0, np.inf), higher_is_better=False, family="stability",
-    needs=("explainer re-runs",), per_tile=True, defaults={"radius": 0.02, "samples": 10},
-    settings_doc={"radius": "L-infinity radius of the uniform input noise (reflectance units)",
-                  "samples": "perturbations per tile (the maximum is taken over them)"},
+    "tiles perturbed uniformly within `radius`",
+    citation=_YEH,
+    value_range=(0, np.inf),
+    higher_is_better=False,
+    family="steadiness",
+    needs=("explainer re-runs",),
+    per_tile=True,
+    defaults={"radius": 0.02, "samples": 10},
+    settings_doc={
+        "radius": "L-infinity radius of the uniform input noise (reflectance units)",
+        "samples": "perturbations per tile (the maximum is taken over them)",
+    },
 )
 def _max_sensitivity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     key = "max-sensitivity"
     check_number(key, "radius", settings["radius"], 0, 1e3)
     check_number(key, "samples", settings["samples"], 1, 100_000, integer=True)
     samples, radius = int(settings["samples"]), float(settings["radius"])
-    assert inputs.explain_fn is not None
+    assert inputs.rerun_explainer is not None
     images = np.asarray(inputs.images, dtype=np.float32)
     targets = np.asarray(inputs.targets)
     n = images.shape[0]
@@ -133,44 +139,66 @@ def _max_sensitivity(inputs: MetricInputs, truth: str, settings: dict[str, Any])
     reasons = {int(i): NONFINITE_REASON for i in np.flatnonzero(bad)}
     limit = max(int(inputs.batch_size), samples)
     for start in _chunks(good.size, samples, limit):
-        ids = good[start:start + max(1, limit // samples)]
-        noisy = np.concatenate([images[i][None] + sensitivity_perturbations(inputs.seed, i, images.shape[1:],
-                                                                             samples, radius) for i in ids])
+        ids = good[start : start + max(1, limit // samples)]
+        noisy = np.concatenate(
+            [
+                images[i][None] + sensitivity_perturbations(inputs.seed, i, images.shape[1:], samples, radius)
+                for i in ids
+            ]
+        )
         # `tiles` tells the runner which explained tile each noisy copy comes from (per-tile context such as
         # the planted masks of the oracle control or the twin baseline of integrated gradients).
-        expl = np.asarray(call_explain_fn(inputs.explain_fn, inputs.model, noisy, np.repeat(targets[ids], samples),
-                                          np.repeat(ids, samples)))
+        expl = np.asarray(
+            call_rerun_explainer(
+                inputs.rerun_explainer, inputs.model, noisy, np.repeat(targets[ids], samples), np.repeat(ids, samples)
+            )
+        )
         if expl.shape != (len(ids) * samples, *images.shape[2:]):
-            raise XbenchInputError("metric 'max-sensitivity': explain_fn output", "wrong shape",
-                                   expected=f"({len(ids) * samples}, H, W)", found=expl.shape)
-        values[ids] = max_sensitivity(np.asarray(inputs.attributions)[ids],
-                                      expl.reshape(len(ids), samples, *images.shape[2:]))
+            raise XbenchInputError(
+                "metric 'max-sensitivity': rerun_explainer output",
+                "wrong shape",
+                expected=f"({len(ids) * samples}, H, W)",
+                found=expl.shape,
+            )
+        values[ids] = max_sensitivity(
+            np.asarray(inputs.attributions)[ids], expl.reshape(len(ids), samples, *images.shape[2:])
+        )
     for i in np.flatnonzero(~np.isfinite(values)):
         if int(i) not in reasons:
             a = np.asarray(inputs.attributions[i])
-            reasons[int(i)] = ("attribution is zero everywhere: relative sensitivity undefined"
-                               if not np.abs(a).max() > 0
-                               else "the re-run explainer returned non-finite values")
+            reasons[int(i)] = (
+                "attribution is zero everywhere: relative sensitivity undefined"
+                if not np.abs(a).max() > 0
+                else "the re-run explainer returned non-finite values"
+            )
     return tile_result(key, truth, values, reasons, settings)
 
 
 @register_metric(
     "infidelity",
     definition="expected squared error between the attribution-weighted perturbation and the target score "
-               "drop, for Gaussian pixel perturbations (attribution rescaled optimally when `normalize`)",
-    citation=_YEH, value_range=(0, np.inf), higher_is_better=False, family="stability", needs=("model",),
-    per_tile=True, defaults={"noise": 0.02, "samples": 16, "normalize": True},
-    settings_doc={"noise": "standard deviation of the per-pixel Gaussian perturbation (reflectance units)",
-                  "samples": "perturbations per tile",
-                  "normalize": "rescale the attribution by the optimal beta first (scale invariant)"},
+    "drop, for Gaussian pixel perturbations (attribution rescaled optimally when `normalize`)",
+    citation=_YEH,
+    value_range=(0, np.inf),
+    higher_is_better=False,
+    family="steadiness",
+    needs=("model",),
+    per_tile=True,
+    defaults={"noise": 0.02, "samples": 16, "normalize": True},
+    settings_doc={
+        "noise": "standard deviation of the per-pixel Gaussian perturbation (reflectance units)",
+        "samples": "perturbations per tile",
+        "normalize": "rescale the attribution by the optimal beta first (scale invariant)",
+    },
 )
 def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     key = "infidelity"
     check_number(key, "noise", settings["noise"], 0, 1e3)
     check_number(key, "samples", settings["samples"], 1, 100_000, integer=True)
     if not isinstance(settings["normalize"], bool):
-        raise XbenchInputError(f"metric '{key}' setting 'normalize'", "must be true or false",
-                               found=settings["normalize"])
+        raise XbenchInputError(
+            f"metric '{key}' setting 'normalize'", "must be true or false", found=settings["normalize"]
+        )
     samples, noise = int(settings["samples"]), float(settings["noise"])
     assert inputs.model is not None
     images = np.asarray(inputs.images, dtype=np.float32)
@@ -192,6 +220,7 @@ def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
             probs = score(stack)
             picked = probs[np.arange(stack.shape[0]), np.repeat(targets[ids], samples)]
             scores = picked.reshape(len(ids), samples)
-            values[ids] = infidelity(np.asarray(inputs.attributions)[ids], pert, base[j][:, None] - scores,
-                                     bool(settings["normalize"]))
+            values[ids] = infidelity(
+                np.asarray(inputs.attributions)[ids], pert, base[j][:, None] - scores, bool(settings["normalize"])
+            )
     return tile_result(key, truth, values, reasons, settings)

@@ -153,8 +153,14 @@ def mask_ap(attributions: np.ndarray, masks: np.ndarray) -> np.ndarray:
     return out
 
 
-def localization_reasons(attributions: np.ndarray, masks: np.ndarray, values: np.ndarray, *,
-                         need_background: bool = False, positive_mass: bool = False) -> dict[int, str]:
+def localization_reasons(
+    attributions: np.ndarray,
+    masks: np.ndarray,
+    values: np.ndarray,
+    *,
+    need_background: bool = False,
+    positive_mass: bool = False,
+) -> dict[int, str]:
     """Why each NaN value is undefined."""
     a, m = _flat(attributions, masks)
     reasons: dict[int, str] = {}
@@ -173,66 +179,92 @@ def localization_reasons(attributions: np.ndarray, masks: np.ndarray, values: np
 
 
 # -- registration ---------------------------------------------------------------------------------------
-def _run(key: str, core: Callable[..., np.ndarray], inputs: MetricInputs, truth: str,
-         settings: dict[str, Any], **flags: bool) -> MetricResult:
+def _run(
+    key: str, core: Callable[..., np.ndarray], inputs: MetricInputs, truth: str, settings: dict[str, Any], **flags: bool
+) -> MetricResult:
     mask = np.asarray(inputs.truth_mask(truth), dtype=bool)
     values = core(inputs.attributions, mask, **settings)
-    return tile_result(key, truth, values, localization_reasons(inputs.attributions, mask, values, **flags),
-                       settings)
+    return tile_result(key, truth, values, localization_reasons(inputs.attributions, mask, values, **flags), settings)
 
 
-_LOC = dict(family="localization", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
-_ARRAS = ("Arras, Osman, Samek. Ground-truth evaluation of neural network explanations. "
-          "Information Fusion 81, 2022.")
+_LOC = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
+_ARRAS = "Arras, Osman, Samek. Ground-truth evaluation of neural network explanations. Information Fusion 81, 2022."
 
 
-@register_metric("mass-accuracy",
-                 definition="share of the positive attribution mass that falls inside the mask",
-                 citation=_ARRAS, value_range=(0, 1), higher_is_better=True, **_LOC)
+@register_metric(
+    "mass-accuracy",
+    definition="share of the positive attribution mass that falls inside the mask",
+    citation=_ARRAS,
+    value_range=(0, 1),
+    higher_is_better=True,
+    **_LOC,
+)
 def _mass_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _run("mass-accuracy", mass_accuracy, inputs, truth, settings, positive_mass=True)
 
 
-@register_metric("rank-accuracy",
-                 definition="share of the K highest-attributed pixels inside the mask, K = mask size",
-                 citation=_ARRAS, value_range=(0, 1), higher_is_better=True, **_LOC)
+@register_metric(
+    "rank-accuracy",
+    definition="share of the K highest-attributed pixels inside the mask, K = mask size",
+    citation=_ARRAS,
+    value_range=(0, 1),
+    higher_is_better=True,
+    **_LOC,
+)
 def _rank_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _run("rank-accuracy", rank_accuracy, inputs, truth, settings)
 
 
-@register_metric("pointing-game",
-                 definition="1 if the attribution maximum lies within `tolerance` pixels of the mask, else 0",
-                 citation="Zhang, Bargal, Lin, Brandt, Shen, Sclaroff. Top-down neural attention by "
-                          "excitation backprop. ECCV 2016 / IJCV 2018.",
-                 value_range=(0, 1), higher_is_better=True, defaults={"tolerance": 1.0},
-                 settings_doc={"tolerance": "hit radius in pixels around the mask (Euclidean; 0 = inside)"},
-                 **_LOC)
+@register_metric(
+    "pointing-game",
+    definition="1 if the attribution maximum lies within `tolerance` pixels of the mask, else 0",
+    citation="Zhang, Bargal, Lin, Brandt, Shen, Sclaroff. Top-down neural attention by "
+    "excitation backprop. ECCV 2016 / IJCV 2018.",
+    value_range=(0, 1),
+    higher_is_better=True,
+    defaults={"tolerance": 1.0},
+    settings_doc={"tolerance": "hit radius in pixels around the mask (Euclidean; 0 = inside)"},
+    **_LOC,
+)
 def _pointing_game(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     check_number("pointing-game", "tolerance", settings["tolerance"], 0, 1e6)
     return _run("pointing-game", pointing_game, inputs, truth, settings)
 
 
-@register_metric("mask-auroc", definition="ROC AUC of the attribution as a per-pixel score for the mask",
-                 citation="Common practice (ROC AUC as in sklearn.metrics.roc_auc_score).",
-                 value_range=(0, 1), higher_is_better=True, **_LOC)
+@register_metric(
+    "mask-auroc",
+    definition="ROC AUC of the attribution as a per-pixel score for the mask",
+    citation="Common practice (ROC AUC as in sklearn.metrics.roc_auc_score).",
+    value_range=(0, 1),
+    higher_is_better=True,
+    **_LOC,
+)
 def _mask_auroc(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _run("mask-auroc", mask_auroc, inputs, truth, settings, need_background=True)
 
 
-@register_metric("mask-ap",
-                 definition="average precision of the attribution as a per-pixel score for the mask",
-                 citation="Common practice (average precision as in "
-                          "sklearn.metrics.average_precision_score).",
-                 value_range=(0, 1), higher_is_better=True, **_LOC)
+@register_metric(
+    "mask-ap",
+    definition="average precision of the attribution as a per-pixel score for the mask",
+    citation="Common practice (average precision as in sklearn.metrics.average_precision_score).",
+    value_range=(0, 1),
+    higher_is_better=True,
+    **_LOC,
+)
 def _mask_ap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _run("mask-ap", mask_ap, inputs, truth, settings)
 
 
-@register_metric("topk-iou",
-                 definition="IoU between the top `fraction` of pixels by attribution and the mask",
-                 citation="Common practice (thresholded saliency vs. mask intersection over union).",
-                 value_range=(0, 1), higher_is_better=True, defaults={"fraction": 0.1},
-                 settings_doc={"fraction": "share of the tile's pixels kept as the top-k set"}, **_LOC)
+@register_metric(
+    "topk-iou",
+    definition="IoU between the top `fraction` of pixels by attribution and the mask",
+    citation="Common practice (thresholded saliency vs. mask intersection over union).",
+    value_range=(0, 1),
+    higher_is_better=True,
+    defaults={"fraction": 0.1},
+    settings_doc={"fraction": "share of the tile's pixels kept as the top-k set"},
+    **_LOC,
+)
 def _topk_iou(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     check_number("topk-iou", "fraction", settings["fraction"], 1e-9, 1)
     return _run("topk-iou", topk_iou, inputs, truth, settings)

@@ -1,6 +1,6 @@
 """Concentration: how much of the attribution sits on few pixels (of the absolute attribution |a|).
 
-- ``sparseness``: the Gini index of |a| over the tile's pixels (Chalasani et al. 2020, after Hurley and
+- ``gini``: the Gini index of |a| over the tile's pixels (Chalasani et al. 2020, after Hurley and
   Rickard): with |a| sorted ascending, G = sum_k (2k - n - 1) |a|_(k) / (n sum_k |a|_(k)). 0 for a uniform
   map, 1 - 1/n when one pixel holds everything.
 - ``entropy``: the Shannon entropy of p = |a| / sum |a| divided by log(n), so 0 = one pixel, 1 = uniform
@@ -27,7 +27,7 @@ def _abs_rows(attributions: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return a, ok
 
 
-def gini_sparseness(attributions: np.ndarray) -> np.ndarray:
+def gini_index(attributions: np.ndarray) -> np.ndarray:
     """Gini index of |a| per tile (N,); NaN for zero or non-finite maps."""
     a, ok = _abs_rows(attributions)
     out = np.full(a.shape[0], np.nan)
@@ -54,27 +54,45 @@ def normalised_entropy(attributions: np.ndarray) -> np.ndarray:
 
 def _reasons(attributions: np.ndarray, values: np.ndarray) -> dict[int, str]:
     a = np.asarray(attributions, dtype=np.float64).reshape(len(values), -1)
-    return {int(i): NONFINITE_REASON if not np.isfinite(a[i]).all()
-            else "attribution is zero everywhere: no distribution to measure"
-            for i in np.flatnonzero(~np.isfinite(values))}
+    return {
+        int(i): NONFINITE_REASON
+        if not np.isfinite(a[i]).all()
+        else "attribution is zero everywhere: no distribution to measure"
+        for i in np.flatnonzero(~np.isfinite(values))
+    }
 
 
-_CHALASANI = ("Chalasani, Chen, Chowdhury, Wu, Jha. Concise explanations of neural networks using "
-              "adversarial training. ICML 2020.")
+_CHALASANI = (
+    "Chalasani, Chen, Chowdhury, Wu, Jha. Concise explanations of neural networks using "
+    "adversarial training. ICML 2020."
+)
 
 
-@register_metric("sparseness", definition="Gini index of the absolute attribution over the tile's pixels",
-                 citation=_CHALASANI, value_range=(0, 1), higher_is_better=True, family="concentration",
-                 needs=(), per_tile=True)
-def _sparseness(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    v = gini_sparseness(inputs.attributions)
-    return tile_result("sparseness", truth, v, _reasons(inputs.attributions, v), settings)
+@register_metric(
+    "gini",
+    definition="Gini index of the absolute attribution over the tile's pixels",
+    citation=_CHALASANI,
+    value_range=(0, 1),
+    higher_is_better=True,
+    family="spread",
+    needs=(),
+    per_tile=True,
+)
+def _gini(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    v = gini_index(inputs.attributions)
+    return tile_result("gini", truth, v, _reasons(inputs.attributions, v), settings)
 
 
-@register_metric("entropy",
-                 definition="Shannon entropy of the normalised absolute attribution, divided by log(pixels)",
-                 citation="Common practice (Shannon entropy of the normalised attribution map).",
-                 value_range=(0, 1), higher_is_better=False, family="concentration", needs=(), per_tile=True)
+@register_metric(
+    "entropy",
+    definition="Shannon entropy of the normalised absolute attribution, divided by log(pixels)",
+    citation="Common practice (Shannon entropy of the normalised attribution map).",
+    value_range=(0, 1),
+    higher_is_better=False,
+    family="spread",
+    needs=(),
+    per_tile=True,
+)
 def _entropy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     v = normalised_entropy(inputs.attributions)
     return tile_result("entropy", truth, v, _reasons(inputs.attributions, v), settings)

@@ -57,8 +57,9 @@ ProbFn = Callable[[np.ndarray], np.ndarray]
 
 
 # -- pure pieces ----------------------------------------------------------------------------------------
-def make_baseline(images: np.ndarray, kind: str, twins: np.ndarray | None = None,
-                  blur_sigma: float = 3.0) -> np.ndarray:
+def make_baseline(
+    images: np.ndarray, kind: str, twins: np.ndarray | None = None, blur_sigma: float = 3.0
+) -> np.ndarray:
     """The replacement image (N, C, H, W) float32 for each tile."""
     images = np.asarray(images, dtype=np.float32)
     if kind == "zero":
@@ -71,20 +72,23 @@ def make_baseline(images: np.ndarray, kind: str, twins: np.ndarray | None = None
         if twins is None:
             raise XbenchInputError("metric baseline 'twin'", "needs twins")
         return np.asarray(twins, dtype=np.float32)
-    raise XbenchInputError("metric setting 'baseline'", "unknown baseline", expected=" | ".join(BASELINES),
-                           found=kind)
+    raise XbenchInputError("metric setting 'baseline'", "unknown baseline", expected=" | ".join(BASELINES), found=kind)
 
 
-def pixel_order(attributions: np.ndarray, seed: int, most_relevant_first: bool = True,
-                tile_ids: np.ndarray | None = None) -> np.ndarray:
+def pixel_order(
+    attributions: np.ndarray, seed: int, most_relevant_first: bool = True, tile_ids: np.ndarray | None = None
+) -> np.ndarray:
     """(N, H*W) pixel indices sorted by attribution (descending for MoRF, ascending for LeRF); ties are
     broken by a random key drawn per tile from ``[seed, tile, 1729]`` (``tile_ids`` default 0..N-1)."""
     a = np.asarray(attributions, dtype=np.float64)
     a = a.reshape(a.shape[0], -1)
     a = np.nan_to_num(a, nan=0.0, posinf=0.0, neginf=0.0)
     ids = np.arange(a.shape[0]) if tile_ids is None else np.asarray(tile_ids)
-    tie = np.stack([np.random.default_rng([int(seed), int(i), 1729]).random(a.shape[1]) for i in ids]) \
-        if len(ids) else np.zeros(a.shape)
+    tie = (
+        np.stack([np.random.default_rng([int(seed), int(i), 1729]).random(a.shape[1]) for i in ids])
+        if len(ids)
+        else np.zeros(a.shape)
+    )
     return np.lexsort((tie, -a if most_relevant_first else a), axis=-1)
 
 
@@ -111,9 +115,16 @@ def distinct_steps(images: np.ndarray, baseline: np.ndarray, order: np.ndarray, 
     return new
 
 
-def perturbation_curves(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray, baseline: np.ndarray,
-                        order: np.ndarray, steps: int, mode: str = "deletion",
-                        chunk_bytes: int = CHUNK_BYTES) -> np.ndarray:
+def perturbation_curves(
+    prob_fn: ProbFn,
+    images: np.ndarray,
+    targets: np.ndarray,
+    baseline: np.ndarray,
+    order: np.ndarray,
+    steps: int,
+    mode: str = "deletion",
+    chunk_bytes: int = CHUNK_BYTES,
+) -> np.ndarray:
     """Target-class score after each step (N, steps+1), batched over tiles and steps.
 
     ``deletion``: step s replaces the first k_s pixels of ``order`` by the baseline (step 0 = the tile).
@@ -163,8 +174,15 @@ def perturbation_curves(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray
     return out
 
 
-def perturbation_curves_loop(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray, baseline: np.ndarray,
-                             order: np.ndarray, steps: int, mode: str = "deletion") -> np.ndarray:
+def perturbation_curves_loop(
+    prob_fn: ProbFn,
+    images: np.ndarray,
+    targets: np.ndarray,
+    baseline: np.ndarray,
+    order: np.ndarray,
+    steps: int,
+    mode: str = "deletion",
+) -> np.ndarray:
     """The straightforward reference: one tile at a time, one model call per step (slow; tests, bench)."""
     images = np.asarray(images, dtype=np.float32)
     baseline = np.asarray(baseline, dtype=np.float32)
@@ -209,8 +227,9 @@ def pearson_rows(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return out
 
 
-def random_subsets(n_tiles: int, n_pixels: int, size: int, runs: int, seed: int,
-                   tile_ids: np.ndarray | None = None) -> np.ndarray:
+def random_subsets(
+    n_tiles: int, n_pixels: int, size: int, runs: int, seed: int, tile_ids: np.ndarray | None = None
+) -> np.ndarray:
     """(N, runs, size) random pixel subsets, drawn per tile from ``[seed, tile, 11]`` (so the draw of a tile
     does not depend on which other tiles are scored)."""
     ids = np.arange(n_tiles) if tile_ids is None else np.asarray(tile_ids)
@@ -221,9 +240,15 @@ def random_subsets(n_tiles: int, n_pixels: int, size: int, runs: int, seed: int,
     return out
 
 
-def faithfulness_correlation_scores(prob_fn: ProbFn, images: np.ndarray, targets: np.ndarray,
-                                    attributions: np.ndarray, baseline: np.ndarray, subsets: np.ndarray,
-                                    chunk_bytes: int = CHUNK_BYTES) -> tuple[np.ndarray, np.ndarray]:
+def subset_drop_correlation_scores(
+    prob_fn: ProbFn,
+    images: np.ndarray,
+    targets: np.ndarray,
+    attributions: np.ndarray,
+    baseline: np.ndarray,
+    subsets: np.ndarray,
+    chunk_bytes: int = CHUNK_BYTES,
+) -> tuple[np.ndarray, np.ndarray]:
     """(attribution sums over each subset, score drops f(x) - f(x with the subset set to the baseline)),
     both (N, runs), batched over tiles and runs."""
     images = np.asarray(images, dtype=np.float32)
@@ -252,14 +277,15 @@ def faithfulness_correlation_scores(prob_fn: ProbFn, images: np.ndarray, targets
 _FAITH_DEFAULTS = {"baseline": "twin", "steps": 20, "blur_sigma": 3.0}
 _FAITH_DOC = {
     "baseline": "replacement for perturbed pixels: twin (structure-free twin), zero, mean (the tile's "
-                "band means), blur (Gaussian-blurred tile)",
+    "band means), blur (Gaussian-blurred tile)",
     "steps": "number of perturbation steps (the curve has steps+1 points)",
     "blur_sigma": "Gaussian sigma in pixels for the blur baseline",
 }
-_PETSIUK = ("Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. "
-            "BMVC 2018.")
-_SAMEK = ("Samek, Binder, Montavon, Lapuschkin, Mueller. Evaluating the visualization of what a deep neural "
-          "network has learned. IEEE TNNLS 2017.")
+_PETSIUK = "Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. BMVC 2018."
+_SAMEK = (
+    "Samek, Binder, Montavon, Lapuschkin, Mueller. Evaluating the visualization of what a deep neural "
+    "network has learned. IEEE TNNLS 2017."
+)
 
 
 def _check_faith_settings(key: str, settings: dict[str, Any]) -> None:
@@ -284,8 +310,9 @@ def _curves(inputs: MetricInputs, settings: dict[str, Any], mode: str, morf: boo
     """Per-tile curves (N, steps+1), NaN rows for tiles with non-finite attributions; cached on the inputs
     so deletion-auc and aopc-morf share one pass."""
     steps = int(settings["steps"])
-    key = inputs.cache_key("curve", mode, morf, settings["baseline"], steps, float(settings["blur_sigma"]),
-                           id(inputs.twins))
+    key = inputs.cache_key(
+        "curve", mode, morf, settings["baseline"], steps, float(settings["blur_sigma"]), id(inputs.twins)
+    )
     if key in inputs._cache:
         return inputs._cache[key]
     bad = bad_attribution_tiles(inputs.attributions)
@@ -296,16 +323,17 @@ def _curves(inputs: MetricInputs, settings: dict[str, Any], mode: str, morf: boo
         images = np.asarray(inputs.images, dtype=np.float32)[good]
         twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
         base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
-        order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf,
-                            tile_ids=good)
-        out[good] = perturbation_curves(_prob_fn(inputs), images, np.asarray(inputs.targets)[good], base,
-                                        order, steps, mode)
+        order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf, tile_ids=good)
+        out[good] = perturbation_curves(
+            _prob_fn(inputs), images, np.asarray(inputs.targets)[good], base, order, steps, mode
+        )
     inputs._cache[key] = out
     return out
 
 
-def _faith_runner(key: str, mode: str, morf: bool, summary: Callable[[np.ndarray], np.ndarray],
-                  curve_name: str) -> Callable[..., MetricResult]:
+def _faith_runner(
+    key: str, mode: str, morf: bool, summary: Callable[[np.ndarray], np.ndarray], curve_name: str
+) -> Callable[..., MetricResult]:
     def run(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
         _check_faith_settings(key, settings)
         missing = _twin_missing(inputs, settings)
@@ -321,39 +349,64 @@ def _faith_runner(key: str, mode: str, morf: bool, summary: Callable[[np.ndarray
     return run
 
 
-_FAITH = dict(family="faithfulness", needs=("model", "twins"), per_tile=True, defaults=_FAITH_DEFAULTS,
-              settings_doc=_FAITH_DOC)
+_FAITH = dict(
+    family="response", needs=("model", "twins"), per_tile=True, defaults=_FAITH_DEFAULTS, settings_doc=_FAITH_DOC
+)
 
 register_metric(
-    "deletion-auc", definition="area under the target score as the most relevant pixels are replaced by the "
-    "baseline", citation=_PETSIUK, value_range=(0, 1), higher_is_better=False, **_FAITH,
+    "deletion-auc",
+    definition="area under the target score as the most relevant pixels are replaced by the baseline",
+    citation=_PETSIUK,
+    value_range=(0, 1),
+    higher_is_better=False,
+    **_FAITH,
 )(_faith_runner("deletion-auc", "deletion", True, curve_auc, "deletion"))
 register_metric(
-    "insertion-auc", definition="area under the target score as the most relevant pixels are restored "
-    "into the baseline", citation=_PETSIUK, value_range=(0, 1), higher_is_better=True, **_FAITH,
+    "insertion-auc",
+    definition="area under the target score as the most relevant pixels are restored into the baseline",
+    citation=_PETSIUK,
+    value_range=(0, 1),
+    higher_is_better=True,
+    **_FAITH,
 )(_faith_runner("insertion-auc", "insertion", True, curve_auc, "insertion"))
 register_metric(
-    "aopc-morf", definition="mean drop of the target score over steps, most relevant pixels perturbed first",
-    citation=_SAMEK, value_range=(-1, 1), higher_is_better=True, **_FAITH,
+    "aopc-morf",
+    definition="mean drop of the target score over steps, most relevant pixels perturbed first",
+    citation=_SAMEK,
+    value_range=(-1, 1),
+    higher_is_better=True,
+    **_FAITH,
 )(_faith_runner("aopc-morf", "deletion", True, aopc, "deletion"))
 register_metric(
-    "aopc-lerf", definition="mean drop of the target score over steps, least relevant pixels perturbed first",
-    citation=_SAMEK, value_range=(-1, 1), higher_is_better=False, **_FAITH,
+    "aopc-lerf",
+    definition="mean drop of the target score over steps, least relevant pixels perturbed first",
+    citation=_SAMEK,
+    value_range=(-1, 1),
+    higher_is_better=False,
+    **_FAITH,
 )(_faith_runner("aopc-lerf", "deletion", False, aopc, "deletion-lerf"))
 
 
 @register_metric(
-    "faithfulness-corr",
+    "subset-drop-corr",
     definition="Pearson correlation, over random pixel subsets, of the attribution sum and the score drop "
-               "when the subset is set to the baseline",
+    "when the subset is set to the baseline",
     citation="Bhatt, Weller, Moura. Evaluating and aggregating feature-based model explanations. IJCAI 2020.",
-    value_range=(-1, 1), higher_is_better=True, family="faithfulness", needs=("model", "twins"),
-    per_tile=True, defaults={"baseline": "twin", "fraction": 0.1, "runs": 32, "blur_sigma": 3.0},
-    settings_doc={"baseline": _FAITH_DOC["baseline"], "fraction": "share of the tile's pixels in each subset",
-                  "runs": "random subsets per tile", "blur_sigma": _FAITH_DOC["blur_sigma"]},
+    value_range=(-1, 1),
+    higher_is_better=True,
+    family="response",
+    needs=("model", "twins"),
+    per_tile=True,
+    defaults={"baseline": "twin", "fraction": 0.1, "runs": 32, "blur_sigma": 3.0},
+    settings_doc={
+        "baseline": _FAITH_DOC["baseline"],
+        "fraction": "share of the tile's pixels in each subset",
+        "runs": "random subsets per tile",
+        "blur_sigma": _FAITH_DOC["blur_sigma"],
+    },
 )
-def _faithfulness_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    key = "faithfulness-corr"
+def _subset_drop_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    key = "subset-drop-corr"
     _check_faith_settings(key, settings)
     check_number(key, "fraction", settings["fraction"], 1e-9, 1)
     check_number(key, "runs", settings["runs"], 2, 100_000, integer=True)
@@ -373,16 +426,20 @@ def _faithfulness_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any
         twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
         base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
         subsets = random_subsets(n, h * w, size, runs, inputs.seed, tile_ids=good)
-        sums, drops = faithfulness_correlation_scores(
-            _prob_fn(inputs), images, np.asarray(inputs.targets)[good], np.asarray(inputs.attributions)[good],
-            base, subsets)
+        sums, drops = subset_drop_correlation_scores(
+            _prob_fn(inputs),
+            images,
+            np.asarray(inputs.targets)[good],
+            np.asarray(inputs.attributions)[good],
+            base,
+            subsets,
+        )
         corr = pearson_rows(sums, drops)
         values[good] = corr
         for j in np.flatnonzero(~np.isfinite(corr)):
             i = int(good[j])
-            if constant_rows(sums[j:j + 1])[0]:
-                reasons[i] = ("attribution sums are equal over all subsets (constant attribution): "
-                              "correlation undefined")
+            if constant_rows(sums[j : j + 1])[0]:
+                reasons[i] = "attribution sums are equal over all subsets (constant attribution): correlation undefined"
             else:
                 reasons[i] = "the model's score did not change over the subsets: correlation undefined"
     return tile_result(key, truth, values, reasons, settings)

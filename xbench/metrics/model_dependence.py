@@ -3,7 +3,7 @@
 A deep copy of the torch module has its parametrised layers re-initialised one after another, **top layer
 first** (the reverse of the order in which a forward pass runs them; each layer re-initialised with its own
 ``reset_parameters`` under a torch seed derived from ``seed`` and the step). After each step the explainer
-is re-run with the same settings (``explain_fn``) and its maps are compared with the original ones:
+is re-run with the same settings (``rerun_explainer``) and its maps are compared with the original ones:
 
 - ``randomization-spearman``: Spearman rank correlation per tile (equals ``scipy.stats.spearmanr``);
 - ``randomization-ssim``: structural similarity per tile (Wang et al. 2004; equals
@@ -77,8 +77,9 @@ def spearman_rows(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return out
 
 
-def ssim_rows(x: np.ndarray, y: np.ndarray, data_range: float, win_size: int = SSIM_WINDOW,
-              k1: float = 0.01, k2: float = 0.03) -> np.ndarray:
+def ssim_rows(
+    x: np.ndarray, y: np.ndarray, data_range: float, win_size: int = SSIM_WINDOW, k1: float = 0.01, k2: float = 0.03
+) -> np.ndarray:
     """Mean SSIM per tile (Wang et al. 2004) with skimage's defaults (uniform window, sample covariance,
     border of (win_size-1)/2 cropped); NaN for non-finite maps and for tiles smaller than the window."""
     x = np.asarray(x, dtype=np.float64)
@@ -105,7 +106,7 @@ def ssim_rows(x: np.ndarray, y: np.ndarray, data_range: float, win_size: int = S
     c2 = (k2 * data_range) ** 2
     s = ((2 * ux * uy + c1) * (2 * vxy + c2)) / ((ux**2 + uy**2 + c1) * (vx + vy + c2))
     pad = (win_size - 1) // 2
-    out[ok] = s[:, pad:s.shape[1] - pad, pad:s.shape[2] - pad].mean(axis=(1, 2))
+    out[ok] = s[:, pad : s.shape[1] - pad, pad : s.shape[2] - pad].mean(axis=(1, 2))
     return out
 
 
@@ -117,9 +118,11 @@ def parametrised_layers(module: nn.Module, example: torch.Tensor) -> list[str]:
     seen: list[str] = []
     handles = []
     for name, m in owners.items():
+
         def hook(_m, _a, _o, name=name):
             if name not in seen:
                 seen.append(name)
+
         handles.append(m.register_forward_hook(hook))
     try:
         with torch.no_grad():
@@ -153,8 +156,14 @@ def _detached_copy(module: nn.Module) -> nn.Module:
     return clone.eval()
 
 
-def cascading_randomization(model: ModelHandle, explain_fn: Callable, images: np.ndarray, targets: np.ndarray,
-                            seed: int, max_layers: int | None = None) -> tuple[list[str], list[np.ndarray]]:
+def cascading_randomization(
+    model: ModelHandle,
+    rerun_explainer: Callable,
+    images: np.ndarray,
+    targets: np.ndarray,
+    seed: int,
+    max_layers: int | None = None,
+) -> tuple[list[str], list[np.ndarray]]:
     """Re-initialise the parametrised layers top first on a deep copy; after each, re-run the explainer.
     Returns the layer names (in cascade order) and the attributions (N, H, W) after each step."""
     assert model.module is not None
@@ -162,16 +171,15 @@ def cascading_randomization(model: ModelHandle, explain_fn: Callable, images: np
     example = torch.from_numpy(np.ascontiguousarray(np.asarray(images[:1], dtype=np.float32)))
     layers = parametrised_layers(clone, example)[::-1]
     if max_layers is not None:
-        layers = layers[:int(max_layers)]
+        layers = layers[: int(max_layers)]
     modules = dict(clone.named_modules())
-    handle = ModelHandle(f"{model.name}~randomized", model.n_classes, module=clone,
-                         batch_size=model.batch_size)
+    handle = ModelHandle(f"{model.name}~randomized", model.n_classes, module=clone, batch_size=model.batch_size)
     maps = []
     for step, name in enumerate(layers):
         _reinitialise(modules[name], int(seed) * 1000 + step)
-        out = np.asarray(explain_fn(handle, images, targets), dtype=np.float64)
+        out = np.asarray(rerun_explainer(handle, images, targets), dtype=np.float64)
         if out.shape != np.shape(images)[:1] + np.shape(images)[2:]:
-            raise RuntimeError(f"explain_fn returned {out.shape}, expected (N, H, W)")
+            raise RuntimeError(f"rerun_explainer returned {out.shape}, expected (N, H, W)")
         maps.append(out)
     return layers, maps
 
@@ -179,10 +187,15 @@ def cascading_randomization(model: ModelHandle, explain_fn: Callable, images: np
 def _cascade(inputs: MetricInputs, max_layers: int | None) -> tuple[list[str], list[np.ndarray]]:
     key = inputs.cache_key("randomization", max_layers)
     if key not in inputs._cache:
-        assert inputs.model is not None and inputs.explain_fn is not None
-        inputs._cache[key] = cascading_randomization(inputs.model, inputs.explain_fn,
-                                                     np.asarray(inputs.images), np.asarray(inputs.targets),
-                                                     inputs.seed, max_layers)
+        assert inputs.model is not None and inputs.rerun_explainer is not None
+        inputs._cache[key] = cascading_randomization(
+            inputs.model,
+            inputs.rerun_explainer,
+            np.asarray(inputs.images),
+            np.asarray(inputs.targets),
+            inputs.seed,
+            max_layers,
+        )
     return inputs._cache[key]
 
 
@@ -195,8 +208,13 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
         check_number(key, "max_layers", max_layers, 1, 100_000, integer=True)
     n = inputs.n_tiles
     if key == "randomization-ssim" and min(np.shape(inputs.attributions)[1:]) < SSIM_WINDOW:
-        return tile_result(key, truth, np.full(n, np.nan),
-                           {-1: f"tiles smaller than the {SSIM_WINDOW}x{SSIM_WINDOW} SSIM window"}, settings)
+        return tile_result(
+            key,
+            truth,
+            np.full(n, np.nan),
+            {-1: f"tiles smaller than the {SSIM_WINDOW}x{SSIM_WINDOW} SSIM window"},
+            settings,
+        )
     bad = bad_attribution_tiles(inputs.attributions)
     layers, maps = _cascade(inputs, max_layers)
     original = normalise_maps(inputs.attributions, absolute)
@@ -230,27 +248,39 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
     return tile_result(key, truth, values, reasons, settings, curves={key: curve}, curve_labels={key: layers})
 
 
-_ADEBAYO = ("Adebayo, Gilmer, Muelly, Goodfellow, Hardt, Kim. Sanity checks for saliency maps. NeurIPS 2018.")
-_SANITY = dict(family="sanity", needs=("torch model", "explainer re-runs"), per_tile=True,
-               defaults={"absolute": True, "max_layers": None},
-               settings_doc={"absolute": "compare |a| / max|a| (true) or a / max|a| (false)",
-                             "max_layers": "randomize only the top this many parametrised layers "
-                                           "(none = all)"},
-               higher_is_better=False)
+_ADEBAYO = "Adebayo, Gilmer, Muelly, Goodfellow, Hardt, Kim. Sanity checks for saliency maps. NeurIPS 2018."
+_SANITY = dict(
+    family="model-dependence",
+    needs=("torch model", "explainer re-runs"),
+    per_tile=True,
+    defaults={"absolute": True, "max_layers": None},
+    settings_doc={
+        "absolute": "compare |a| / max|a| (true) or a / max|a| (false)",
+        "max_layers": "randomize only the top this many parametrised layers (none = all)",
+    },
+    higher_is_better=False,
+)
 
 
-@register_metric("randomization-spearman",
-                 definition="Spearman correlation between the original maps and those of the fully "
-                            "randomized model (layers re-initialised top first)",
-                 citation=_ADEBAYO, value_range=(-1, 1), **_SANITY)
+@register_metric(
+    "randomization-spearman",
+    definition="Spearman correlation between the original maps and those of the fully "
+    "randomized model (layers re-initialised top first)",
+    citation=_ADEBAYO,
+    value_range=(-1, 1),
+    **_SANITY,
+)
 def _randomization_spearman(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _randomization("randomization-spearman", inputs, truth, settings)
 
 
-@register_metric("randomization-ssim",
-                 definition="SSIM between the original maps and those of the fully randomized model "
-                            "(layers re-initialised top first)",
-                 citation=_ADEBAYO + " SSIM: Wang, Bovik, Sheikh, Simoncelli. IEEE TIP 2004.",
-                 value_range=(-1, 1), **_SANITY)
+@register_metric(
+    "randomization-ssim",
+    definition="SSIM between the original maps and those of the fully randomized model "
+    "(layers re-initialised top first)",
+    citation=_ADEBAYO + " SSIM: Wang, Bovik, Sheikh, Simoncelli. IEEE TIP 2004.",
+    value_range=(-1, 1),
+    **_SANITY,
+)
 def _randomization_ssim(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     return _randomization("randomization-ssim", inputs, truth, settings)
