@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 
 import numpy as np
 import pytest
@@ -30,6 +31,7 @@ from xbench.scenes import (
     synthesize,
 )
 from xbench.scenes.geometry import disc_coverage, polygons_coverage, shoelace_area, stroke_polygon
+from xbench.schema import Where
 
 RECIPES = list_recipes()
 ALL_ON = {t: 1.0 for t in ALL_TYPES}
@@ -376,10 +378,10 @@ width = [0.5, 1.0]
 @pytest.mark.parametrize(
     "old, new, key, problem",
     [
-        ('material = "moss"', 'material = "mud"', "landcover[1] (bog).material", "unknown material"),
+        ('material = "moss"', 'material = "mud"', "landcover[1].material", "unknown material"),
         ("[structures.road]", "[structures.canal]", "structures.canal", "unknown structure type"),
-        ("share = 0.2", "share = 0.3", "landcover.share", "more than 1"),
-        ("width = [0.5, 1.0]", "width = [-0.5, 1.0]", "structures.road.width", "must be positive"),
+        ("share = 0.2", "share = 0.3", "landcover", "more than 1"),
+        ("width = [0.5, 1.0]", "width = [-0.5, 1.0]", "structures.road.width", "out of range"),
         (
             "width = [0.5, 1.0]",
             'paved_material = "tarmac"',
@@ -387,14 +389,14 @@ width = [0.5, 1.0]
             "unknown material",
         ),
         ("width = [0.5, 1.0]", "wdth = 1.0", "structures.road.wdth", "unknown key"),
-        ('kind = "wetland"', 'kind = "swamp"', "materials.moss.kind", "unknown material kind"),
+        ('kind = "wetland"', 'kind = "swamp"', "materials.moss.kind", "not an allowed value"),
         ("reflectance = [0.04,", "reflectance = [1.04,", "materials.moss.reflectance", "out of range"),
         (
             "[structures.road]",
             '[labels]\nclasses = ["a", "b"]\n[[labels.rule]]\nclass = "b"\ntype = "road"\n'
             'stat = "mean"\n[structures.road]',
             "labels.rule[0].stat",
-            "unknown statistic",
+            "not an allowed value",
         ),
         (
             "[structures.road]",
@@ -412,6 +414,11 @@ def test_bad_recipe_names_file_and_key(tmp_path, old, new, key, problem):
         load_recipe(path)
     msg = str(err.value)
     assert "\n" not in msg and str(path) in msg and key in msg and problem in msg, msg
+    # The one error format names the line: it holds the changed text, or the key's table starts there.
+    line = int(re.search(rf"{re.escape(str(path))} line (\d+), key ", msg).group(1))
+    lines = BASE.replace(old, new, 1).splitlines()
+    named = lines[line - 1]
+    assert key.split(".")[-1].split("[")[0] in named or named.startswith("["), (msg, named)
 
 
 def test_base_recipe_is_valid(tmp_path):
@@ -449,14 +456,17 @@ def test_unknown_recipe_lists_shipped():
     ],
 )
 def test_bad_label_rule(table, key):
-    with pytest.raises(XbenchInputError, match=rf"tasks/t\.toml: labels\.{key.replace('[', '.').replace(']', '.')}"):
-        parse_label_rule(table, "tasks/t.toml: labels")
+    # One error format (xbench.schema): "SOURCE line L, key K: problem (expected E, found F)".
+    where = Where("tasks/t.toml", "labels")
+    with pytest.raises(XbenchInputError) as err:
+        parse_label_rule(table, where)
+    assert str(err.value).startswith(f"tasks/t.toml, key labels.{key}"), str(err.value)
 
 
 def test_bad_cue_and_presence():
-    with pytest.raises(XbenchInputError, match=r"cue\.band"):
+    with pytest.raises(XbenchInputError, match=r"^cue, key band: not an allowed value"):
         parse_cue({"kind": "band-offset", "band": "uv"}, "cue")
-    with pytest.raises(XbenchInputError, match=r"cue\.strength"):
+    with pytest.raises(XbenchInputError, match=r"^cue, key strength: out of range"):
         parse_cue({"strength": 2}, "cue")
     with pytest.raises(XbenchInputError, match=r"presence\.canal"):
         sample_scene("conifer-upland", 32, 0, presence={"canal": 1})

@@ -48,6 +48,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xbench.api import make_module_callable
 from xbench.errors import XbenchInputError
 
 RECORD_COLUMNS = ("run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value")
@@ -856,3 +857,7 @@ def assert_faithful(
     if not result.passed:
         raise AssertionError(result.table())
     return result
+
+
+# `xbench.check(...)` is also the front door's verb (see xbench.api.make_module_callable).
+make_module_callable(__name__, "check")

@@ -29,6 +29,7 @@ import numpy as np
 from xbench.data import TilePack, load_pack, save_pack
 from xbench.errors import XbenchInputError, load_toml, repo_root
 from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, RENAMED, renamed_hint
+from xbench.schema import Where
 
 # Natural look-alikes (DESIGN.md "Structure types"): never positive evidence for a human class.
 MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-callable")
@@ -265,11 +266,39 @@ def resolve_task_path(path_or_name: str | Path) -> Path:
     return shipped
 
 
-def load_task(path_or_name: str | Path) -> Task:
-    """Read and validate a task file (a path, or a shipped task's name)."""
-    path = resolve_task_path(path_or_name)
-    doc = load_toml(path)
-    file_hash = hashlib.sha256(path.read_bytes()).hexdigest()
+def load_task(task: str | Path | dict[str, Any] | Task) -> Task:
+    """Read and validate a task: a task file's path, a shipped task's name, the file's content as a dict
+    (e.g. built in Python; relative paths in it are taken from the working folder), or a Task as it is.
+    Errors use the one format of :mod:`xbench.schema` (file, line, key, expected, found)."""
+    if isinstance(task, Task):
+        return task
+    if isinstance(task, dict):
+        path = Path.cwd() / "task-from-python.toml"
+        doc, text = task, None
+    else:
+        path = resolve_task_path(task)
+        doc = load_toml(path)
+        text = Where.of_file(path).text
+    try:
+        return _parse_task(path, doc)
+    except XbenchInputError as exc:
+        raise _in_one_format(exc, str(path), text) from None
+
+
+def _in_one_format(exc: XbenchInputError, source: str, text: str | None) -> XbenchInputError:
+    """Restate an error raised as ``"FILE: key.path"`` in the schema's format (adds the line)."""
+    where = exc.where
+    if not where.startswith(source):
+        return exc
+    rest = where[len(source) :].lstrip(":").strip()
+    if rest.startswith("line "):
+        return exc  # already in the one format
+    rest = rest.replace(", key ", ".")
+    return Where(source, rest, text).error(exc.problem, exc.expected, exc.found)
+
+
+def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
+    file_hash = hashlib.sha256(json.dumps(doc, sort_keys=True, default=str).encode()).hexdigest()
     f = str(path)
     _unknown(doc, TOP_KEYS, f"{f}:")
     for key in ("name", "data", "models"):

@@ -9,6 +9,10 @@ Modules: ``load`` (run folders), ``stats`` (bootstrap, Wilcoxon + Holm, Friedman
 (records -> table numbers), ``tables`` (Markdown, LaTeX, HTML), ``figures``, ``methods``, ``bib``, ``writer``.
 """
 
+from xbench.api import make_module_callable
 from xbench.report.writer import ReportSummary, write_report
 
 __all__ = ["ReportSummary", "write_report"]
+
+# `xbench.report(...)` is also the front door's verb (see xbench.api.make_module_callable).
+make_module_callable(__name__, "report")

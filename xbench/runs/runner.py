@@ -85,7 +85,7 @@ def run_task(
 
     started = time.perf_counter()
     task_obj = load_task(task)  # validates the file before any work
-    task_path = str(Path(task_obj.path).resolve())
+    task_path = task_obj  # the parsed task itself travels to the cells: parsed once, also when given as a dict
     grid: Grid = expand_grid(task_obj, explainers=explainers, models=models, seeds=seeds, metrics=metrics)
     run_for = executor_for(executor, jobs, scheduler)  # validates the executor name before any work
     out = Path(out_dir)

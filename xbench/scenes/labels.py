@@ -35,6 +35,7 @@ import numpy as np
 from xbench.errors import XbenchInputError
 from xbench.names import HUMAN_TYPES, STRUCTURE_TYPES
 from xbench.scenes.materials import BANDS
+from xbench.schema import Field, Where, as_where, check_table
 
 if TYPE_CHECKING:
     from xbench.scenes.render import Scene
@@ -132,76 +133,65 @@ def default_label_rule(types: list[str] | tuple[str, ...] = HUMAN_TYPES) -> Labe
     return LabelRule(["intact", "disturbed"], "intact", [Condition("disturbed", types, "count", 0.0)])
 
 
-def parse_label_rule(table: Any, where: str) -> LabelRule:
-    """Validate a label-rule table (see module docstring); errors name ``where`` and the key."""
+def _types_field(value: Any, where: Where) -> list[str]:
+    types = [value] if isinstance(value, str) else value
+    if not isinstance(types, list) or not types:
+        raise where.error("need a structure type or a list of them", expected=", ".join(ALL_TYPES), found=value)
+    for t in types:
+        if t not in ALL_TYPES:
+            raise where.error("unknown structure type", expected=", ".join(ALL_TYPES), found=t)
+    return list(types)
+
+
+RULE_SCHEMA = {
+    "classes": Field("list", item=Field("str"), min_len=2, doc="class names, the default first or named"),
+    "default": Field("str", None, nullable=True, doc="the class of a tile no rule matches (default: the first)"),
+    "rule": Field("any", doc="ordered [[rule]] tables; the first that holds gives the class"),
+}
+CONDITION_SCHEMA = {
+    "class": Field("str", doc="the class this rule gives"),
+    "type": Field("any", check=_types_field, doc="a structure type or a list of them"),
+    "stat": Field("str", "coverage", choices=STATS, doc="coverage (area fraction) or count (instances)"),
+    "above": Field("number", 0.0, low=0.0, doc="the rule holds when the statistic is strictly above this"),
+}
+
+
+def parse_label_rule(table: Any, where: str | Where) -> LabelRule:
+    """Validate a label-rule table (see module docstring); errors name the file, line and key."""
     if isinstance(table, LabelRule):
         return table
-    if not isinstance(table, dict):
-        raise XbenchInputError(where, "label rule must be a table", expected="a TOML table", found=type(table).__name__)
-    _unknown_keys(table, ("classes", "default", "rule"), where)
-    classes = table.get("classes")
-    if not isinstance(classes, list) or len(classes) < 2 or not all(isinstance(c, str) and c for c in classes):
-        raise XbenchInputError(
-            f"{where}.classes",
-            "need a list of at least two class names",
-            expected='e.g. ["intact", "road"]',
-            found=classes,
-        )
-    if len(set(classes)) != len(classes):
-        raise XbenchInputError(f"{where}.classes", "class names repeat", found=classes)
-    default = table.get("default", classes[0])
+    w = as_where(where)
+    values = check_table(table, RULE_SCHEMA, w)
+    classes = values["classes"]
+    if not all(classes) or len(set(classes)) != len(classes):
+        raise w.child("classes").error("class names must be non-empty and distinct", found=classes)
+    default = values["default"] if values["default"] is not None else classes[0]
     if default not in classes:
-        raise XbenchInputError(f"{where}.default", "not one of the classes", expected=", ".join(classes), found=default)
+        raise w.child("default").error("not one of the classes", expected=", ".join(classes), found=default)
     rules_raw = table.get("rule", [])
     if isinstance(rules_raw, dict):
         rules_raw = [rules_raw]
     if not isinstance(rules_raw, list) or not rules_raw:
-        raise XbenchInputError(
-            f"{where}.rule",
-            "need at least one [[rule]] table",
-            expected="a list of {class, type, stat, above}",
-            found=rules_raw,
+        raise w.child("rule").error(
+            "need at least one [[rule]] table", expected="a list of {class, type, stat, above}", found=rules_raw
         )
     rules: list[Condition] = []
     for i, r in enumerate(rules_raw):
-        w = f"{where}.rule[{i}]"
-        if not isinstance(r, dict):
-            raise XbenchInputError(w, "rule must be a table", found=r)
-        _unknown_keys(r, ("class", "type", "stat", "above"), w)
-        for key in ("class", "type"):
-            if key not in r:
-                raise XbenchInputError(f"{w}.{key}", "missing key")
-        cls = r["class"]
+        rw = w.child("rule").child(i)
+        cond = check_table(r, CONDITION_SCHEMA, rw)
+        cls = cond["class"]
         if cls not in classes:
-            raise XbenchInputError(f"{w}.class", "not one of the classes", expected=", ".join(classes), found=cls)
+            raise rw.child("class").error("not one of the classes", expected=", ".join(classes), found=cls)
         if cls == default:
-            raise XbenchInputError(f"{w}.class", "a rule cannot name the default class", found=cls)
-        types = r["type"]
-        types = [types] if isinstance(types, str) else types
-        if not isinstance(types, list) or not types:
-            raise XbenchInputError(f"{w}.type", "need a structure type or a list of them", found=r["type"])
-        for t in types:
-            if t not in ALL_TYPES:
-                raise XbenchInputError(f"{w}.type", "unknown structure type", expected=", ".join(ALL_TYPES), found=t)
-        stat = r.get("stat", "coverage")
-        if stat not in STATS:
-            raise XbenchInputError(f"{w}.stat", "unknown statistic", expected=" or ".join(STATS), found=stat)
-        above = _number(r.get("above", 0.0), f"{w}.above")
-        if above < 0 or (stat == "coverage" and above >= 1):
-            raise XbenchInputError(
-                f"{w}.above",
-                "threshold out of range",
-                expected="0 <= above < 1 for coverage, >= 0 for count",
-                found=above,
+            raise rw.child("class").error("a rule cannot name the default class", found=cls)
+        if cond["stat"] == "coverage" and cond["above"] >= 1:
+            raise rw.child("above").error(
+                "threshold out of range", expected="0 <= above < 1 for coverage", found=cond["above"]
             )
-        rules.append(Condition(cls, tuple(types), stat, above))
+        rules.append(Condition(cls, tuple(cond["type"]), cond["stat"], cond["above"]))
     for c in classes:
         if c != default and not any(r.class_name == c for r in rules):
-            raise XbenchInputError(
-                f"{where}.rule",
-                f"no rule produces class '{c}'",
-                expected="one [[rule]] per non-default class",
-            )
+            raise w.child("rule").error(f"no rule produces class '{c}'", expected="one [[rule]] per non-default class")
     return LabelRule(list(classes), default, rules)
 
 
@@ -229,27 +219,22 @@ class Cue:
         return d
 
 
-def parse_cue(table: Any, where: str) -> Cue:
-    """Validate a cue table (see module docstring); errors name ``where`` and the key."""
+CUE_SCHEMA = {
+    "kind": Field("str", "band-offset", choices=CUE_KINDS, doc="a band offset or a haze blob"),
+    "strength": Field("number", 0.03, low=0.0, high=0.5, low_open=True, doc="reflectance added"),
+    "band": Field("str", "blue", choices=tuple(BANDS), doc="band-offset only: the band offset"),
+    "radius": Field("number", 12.0, low=0.0, low_open=True, doc="haze-patch only: blob radius in pixels"),
+}
+
+
+def parse_cue(table: Any, where: str | Where) -> Cue:
+    """Validate a cue table (see module docstring); errors name the file, line and key."""
     if isinstance(table, Cue):
         return table
-    if not isinstance(table, dict):
-        raise XbenchInputError(where, "cue must be a table", expected="a TOML table", found=type(table).__name__)
-    _unknown_keys(table, ("kind", "band", "strength", "radius"), where)
-    kind = table.get("kind", "band-offset")
-    if kind not in CUE_KINDS:
-        raise XbenchInputError(f"{where}.kind", "unknown cue kind", expected=" or ".join(CUE_KINDS), found=kind)
-    strength = _number(table.get("strength", 0.03), f"{where}.strength")
-    if not 0 < strength <= 0.5:
-        raise XbenchInputError(f"{where}.strength", "out of range", expected="0 < strength <= 0.5", found=strength)
-    band = table.get("band", "blue")
-    if band not in BANDS:
-        raise XbenchInputError(f"{where}.band", "unknown band", expected=", ".join(BANDS), found=band)
-    radius = _number(table.get("radius", 12.0), f"{where}.radius")
-    if radius <= 0:
-        raise XbenchInputError(f"{where}.radius", "must be positive", found=radius)
-    if kind == "band-offset" and "radius" in table:
-        raise XbenchInputError(f"{where}.radius", "only a haze-patch cue has a radius", found=radius)
-    if kind == "haze-patch" and "band" in table:
-        raise XbenchInputError(f"{where}.band", "only a band-offset cue has a band", found=band)
-    return Cue(kind, strength, band, radius)
+    w = as_where(where)
+    v = check_table(table, CUE_SCHEMA, w)
+    if v["kind"] == "band-offset" and "radius" in table:
+        raise w.child("radius").error("only a haze-patch cue has a radius", found=v["radius"])
+    if v["kind"] == "haze-patch" and "band" in table:
+        raise w.child("band").error("only a band-offset cue has a band", found=v["band"])
+    return Cue(v["kind"], v["strength"], v["band"], v["radius"])

@@ -16,83 +16,158 @@ Shares must sum to at most 1; the rest goes to the matrix class (``matrix = true
 
 from __future__ import annotations
 
-import copy
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from xbench.errors import XbenchInputError, load_toml, repo_root
-from xbench.names import RENAMED, renamed_hint
-from xbench.scenes.labels import ALL_TYPES, HUMAN_TYPES, LabelRule, _number, _unknown_keys, parse_label_rule
+from xbench.errors import XbenchInputError, repo_root
+from xbench.names import HUMAN_TYPES, RENAMED, renamed_hint
+from xbench.scenes.labels import ALL_TYPES, LabelRule, parse_label_rule
 from xbench.scenes.materials import BANDS, LIBRARY, MATERIAL_KINDS, Material
+from xbench.schema import Field, Where, as_where, check_table, check_value, load_config
 
-# Structure schema: key -> (check, default). Checks: "prob" (0..1), "pos" (> 0), "nonneg" (>= 0),
-# "range+" ([lo, hi], 0 < lo <= hi), "range01" ([lo, hi] within [0, 1]), "count" ([lo, hi] integers,
-# 1 <= lo <= hi), "material" (a material name), "materials" (non-empty list of names).
-COMMON: dict[str, tuple[str, Any]] = {
-    "probability": ("prob", 0.0),
-    "count": ("count", [1, 1]),
-    "jitter": ("nonneg", 0.08),
+
+# Structure catalogue schema, per type. Material names are checked against the recipe's materials after
+# the schema check (they are data of the recipe, not of the schema).
+def _prob(default: float, doc: str = "") -> Field:
+    return Field("number", default, low=0.0, high=1.0, doc=doc)
+
+
+def _positive_range(default: list[float], doc: str = "") -> Field:
+    return Field("range", default, low=0.0, low_open=True, doc=doc)
+
+
+def _unit_range(default: list[float], doc: str = "") -> Field:
+    return Field("range", default, low=0.0, high=1.0, doc=doc)
+
+
+def _count(default: list[int], least: int, doc: str = "") -> Field:
+    return Field("list", default, item=Field("int", low=least), min_len=2, max_len=2, check=_ordered, doc=doc)
+
+
+def _ordered(value: list[int], where: Where) -> list[int]:
+    if value[0] > value[1]:
+        raise where.error("low above high", expected="low <= high", found=value)
+    return [int(v) for v in value]
+
+
+def _nonneg(default: float, doc: str = "") -> Field:
+    return Field("number", default, low=0.0, doc=doc)
+
+
+def _material(default: str) -> Field:
+    return Field("str", default, doc="a material of the recipe or library")
+
+
+def _materials(default: list[str]) -> Field:
+    return Field("list", default, item=Field("str"), min_len=1, doc="materials of the recipe or library")
+
+
+COMMON: dict[str, Field] = {
+    "probability": _prob(0.0, "share of tiles that hold this type"),
+    "count": _count([1, 1], 1, "instances per tile that holds the type"),
+    "jitter": _nonneg(0.08, "random variation of the material's reflectance"),
 }
-SCHEMA: dict[str, dict[str, tuple[str, Any]]] = {
+SCHEMA: dict[str, dict[str, Field]] = {
     "road": {
-        "width": ("range+", [0.6, 1.8]),
-        "paved_fraction": ("prob", 0.25),
-        "paved_material": ("material", "asphalt"),
-        "unpaved_material": ("material", "gravel"),
-        "curvature": ("nonneg", 0.3),
-        "branching": ("prob", 0.4),
-        "branches": ("count0", [1, 2]),
-        "branch_length": ("range+", [12.0, 40.0]),
-        "avoid_water": ("prob", 0.9),
+        "width": _positive_range([0.6, 1.8]),
+        "paved_fraction": _prob(0.25),
+        "paved_material": _material("asphalt"),
+        "unpaved_material": _material("gravel"),
+        "curvature": _nonneg(0.3),
+        "branching": _prob(0.4),
+        "branches": _count([1, 2], 0),
+        "branch_length": _positive_range([12.0, 40.0]),
+        "avoid_water": _prob(0.9),
     },
     "clearing": {
-        "area": ("range+", [40.0, 400.0]),
-        "vertices": ("count3", [5, 8]),
-        "roughness": ("nonneg", 0.22),
-        "regrowth": ("range01", [0.0, 0.6]),
-        "material": ("material", "slash"),
-        "regrowth_material": ("material", "regrowth"),
+        "area": _positive_range([40.0, 400.0]),
+        "vertices": _count([5, 8], 3),
+        "roughness": _nonneg(0.22),
+        "regrowth": _unit_range([0.0, 0.6]),
+        "material": _material("slash"),
+        "regrowth_material": _material("regrowth"),
     },
     "building": {
-        "length": ("range+", [1.2, 3.0]),
-        "width": ("range+", [1.0, 2.0]),
-        "materials": ("materials", ["roof-red", "roof-grey"]),
-        "spacing": ("range+", [2.5, 5.0]),
-        "setback": ("range+", [0.5, 1.5]),
+        "length": _positive_range([1.2, 3.0]),
+        "width": _positive_range([1.0, 2.0]),
+        "materials": _materials(["roof-red", "roof-grey"]),
+        "spacing": _positive_range([2.5, 5.0]),
+        "setback": _positive_range([0.5, 1.5]),
     },
     "corridor": {
-        "width": ("range+", [2.0, 4.0]),
-        "material": ("material", "corridor-grass"),
+        "width": _positive_range([2.0, 4.0]),
+        "material": _material("corridor-grass"),
     },
     "field": {
-        "length": ("range+", [10.0, 28.0]),
-        "width": ("range+", [6.0, 16.0]),
-        "materials": ("materials", ["crop", "stubble", "bare-soil"]),
-        "soil_material": ("material", "bare-soil"),
-        "row_period": ("range+", [2.0, 4.0]),
-        "row_amplitude": ("range01", [0.15, 0.4]),
+        "length": _positive_range([10.0, 28.0]),
+        "width": _positive_range([6.0, 16.0]),
+        "materials": _materials(["crop", "stubble", "bare-soil"]),
+        "soil_material": _material("bare-soil"),
+        "row_period": _positive_range([2.0, 4.0]),
+        "row_amplitude": _unit_range([0.15, 0.4]),
     },
     "river": {
-        "width": ("range+", [1.0, 3.0]),
-        "material": ("material", "river-water"),
-        "meander": ("nonneg", 0.5),
+        "width": _positive_range([1.0, 3.0]),
+        "material": _material("river-water"),
+        "meander": _nonneg(0.5),
     },
     "natural-gap": {
-        "area": ("range+", [30.0, 300.0]),
-        "vertices": ("count3", [14, 22]),
-        "roughness": ("nonneg", 0.35),
-        "materials": ("materials", ["windthrow", "burn-scar"]),
-        "remnant": ("range01", [0.1, 0.4]),
+        "area": _positive_range([30.0, 300.0]),
+        "vertices": _count([14, 22], 3),
+        "roughness": _nonneg(0.35),
+        "materials": _materials(["windthrow", "burn-scar"]),
+        "remnant": _unit_range([0.1, 0.4]),
     },
     "outcrop": {
-        "area": ("range+", [6.0, 40.0]),
-        "vertices": ("count3", [8, 14]),
-        "roughness": ("nonneg", 0.3),
-        "material": ("material", "rock"),
+        "area": _positive_range([6.0, 40.0]),
+        "vertices": _count([8, 14], 3),
+        "roughness": _nonneg(0.3),
+        "material": _material("rock"),
     },
+}
+
+TOP_SCHEMA: dict[str, Field] = {
+    "name": Field("str", None, nullable=True, doc="the recipe's key (default: the file name)"),
+    "description": Field("str", ""),
+    "terrain": Field("table", {}),
+    "sensor": Field("table", {}),
+    "materials": Field("table", {}),
+    "landcover": Field("list", item=Field("table"), min_len=1, doc="[[landcover]] classes"),
+    "structures": Field("table", {}),
+    "labels": Field("table", None, nullable=True),
+}
+TERRAIN_SCHEMA: dict[str, Field] = {
+    "beta": Field("number", 3.0, low=0.5, high=5.0, doc="spectral exponent of the land-cover field"),
+    "texture_beta": Field("number", 1.8, low=0.5, high=5.0),
+    "texture": Field("number", 0.06, low=0.0, high=0.5),
+    "relief": Field("number", 0.1, low=0.0, high=0.5),
+    "edge": Field("number", 0.08, low=1e-3, high=2.0),
+}
+SENSOR_SCHEMA: dict[str, Field] = {
+    "noise_sigma": Field("any", 0.004, doc="one value or one per band, each in [0, 0.1]"),
+    "haze": Field("number", 0.015, low=0.0, high=0.3),
+}
+MATERIAL_SCHEMA: dict[str, Field] = {
+    "reflectance": Field(
+        "list",
+        item=Field("number", low=0.0, high=1.0),
+        min_len=len(BANDS),
+        max_len=len(BANDS),
+        doc="one surface reflectance per band (" + ", ".join(BANDS) + ")",
+    ),
+    "kind": Field("str", choices=tuple(MATERIAL_KINDS)),
+    "note": Field("str", ""),
+}
+LANDCOVER_SCHEMA: dict[str, Field] = {
+    "name": Field("str", None, nullable=True),
+    "material": Field("str"),
+    "share": Field("number", 0.0, low=0.0, high=1.0),
+    "mix": Field("str", None, nullable=True),
+    "mix_share": Field("number", 0.0, low=0.0, high=1.0),
+    "matrix": Field("bool", False),
 }
 
 
@@ -161,7 +236,7 @@ class Recipe:
             return self.structures[kind]
         spec = self._defaults.get(kind)
         if spec is None:
-            spec = self._defaults[kind] = _structure(kind, {}, f"{self.path}: structures.{kind}", self.materials)
+            spec = self._defaults[kind] = _structure(kind, {}, Where(self.path, f"structures.{kind}"), self.materials)
         return spec
 
     def types(self) -> list[str]:
@@ -203,81 +278,25 @@ def load_recipe(name_or_path: str | Path | Recipe) -> Recipe:
                 found=text,
             )
         path = shipped
-    data = load_toml(path)
-    return parse_recipe(data, str(path), default_name=path.stem)
+    data, where = load_config(path)
+    return parse_recipe(data, where, default_name=path.stem)
 
 
-def _range(value: Any, where: str, check: str) -> list[float]:
-    if not isinstance(value, list) or len(value) != 2:
-        raise XbenchInputError(where, "need a range [low, high]", expected="two numbers", found=value)
-    lo, hi = _number(value[0], where), _number(value[1], where)
-    if check == "range+" and (lo <= 0 or hi <= 0):
-        raise XbenchInputError(where, "must be positive", expected="0 < low <= high", found=value)
-    if check == "range01" and not (0 <= lo <= 1 and 0 <= hi <= 1):
-        raise XbenchInputError(where, "out of range", expected="values within [0, 1]", found=value)
-    if lo > hi:
-        raise XbenchInputError(where, "low above high", expected="low <= high", found=value)
-    return [lo, hi]
+def _check_materials(value: Any, where: Where, materials: dict[str, Material]) -> None:
+    for v in [value] if isinstance(value, str) else value:
+        if v not in materials:
+            raise where.error("unknown material", expected="a material of the recipe or library", found=v)
 
 
-def _check_value(check: str, value: Any, where: str, materials: dict[str, Material]) -> Any:
-    if check == "prob":
-        v = _number(value, where)
-        if not 0 <= v <= 1:
-            raise XbenchInputError(where, "out of range", expected="a probability in [0, 1]", found=value)
-        return v
-    if check in ("pos", "nonneg"):
-        v = _number(value, where)
-        if v < 0 or (check == "pos" and v == 0):
-            raise XbenchInputError(
-                where,
-                "must not be negative" if v < 0 else "must be positive",
-                expected="a number >= 0" if check == "nonneg" else "a number > 0",
-                found=value,
-            )
-        return v
-    if check in ("range+", "range01"):
-        return _range(value, where, check)
-    if check in ("count", "count0", "count3"):
-        least = {"count": 1, "count0": 0, "count3": 3}[check]
-        if (
-            not isinstance(value, list)
-            or len(value) != 2
-            or not all(isinstance(v, int) and not isinstance(v, bool) for v in value)
-        ):
-            raise XbenchInputError(where, "need an integer range [low, high]", expected="two integers", found=value)
-        if value[0] < least or value[0] > value[1]:
-            raise XbenchInputError(where, "bad integer range", expected=f"{least} <= low <= high", found=value)
-        return [int(value[0]), int(value[1])]
-    if check == "material":
-        if value not in materials:
-            raise XbenchInputError(
-                where, "unknown material", expected="a material of the recipe or library", found=value
-            )
-        return value
-    if check == "materials":
-        if isinstance(value, str):
-            value = [value]
-        if not isinstance(value, list) or not value:
-            raise XbenchInputError(where, "need a list of material names", found=value)
-        for v in value:
-            if v not in materials:
-                raise XbenchInputError(
-                    where, "unknown material", expected="a material of the recipe or library", found=v
-                )
-        return list(value)
-    raise AssertionError(check)  # pragma: no cover
-
-
-def _structure(kind: str, table: Any, where: str, materials: dict[str, Material]) -> StructureSpec:
-    if not isinstance(table, dict):
-        raise XbenchInputError(where, "structure entry must be a table", found=table)
+def _structure(kind: str, table: Any, where: str | Where, materials: dict[str, Material]) -> StructureSpec:
+    w = as_where(where)
     schema = {**COMMON, **SCHEMA[kind]}
-    _unknown_keys(table, tuple(schema), where)
-    values: dict[str, Any] = {}
-    for key, (check, default) in schema.items():
-        raw = table.get(key, copy.deepcopy(default))
-        values[key] = _check_value(check, raw, f"{where}.{key}", materials)
+    if isinstance(table, dict) and isinstance(table.get("materials"), str):
+        table = {**table, "materials": [table["materials"]]}
+    values = check_table(table, schema, w)
+    for key, spec in schema.items():
+        if spec.doc.startswith("a material") or spec.doc.startswith("materials"):
+            _check_materials(values[key], w.child(key), materials)
     return StructureSpec(
         kind,
         values.pop("probability"),
@@ -287,161 +306,61 @@ def _structure(kind: str, table: Any, where: str, materials: dict[str, Material]
     )
 
 
-def _table(data: dict, key: str, where: str) -> dict:
-    t = data.get(key, {})
-    if not isinstance(t, dict):
-        raise XbenchInputError(f"{where}: {key}", "must be a table", found=type(t).__name__)
-    return t
-
-
-def parse_recipe(data: dict[str, Any], where: str, default_name: str = "recipe") -> Recipe:
-    """Validate recipe data (already read from TOML); ``where`` is the file name used in errors."""
-    _unknown_keys(
-        data,
-        ("name", "description", "terrain", "sensor", "materials", "landcover", "structures", "labels"),
-        f"{where}:",
-    )
-    name = data.get("name", default_name)
-    if not isinstance(name, str) or not name:
-        raise XbenchInputError(f"{where}: name", "must be a non-empty string", found=name)
-    description = str(data.get("description", ""))
-
-    # terrain and sensor
-    t = _table(data, "terrain", where)
-    _unknown_keys(t, ("beta", "texture_beta", "texture", "relief", "edge"), f"{where}: terrain")
-    tv = {}
-    for key, lo, hi in (
-        ("beta", 0.5, 5.0),
-        ("texture_beta", 0.5, 5.0),
-        ("texture", 0.0, 0.5),
-        ("relief", 0.0, 0.5),
-        ("edge", 1e-3, 2.0),
-    ):
-        if key in t:
-            v = _number(t[key], f"{where}: terrain.{key}")
-            if not lo <= v <= hi:
-                raise XbenchInputError(f"{where}: terrain.{key}", "out of range", expected=f"{lo} to {hi}", found=v)
-            tv[key] = v
-    terrain = Terrain(**tv)
-    s = _table(data, "sensor", where)
-    _unknown_keys(s, ("noise_sigma", "haze"), f"{where}: sensor")
-    sigma_raw = s.get("noise_sigma", 0.004)
+def parse_recipe(data: dict[str, Any], where: str | Where, default_name: str = "recipe") -> Recipe:
+    """Validate recipe data (already read from TOML); errors name the file, line and key."""
+    w = as_where(where)
+    top = check_table(data, TOP_SCHEMA, w)
+    name = top["name"] if top["name"] is not None else default_name
+    if not name:
+        raise w.child("name").error("must be a non-empty string", found=name)
+    terrain = Terrain(**check_table(top["terrain"], TERRAIN_SCHEMA, w.child("terrain")))
+    sv = check_table(top["sensor"], SENSOR_SCHEMA, w.child("sensor"))
+    sigma_raw = sv["noise_sigma"]
+    sigma_field = Field("list", item=Field("number", low=0.0, high=0.1), min_len=len(BANDS), max_len=len(BANDS))
     sigmas = sigma_raw if isinstance(sigma_raw, list) else [sigma_raw] * len(BANDS)
-    if len(sigmas) != len(BANDS):
-        raise XbenchInputError(
-            f"{where}: sensor.noise_sigma",
-            "need one value or one per band",
-            expected=f"{len(BANDS)} values",
-            found=sigma_raw,
-        )
-    sig = tuple(_number(v, f"{where}: sensor.noise_sigma") for v in sigmas)
-    if any(v < 0 or v > 0.1 for v in sig):
-        raise XbenchInputError(f"{where}: sensor.noise_sigma", "out of range", expected="0 to 0.1", found=sigma_raw)
-    haze = _number(s.get("haze", 0.015), f"{where}: sensor.haze")
-    if not 0 <= haze <= 0.3:
-        raise XbenchInputError(f"{where}: sensor.haze", "out of range", expected="0 to 0.3", found=haze)
-    sensor = Sensor(sig, haze)
+    sig = tuple(check_value(sigmas, sigma_field, w.child("sensor").child("noise_sigma")))
+    sensor = Sensor(sig, sv["haze"])
 
-    # materials
     materials = dict(LIBRARY)
-    for mname, m in _table(data, "materials", where).items():
-        w = f"{where}: materials.{mname}"
-        if not isinstance(m, dict):
-            raise XbenchInputError(w, "material must be a table", expected="{reflectance = [...], kind = ...}", found=m)
-        _unknown_keys(m, ("reflectance", "kind", "note"), w)
-        refl = m.get("reflectance")
-        if not isinstance(refl, list) or len(refl) != len(BANDS):
-            raise XbenchInputError(
-                f"{w}.reflectance",
-                "need one reflectance per band",
-                expected=f"{len(BANDS)} numbers ({', '.join(BANDS)})",
-                found=refl,
-            )
-        vals = [_number(v, f"{w}.reflectance") for v in refl]
-        if any(v < 0 or v > 1 for v in vals):
-            raise XbenchInputError(
-                f"{w}.reflectance", "reflectance out of range", expected="values in [0, 1]", found=refl
-            )
-        kind = m.get("kind")
-        if kind not in MATERIAL_KINDS:
-            raise XbenchInputError(f"{w}.kind", "unknown material kind", expected=", ".join(MATERIAL_KINDS), found=kind)
-        materials[mname] = Material(mname, tuple(vals), kind, str(m.get("note", "")))
+    for mname, m in top["materials"].items():
+        mv = check_table(m, MATERIAL_SCHEMA, w.child("materials").child(mname))
+        materials[mname] = Material(mname, tuple(mv["reflectance"]), mv["kind"], mv["note"])
 
-    # land cover
-    lc_raw = data.get("landcover")
-    if not isinstance(lc_raw, list) or not lc_raw:
-        raise XbenchInputError(
-            f"{where}: landcover",
-            "need at least one [[landcover]] class",
-            expected="a list of {name, material, share}",
-            found=lc_raw,
-        )
-    classes: list[dict] = []
-    for i, c in enumerate(lc_raw):
-        w = f"{where}: landcover[{i}]"
-        if not isinstance(c, dict):
-            raise XbenchInputError(w, "class must be a table", found=c)
-        _unknown_keys(c, ("name", "material", "share", "mix", "mix_share", "matrix"), w)
-        cname = c.get("name", f"class{i}")
-        w = f"{where}: landcover[{i}] ({cname})"
+    classes: list[dict[str, Any]] = []
+    for i, c in enumerate(top["landcover"]):
+        cw = w.child("landcover").child(i)
+        cv = check_table(c, LANDCOVER_SCHEMA, cw)
+        cv["name"] = cv["name"] or f"class{i}"
         for key in ("material", "mix"):
-            if key in c and c[key] not in materials:
-                raise XbenchInputError(
-                    f"{w}.{key}",
-                    "unknown material",
-                    expected="a material of the recipe or library",
-                    found=c[key],
-                )
-        if "material" not in c:
-            raise XbenchInputError(f"{w}.material", "missing key")
-        share = _number(c.get("share", 0.0), f"{w}.share")
-        mix_share = _number(c.get("mix_share", 0.0), f"{w}.mix_share")
-        if not 0 <= share <= 1:
-            raise XbenchInputError(f"{w}.share", "out of range", expected="a share in [0, 1]", found=share)
-        if not 0 <= mix_share <= 1:
-            raise XbenchInputError(f"{w}.mix_share", "out of range", expected="a share in [0, 1]", found=mix_share)
-        classes.append(
-            {
-                "name": cname,
-                "material": c["material"],
-                "share": share,
-                "mix": c.get("mix"),
-                "mix_share": mix_share,
-                "matrix": bool(c.get("matrix", False)),
-            }
-        )
+            if cv[key] is not None:
+                _check_materials(cv[key], cw.child(key), materials)
+        classes.append(cv)
     total = sum(c["share"] for c in classes)
     if total > 1 + 1e-9:
-        raise XbenchInputError(
-            f"{where}: landcover.share",
-            "shares add up to more than 1",
-            expected="a sum <= 1",
-            found=round(total, 6),
-        )
+        raise w.child("landcover").error("shares add up to more than 1", expected="a sum <= 1", found=round(total, 6))
     matrices = [i for i, c in enumerate(classes) if c["matrix"]]
     if len(matrices) > 1:
-        raise XbenchInputError(
-            f"{where}: landcover.matrix",
-            "more than one matrix class",
-            found=[classes[i]["name"] for i in matrices],
-        )
+        raise w.child("landcover").error("more than one matrix class", found=[classes[i]["name"] for i in matrices])
     mi = matrices[0] if matrices else int(np.argmax([c["share"] for c in classes]))
     classes[mi]["share"] += max(0.0, 1.0 - total)
     landcover = [LandCover(c["name"], c["material"], c["share"], c["mix"], c["mix_share"]) for c in classes]
 
-    # structures
     structures: dict[str, StructureSpec] = {}
-    for kind, table in _table(data, "structures", where).items():
+    for kind, table in top["structures"].items():
+        kw = w.child("structures").child(kind)
         if kind not in ALL_TYPES:
-            raise XbenchInputError(
-                f"{where}: structures.{kind}",
-                "unknown structure type",
-                expected=", ".join(ALL_TYPES),
-                found=kind,
-            )
-        structures[kind] = _structure(kind, table, f"{where}: structures.{kind}", materials)
+            raise kw.error("unknown structure type", expected=", ".join(ALL_TYPES), found=kind)
+        structures[kind] = _structure(kind, table, kw, materials)
 
-    labels = None
-    if "labels" in data:
-        labels = parse_label_rule(data["labels"], f"{where}: labels")
-    return Recipe(name, where, description, materials, landcover, terrain, sensor, structures, labels)
+    labels = None if top["labels"] is None else parse_label_rule(top["labels"], w.child("labels"))
+    return Recipe(
+        name,
+        w.source,
+        description=top["description"],
+        materials=materials,
+        landcover=landcover,
+        terrain=terrain,
+        sensor=sensor,
+        structures=structures,
+        labels=labels,
+    )
