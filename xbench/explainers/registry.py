@@ -31,6 +31,8 @@ from xbench.explainers.base import (
     torch_seeded,
 )
 from xbench.models.base import ModelHandle
+from xbench.registry import Registry, check_settings, settings_schema
+from xbench.schema import Field, Where
 
 ENTRY_POINT_GROUP = "xbench.explainers"
 NEEDS = ("gradients", "layer", "twins", "masks", "fit-set", "concept-sets")
@@ -53,6 +55,11 @@ class ExplainerSpec:
     kind: str = "pixel"
     source: str = "xbench"
     extra: dict[str, Any] = field(default_factory=dict)
+    schema: dict[str, Field] = field(default_factory=dict)
+
+    def check_settings(self, settings: dict[str, Any], where: str | Where | None = None) -> dict[str, Any]:
+        """Settings checked against the declared fields, defaults filled in (one error format)."""
+        return check_settings(self.schema, settings, where or f"settings of explainer '{self.key}'")
 
     @property
     def black_box_ok(self) -> bool:
@@ -60,7 +67,7 @@ class ExplainerSpec:
         return not ({"gradients", "layer"} & self.needs)
 
 
-_REGISTRY: dict[str, ExplainerSpec] = {}
+_REGISTRY: Registry[ExplainerSpec] = Registry("explainer")
 _STATE = {"builtins": False, "plugins": False}
 PLUGIN_ERRORS: dict[str, str] = {}
 
@@ -73,13 +80,16 @@ def register_explainer(
     defaults: dict[str, Any] | None = None,
     description: str = "",
     kind: str = "pixel",
+    settings: dict[str, Field] | None = None,
 ) -> Callable[[ExplainerFn], ExplainerFn]:
     """Decorator: register ``fn(model, images, targets, context, **settings)`` under ``key``.
 
     ``needs`` uses the vocabulary ``gradients, layer, twins, masks, fit-set, concept-sets``; black-box
     capable explainers have neither ``gradients`` nor ``layer``. ``defaults`` lists every setting the
     explainer accepts (unknown settings are rejected by :func:`explain`). ``kind`` is ``pixel``,
-    ``concept`` or ``control`` (for listings).
+    ``concept`` or ``control`` (for listings). ``settings`` declares each setting as an
+    :class:`xbench.schema.Field` (type, range, choices, meaning), checked in one place before any work;
+    a setting with only a default is passed through unchecked.
     """
     where = f"explainer '{key}'"
     if not isinstance(key, str) or not key or key != key.strip():
@@ -93,8 +103,12 @@ def register_explainer(
     if not citation:
         raise XbenchInputError(where, "missing citation", expected="the published source of the method")
     defaults = dict(defaults or {})
+    declared = dict(settings or {})
     if "layer" in needs:
         defaults.setdefault("layer", None)
+        declared.setdefault("layer", Field("str", None, nullable=True, doc="the layer (default: the model's own)"))
+    schema = settings_schema(defaults, declared)
+    defaults = {name: f.default for name, f in schema.items()}
 
     def decorate(fn: ExplainerFn) -> ExplainerFn:
         if not callable(fn):
@@ -110,6 +124,7 @@ def register_explainer(
             description=description or (inspect.getdoc(fn) or "").split("\n")[0],
             kind=kind,
             source=source,
+            schema=schema,
         )
         old = _REGISTRY.get(key)
         if old is not None and _qualname(old.fn) != _qualname(fn):
@@ -182,11 +197,7 @@ def _ensure_loaded() -> None:
 def get_explainer(key: str) -> ExplainerSpec:
     """The spec registered under ``key``; unknown keys raise an error listing the valid ones."""
     _ensure_loaded()
-    if key not in _REGISTRY:
-        raise XbenchInputError(
-            f"explainer '{key}'", "unknown explainer", expected="one of " + ", ".join(sorted(_REGISTRY)), found=key
-        )
-    return _REGISTRY[key]
+    return _REGISTRY.lookup(key)
 
 
 def list_explainers() -> list[ExplainerSpec]:
@@ -391,13 +402,7 @@ def explain(
     images = _check_images(key, images)
     n, _, h, w = images.shape
     targets = _check_targets(key, targets, n, model.n_classes)
-    unknown = sorted(set(settings) - set(spec.defaults))
-    if unknown:
-        known = ", ".join(sorted(spec.defaults)) or "(none)"
-        raise XbenchInputError(
-            f"explainer '{key}'", f"unknown setting(s) {', '.join(unknown)}", expected="one of " + known, found=unknown
-        )
-    merged = {**spec.defaults, **settings}
+    merged = spec.check_settings(settings)
     if model.is_black_box and ({"gradients", "layer"} & spec.needs):
         what = "gradients" if "gradients" in spec.needs else "a named layer"
         ok = ", ".join(s.key for s in list_explainers() if s.black_box_ok)

@@ -27,7 +27,8 @@ import torch
 
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
-from xbench.names import RENAMED, renamed_hint
+from xbench.registry import Registry, check_settings, settings_schema
+from xbench.schema import Field, Where
 
 TRUTH_KINDS = ("planted", "verified")
 FAMILIES = ("overlap", "response", "model-dependence", "steadiness", "spread", "concepts", "cost")
@@ -146,6 +147,12 @@ class MetricSpec:
     settings_doc: dict[str, str]
     truths: tuple[str, ...]
     runner: Callable[..., MetricResult]
+    schema: dict[str, Field] = field(default_factory=dict)
+
+    def check_settings(self, settings: dict[str, Any], where: str | Where | None = None) -> dict[str, Any]:
+        """Settings checked against the declared fields, defaults filled in (one error format); ``tiles``
+        is the runner's own setting (score re-running metrics on the first K explained tiles)."""
+        return check_settings(self.schema, settings, where or f"settings of metric '{self.key}'", extra=("tiles",))
 
     @property
     def range_text(self) -> str:
@@ -161,7 +168,7 @@ class MetricSpec:
         return {True: "higher", False: "lower", None: "neither"}[self.higher_is_better]
 
 
-_REGISTRY: dict[str, MetricSpec] = {}
+_REGISTRY: Registry[MetricSpec] = Registry("metric")
 
 
 def register_metric(
@@ -177,8 +184,13 @@ def register_metric(
     defaults: dict[str, Any] | None = None,
     settings_doc: dict[str, str] | None = None,
     truths: tuple[str, ...] = ("none",),
+    settings: dict[str, Field] | None = None,
 ) -> Callable[[Callable[..., MetricResult]], Callable[..., MetricResult]]:
-    """Register ``runner(inputs, truth, settings) -> MetricResult`` under ``key`` with its metadata."""
+    """Register ``runner(inputs, truth, settings) -> MetricResult`` under ``key`` with its metadata.
+
+    ``settings`` declares each setting as an :class:`xbench.schema.Field`, checked in one place before any
+    work; a setting with only a default in ``defaults`` is passed through unchecked."""
+    schema = settings_schema(defaults, settings)
     if family not in FAMILIES:
         raise ValueError(f"metric '{key}': unknown family {family!r}; expected one of {FAMILIES}")
     unknown = [n for n in needs if n not in NEEDS_TEXT]
@@ -197,10 +209,11 @@ def register_metric(
             higher_is_better=higher_is_better,
             needs=tuple(needs),
             per_tile=per_tile,
-            defaults=dict(defaults or {}),
+            defaults={name: f.default for name, f in schema.items()},
             settings_doc=dict(settings_doc or {}),
             truths=tuple(truths),
             runner=runner,
+            schema=schema,
         )
         return runner
 
@@ -208,16 +221,7 @@ def register_metric(
 
 
 def get_metric(key: str) -> MetricSpec:
-    if key not in _REGISTRY:
-        hint = renamed_hint("metric", key)
-        if hint:
-            raise XbenchInputError(
-                f"metric '{key}'", f"unknown metric key: {hint}", expected=RENAMED["metric"][key], found=key
-            )
-        raise XbenchInputError(
-            f"metric '{key}'", "unknown metric key", expected="one of " + ", ".join(s.key for s in list_metrics())
-        )
-    return _REGISTRY[key]
+    return _REGISTRY.lookup(key)
 
 
 def list_metrics(family: str | None = None) -> list[MetricSpec]:
@@ -319,14 +323,9 @@ def _finalise(result: MetricResult, spec: MetricSpec, inputs: MetricInputs) -> M
 def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[MetricResult]:
     """Compute one metric; localization metrics give one result per truth kind (planted, verified)."""
     spec = get_metric(key)
-    unknown = sorted(set(settings) - set(spec.defaults))
-    if unknown:
-        known = ", ".join(f"{k}={v!r}" for k, v in spec.defaults.items()) or "none"
-        raise XbenchInputError(
-            f"metric '{key}' settings", f"unknown setting(s) {', '.join(unknown)}", expected=f"known settings: {known}"
-        )
+    merged = spec.check_settings(settings)
+    merged.pop("tiles", None)
     validate_inputs(inputs)
-    merged = {**spec.defaults, **settings}
     results = []
     for truth in spec.truths:
         hard = [r for n in spec.needs if n in HARD_NEEDS if (r := _hard_need_missing(n, inputs))]

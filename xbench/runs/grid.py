@@ -5,10 +5,12 @@ from __future__ import annotations
 import hashlib
 import json
 from dataclasses import asdict, dataclass, field
+from pathlib import Path
 from typing import Any
 
 from xbench import __version__
 from xbench.errors import XbenchInputError
+from xbench.schema import Where
 
 
 def content_hash(payload: Any, length: int = 16) -> str:
@@ -47,41 +49,27 @@ def validate_task_keys(task: Any) -> None:
     from xbench.explainers import get_explainer
     from xbench.metrics import get_metric
 
-    where = f"{task.path}"
-    for key in task.explainers:
+    # One error format (xbench.schema): the task file, the line and the key of a bad setting.
+    text = Where.of_file(task.path).text if Path(task.path).is_file() else None
+    top = Where(str(task.path), "", text)
+    for i, key in enumerate(task.explainers):
         try:
             spec = get_explainer(key)
         except XbenchInputError as exc:
-            raise XbenchInputError(
-                f"{where}: [explainers] keys", exc.problem, expected=exc.expected, found=key
-            ) from None
-        known = set(spec.defaults)
-        for name in task.explainer_settings.get(key, {}):
-            if name not in known:
-                raise XbenchInputError(
-                    f"{where}: [explainers.settings.{key}] {name}",
-                    "unknown setting",
-                    expected=", ".join(sorted(known)) or "no settings",
-                    found=name,
-                )
-    for key in task.metrics:
+            raise top.child("explainers").child("keys").child(i).error(exc.problem, exc.expected, key) from None
+        where = top.child("explainers").child("settings").child(key)
+        spec.check_settings(task.explainer_settings.get(key, {}), where)
+    for i, key in enumerate(task.metrics):
         try:
             spec = get_metric(key)
         except XbenchInputError as exc:
-            raise XbenchInputError(f"{where}: [metrics] keys", exc.problem, expected=exc.expected, found=key) from None
-        known = set(getattr(spec, "defaults", {}) or {}) | {"tiles"}  # `tiles`: see runs.execute
-        for name, value in task.metric_settings.get(key, {}).items():
-            if name not in known:
-                raise XbenchInputError(
-                    f"{where}: [metrics.settings.{key}] {name}",
-                    "unknown setting",
-                    expected=", ".join(sorted(known)),
-                    found=name,
-                )
-            if name == "tiles" and (isinstance(value, bool) or not isinstance(value, int) or value < 1):
-                raise XbenchInputError(
-                    f"{where}: [metrics.settings.{key}] tiles", "bad value", expected="a positive integer", found=value
-                )
+            raise top.child("metrics").child("keys").child(i).error(exc.problem, exc.expected, key) from None
+        where = top.child("metrics").child("settings").child(key)
+        settings = task.metric_settings.get(key, {})
+        spec.check_settings(settings, where)
+        tiles = settings.get("tiles", 1)
+        if isinstance(tiles, bool) or not isinstance(tiles, int) or tiles < 1:  # `tiles`: see runs.execute
+            raise where.child("tiles").error("bad value", expected="a positive integer", found=tiles)
 
 
 def expand_grid(
