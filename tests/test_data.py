@@ -1,4 +1,4 @@
-"""Tile-pack contract (DESIGN.md "Tile pack") and the model handle's boundary checks."""
+"""Tile-pack contract (DEVELOPERS.md, "Tile pack") and the model handle's boundary checks."""
 
 from __future__ import annotations
 

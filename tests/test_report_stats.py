@@ -9,7 +9,7 @@ from scipy import stats
 from xbench.report import stats as S
 
 # Demsar (2006), JMLR 7, Table 5(a): critical values q_0.05 of the two-tailed Nemenyi test, k = 2..10
-# (values from memory of the paper's table, as listed in REFERENCES.md).
+# (values from memory of the paper's table).
 DEMSAR_Q05 = [1.960, 2.343, 2.569, 2.728, 2.850, 2.949, 3.031, 3.102, 3.164]
 
 

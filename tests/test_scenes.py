@@ -54,7 +54,7 @@ def test_material_spectra_in_typical_ranges(name):
         s = m.spectrum
         assert s.shape == (6,) and np.isfinite(s).all() and (s >= 0).all() and (s <= 1).all(), m.name
         v = float(ndvi(s))
-        # NDVI (Rouse et al. 1974); ranges are common practice (REFERENCES.md "Typical reflectance")
+        # NDVI (Rouse et al. 1974); ranges are common practice, from memory
         if m.kind == "vegetation":
             assert 0.6 <= v <= 0.9, (m.name, v)
             assert s[NIR] > s[RED], m.name
@@ -113,7 +113,7 @@ def test_rendered_structures_keep_their_spectra():
                 if sel.sum() >= 5:
                     soil_ndvi.append(float(np.median(ndvi(img)[sel])))
     assert soil_ndvi
-    # bare soil / gravel NDVI 0.05-0.3 (common practice, REFERENCES.md)
+    # bare soil / gravel NDVI 0.05-0.3 (common practice, from memory)
     assert all(0.05 <= v <= 0.3 for v in soil_ndvi), soil_ndvi
 
 

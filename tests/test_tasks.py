@@ -12,7 +12,7 @@ from xbench.errors import XbenchInputError
 from xbench.tasks import build_task_data, list_tasks, load_task
 
 SHIPPED = ["clearings", "demo", "disturbance-type", "roads", "shortcut", "label-noise"]
-# Keys from DESIGN.md ("Names"): every shipped task lists all of them.
+# The documented keys (DEVELOPERS.md, "Names"): every shipped task lists all of them.
 DESIGN_EXPLAINERS = {
     "gradient",
     "input-x-gradient",

@@ -12,6 +12,12 @@ import sys
 from xbench import __version__
 from xbench.errors import XbenchInputError
 
+DESCRIPTION = (
+    "Benchmark explanation methods for multispectral satellite-tile classifiers: synthesize landscape tiles "
+    "with planted structures and counterfactual twins, train small CPU models, explain them with pixel and "
+    "concept methods, score the maps against planted and model-verified evidence, and report or gate the "
+    "comparison."
+)
 VERBS: dict[str, str] = {
     "synth": "synthesize landscape tiles with planted structures (and their twins)",
     "train": "train or load the models of a task and print their accuracy and reliance",
@@ -25,7 +31,7 @@ VERBS: dict[str, str] = {
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="xbench", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="xbench", description=DESCRIPTION)
     parser.add_argument("--version", action="version", version=f"xbench {__version__}")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     for verb, help_text in VERBS.items():

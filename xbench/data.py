@@ -1,4 +1,4 @@
-"""Tile packs: the `.npz` exchange format for synthetic and user data (see DESIGN.md, "Tile pack").
+"""Tile packs: the `.npz` exchange format for synthetic and user data (contract in DEVELOPERS.md, "Tile pack").
 
 A pack is validated whenever it crosses a boundary (load, save, user input). Errors name the file and
 the array, what was expected and what was found.

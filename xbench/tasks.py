@@ -31,7 +31,6 @@ from xbench.errors import XbenchInputError, load_toml, repo_root
 from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, RENAMED, renamed_hint
 from xbench.schema import Where
 
-# Natural look-alikes (DESIGN.md "Structure types"): never positive evidence for a human class.
 MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-callable")
 # Bring your own model: `factory` is an import path `package.module:function`. For `user-torch` it returns a
 # torch module (raw reflectance in, logits out) and `weights` (a state_dict file, relative to the task file)

@@ -1,7 +1,7 @@
 """Materials: six-band surface reflectance spectra and their kinds.
 
 Bands follow the tile-pack default (blue, green, red, nir, swir1, swir2). Values are typical surface
-reflectances of the trade (common practice, from memory; see REFERENCES.md for the check ranges): green
+reflectances of the trade (common practice, from memory; tests/test_scenes.py checks the NDVI ranges): green
 vegetation is dark in red and bright in NIR (NDVI 0.6-0.9), clear water is dark and falls towards the
 infrared (NDVI < 0), bare soil rises slowly with wavelength (NDVI 0.05-0.3), asphalt is flat and dark.
 
