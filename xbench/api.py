@@ -173,7 +173,7 @@ def run(task: str | Path | dict[str, Any] | Task, out_dir: str | Path, **options
     ``executor``, ``explainers``, ``models``, ``seeds``, ``metrics``...). Finished cells are reused."""
     from xbench.runs import run_task
 
-    return run_task(load(task), out_dir, **options)
+    return run_task(load(task), out_dir, **options)  # type: ignore[arg-type]  # run_task parses tasks too
 
 
 def report(run_dirs: str | Path | Sequence[str | Path], out_dir: str | Path, **options: Any) -> Any:
@@ -188,9 +188,10 @@ def report(run_dirs: str | Path | Sequence[str | Path], out_dir: str | Path, **o
 def check(current: str | Path, baseline: str | Path, gates: str | Path | dict[str, Any] | None = None) -> Any:
     """Compare a run folder against a baseline run folder under faithfulness gates; the result says which
     gates pass and fail (``result.ok``)."""
-    from xbench import check as _check
+    import importlib
 
-    return _check.compare(current, baseline, _check.load_gates(gates))
+    gates_module: Any = importlib.import_module("xbench.check")
+    return gates_module.compare(current, baseline, gates_module.load_gates(gates))
 
 
 def explain(

@@ -14,7 +14,7 @@ from typing import Any
 class XbenchInputError(ValueError):
     """Bad input at a boundary (recipe, task file, tile pack, user model, gate file...)."""
 
-    def __init__(self, where: str, problem: str, *, expected: str | None = None, found: Any = None):
+    def __init__(self, where: str, problem: str, *, expected: Any = None, found: Any = None):
         self.where = where
         self.problem = problem
         self.expected = expected

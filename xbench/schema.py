@@ -91,14 +91,10 @@ def _bounds_text(f: Field) -> str:
     if f.low is not None and f.high is not None:
         left = "(" if f.low_open else "["
         right = ")" if f.high_open else "]"
-        return f"in {left}{_num(f.low)}, {_num(f.high)}{right}"
+        return f"in {left}{f.low:g}, {f.high:g}{right}"
     if f.low is not None:
-        return f"{'>' if f.low_open else '>='} {_num(f.low)}"
-    return f"{'<' if f.high_open else '<='} {_num(f.high)}"
-
-
-def _num(x: float) -> str:
-    return f"{x:g}"
+        return f"{'>' if f.low_open else '>='} {f.low:g}"
+    return f"{'<' if f.high_open else '<='} {f.high:g}"
 
 
 @dataclass(frozen=True)

@@ -672,6 +672,7 @@ def _split_user_pack(task: Task) -> TaskData:
     """A user's pack, in order: the first tiles train, the next validate, the next test (no scenes)."""
     from xbench.data import load_pack
 
+    assert task.data.pack is not None  # a pack task (checked when the task was loaded)
     pack = load_pack(task.data.pack)
     n = task.data.counts
     edges = np.cumsum([0, n["train"], n["val"], n["test"]])

@@ -26,7 +26,7 @@ TYPE_COLOURS = {
 }
 
 
-def _stretch(rgb: np.ndarray, lo: float, hi: float) -> np.ndarray:
+def _stretch(rgb: np.ndarray, lo: float, hi: float | np.ndarray) -> np.ndarray:
     x = np.clip((rgb - lo) / (hi - lo), 0, 1)
     return x ** (1 / 1.6)
 
@@ -73,7 +73,7 @@ def write_preview(pack: TilePack, path: str | Path, n_tiles: int = PREVIEW_TILES
     handles = [Line2D([], [], color=TYPE_COLOURS.get(t, "w"), lw=2, label=t) for t in pack.mask_names]
     fig.legend(handles=handles, loc="lower center", ncol=min(len(handles), 8), fontsize=7, frameon=False)
     rec = pack.meta.get("recipe", "")
-    fig.suptitle(
+    title = fig.suptitle(
         f"xbench synth: {rec}, seed {pack.meta.get('seed')} (natural colour / false colour nir-red-green)",
         fontsize=9,
     )
@@ -81,7 +81,7 @@ def write_preview(pack: TilePack, path: str | Path, n_tiles: int = PREVIEW_TILES
     fig.patch.set_facecolor("0.15")
     for ax in axes.flat:
         ax.title.set_color("w" if ax.title.get_color() != "0.4" else "0.7")
-    fig._suptitle.set_color("w")
+    title.set_color("w")
     for t in fig.legends[0].get_texts():
         t.set_color("w")
     path = Path(path)

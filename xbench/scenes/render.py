@@ -225,9 +225,9 @@ def build_fields_batch(recipe: Recipe, size: int, seeds: list[int]) -> list[dict
     for i in range(b):
         np.einsum("kc,khw->chw", coef, parts[i], out=bg[i])
     land = np.zeros_like(elev)
-    for k in range(nk):
-        if not c["water"][k]:
-            land += w[k]
+    for cls in range(nk):
+        if not c["water"][cls]:
+            land += w[cls]
     bright = np.float32(t.texture) * tex_f * (np.float32(0.3) + np.float32(0.7) * land)
     bright += np.float32(1.0)
     if t.relief > 0:

@@ -37,7 +37,7 @@ class Context:
     recipe: Recipe
     fields: dict[str, np.ndarray]
     roads: list[dict[str, Any]] = field(default_factory=list)  # {"path": (M, 2), "width": w}
-    occupied: np.ndarray | None = None  # raw coverage of what was planted so far
+    occupied: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), dtype=np.float32))  # planted so far
 
     def __post_init__(self) -> None:
         self.occupied = np.zeros((self.size, self.size), dtype=np.float32)
@@ -141,6 +141,7 @@ def plant_road(rng, spec: StructureSpec, ctx: Context) -> list[Planted]:
                 best = (path, wet)
             if wet <= 0.05 or rng.random() > p["avoid_water"]:
                 break
+        assert best is not None  # the loop runs at least once
         main = best[0]
         width = _u(rng, p["width"])
         paved = bool(rng.random() < p["paved_fraction"])
@@ -311,7 +312,8 @@ def plant_field(rng, spec: StructureSpec, ctx: Context) -> list[Planted]:
 
 
 def plant_building(rng, spec: StructureSpec, ctx: Context) -> list[Planted]:
-    p, n, out = spec.params, ctx.size, []
+    p, n = spec.params, ctx.size
+    out: list[Planted] = []
     count = _i(rng, spec.count)
     if ctx.roads:
         road = ctx.roads[int(rng.integers(len(ctx.roads)))]

@@ -136,7 +136,7 @@ def _visible(planted: list, size: int) -> list[Instance]:
             continue
         r0, r1, c0, c1 = nz[0].min(), nz[0].max() + 1, nz[1].min(), nz[1].max() + 1
         vis[i] = Patch(raw.r0 + int(r0), raw.c0 + int(c0), np.ascontiguousarray(v[r0:r1, c0:c1]))
-    out = []
+    out: list[Any] = []
     for pl, v in zip(planted, vis, strict=True):
         if v is None:
             continue
