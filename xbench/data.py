@@ -186,6 +186,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
     for name in ("twins", "clean_labels", "cue", "coverage"):
         if getattr(pack, name) is not None:
             arrays[name] = getattr(pack, name)
+
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
             np.savez_compressed(fh, **arrays)
