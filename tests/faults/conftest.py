@@ -48,7 +48,8 @@ train = 4
 val = 4
 test = 24
 seed = 3
-presence = {{ road = {road}, river = 0.3, clearing = 0.0, building = 0.0, corridor = 0.0, field = 0.0, natural-gap = 0.0, outcrop = 0.0 }}
+presence = {{ road = {road}, river = 0.3, clearing = 0.0, building = 0.0, corridor = 0.0, field = 0.0, \
+natural-gap = 0.0, outcrop = 0.0 }}
 
 [data.labels]
 classes = ["intact", "road"]
@@ -82,7 +83,8 @@ EXPLAINERS = '["gradient", "random", "edges", "oracle"]'
 
 
 def torch_model(name: str, weights: str) -> str:
-    return f'[[models]]\nname = "{name}"\nkind = "user-torch"\nfactory = "{MODULE_NAME}:build_net"\nweights = "{weights}"\n'
+    factory = f"{MODULE_NAME}:build_net"
+    return f'[[models]]\nname = "{name}"\nkind = "user-torch"\nfactory = "{factory}"\nweights = "{weights}"\n'
 
 
 @pytest.fixture(scope="session")
@@ -121,9 +123,7 @@ def make_task(tmp_path: Path, module_dir: Path):
             if not (tmp_path / "a.pt").is_file():
                 save_weights(module_dir, tmp_path / "a.pt", 1)
             models = torch_model("net-a", "a.pt")
-        text = TASK.format(
-            name=name, recipe=recipe, road=road, models=models, explainers=explainers, timeout=timeout
-        )
+        text = TASK.format(name=name, recipe=recipe, road=road, models=models, explainers=explainers, timeout=timeout)
         path = tmp_path / filename
         path.write_text(text)
         return path

@@ -50,7 +50,7 @@ def test_a_comment_recomputes_nothing_and_an_edited_recipe_everything(make_task,
     recipe.write_text(recipe.read_text().replace("\n[", "\n# edited\n[", 1))  # a comment in the recipe: nothing
     assert run_task(task, out).cells_done == 0
     text = recipe.read_text()
-    edited = text.replace("description = ", "description = \"edited\" #", 1)  # a changed value
+    edited = text.replace("description = ", 'description = "edited" #', 1)  # a changed value
     recipe.write_text(edited)
     again = run_task(task, out)
     assert again.cells_cached == 0 and again.cells_done == 4
