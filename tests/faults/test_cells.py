@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import shutil
-from pathlib import Path
 
 import pandas as pd
 import pytest
@@ -104,10 +103,10 @@ def test_reruns_add_and_never_shrink(make_task, tmp_path):
     assert (out / "reasons.parquet").is_file()
 
 
-def test_a_damaged_data_cache_is_rebuilt(tmp_path, monkeypatch):
+def test_a_damaged_data_cache_is_rebuilt(make_task, tmp_path, monkeypatch):
     from xbench.tasks import build_task_data, cache_root, load_task
 
-    task = load_task(Path(__file__).parents[1] / "data" / "tiny_task.toml")
+    task = load_task(make_task())
     monkeypatch.setenv("XBENCH_CACHE", str(tmp_path / "cache"))
     first = build_task_data(task)
     for path in (cache_root() / "data").rglob("train.npz"):

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import importlib.metadata
 import platform
 import subprocess
@@ -80,6 +81,7 @@ def _git_commit() -> str | None:
         return None
 
 
+@functools.lru_cache(maxsize=1)  # the source tree of a running process does not change
 def _git_state() -> dict[str, Any]:
     """The commit of xbench's own source tree and whether it has uncommitted changes (None outside git).
 
