@@ -24,6 +24,15 @@ def build_net():
                          nn.Linear(4, 2))
 
 
+def build_rgb_net():
+    # built for three bands; the task's tiles have six
+    return nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(4, 2))
+
+
+def raises():
+    raise RuntimeError("the factory is broken on purpose")
+
+
 def raw_scores():
     # a black box that returns raw scores although the task declares probabilities
     def scores(images):

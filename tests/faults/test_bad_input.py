@@ -164,6 +164,26 @@ CASES = [
     ("explainers-unknown-key", lambda m, t, d: ["explainers", "nope"]),
     ("metrics-unknown-key", lambda m, t, d: ["metrics", "nope"]),
     ("unknown-verb", lambda m, t, d: ["frobnicate"]),
+    (
+        "model-wrong-band-count",
+        lambda m, t, d: [
+            "run",
+            _models(m, f'[[models]]\nname = "rgb"\nkind = "user-torch"\nfactory = "{MODULE_NAME}:build_rgb_net"\n'),
+            "--out",
+            str(t / "o"),
+            "--quiet",
+        ],
+    ),
+    (
+        "factory-raises-runtime-error",
+        lambda m, t, d: [
+            "run",
+            _models(m, f'[[models]]\nname = "r"\nkind = "user-torch"\nfactory = "{MODULE_NAME}:raises"\n'),
+            "--out",
+            str(t / "o"),
+            "--quiet",
+        ],
+    ),
 ]
 
 
@@ -199,3 +219,19 @@ def test_bad_input_gives_one_line_and_exit_2(case, make_task, tmp_path, module_d
 
 def test_catalogue_has_at_least_40_cases():
     assert len(CASES) >= 40
+
+
+def test_broken_pipe_gives_one_line_and_exit_2(monkeypatch, capsys):
+    """`xbench explainers | head`: the reader leaves early; one line on stderr, exit 2, no traceback."""
+
+    class ClosedPipe:
+        def write(self, text: str) -> int:
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def flush(self) -> None:
+            raise BrokenPipeError(32, "Broken pipe")
+
+    monkeypatch.setattr("sys.stdout", ClosedPipe())
+    code = cli_main(["explainers"])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and "broken pipe" in err and "\n" not in err
