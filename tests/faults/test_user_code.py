@@ -89,7 +89,7 @@ def test_skipped_metrics_are_said_and_stored(make_task, tmp_path, capsys):
     task.write_text(text)
     assert cli_main(["run", str(task), "--out", str(tmp_path / "r"), "--quiet", "--explainers", "random"]) == 0
     printed = capsys.readouterr().out
-    assert "skipped: concept-detection" in printed
+    assert "concept-detection/none: " in printed  # its reason, on screen
     assert "near chance level" in printed  # an untrained network: flagged, with its balanced accuracy
     reasons = pd.read_parquet(tmp_path / "r" / "reasons.parquet")
     assert (reasons["metric"] == "concept-detection").any() and reasons["reason"].str.len().min() > 0

@@ -55,6 +55,8 @@ def print_summary(summary: RunSummary) -> None:
         print(f"  kept: {summary.kept_earlier} cell(s) of earlier runs (other explainers, metrics or tasks)")
     for line in summary.skipped_metrics:
         print(f"  skipped: {line}")
+    for line in summary.undefined:
+        print(f"  some values undefined (NaN, reason in reasons.parquet): {line}")
     for line in summary.warnings:
         print(f"  warning: {line}")
     print(f"time: {summary.seconds:.1f} s")

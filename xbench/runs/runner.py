@@ -52,6 +52,7 @@ class RunSummary:
     records: int = 0  # values measured by this run's cells (reused cells included)
     repaired: list[str] = field(default_factory=list)  # damaged cells found and computed again
     skipped_metrics: list[str] = field(default_factory=list)  # "metric/truth: reason" (once each)
+    undefined: list[str] = field(default_factory=list)  # "metric/truth: reason" of NaN values (once each)
     warnings: list[str] = field(default_factory=list)  # models at chance level, saturated maps...
     kept_earlier: int = 0  # cells of earlier runs (other explainers, metrics or tasks) kept in the folder
 
@@ -307,9 +308,12 @@ def assemble(
         reasons["seed"] = reasons["seed"].astype("int64")
     write_table(out / "reasons.parquet", reasons)
     for row in reasons[reasons["task"] == task.name].to_dict("records"):
-        line = f"{row['metric']}/{row['truth']}: {row['reason']}"
-        if line not in summary.skipped_metrics:
-            summary.skipped_metrics.append(line)
+        reason = str(row["reason"])
+        skipped = reason.startswith("skipped: ")
+        line = f"{row['metric']}/{row['truth']}: {reason.removeprefix('skipped: ')}"
+        target = summary.skipped_metrics if skipped else summary.undefined
+        if line not in target:
+            target.append(line)
 
     reliance_rows = []
     for (name, seed), prep in preps.items():
@@ -442,6 +446,7 @@ def assemble(
         "explain_tiles": int(len(next(iter(preps.values())).explain_index)) if preps else 0,
         "skipped": grid.skipped,
         "skipped_metrics": list(summary.skipped_metrics),
+        "undefined_values": list(summary.undefined),
         "warnings": list(summary.warnings),
         "repaired": list(summary.repaired),
         "cells": cells_meta,
