@@ -6,7 +6,9 @@ Each verb lives in ``xbench/commands/<verb>.py`` with ``add_arguments(parser)`` 
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
+import os
 import sys
 
 from xbench import __version__
@@ -30,8 +32,16 @@ VERBS: dict[str, str] = {
 }
 
 
+class OneLineParser(argparse.ArgumentParser):
+    """Usage errors as one line (``xbench run: error: ...``) and exit 2, without the usage block."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        print(f"{self.prog}: error: {message} (see {self.prog} --help)", file=sys.stderr)
+        sys.exit(2)
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="xbench", description=DESCRIPTION)
+    parser = OneLineParser(prog="xbench", description=DESCRIPTION)
     parser.add_argument("--version", action="version", version=f"xbench {__version__}")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     for verb, help_text in VERBS.items():
@@ -51,14 +61,58 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "verb", None):
         parser.print_help()
         return 2
+    verb = f"xbench {args.verb}"
     try:
         return int(args._run(args) or 0)
     except XbenchInputError as exc:
-        print(f"xbench {args.verb}: error: {exc}", file=sys.stderr)
-        return 2
+        return _fail(verb, str(exc))
     except KeyboardInterrupt:
-        print(f"xbench {args.verb}: interrupted", file=sys.stderr)
+        print(f"{verb}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # `xbench explainers | head`: the reader left; say so once, on stderr
+        _silence_stdout()
+        return _fail(verb, "output closed before everything was written (broken pipe)")
+    except MemoryError:
+        return _fail(verb, "out of memory: the sizes asked for are too large for this machine (lower them)")
+    except UnicodeError as exc:
+        return _fail(verb, f"a file is not UTF-8 text ({exc.reason})")
+    except OSError as exc:  # read-only or full destinations, missing folders, permissions
+        return _fail(verb, _describe_os_error(exc))
+    except SystemExit as exc:  # user code (a model factory, a plugin) calling sys.exit
+        return _fail(verb, f"user code called sys.exit({exc.code!r}); nothing was measured", code=1)
+
+
+def _fail(verb: str, message: str, code: int = 2) -> int:
+    text = " ".join(str(message).split())  # one line, whatever the message held
+    try:
+        print(f"{verb}: error: {text}", file=sys.stderr)
+    except (BrokenPipeError, OSError):
+        pass
+    return code
+
+
+def _describe_os_error(exc: OSError) -> str:
+    where = exc.filename if exc.filename is not None else "output"
+    reasons = {
+        errno.EACCES: "permission denied",
+        errno.EROFS: "read-only file system",
+        errno.ENOSPC: "no space left on the device",
+        errno.EDQUOT: "disk quota exceeded",
+        errno.ENOENT: "no such file or folder",
+        errno.EISDIR: "is a folder, not a file",
+        errno.ENOTDIR: "a part of the path is not a folder",
+    }
+    return f"{where}: {reasons.get(exc.errno or 0, exc.strerror or type(exc).__name__)}"
+
+
+def _silence_stdout() -> None:
+    """Point stdout at /dev/null so that the interpreter's last flush does not fail again."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):
+        pass
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -6,9 +6,11 @@ the array, what was expected and what was found.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -184,31 +186,60 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
     for name in ("twins", "clean_labels", "cue", "coverage"):
         if getattr(pack, name) is not None:
             arrays[name] = getattr(pack, name)
+
+    def write(tmp: str) -> None:
+        with open(tmp, "wb") as fh:
+            np.savez_compressed(fh, **arrays)
+
+    atomic_write(path, write)
+    return path
+
+
+def atomic_write(path: str | Path, write: Callable[[str], Any]) -> None:
+    """Write a file whole or not at all: ``write(tmp)`` fills a temporary file beside ``path``, which is
+    flushed to disk (fsync) and then renamed over ``path``; the folder entry is synced too.
+
+    The one atomic write of the package (run store, model and data caches, tile packs, synth outputs).
+    A killed process leaves the old file or the new one, never a truncated one.
+    """
+    path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp.npz")
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix="." + path.name, suffix=".tmp")
     os.close(fd)
     try:
-        np.savez_compressed(tmp, **arrays)
-        os.chmod(tmp, 0o644)  # mkstemp makes owner-only files; a pack is meant to be shared
+        write(tmp)
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.chmod(tmp, 0o644)  # mkstemp makes owner-only files; results and packs are meant to be shared
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
-    return path
+    try:
+        dir_fd = os.open(path.parent, os.O_RDONLY)
+    except OSError:  # some file systems do not open folders; the rename is done either way
+        return
+    try:
+        os.fsync(dir_fd)
+    except OSError:
+        pass
+    finally:
+        os.close(dir_fd)
+
+
+def file_sha256(path: str | Path) -> str:
+    """sha256 of a file's bytes (read in blocks)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
 
 
 REQUIRED_ARRAYS = ("images", "labels", "class_names", "band_names", "masks", "mask_names")
 
 
-def load_pack(path: str | Path) -> TilePack:
-    """Read and validate a tile pack; errors name the file and the array."""
-    path = Path(path)
-    if not path.is_file():
-        raise XbenchInputError(str(path), "tile pack not found")
-    try:
-        data = np.load(path, allow_pickle=False)
-    except Exception as exc:  # zip or npy format errors from numpy
-        raise XbenchInputError(str(path), f"not a readable .npz tile pack ({exc})") from None
+def _read_pack(data: Any, path: Path) -> TilePack:
     with data:
         missing = [k for k in REQUIRED_ARRAYS if k not in data.files]
         if missing:
@@ -232,4 +263,28 @@ def load_pack(path: str | Path) -> TilePack:
             coverage=data["coverage"] if "coverage" in data.files else None,
             meta=meta,
         )
+    return pack
+
+
+def load_pack(path: str | Path) -> TilePack:
+    """Read and validate a tile pack; errors name the file and the array."""
+    path = Path(path)
+    if not path.is_file():
+        raise XbenchInputError(str(path), "tile pack not found")
+    try:
+        data = np.load(path, allow_pickle=False)
+    except Exception as exc:  # zip or npy format errors from numpy
+        raise XbenchInputError(str(path), f"not a readable .npz tile pack ({exc})") from None
+    try:
+        pack = _read_pack(data, path)
+    except XbenchInputError:
+        raise
+    except ValueError as exc:  # numpy refuses object (pickled) arrays with allow_pickle=False
+        if "allow_pickle" in str(exc) or "Object arrays" in str(exc):
+            raise XbenchInputError(
+                str(path), "holds pickled (object) arrays, which are never loaded", expected="plain numeric arrays"
+            ) from None
+        raise XbenchInputError(str(path), f"damaged .npz tile pack ({exc})") from None
+    except Exception as exc:  # truncated members, bad zip entries, bad JSON
+        raise XbenchInputError(str(path), f"damaged .npz tile pack ({type(exc).__name__}: {exc})") from None
     return validate_pack(pack, str(path))

@@ -36,6 +36,8 @@ def load_toml(path: str | Path) -> dict[str, Any]:
     try:
         with path.open("rb") as fh:
             return tomllib.load(fh)
+    except UnicodeDecodeError as exc:
+        raise XbenchInputError(str(path), f"not UTF-8 text (byte {exc.start})", expected="a UTF-8 TOML file") from None
     except tomllib.TOMLDecodeError as exc:
         # tomllib puts "(at line L, column C)" in its message; keep it.
         raise XbenchInputError(str(path), f"TOML syntax error: {exc}") from None

@@ -43,13 +43,25 @@ class Registry(dict[str, S]):
 
 
 def settings_schema(defaults: Mapping[str, Any] | None, declared: Mapping[str, Field] | None) -> dict[str, Field]:
-    """The full settings schema of a registration: declared fields, plus an unchecked field (``any``) for
-    each default that has no declaration (plugins may declare defaults only)."""
+    """The full settings schema of a registration: declared fields, plus a field inferred from the default
+    for each setting that has no declaration (plugins may declare defaults only)."""
     schema = dict(declared or {})
     for name, value in (defaults or {}).items():
         if name not in schema:
-            schema[name] = Field("any", value, nullable=True)
+            schema[name] = _inferred(value)
     return schema
+
+
+def _inferred(default: Any) -> Field:
+    """A field for a setting declared by its default only: values keep the default's kind (a number stays
+    a number, a flag a flag, a list a list); a default of None admits anything."""
+    if isinstance(default, bool):
+        return Field("bool", default)
+    if isinstance(default, int | float):
+        return Field("number", default)
+    if isinstance(default, list | tuple):
+        return Field("list", list(default))
+    return Field("any", default, nullable=True)
 
 
 def check_settings(

@@ -223,7 +223,7 @@ def _common(a: list[str], b: list[str]) -> int:
 
 # -- checking ------------------------------------------------------------------------------------------
 def check_value(value: Any, spec: Field, where: Where) -> Any:
-    """Check one value against its field; returns the cleaned value (ints widened to float for numbers)."""
+    """Check one value against its field; returns the cleaned value (a number keeps its int or float type)."""
     if value is None:
         if spec.nullable:
             return None
@@ -273,11 +273,10 @@ def check_value(value: Any, spec: Field, where: Where) -> Any:
 def _number(value: Any, spec: Field, where: Where) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float):
         raise where.error("wrong type", expected=spec.expected(), found=value)
-    v = float(value)
-    if not math.isfinite(v):
+    if not math.isfinite(float(value)):
         raise where.error("not a finite number", expected=spec.expected(), found=value)
-    _check_bounds(v, spec, where)
-    return v
+    _check_bounds(float(value), spec, where)
+    return value
 
 
 def _check_bounds(v: float, spec: Field, where: Where) -> None:

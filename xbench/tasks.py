@@ -20,6 +20,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -61,7 +62,9 @@ RUN_DEFAULTS: dict[str, int] = {
     "concept_set_size": 40,  # example tiles per concept set (tcav)
     "fit_tiles": 200,  # training tiles used to fit concept explainers (activation-clusters)
     "random_sets": 10,  # random example sets for concept significance tests (tcav)
+    "cell_timeout": 1800,  # seconds one cell (explain + score) may take before it is stopped and recorded failed
 }
+MAX_SPLIT_TILES = 100_000  # tiles per split: a stated maximum instead of running out of memory
 # Hyper-parameters per model kind: architecture (see models/zoo.py) and training (see models/train.py).
 TORCH_TRAIN_PARAMS: dict[str, tuple[type, ...]] = {
     "epochs": (int,),
@@ -297,6 +300,7 @@ def _in_one_format(exc: XbenchInputError, source: str, text: str | None) -> Xben
 
 
 def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
+    # The content of the parsed task, not the file's bytes: a comment or a reordered table changes nothing.
     file_hash = hashlib.sha256(json.dumps(doc, sort_keys=True, default=str).encode()).hexdigest()
     f = str(path)
     _unknown(doc, TOP_KEYS, f"{f}:")
@@ -403,7 +407,7 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
     size = _int_in(sec["size"], f"{w}.size", 16, 512)
     if size % 4:
         raise XbenchInputError(f"{w}.size", "tile size must be a multiple of 4", found=size)
-    counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
+    counts = {s: _int_in(sec[s], f"{w}.{s}", 2, MAX_SPLIT_TILES) for s in SPLITS}
     seed = _int_in(sec.get("seed", 0), f"{w}.seed", 0)
     presence = None
     if "presence" in sec:
@@ -464,7 +468,8 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
         cue=cue,
         cue_rates=rates,
         lookalikes=lookalikes,
-        raw=json.loads(json.dumps(sec, default=str)),
+        # the recipe's parsed content keys the data and model caches: an edited recipe recomputes
+        raw=json.loads(json.dumps(sec, default=str)) | {"recipe_sha256": _recipe_sha256(recipe_obj.path)},
         possible_types=possible,
     )
     return spec, rule
@@ -544,6 +549,11 @@ def _load_pack_data(sec: dict[str, Any], f: str) -> DataSpec:
         pack_drives=driving,
         possible_types=list(pack.mask_names),
     )
+
+
+def _recipe_sha256(path: str) -> str:
+    """sha256 of a recipe's parsed content (comments and formatting do not count)."""
+    return hashlib.sha256(json.dumps(load_toml(path), sort_keys=True, default=str).encode()).hexdigest()
 
 
 def _recipe_ref(recipe: str, task_file: str) -> str:
@@ -697,8 +707,8 @@ def build_task_data(task: Task, *, use_cache: bool = True) -> TaskData:
             try:
                 packs[split] = load_pack(path)
                 continue
-            except XbenchInputError:
-                pass  # a damaged cache file is rebuilt
+            except XbenchInputError as exc:  # a damaged cache file is rebuilt, and said so
+                warnings.warn(f"damaged data cache entry rebuilt: {exc}", stacklevel=2)
         packs[split], _ = _synthesize_split(task, split)
         if use_cache:
             save_pack(packs[split], path)

@@ -8,15 +8,17 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
+from xbench.data import atomic_write
 from xbench.errors import XbenchInputError
 from xbench.scenes.preview import write_preview
+
+MAX_TILES = 1_000_000  # stated maxima: larger requests are refused before any memory is taken
+MAX_SIZE = 512
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -66,10 +68,17 @@ def run(args: argparse.Namespace) -> int:
         raise XbenchInputError("--recipe", "missing", expected="a recipe name or path (see --list)")
     if not args.out:
         raise XbenchInputError("--out", "missing", expected="an output folder")
-    if args.count < 1:
-        raise XbenchInputError("--count", "need at least one tile", found=args.count)
-    if args.size < 8:
-        raise XbenchInputError("--size", "tile size too small", expected=">= 8", found=args.size)
+    if not 1 <= args.count <= MAX_TILES:
+        raise XbenchInputError("--count", "out of range", expected=f"1 to {MAX_TILES} tiles", found=args.count)
+    if not 8 <= args.size <= MAX_SIZE:
+        raise XbenchInputError("--size", "out of range", expected=f"8 to {MAX_SIZE} pixels", found=args.size)
+    gib = args.count * args.size**2 * 6 * 4 * (3 if args.twins else 2) / 2**30
+    if gib > 64:
+        raise XbenchInputError(
+            "--count/--size", "too large for one pack", expected="at most 64 GiB of tiles", found=f"{gib:.0f} GiB"
+        )
+    if not 0.0 <= args.label_noise <= 0.5:
+        raise XbenchInputError("--label-noise", "out of range", expected="0 to 0.5", found=args.label_noise)
     recipe = load_recipe(args.recipe)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -123,8 +132,8 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _write_json(path: Path, obj: object) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
-    with os.fdopen(fd, "w") as fh:
-        json.dump(obj, fh, indent=1)
-    os.chmod(tmp, 0o644)  # mkstemp makes private files; this is an ordinary output file
-    os.replace(tmp, path)
+    def write(tmp: str) -> None:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(obj, fh, indent=1)
+
+    atomic_write(path, write)

@@ -50,10 +50,12 @@ def _fmt(df: pd.DataFrame) -> str:
 
 def run(args: argparse.Namespace) -> int:
     from xbench.models.train import train_model
+    from xbench.runs.grid import check_safe_name
     from xbench.tasks import build_task_data, load_task
     from xbench.truth import compute_reliance
 
     task = load_task(args.task)
+    check_safe_name(task.name, f"{task.path}: name")  # it becomes part of the output file names
     specs = task.models
     if args.model:
         specs = [task.model_spec(m) for m in args.model]
@@ -72,6 +74,14 @@ def run(args: argparse.Namespace) -> int:
     )
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
+    if not data.test_scenes and not args.no_reliance:
+        # a user's tile pack has masks but no scenes: nothing to remove instance by instance
+        print(
+            f"task {task.name} uses a tile pack ({task.data.pack}): models are trained or loaded and their "
+            "accuracy reported; the reliance table needs synthetic scenes and is left out",
+            flush=True,
+        )
+        args.no_reliance = True
     n_rel = len(data.test_scenes) if args.reliance_tiles is None else min(args.reliance_tiles, len(data.test_scenes))
     targets = (data.test.clean_labels if data.test.clean_labels is not None else data.test.labels)[:n_rel]
     # the cue is switched on in tiles of the classes with driving types (the non-default classes)

@@ -15,7 +15,7 @@ import inspect
 import time
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields, replace
 from typing import Any
 
 import numpy as np
@@ -376,6 +376,18 @@ def _check_masks(where: str, masks: Any, names: Any, nhw: tuple[int, int, int], 
         )
 
 
+def private_context(context: ExplainContext) -> ExplainContext:
+    """A copy of the context whose arrays (twins, masks, fitting set, concept sets) are copies too."""
+    changes: dict[str, Any] = {}
+    for f in fields(context):
+        value = getattr(context, f.name)
+        if isinstance(value, np.ndarray):
+            changes[f.name] = value.copy()
+        elif isinstance(value, dict) and any(isinstance(v, np.ndarray) for v in value.values()):
+            changes[f.name] = {k: v.copy() if isinstance(v, np.ndarray) else v for k, v in value.items()}
+    return replace(context, **changes) if changes else context
+
+
 def explain(
     key: str,
     model: ModelHandle,
@@ -428,7 +440,9 @@ def explain(
                 warnings.filterwarnings("ignore", message=".*required_grads has been set automatically.*")
                 warnings.filterwarnings("ignore", message=".*[Ss]etting (forward, )?backward hooks.*")
                 warnings.filterwarnings("ignore", message=".*multiple inputs for Lime.*")
-                out = spec.fn(model, images, targets, context, **merged)
+                # the explainer gets its own copies: one that writes into its input cannot change the arrays
+                # that later explainers and metrics read
+                out = spec.fn(model, images.copy(), targets.copy(), private_context(context), **merged)
         seconds = time.perf_counter() - start
     if isinstance(out, tuple):
         if len(out) != 2 or not isinstance(out[1], ConceptReport):

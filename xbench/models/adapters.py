@@ -59,6 +59,8 @@ def import_factory(spec: str) -> Callable[..., Any]:
         obj: Any = importlib.import_module(mod_name)
     except ImportError as exc:
         raise XbenchInputError(where, f"cannot import module '{mod_name}' ({exc})") from None
+    except (Exception, SystemExit) as exc:  # the user's module failed while it was imported
+        raise XbenchInputError(where, f"importing module '{mod_name}' failed ({_short(exc)})") from None
     for part in attr.split("."):
         if not hasattr(obj, part):
             raise XbenchInputError(where, f"module '{mod_name}' has no attribute '{attr}'")
@@ -66,6 +68,44 @@ def import_factory(spec: str) -> Callable[..., Any]:
     if not callable(obj):
         raise XbenchInputError(where, "not callable", found=type(obj).__name__)
     return obj
+
+
+def _short(exc: BaseException) -> str:
+    """An exception as one short line (torch's messages run over many lines)."""
+    if isinstance(exc, SystemExit):
+        return f"it called sys.exit({exc.code!r})"
+    text = " ".join(str(exc).split())
+    return f"{type(exc).__name__}: {text[:300]}{'...' if len(text) > 300 else ''}"
+
+
+def call_factory(factory: str, **kwargs: Any) -> Any:
+    """Import ``package.module:factory`` and call it; any failure of the user's code is an input error."""
+    build = import_factory(factory)
+    try:
+        return build(**kwargs)
+    except (Exception, SystemExit) as exc:
+        raise XbenchInputError(f"model factory '{factory}'", f"factory call failed ({_short(exc)})") from None
+
+
+def probe_model(handle: ModelHandle, probe: np.ndarray, where: str) -> None:
+    """One forward pass on example tiles, so a model that does not fit the data fails now, in one line."""
+    images = check_images(probe, "array 'probe'")
+    try:
+        handle.probabilities(images.copy())
+    except XbenchInputError:
+        raise
+    except (Exception, SystemExit) as exc:
+        raise XbenchInputError(
+            where,
+            f"the model cannot run on the task's tiles ({_short(exc)})",
+            expected=f"input (N, {images.shape[1]}, {images.shape[2]}, {images.shape[3]}) -> {handle.n_classes} scores",
+        ) from None
+
+
+def _clone_inputs(_module: nn.Module, args: tuple) -> tuple:
+    """Forward pre-hook: the module works on a copy of its input (an in-place first layer cannot change the
+    caller's tiles); the copy is differentiable, so gradients reach the input as before."""
+    return tuple(a.clone() if isinstance(a, torch.Tensor) else a for a in args)
 
 
 def load_user_torch_model(
@@ -85,11 +125,7 @@ def load_user_torch_model(
     ``probe``: an example batch run once to check the output shape now rather than later.
     """
     where = f"model factory '{factory}'"
-    build = import_factory(factory)
-    try:
-        module = build(**(factory_kwargs or {}))
-    except TypeError as exc:
-        raise XbenchInputError(where, f"factory call failed ({exc})", found=factory_kwargs) from None
+    module = call_factory(factory, **(factory_kwargs or {}))
     if not isinstance(module, nn.Module):
         raise XbenchInputError(
             where, "factory did not return a torch module", expected="torch.nn.Module", found=type(module).__name__
@@ -111,7 +147,12 @@ def load_user_torch_model(
                 expected="a dict of parameter name -> tensor",
                 found=type(state).__name__,
             )
-        result = module.load_state_dict(state, strict=False)
+        try:
+            result = module.load_state_dict(state, strict=False)
+        except RuntimeError as exc:  # tensors of the wrong shape
+            raise XbenchInputError(
+                f"weights file '{path}'", f"state_dict does not fit the module ({_short(exc)})"
+            ) from None
         if result.missing_keys or result.unexpected_keys:
             raise XbenchInputError(
                 f"weights file '{path}'",
@@ -119,9 +160,10 @@ def load_user_torch_model(
                 expected="missing none, unexpected none",
                 found=f"missing {result.missing_keys[:5]}, unexpected {result.unexpected_keys[:5]}",
             )
+    module.register_forward_pre_hook(_clone_inputs)
     handle = ModelHandle(name or factory.split(":")[-1], n_classes, module=module, batch_size=batch_size)
     if probe is not None:
-        handle.probabilities(check_images(probe, "array 'probe'"))
+        probe_model(handle, probe, f"model '{handle.name}' ({factory})")
     return handle
 
 
@@ -150,13 +192,29 @@ def wrap_callable(
         raise XbenchInputError(f"model '{name}': n_classes", "need at least two classes", found=n_classes)
 
     def predict(images: np.ndarray) -> np.ndarray:
-        scores = np.asarray(fn(images), dtype=np.float64)
+        scores = np.asarray(fn(images.copy()), dtype=np.float64)  # a copy: the callable may write into it
         if output == "logits" and scores.ndim == 2 and np.isfinite(scores).all():
             scores = np.exp(scores - scores.max(axis=1, keepdims=True))
             scores /= scores.sum(axis=1, keepdims=True)
+        elif output == "probabilities":
+            check_probabilities(scores, name)
         return scores
 
     handle = ModelHandle(name, n_classes, predict_fn=predict, batch_size=batch_size)
     if probe is not None:
-        handle.probabilities(check_images(probe, "array 'probe'"))
+        probe_model(handle, probe, f"model '{name}'")
     return handle
+
+
+def check_probabilities(scores: np.ndarray, name: str, tolerance: float = 1e-3) -> None:
+    """Scores declared as probabilities must lie in [0, 1] and sum to 1 per tile (within ``tolerance``)."""
+    if scores.ndim != 2 or not scores.size or not np.isfinite(scores).all():
+        return  # shape and finiteness are checked by the handle, with their own messages
+    sums = scores.sum(axis=1)
+    if scores.min() < -tolerance or scores.max() > 1 + tolerance or np.abs(sums - 1).max() > tolerance:
+        raise XbenchInputError(
+            f"model '{name}' output",
+            'not probabilities (declared output = "probabilities")',
+            expected='values in [0, 1] summing to 1 per tile, or output = "logits" for raw scores',
+            found=f"min {scores.min():.4g}, max {scores.max():.4g}, row sums {sums.min():.4g} to {sums.max():.4g}",
+        )

@@ -18,7 +18,6 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import tempfile
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -32,7 +31,7 @@ from sklearn.metrics import accuracy_score, balanced_accuracy_score
 from torch import nn
 
 from xbench import __version__
-from xbench.data import TilePack
+from xbench.data import TilePack, atomic_write
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
 from xbench.models.forest import ForestPredictor, fit_forest, forest_hash, tile_features
@@ -100,24 +99,12 @@ def state_dict_hash(state: dict[str, torch.Tensor]) -> str:
     return h.hexdigest()
 
 
-def _atomic_write(path: Path, write) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
-    os.close(fd)
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-
-
 def _write_json(path: Path, obj: dict[str, Any]) -> None:
     def write(tmp: str) -> None:
         with open(tmp, "w") as fh:
             json.dump(obj, fh, indent=2, sort_keys=True)
 
-    _atomic_write(path, write)
+    atomic_write(path, write)
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -270,7 +257,7 @@ def train_model(
         n_params = count_parameters(module)
         weights_file = "weights.pt"
         if use_cache:
-            _atomic_write(entry / weights_file, lambda tmp: torch.save(state, tmp))
+            atomic_write(entry / weights_file, lambda tmp: torch.save(state, tmp))
     elif spec.kind == "forest":
         arrays = fit_forest(
             tile_features(data.train.images, data.train.band_names), data.train.labels, n_classes, seed, spec.params
@@ -289,7 +276,7 @@ def train_model(
                 with open(tmp, "wb") as fh:
                     np.savez(fh, **arrays)
 
-            _atomic_write(entry / weights_file, write_arrays)
+            atomic_write(entry / weights_file, write_arrays)
     else:
         raise XbenchInputError(f"model '{name}'", "unknown model kind", found=spec.kind)
     accuracy = evaluate(handle, packs)
@@ -332,7 +319,7 @@ def train_model(
 
 def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
     """A user's model named in a task file: imported and loaded, never trained; checked on two test tiles."""
-    from xbench.models.adapters import import_factory, load_user_torch_model, wrap_callable
+    from xbench.models.adapters import call_factory, load_user_torch_model, wrap_callable
 
     t0 = time.perf_counter()
     probe = data.test.images[:2]
@@ -348,7 +335,7 @@ def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size:
         state = handle.module.state_dict()
         weights_hash, n_params = state_dict_hash(state), count_parameters(handle.module)
     else:
-        fn = import_factory(spec.params["factory"])()
+        fn = call_factory(spec.params["factory"])
         if not callable(fn):
             raise XbenchInputError(
                 f"model '{spec.name}': factory '{spec.params['factory']}'",

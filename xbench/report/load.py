@@ -6,7 +6,6 @@ else is optional: a missing or malformed optional file is logged and that part o
 
 from __future__ import annotations
 
-import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -16,11 +15,11 @@ import numpy as np
 import pandas as pd
 
 from xbench.errors import XbenchInputError
-from xbench.runs.store import (  # the run folder's schema: one definition, the runner's
-    CONCEPT_COLUMNS,
-    CURVE_COLUMNS,
-    RECORD_COLUMNS,
-    RELIANCE_COLUMNS,
+from xbench.runs.store import (  # the one reader of run folders and their schema
+    read_manifest,
+    read_records,
+    read_table,
+    task_manifests,
 )
 
 RECORD_KEY = ["task", "model", "seed", "explainer", "metric", "truth", "tile"]
@@ -59,8 +58,9 @@ class RunSet:
     def manifest_for(self, task: str) -> dict[str, Any]:
         """The (first) manifest of a task, or an empty dict."""
         for m in self.manifests:
-            if m.get("task") == task:
-                return m
+            for one in task_manifests(m):  # a folder may keep several tasks' records
+                if one.get("task") == task:
+                    return one
         return {}
 
     def galleries(self) -> list[Artifact]:
@@ -68,80 +68,6 @@ class RunSet:
 
     def clusters(self) -> list[Artifact]:
         return [a for a in self.artifacts if a.kind == "clusters"]
-
-
-def _read_table(path: Path) -> pd.DataFrame:
-    return pd.read_csv(path) if path.suffix == ".csv" else pd.read_parquet(path)
-
-
-def read_records(run_dir: Path, log: list[str]) -> pd.DataFrame:
-    """The records of one run folder, typed; raises XbenchInputError when there are none to read."""
-    parquet, csv = run_dir / "records.parquet", run_dir / "records.csv"
-    frame = None
-    source = parquet
-    if parquet.is_file():
-        try:
-            frame = pd.read_parquet(parquet)
-        except Exception as exc:  # unreadable parquet: try the CSV copy
-            log.append(f"{parquet}: unreadable ({type(exc).__name__}: {exc}); trying records.csv")
-    if frame is None and csv.is_file():
-        source = csv
-        try:
-            frame = pd.read_csv(csv)
-        except Exception as exc:
-            raise XbenchInputError(str(csv), f"unreadable CSV ({exc})") from None
-    if frame is None:
-        raise XbenchInputError(str(run_dir), "no records.parquet or records.csv: not a run folder")
-    missing = [c for c in RECORD_COLUMNS if c not in frame.columns]
-    if missing:
-        raise XbenchInputError(
-            str(source),
-            "records lack columns",
-            expected=", ".join(RECORD_COLUMNS),
-            found=", ".join(map(str, frame.columns)),
-        )
-    frame = frame[RECORD_COLUMNS].copy()
-    for col in ("run_id", "task", "model", "explainer", "metric"):
-        frame[col] = frame[col].astype(str)
-    frame["truth"] = frame["truth"].fillna("none").astype(str)
-    try:
-        frame["seed"] = pd.to_numeric(frame["seed"]).astype("int64")
-        frame["tile"] = pd.to_numeric(frame["tile"]).astype("int64")
-        frame["value"] = pd.to_numeric(frame["value"], errors="raise").astype("float64")
-    except (ValueError, TypeError) as exc:
-        raise XbenchInputError(str(source), f"records: seed, tile and value must be numeric ({exc})") from None
-    return frame
-
-
-def _read_optional(run_dir: Path, name: str, columns: list[str], log: list[str]) -> pd.DataFrame | None:
-    path = run_dir / name
-    if not path.is_file():
-        log.append(f"{path}: not found; the parts of the report that need it are left out")
-        return None
-    try:
-        frame = _read_table(path)
-    except Exception as exc:
-        log.append(f"{path}: unreadable ({type(exc).__name__}: {exc}); left out")
-        return None
-    missing = [c for c in columns if c not in frame.columns]
-    if missing:
-        log.append(f"{path}: missing columns {', '.join(missing)}; left out")
-        return None
-    return frame[columns].copy()
-
-
-def read_manifest(run_dir: Path, log: list[str]) -> dict[str, Any]:
-    path = run_dir / "manifest.json"
-    if not path.is_file():
-        log.append(f"{path}: not found; the methods text will lack data, model and timing details")
-        return {}
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except json.JSONDecodeError as exc:
-        raise XbenchInputError(str(path), f"invalid JSON at line {exc.lineno}: {exc.msg}") from None
-    if not isinstance(data, dict):
-        raise XbenchInputError(str(path), "manifest must be a JSON object", found=type(data).__name__)
-    return data
 
 
 def find_artifacts(run_dir: Path, log: list[str]) -> list[Artifact]:
@@ -176,9 +102,9 @@ def load_runs(run_dirs: Any) -> RunSet:
             raise XbenchInputError(str(d), "run folder not found")
         records.append(read_records(d, log))
         manifests.append(read_manifest(d, log))
-        curves.append(_read_optional(d, "curves.parquet", CURVE_COLUMNS, log))
-        reliance.append(_read_optional(d, "reliance.parquet", RELIANCE_COLUMNS, log))
-        concepts.append(_read_optional(d, "concepts.parquet", CONCEPT_COLUMNS, log))
+        curves.append(read_table(d, "curves.parquet", log))
+        reliance.append(read_table(d, "reliance.parquet", log))
+        concepts.append(read_table(d, "concepts.parquet", log))
         artifacts.extend(find_artifacts(d, log))
     rec = pd.concat(records, ignore_index=True)
     dup = rec.duplicated(RECORD_KEY, keep="last")

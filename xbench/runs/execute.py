@@ -7,6 +7,8 @@ from the training cache; the runner trains them on the client before cells are d
 
 from __future__ import annotations
 
+import signal
+import threading
 import time
 import traceback
 from dataclasses import dataclass
@@ -16,8 +18,9 @@ import numpy as np
 import pandas as pd
 import torch
 
-from xbench.runs.grid import Cell
-from xbench.runs.store import CONCEPT_COLUMNS, CURVE_COLUMNS, RECORD_COLUMNS
+from xbench.errors import XbenchInputError
+from xbench.runs.grid import Cell, content_hash, model_fingerprint
+from xbench.runs.store import CONCEPT_COLUMNS, CURVE_COLUMNS, REASON_COLUMNS, RECORD_COLUMNS
 
 # One thread everywhere inside cells: results must not depend on how many threads a worker has.
 CELL_THREADS = 1
@@ -57,10 +60,16 @@ def task_and_data(task_path: str) -> tuple[Any, Any]:
     from xbench.tasks import build_task_data, load_task
 
     task = load_task(task_path)
-    key = f"{task.path}:{task.file_hash}"
+    key = _task_key(task)
     if key not in _TASK_CACHE:
         _TASK_CACHE[key] = (task, build_task_data(task))
     return _TASK_CACHE[key]
+
+
+def _task_key(task: Any) -> str:
+    # the parsed task and its data (recipe content, pack checksum): an edit between two runs in one process
+    # never reuses tiles or models prepared for the old content
+    return f"{task.path}:{task.file_hash}:{task.data.hash}"
 
 
 def model_spec(task: Any, name: str) -> Any:
@@ -85,7 +94,7 @@ def concept_sets_for(task: Any, types: list[str]) -> dict[str, np.ndarray]:
     """TCAV example sets for the structure types the task's recipe can plant (made once per process)."""
     from xbench.explainers.concept_sets import make_concept_sets
 
-    key = f"{task.path}:{task.file_hash}"
+    key = _task_key(task)
     if key not in _CONCEPT_CACHE:
         run = task.run
         _CONCEPT_CACHE[key] = make_concept_sets(
@@ -103,7 +112,8 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     from xbench.truth import compute_reliance
 
     task, data = task_and_data(task_path)
-    key = (f"{task.path}:{task.file_hash}", model_name, int(seed))
+    fingerprint = content_hash(model_fingerprint(model_spec(task, model_name)))
+    key = (f"{_task_key(task)}:{fingerprint}", model_name, int(seed))
     if key in _PREP_CACHE:
         prep = _PREP_CACHE[key]
         if need_concepts and prep.concept_sets is None:
@@ -113,6 +123,14 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     trained = train_or_load(task_path, model_name, seed)
     test = data.test
     index = choose_explain_tiles(task, test.labels, int(task.run["explain_tiles"]))
+    if len(index) == 0:
+        positive = [task.class_names[c] for c, types in task.class_driving_types.items() if types]
+        raise XbenchInputError(
+            f"{task.path}: [data] test split",
+            "no test tile of a class made by planted structures: nothing to explain",
+            expected="tiles of " + (", ".join(positive) or "a class with driving structure types"),
+            found="test labels " + str(np.bincount(test.labels, minlength=len(task.class_names)).tolist()),
+        )
     targets = test.labels[index].astype(np.int64)
     sub = test.subset(index)
     scenes = [data.test_scenes[i] for i in index] if data.test_scenes else []
@@ -187,23 +205,69 @@ def type_groups(prep: Prepared) -> tuple[dict[str, float] | None, list[str], lis
     return importance, relied, lookalikes, unused
 
 
+class CellTimeout(BaseException):
+    """Raised inside a cell when its time limit is reached (a BaseException, so user code that catches
+    Exception cannot swallow it)."""
+
+
+def failed_result(cell: Cell, error: str, started: float, trace: str = "") -> dict[str, Any]:
+    """The result of a cell that did not finish (an error, a time limit, a crashed worker)."""
+    return {
+        "status": "failed",
+        "meta": {
+            "cell": cell.to_dict(),
+            "error": error,
+            "traceback": trace,
+            "seconds": time.perf_counter() - started,
+        },
+    }
+
+
 def compute_cell(
-    task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict], run_id: str
+    task_path: str,
+    cell: Cell,
+    metric_keys: list[str],
+    metric_settings: dict[str, dict],
+    run_id: str,
+    timeout: float | None = None,
 ) -> dict[str, Any]:
-    """Explain and score one cell; never raises: a failure comes back as a failed result."""
+    """Explain and score one cell; never raises: a failure comes back as a failed result.
+
+    ``timeout`` (seconds; the task's ``[run] cell_timeout`` when None) stops a cell that hangs: the cell is
+    recorded as failed and the grid goes on. The limit uses SIGALRM, so it holds where cells run on a
+    process's main thread (the local executor and its process pool); elsewhere (dask worker threads) a
+    cell runs without it. User code that calls ``sys.exit`` fails its cell instead of ending the run.
+    """
     started = time.perf_counter()
+    if timeout is None:
+        try:
+            timeout = float(task_and_data(task_path)[0].run.get("cell_timeout", 0)) or None
+        except Exception:  # the cell itself reports a task that cannot be read
+            timeout = None
+    use_alarm = bool(timeout) and hasattr(signal, "SIGALRM") and threading.current_thread() is threading.main_thread()
+    previous = None
     try:
-        return _compute_cell(task_path, cell, metric_keys, metric_settings, run_id, started)
+        if use_alarm:
+
+            def on_alarm(_signum: int, _frame: Any) -> None:
+                raise CellTimeout(f"stopped after its time limit of {timeout:g} s ([run] cell_timeout)")
+
+            previous = signal.signal(signal.SIGALRM, on_alarm)
+            signal.setitimer(signal.ITIMER_REAL, float(timeout))
+        try:
+            return _compute_cell(task_path, cell, metric_keys, metric_settings, run_id, started)
+        finally:
+            if use_alarm:
+                signal.setitimer(signal.ITIMER_REAL, 0)
+    except CellTimeout as exc:
+        return failed_result(cell, f"time limit: {exc}", started)
+    except SystemExit as exc:  # user code calling sys.exit must not end the run (or pass it as exit 0)
+        return failed_result(cell, f"user code called sys.exit({exc.code!r})", started, traceback.format_exc(limit=8))
     except Exception as exc:  # recorded and reported; the rest of the grid goes on
-        return {
-            "status": "failed",
-            "meta": {
-                "cell": cell.to_dict(),
-                "error": f"{type(exc).__name__}: {exc}",
-                "traceback": traceback.format_exc(limit=8),
-                "seconds": time.perf_counter() - started,
-            },
-        }
+        return failed_result(cell, f"{type(exc).__name__}: {exc}", started, traceback.format_exc(limit=8))
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGALRM, previous)
 
 
 def _compute_cell(
@@ -254,6 +318,7 @@ def _compute_cell(
     rows: list[tuple] = []
     curves: list[dict[str, Any]] = []
     notes: dict[str, str] = {}
+    reasons: list[tuple] = []  # whole reasons of skipped metrics and NaN values, keyed like the records
     metric_seconds: dict[str, float] = {}
     tiles = prep.explain_index.astype(np.int64)
     for key in metric_keys:
@@ -262,8 +327,10 @@ def _compute_cell(
         size = min(int(settings.pop(TILE_SUBSET_SETTING, len(tiles))), len(tiles))
         for result in compute_metric(key, inputs_for(size), **settings):
             tag = f"{key}/{result.truth}"
+            ident = (run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth)
             if result.skipped:
                 notes[tag] = f"skipped: {result.skipped}"
+                reasons.append(ident + (f"skipped: {result.skipped}",))
                 continue
             values = np.asarray(result.values, dtype=np.float64)
             if result.per_tile:
@@ -286,7 +353,8 @@ def _compute_cell(
                     )
                 )
             if result.reasons:
-                notes[tag] = "; ".join(sorted({str(r) for r in result.reasons.values()}))[:500]
+                notes[tag] = "; ".join(sorted({str(r) for r in result.reasons.values()}))
+                reasons.append(ident + (notes[tag],))
             curves.extend(curve_rows(cell, key, result))
         metric_seconds[key] = time.perf_counter() - t0
     records = pd.DataFrame(rows, columns=RECORD_COLUMNS)
@@ -297,6 +365,7 @@ def _compute_cell(
         "records": records,
         "curves": pd.DataFrame(curves, columns=CURVE_COLUMNS),
         "concepts": pd.DataFrame(concepts, columns=CONCEPT_COLUMNS),
+        "reasons": pd.DataFrame(reasons, columns=REASON_COLUMNS),
         "gallery": {"map": explanation.attributions[:gallery_n].astype(np.float32)},
         "meta": {
             "cell": cell.to_dict(),
@@ -305,6 +374,10 @@ def _compute_cell(
             "seconds": time.perf_counter() - started,
             "explain_seconds": t_explained - started,
             "metric_seconds": metric_seconds,
+            # share of explained tiles whose map is all zero (a saturated model or too coarse settings)
+            "zero_map_share": float(np.mean(~np.any(explanation.attributions != 0, axis=(1, 2))))
+            if len(explanation.attributions)
+            else 0.0,
             "cost": {
                 "forward_calls": int(explanation.cost.forward_calls),
                 "backward_calls": int(explanation.cost.backward_calls),

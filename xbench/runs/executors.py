@@ -7,12 +7,14 @@ workers never write the store.
 from __future__ import annotations
 
 import multiprocessing
+import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
 from xbench.errors import XbenchInputError
-from xbench.runs.execute import CELL_THREADS, compute_cell
+from xbench.runs.execute import CELL_THREADS, compute_cell, failed_result
 from xbench.runs.grid import Cell
 
 CellJob = tuple[str, Cell, list[str], dict[str, dict], str]  # task path, cell, metric keys, settings, run id
@@ -34,7 +36,11 @@ def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict
     with ProcessPoolExecutor(max_workers=n_jobs, mp_context=ctx, initializer=_init_worker) as pool:
         futures = {pool.submit(compute_cell, *job): job[1] for job in jobs}
         for future in as_completed(futures):
-            yield futures[future], future.result()
+            try:
+                result = future.result()
+            except BrokenProcessPool as exc:  # a worker died (segfault, os._exit): its cells fail, the run goes on
+                result = failed_result(futures[future], f"worker process died ({exc})", time.perf_counter())
+            yield futures[future], result
 
 
 def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int = 2) -> Iterator[tuple[Cell, dict]]:

@@ -1,16 +1,31 @@
-"""Grid expansion: a task file becomes cells (model x seed x explainer), each with a content hash."""
+"""Grid expansion: a task file becomes cells (model x seed x explainer), each keyed on its content.
+
+A cell's key covers everything its values depend on and nothing else: the task's parsed data section (with
+the recipe's content or the tile pack's checksum), the model's configuration and, for user models, the
+weights file's and the factory module's checksums, the seed, the explainer and its settings, every metric
+and its settings, the run settings that change values, and the xbench version. So a change recomputes
+exactly the cells it affects; a comment in the task file recomputes nothing.
+"""
 
 from __future__ import annotations
 
 import hashlib
+import importlib.util
 import json
+import re
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 from xbench import __version__
+from xbench.data import file_sha256
 from xbench.errors import XbenchInputError
 from xbench.schema import Where
+
+# Run settings that do not change any value (only whether a cell finishes in time): left out of cell keys.
+NON_VALUE_RUN_SETTINGS = ("cell_timeout",)
+# Names that become parts of file names (task names in artifact files): no path separators, no "..".
+SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
 
 
 def content_hash(payload: Any, length: int = 16) -> str:
@@ -44,14 +59,39 @@ class Grid:
     metrics: list[str] = field(default_factory=list)  # metric keys scored in every cell
 
 
+def check_safe_name(name: str, where: str) -> str:
+    """A name used in file names: letters, digits, '.', '_' and '-', not starting with a dot (no '../')."""
+    if not isinstance(name, str) or not SAFE_NAME.match(name) or ".." in name:
+        raise XbenchInputError(
+            where,
+            "unsafe name for file names",
+            expected="letters, digits, '.', '_' or '-' (at most 100, no '..', not starting with '.' or '-')",
+            found=name,
+        )
+    return name
+
+
 def validate_task_keys(task: Any) -> None:
-    """Explainer and metric keys of a task must exist in the registries (checked before any work)."""
+    """Explainer and metric keys of a task must exist in the registries, their settings must be known and
+    of the right kind, and there must be something to measure (checked before any work)."""
     from xbench.explainers import get_explainer
     from xbench.metrics import get_metric
 
     # One error format (xbench.schema): the task file, the line and the key of a bad setting.
     text = Where.of_file(task.path).text if Path(task.path).is_file() else None
     top = Where(str(task.path), "", text)
+    check_safe_name(task.name, str(top.child("name")))
+    if not task.explainers:
+        raise top.child("explainers").child("keys").error("no explainers: nothing would be measured")
+    if not task.metrics:
+        raise (
+            top.child("metrics")
+            .child("keys")
+            .error(
+                "no metrics: nothing would be measured",
+                expected="a [metrics] table with keys = [...] (`xbench metrics` lists them)",
+            )
+        )
     for i, key in enumerate(task.explainers):
         try:
             spec = get_explainer(key)
@@ -70,6 +110,42 @@ def validate_task_keys(task: Any) -> None:
         tiles = settings.get("tiles", 1)
         if isinstance(tiles, bool) or not isinstance(tiles, int) or tiles < 1:  # `tiles`: see runs.execute
             raise where.child("tiles").error("bad value", expected="a positive integer", found=tiles)
+
+
+def _source_sha256(factory: str) -> str | None:
+    """sha256 of the file that defines a user factory's module (found without importing it when possible)."""
+    module = factory.split(":", 1)[0]
+    try:
+        spec = importlib.util.find_spec(module)
+    except (ImportError, ValueError):
+        return None
+    origin = getattr(spec, "origin", None) if spec is not None else None
+    return file_sha256(origin) if origin and Path(origin).is_file() else None
+
+
+def model_fingerprint(spec: Any) -> dict[str, Any]:
+    """What a model's values depend on: its configuration and, for user models, the checksums of the
+    weights file and of the factory's source file (a retrained model or edited code recomputes)."""
+    out: dict[str, Any] = {"name": spec.name, "kind": spec.kind, "params": spec.params}
+    weights = spec.params.get("weights")
+    if weights and Path(weights).is_file():
+        out["weights_sha256"] = file_sha256(weights)
+    factory = spec.params.get("factory")
+    if factory:
+        out["factory_source_sha256"] = _source_sha256(str(factory))
+    return out
+
+
+def data_fingerprint(task: Any) -> dict[str, Any]:
+    """What every cell of a task depends on besides its model, seed and explainer."""
+    return {
+        "task": task.name,
+        "data": task.data.raw,  # includes the recipe's content hash or the tile pack's checksum
+        "class_names": list(task.class_names),
+        "driving_types": {str(k): v for k, v in sorted(task.class_driving_types.items())},
+        "lookalikes": list(task.lookalike_types),
+        "run": {k: v for k, v in task.run.items() if k not in NON_VALUE_RUN_SETTINGS},
+    }
 
 
 def expand_grid(
@@ -106,10 +182,10 @@ def expand_grid(
         )
     base = {
         "xbench": __version__,
-        "task_hash": task.file_hash,
-        "run": task.run,
+        "task": data_fingerprint(task),
         "metrics": {k: task.metric_settings.get(k, {}) for k in metric_keys},
     }
+    fingerprints = {spec.name: model_fingerprint(spec) for spec in model_specs}
     cells: list[Cell] = []
     skipped: list[dict[str, str]] = []
     for spec in model_specs:
@@ -128,9 +204,7 @@ def expand_grid(
                     continue
                 settings = dict(task.explainer_settings.get(key, {}))
                 payload = base | {
-                    "model": spec.name,
-                    "model_kind": spec.kind,
-                    "model_params": spec.params,
+                    "model": fingerprints[spec.name],
                     "seed": seed,
                     "explainer": key,
                     "settings": settings,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import importlib.metadata
 import platform
 import subprocess
@@ -19,16 +20,23 @@ from xbench.runs.execute import prepare, task_and_data
 from xbench.runs.executors import executor_for
 from xbench.runs.grid import Grid, content_hash, expand_grid
 from xbench.runs.store import (
-    CONCEPT_COLUMNS,
-    CURVE_COLUMNS,
+    CELL_IDENTITY,
+    REASON_COLUMNS,
     RECORD_COLUMNS,
     RECORD_SORT,
     RELIANCE_COLUMNS,
     CellStore,
+    read_manifest,
+    read_table,
     write_json,
     write_npz,
     write_table,
 )
+
+# A model whose balanced test accuracy is within this margin of chance is flagged in the run summary.
+CHANCE_MARGIN = 0.1
+# An explainer whose maps are all zero on at least this share of the explained tiles is flagged.
+ZERO_MAP_SHARE = 0.5
 
 
 @dataclass
@@ -41,10 +49,17 @@ class RunSummary:
     cells_skipped: int = 0
     seconds: float = 0.0
     failures: list[dict[str, str]] = field(default_factory=list)
+    records: int = 0  # values measured by this run's cells (reused cells included)
+    repaired: list[str] = field(default_factory=list)  # damaged cells found and computed again
+    skipped_metrics: list[str] = field(default_factory=list)  # "metric/truth: reason" (once each)
+    undefined: list[str] = field(default_factory=list)  # "metric/truth: reason" of NaN values (once each)
+    warnings: list[str] = field(default_factory=list)  # models at chance level, saturated maps...
+    kept_earlier: int = 0  # cells of earlier runs (other explainers, metrics or tasks) kept in the folder
 
     @property
     def ok(self) -> bool:
-        return self.cells_failed == 0
+        """True when every cell finished and something was measured."""
+        return self.cells_failed == 0 and self.records > 0
 
 
 def _versions() -> dict[str, str]:
@@ -65,6 +80,33 @@ def _git_commit() -> str | None:
         return res.stdout.strip() or None if res.returncode == 0 else None
     except (OSError, subprocess.SubprocessError):
         return None
+
+
+@functools.lru_cache(maxsize=1)  # the source tree of a running process does not change
+def _git_state() -> dict[str, Any]:
+    """The commit of xbench's own source tree and whether it has uncommitted changes (None outside git).
+
+    Only a repository whose top level holds this package counts, so an install inside another project's
+    environment does not record that project's commit.
+    """
+    here = Path(__file__).resolve().parent.parent  # the xbench package folder
+    try:
+        top = subprocess.run(
+            ["git", "rev-parse", "--show-toplevel"], cwd=here, capture_output=True, text=True, timeout=5
+        )
+        if top.returncode != 0 or Path(top.stdout.strip()).resolve() != here.parent:
+            return {"commit": None, "modified": None}
+        status = subprocess.run(
+            ["git", "status", "--porcelain", "--", "xbench"],
+            cwd=here.parent,
+            capture_output=True,
+            text=True,
+            timeout=10,
+        )
+        modified = bool(status.stdout.strip()) if status.returncode == 0 else None
+    except (OSError, subprocess.SubprocessError):
+        return {"commit": None, "modified": None}
+    return {"commit": _git_commit(), "modified": modified}
 
 
 def run_task(
@@ -112,6 +154,7 @@ def run_task(
                 "accuracy": accuracy_summary(trained.accuracy),
                 "seconds": trained.seconds,
                 "cached": bool(trained.cached),
+                "weights_hash": trained.weights_hash,
                 "params": int(sum(p.numel() for p in trained.handle.module.parameters()))
                 if trained.handle.module is not None
                 else None,
@@ -120,8 +163,13 @@ def run_task(
 
     pending = [c for c in grid.cells if not store.is_done(c.cell_id)]
     summary.cells_cached = len(grid.cells) - len(pending)
+    for cell in pending:
+        if cell.cell_id in store.problems:
+            summary.repaired.append(f"{cell.describe()}: {store.problems[cell.cell_id]}; computed again")
     metric_settings = {k: dict(task_obj.metric_settings.get(k, {})) for k in grid.metrics}
     jobs_list = [(task_path, c, list(grid.metrics), metric_settings, run_id) for c in pending]
+    # models flagged before the cells: a model at chance level explains nothing worth ranking
+    summary.warnings.extend(model_warnings(task_obj, model_rows))
     bar = tqdm(total=len(pending), desc="cells", disable=not progress, unit="cell")
     for cell, result in run_for(jobs_list):
         store.commit(cell.cell_id, result)
@@ -134,28 +182,139 @@ def run_task(
         bar.update(1)
     bar.close()
     # Failed cells of an earlier attempt that were not retried here cannot exist: every pending cell ran.
-    assemble(out, task_obj, grid, store, preps, model_rows, run_id)
+    assemble(out, task_obj, grid, store, preps, model_rows, run_id, summary)
     summary.seconds = time.perf_counter() - started
     return summary
 
 
-def assemble(
-    out: Path, task: Any, grid: Grid, store: CellStore, preps: dict, model_rows: list[dict], run_id: str
-) -> None:
-    """Write the run folder's tables, artifacts and manifest from committed cells (atomic writes)."""
+def model_warnings(task: Any, model_rows: list[dict[str, Any]]) -> list[str]:
+    """Models whose balanced test accuracy is near chance (1 / number of classes)."""
+    chance = 1.0 / max(len(task.class_names), 1)
+    out = []
+    for row in model_rows:
+        acc = row["accuracy"].get("balanced_test", row["accuracy"].get("test"))
+        if acc is not None and acc <= chance + CHANCE_MARGIN:
+            out.append(
+                f"model {row['name']} seed {row['seed']} is near chance level (balanced test accuracy {acc:.3f}, "
+                f"chance {chance:.3f}): its explanations say little about evidence"
+            )
+    return out
+
+
+def _identity(cell_dict: dict[str, Any]) -> tuple:
+    return tuple(cell_dict.get(k) for k in CELL_IDENTITY)
+
+
+def kept_cells(grid: Grid, store: CellStore) -> tuple[list[str], dict[str, set[str] | None], set[str]]:
+    """The cells whose values the run folder shows, in priority order, and the metrics each contributes.
+
+    This run's cells come first; then cells committed earlier (other explainers, metric subsets or tasks),
+    newest first. A value (task, model, seed, explainer, metric) comes from the first cell that has it, so a
+    rerun with fewer explainers or metrics keeps the rest, and a recomputed cell replaces its earlier version.
+    A failed cell of this run hides earlier values of its metrics (they were computed under other settings).
+    Returns the ids, per id the metric keys it contributes (None = all of its rows), and the ids that are
+    the first of their identity (their curves, concept rows and gallery maps are shown).
+    """
+    committed = store.committed()
     ids = [c.cell_id for c in grid.cells]
-    records = store.table(ids, "records", RECORD_COLUMNS)
+    earlier = sorted(
+        (cid for cid in committed if cid not in set(ids)),
+        key=lambda cid: -float(committed[cid].get("committed_at", 0.0)),
+    )
+    covered: set[tuple] = set()
+    seen: set[tuple] = set()
+    order: list[str] = []
+    first: set[str] = set()
+    contributes: dict[str, set[str] | None] = {}
+    for cell in grid.cells:
+        ident = (cell.task, cell.model, cell.seed, cell.explainer)
+        covered.update(ident + (m,) for m in grid.metrics)
+        seen.add(ident)
+        if cell.cell_id in committed:
+            order.append(cell.cell_id)
+            first.add(cell.cell_id)
+            contributes[cell.cell_id] = None
+    for cid in earlier:
+        ident = _identity(committed[cid]["cell"])
+        metrics = set(store.table([cid], "records", RECORD_COLUMNS)["metric"]) | set(
+            store.table([cid], "reasons", REASON_COLUMNS)["metric"]
+        )
+        fresh = {m for m in metrics if ident + (m,) not in covered}
+        if fresh:
+            order.append(cid)
+            contributes[cid] = fresh
+            covered.update(ident + (m,) for m in fresh)
+            if ident not in seen:
+                first.add(cid)
+                seen.add(ident)
+        else:
+            store.remove(cid)  # every value of it was recomputed: an earlier version, no longer shown
+    return order, contributes, first
+
+
+def _kept_table(store: CellStore, order: list[str], contributes: dict, first: set[str], name: str) -> pd.DataFrame:
+    from xbench.runs.store import CELL_TABLES
+
+    columns = CELL_TABLES[name]
+    frames = []
+    for cid in order:
+        if "metric" not in columns and cid not in first:
+            continue  # curves and concept rows: from the first cell of each identity only
+        frame = store.table([cid], name, columns)
+        if contributes[cid] is not None and "metric" in columns:
+            frame = frame[frame["metric"].isin(contributes[cid])]
+        if len(frame):
+            frames.append(frame)
+    if not frames:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+    return pd.concat(frames, ignore_index=True)[columns]
+
+
+def assemble(
+    out: Path,
+    task: Any,
+    grid: Grid,
+    store: CellStore,
+    preps: dict,
+    model_rows: list[dict],
+    run_id: str,
+    summary: RunSummary | None = None,
+) -> None:
+    """Write the run folder's tables, artifacts and manifest from committed cells (atomic writes).
+
+    The folder keeps what earlier runs put there (other explainers, metrics or tasks; see
+    :func:`kept_cells`): a rerun adds to it and never shrinks it.
+    """
+    summary = summary if summary is not None else RunSummary(out_dir=out)
+    order, contributes, first = kept_cells(grid, store)
+    grid_ids = {c.cell_id for c in grid.cells}
+    records = _kept_table(store, order, contributes, first, "records")
     if len(records):
         records = records.sort_values(RECORD_SORT, kind="stable").reset_index(drop=True)
         records["seed"] = records["seed"].astype("int64")
         records["tile"] = records["tile"].astype("int64")
         records["value"] = records["value"].astype("float64")
+    summary.records = sum(int(contributes[c] is None) * len(store.table([c], "records", RECORD_COLUMNS)) for c in order)
+    summary.kept_earlier = sum(1 for cid in order if cid not in grid_ids)
     write_table(out / "records.parquet", records)
     write_table(out / "records.csv", records)
-    curves = store.table(ids, "curves", CURVE_COLUMNS)
-    write_table(out / "curves.parquet", curves)
-    concepts = store.table(ids, "concepts", CONCEPT_COLUMNS)
+    write_table(out / "curves.parquet", _kept_table(store, order, contributes, first, "curves"))
+    concepts = _kept_table(store, order, contributes, first, "concepts")
     write_table(out / "concepts.parquet", concepts.astype({c: "object" for c in ("matched_type",)}))
+    reasons = _kept_table(store, order, contributes, first, "reasons")
+    if len(reasons):
+        reasons = reasons.sort_values(["task", "model", "seed", "explainer", "metric", "truth"], kind="stable")
+        reasons = reasons.reset_index(drop=True)
+        reasons["seed"] = reasons["seed"].astype("int64")
+    write_table(out / "reasons.parquet", reasons)
+    for row in reasons[reasons["task"] == task.name].to_dict("records"):
+        reason = str(row["reason"])
+        skipped = reason.startswith("skipped: ")
+        line = f"{row['metric']}/{row['truth']}: {reason.removeprefix('skipped: ')}"
+        target = summary.skipped_metrics if skipped else summary.undefined
+        if line not in target:
+            target.append(line)
+
     reliance_rows = []
     for (name, seed), prep in preps.items():
         if prep.reliance is None:
@@ -173,22 +332,47 @@ def assemble(
                     "n": int(row["n"]),
                 }
             )
-    write_table(out / "reliance.parquet", pd.DataFrame(reliance_rows, columns=RELIANCE_COLUMNS))
+    reliance = pd.DataFrame(reliance_rows, columns=RELIANCE_COLUMNS)
+    earlier_reliance = read_table(out, "reliance.parquet", [])
+    if earlier_reliance is not None and len(earlier_reliance):  # other tasks' and models' rows stay
+        mine = {(task.name, name, int(seed)) for name, seed in preps}
+        keep = [
+            (t, m, int(sd)) not in mine
+            for t, m, sd in zip(
+                earlier_reliance["task"], earlier_reliance["model"], earlier_reliance["seed"], strict=True
+            )
+        ]
+        reliance = pd.concat([earlier_reliance[keep], reliance], ignore_index=True) if any(keep) else reliance
+    write_table(out / "reliance.parquet", reliance)
 
     cells_meta = []
-    for cell in grid.cells:
-        meta = store.meta(cell.cell_id) or {}
+    for cid in [c.cell_id for c in grid.cells] + [c for c in order if c not in grid_ids]:
+        meta = store.meta(cid) or {}
+        cell = meta.get("cell") or next(c.to_dict() for c in grid.cells if c.cell_id == cid)
+        ok = cid in contributes
+        status = meta.get("status", "missing") if cid in grid_ids else "ok"
+        if cid in grid_ids and status == "ok" and not ok:
+            status = "damaged"
+        share = meta.get("zero_map_share")
+        if cid in grid_ids and status == "ok" and share is not None and share >= ZERO_MAP_SHARE:
+            summary.warnings.append(
+                f"{cell['explainer']} on {cell['model']} seed {cell['seed']}: {share:.0%} of the maps are all zero "
+                "(a saturated model, or settings too coarse for the tiles)"
+            )
         cells_meta.append(
             {
-                "cell_id": cell.cell_id,
-                "model": cell.model,
-                "seed": cell.seed,
-                "explainer": cell.explainer,
-                "status": meta.get("status", "missing"),
+                "cell_id": cid,
+                "task": cell.get("task"),
+                "model": cell.get("model"),
+                "seed": cell.get("seed"),
+                "explainer": cell.get("explainer"),
+                "status": status,
+                "this_run": cid in grid_ids,
                 "seconds": meta.get("seconds"),
                 "error": meta.get("error"),
                 "notes": meta.get("notes", {}),
                 "cost": meta.get("cost"),
+                "zero_map_share": share,
             }
         )
     for (name, seed), prep in preps.items():
@@ -203,20 +387,23 @@ def assemble(
         }
         if prep.reliance is not None:
             arrays["evidence"] = prep.reliance.evidence[:g].astype(np.float32)
-        for cell in grid.cells:
-            if cell.model == name and cell.seed == seed:
-                maps = store.arrays(cell.cell_id, "gallery")
-                if maps is not None:
-                    arrays[f"map__{cell.explainer}"] = maps["map"]
-                clusters = store.arrays(cell.cell_id, "clusters")
-                if clusters is not None:
-                    write_npz(
-                        out / "artifacts" / f"clusters__{task.name}__{name}__{seed}.npz",
-                        clusters | {"images": prep.images[:g], "class_names": np.array(task.class_names)},
-                    )
+        for cid in order:
+            cell = (store.meta(cid) or {}).get("cell") or {}
+            if cid not in first or (cell.get("task"), cell.get("model"), cell.get("seed")) != (task.name, name, seed):
+                continue
+            maps = store.arrays(cid, "gallery")
+            if maps is not None:
+                arrays[f"map__{cell['explainer']}"] = maps["map"]
+            clusters = store.arrays(cid, "clusters")
+            if clusters is not None:
+                write_npz(
+                    out / "artifacts" / f"clusters__{task.name}__{name}__{seed}.npz",
+                    clusters | {"images": prep.images[:g], "class_names": np.array(task.class_names)},
+                )
         write_npz(out / "artifacts" / f"gallery__{task.name}__{name}__{seed}.npz", arrays)
 
     data = task.data
+    git = _git_state()
     counts = {k: int(v) for k, v in data.counts.items()}
     manifest = {
         "run_id": run_id,
@@ -226,7 +413,8 @@ def assemble(
         "description": task.description,
         "xbench_version": __version__,
         "versions": _versions(),
-        "git_commit": _git_commit(),
+        "git_commit": git["commit"],
+        "git_modified": git["modified"],
         "machine": {
             "platform": platform.platform(),
             "processor": platform.machine(),
@@ -234,6 +422,10 @@ def assemble(
         },
         "seeds": sorted({c.seed for c in grid.cells}),
         "data": {
+            "seed": int(data.seed),
+            "hash": data.hash,
+            "recipe_sha256": data.raw.get("recipe_sha256"),
+            "pack_sha256": data.raw.get("pack_sha256"),
             "recipe": data.recipe or None,
             "pack": data.pack,
             "size": int(data.size),
@@ -253,8 +445,20 @@ def assemble(
         "metric_order": list(grid.metrics),
         "explain_tiles": int(len(next(iter(preps.values())).explain_index)) if preps else 0,
         "skipped": grid.skipped,
+        "skipped_metrics": list(summary.skipped_metrics),
+        "undefined_values": list(summary.undefined),
+        "warnings": list(summary.warnings),
+        "repaired": list(summary.repaired),
         "cells": cells_meta,
     }
+    earlier = read_manifest(out, [])
+    others = dict(earlier.get("earlier_tasks") or {})
+    if earlier.get("task") and earlier.get("task") != task.name:
+        others[earlier["task"]] = {k: v for k, v in earlier.items() if k != "earlier_tasks"}
+    others.pop(task.name, None)
+    kept_tasks = {str(m.get("task")) for m in cells_meta}
+    if others := {k: v for k, v in others.items() if k in kept_tasks}:
+        manifest["earlier_tasks"] = others  # other tasks whose records this folder keeps
     write_json(out / "manifest.json", manifest)
 
 
