@@ -156,7 +156,8 @@ CAPTIONS = {
         "model. Bands: mean ± 1.96 sd/√n."
     ),
     "cd": (
-        "Average rank of each explainer across the task × model blocks (1 = best, at the left). Thick "
+        "Average rank of each real method across the task × model × seed blocks (1 = best, at the left; "
+        "controls are not ranked). Drawn only where the Friedman test rejects. Thick "
         "bars join explainers whose average ranks differ by less than the Nemenyi critical difference "
         "(CD = {cd:.2f} at α = {alpha:g}, Demsar 2006): those are not significantly different."
     ),
@@ -226,21 +227,24 @@ def make_figures(
             )
     else:
         log.append("no curves.parquet: deletion, insertion and randomization figures left out")
-    for col in summary.columns:
-        rt = summary.rank_tests.get(col.key)
-        if rt is None:
-            continue
+    for rt in summary.rank_tests.values():
+        col = rt.column
+        stem = F.file_stem("cd", col.metric, col.truth) + ("" if rt.group == "torch models" else "__black-box")
         if len(rt.blocks) < 2:
-            log.append(f"CD diagram for {col.label}: needs at least 2 task x model blocks, has {len(rt.blocks)}")
+            log.append(f"CD diagram for {col.label} ({rt.group}): needs at least 2 blocks, has {len(rt.blocks)}")
             continue
         fr = rt.friedman
-        ptext = f"Friedman p = {fr.p_value:.3g}" if np.isfinite(fr.p_value) else "Friedman test n/a"
-        title = f"{col.label} {col.arrow}: N = {len(rt.blocks)} task × model blocks, {ptext}"
+        if not rt.rejects:  # no diagram without a rejecting Friedman test: a sentence in the rank table instead
+            ptext = f"p = {fr.p_value:.3g}" if np.isfinite(fr.p_value) else "not defined"
+            log.append(f"CD diagram for {col.label} ({rt.group}) not drawn: Friedman test does not reject ({ptext})")
+            continue
+        ptext = f"Friedman p = {fr.p_value:.3g}"
+        title = f"{col.label} {col.arrow}, {rt.group}: N = {len(rt.blocks)} task × model × seed blocks, {ptext}"
         emit(
             lambda rt=rt, title=title: F.cd_figure(rt.explainers, rt.avg_ranks, rt.cd, title),
-            F.file_stem("cd", col.metric, col.truth),
+            stem,
             "cd",
-            f"Critical-difference diagram: {col.label}",
+            f"Critical-difference diagram: {col.label}, {rt.group}",
             CAPTIONS["cd"].format(cd=rt.cd, alpha=summary.settings["alpha"]),
         )
     for a in sorted(runs.clusters(), key=lambda a: (a.task, a.model, a.seed)):
@@ -341,6 +345,7 @@ def html_page(
     methods_md: str,
     log: list[str],
     concepts: list[T.TableSpec] = (),
+    left_out: list[str] = (),
 ) -> str:
     h = T._h
     sections = [
@@ -382,6 +387,9 @@ def html_page(
     body.append('<section id="ranks"><h2>Ranks across tasks and models</h2>')
     body += [T.to_html(t) for t in ranks] or ["<p>No rank statistics.</p>"]
     body += [figure_html(f) for f in figs if f.section == "cd"]
+    if left_out:
+        body.append("<h3>Left out of the rankings, and why</h3>")
+        body.append("<ul>" + "".join(f"<li>{_inline_md(x)}</li>" for x in left_out) + "</ul>")
     body.append("</section>")
     for key, name in sections:
         chosen = [f for f in figs if f.section == key]
@@ -444,11 +452,15 @@ def write_report(
     seed: int = 0,
     gallery_tiles: int = 6,
     figures: bool = True,
+    against: str | None = None,
+    models: list[str] | None = None,
 ) -> ReportSummary:
     """Read the run folders and write tables, figures, methods text and BibTeX into ``out_dir``.
 
     ``out_dir`` defaults to ``<first run folder>/report``. ``headline_metric`` / ``headline_truth`` choose
-    the quality axis of the cost figure and the worked CD numbers in the methods text. Prints nothing.
+    the quality axis of the cost figure and the worked CD numbers in the methods text. ``against`` names a
+    real method declared before the run as the comparator of the paired tests (default: all pairs with Holm);
+    ``models`` chooses the models whose blocks enter (default: all). Prints nothing.
     """
     fmts = _formats(formats)
     runs = load_runs(run_dirs)
@@ -469,6 +481,8 @@ def write_report(
                 n_resamples=n_resamples,
                 seed=seed,
                 alpha=alpha,
+                against=against,
+                models=models,
             )
             log += summary.log
             headline = choose_headline(summary, headline_metric, headline_truth, log)
@@ -502,6 +516,7 @@ def write_report(
     result.paths.append(out / "summary.csv")
     rank_rows = [
         {
+            "group": rt.group,
             "metric": rt.column.metric,
             "truth": rt.column.truth,
             "explainer": e,
@@ -524,12 +539,14 @@ def write_report(
     if "md" in fmts:
         write(
             "tables.md",
-            "# xbench comparison tables\n\n" + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs),
+            "# xbench comparison tables\n\n"
+            + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs)
+            + T.left_out_markdown(summary),
         )
     if "tex" in fmts:
         write("tables.tex", T.LATEX_PREAMBLE_NOTE + "\n" + "\n".join(T.to_latex(t) for t in results + ranks))
     if "html" in fmts:
-        write("report.html", html_page(runs, results, ranks, figs, methods_md, log, concept_specs))
+        write("report.html", html_page(runs, results, ranks, figs, methods_md, log, concept_specs, summary.left_out))
     write("methods.md", methods_md)
     write("refs.bib", render_bib(cites.keys))
     for f in figs:
