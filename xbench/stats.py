@@ -196,34 +196,47 @@ def wilcoxon_paired(a, b, alternative: str = "two-sided", zero_method: str = "wi
     return PairedTest(float(res.statistic), float(res.pvalue), n)
 
 
+def paired_wilcoxon_many(values, pairs) -> tuple[np.ndarray, np.ndarray]:
+    """Two-sided Wilcoxon signed-rank p-values of the given (i, j) column pairs of an (n units, k) matrix.
+
+    Returns (p, n) per pair. Units where either value is NaN are dropped per pair; a pair whose differences
+    are all zero gets p = 1. Without NaN the tests run as one vectorised ``scipy.stats.wilcoxon`` call.
+    """
+    x = np.asarray(values, dtype=np.float64)
+    pairs = np.asarray(pairs, dtype=int).reshape(-1, 2)
+    p = np.full(len(pairs), np.nan)
+    n = np.zeros(len(pairs), dtype=int)
+    if len(pairs) == 0:
+        return p, n
+    if np.isfinite(x).all() and x.shape[0] >= 2:
+        d = x[:, pairs[:, 0]] - x[:, pairs[:, 1]]
+        zero = np.all(d == 0, axis=0)
+        p[:] = 1.0
+        if (~zero).any():
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                p[~zero] = stats.wilcoxon(d[:, ~zero], axis=0).pvalue
+        n[:] = x.shape[0]
+        return p, n
+    for q, (i, j) in enumerate(pairs):
+        t = wilcoxon_paired(x[:, i], x[:, j])
+        p[q], n[q] = t.p_value, t.n
+    return p, n
+
+
 def pairwise_wilcoxon(values) -> tuple[np.ndarray, np.ndarray]:
     """Two-sided Wilcoxon signed-rank p-values of every pair of columns of an (n units, k) matrix.
 
-    Returns (p, n_pairs), both (k, k) and symmetric, diagonal NaN. Units where either value is NaN are
-    dropped per pair. Without NaN the k(k-1)/2 tests run as one vectorised scipy call.
+    Returns (p, n_pairs), both (k, k) and symmetric, diagonal NaN (``paired_wilcoxon_many`` on all pairs).
     """
     x = np.asarray(values, dtype=np.float64)
     k = x.shape[1]
     p = np.full((k, k), np.nan)
     npairs = np.zeros((k, k), dtype=int)
     iu, ju = np.triu_indices(k, 1)
-    if iu.size == 0:
-        return p, npairs
-    if np.isfinite(x).all() and x.shape[0] >= 2:
-        d = x[:, iu] - x[:, ju]
-        zero = np.all(d == 0, axis=0)
-        pv = np.ones(iu.size)
-        if (~zero).any():
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                pv[~zero] = stats.wilcoxon(d[:, ~zero], axis=0).pvalue
-        p[iu, ju] = p[ju, iu] = pv
-        npairs[iu, ju] = npairs[ju, iu] = x.shape[0]
-        return p, npairs
-    for i, j in zip(iu, ju, strict=True):
-        t = wilcoxon_paired(x[:, i], x[:, j])
-        p[i, j] = p[j, i] = t.p_value
-        npairs[i, j] = npairs[j, i] = t.n
+    pv, nv = paired_wilcoxon_many(x, np.stack([iu, ju], axis=1))
+    p[iu, ju] = p[ju, iu] = pv
+    npairs[iu, ju] = npairs[ju, iu] = nv
     return p, npairs
 
 

@@ -18,6 +18,7 @@ task x model x seed blocks (independently trained networks; blocks of one task s
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -174,7 +175,12 @@ def compare_column(
     mean), and the top group is the top method with every method whose pair with it is not rejected. With
     ``against`` (declared before the run): the k - 1 comparisons with that method form the family.
     """
-    means = {e: float(np.nanmean(wide[e].to_numpy())) for e in methods if np.isfinite(wide[e]).any()}
+    block = wide[methods].to_numpy(dtype=np.float64) if methods else np.empty((0, 0))
+    defined = np.isfinite(block).any(axis=0) if block.size else np.zeros(len(methods), dtype=bool)
+    with warnings.catch_warnings():  # an all-NaN column: "mean of empty slice"; it is left out just below
+        warnings.simplefilter("ignore", RuntimeWarning)
+        col_means = np.nanmean(np.where(np.isfinite(block), block, np.nan), axis=0) if block.size else []
+    means = {e: float(v) for e, v, ok in zip(methods, col_means, defined, strict=False) if ok}
     names = [e for e in methods if e in means]
     top = None
     if higher_is_better is not None and names:
@@ -187,11 +193,12 @@ def compare_column(
     comparator = against if against in names else top
     ci = names.index(comparator)
     if against in names:
-        raw = {e: stats.wilcoxon_paired(x[:, ci], x[:, j]) for j, e in enumerate(names) if e != comparator}
-        p_value = {e: t.p_value for e, t in raw.items()}
-        test_n = {e: t.n for e, t in raw.items()}
-        adj = dict(zip(raw, stats.holm(list(p_value.values())), strict=True))
-        m = len(raw)
+        others = [j for j in range(len(names)) if j != ci]
+        pv, nv = stats.paired_wilcoxon_many(x, [(ci, j) for j in others])
+        p_value = {names[j]: float(v) for j, v in zip(others, pv, strict=True)}
+        test_n = {names[j]: int(v) for j, v in zip(others, nv, strict=True)}
+        adj = {names[j]: float(v) for j, v in zip(others, stats.holm(pv), strict=True)}
+        m = len(others)
     else:
         p, npairs = stats.pairwise_wilcoxon(x)
         padj = stats.holm_matrix(p)
