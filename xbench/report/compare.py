@@ -543,3 +543,98 @@ def exclusion_sentences(
                 seen.add(text)
                 out.append(text)
     return out
+
+
+def variant_sensitivity(
+    base: pd.DataFrame, variants: dict[str, pd.DataFrame], explainers: list[str]
+) -> tuple[pd.DataFrame, list[str]]:
+    """Kendall's tau between the ranking of the real methods in the run and in each protocol variant.
+
+    For every variant, (task, model) block and column both hold, the methods' means (over seeds and tiles)
+    are compared: tau (``scipy.stats.kendalltau``), the pairs whose order swapped, the top method in each. A
+    ranking is flagged as flipped when its top method changes or tau <= 0 (as many pairs reversed as kept);
+    a variant where the oracle no longer beats random is flagged too. Returns the table and the flag sentences.
+    """
+    rows, flags = [], []
+
+    def means(records: pd.DataFrame) -> pd.DataFrame:
+        r = records[~records["explainer"].isin(CONTROLS)]
+        return r.groupby(["task", "model", "metric", "truth", "explainer"])["value"].mean()
+
+    def control_gap(records: pd.DataFrame, key: tuple, hib: bool) -> float:
+        sel = records.set_index(["task", "model", "metric", "truth"]).sort_index()
+        try:
+            sub = sel.loc[key]
+        except KeyError:
+            return np.nan
+        m = sub.groupby("explainer")["value"].mean()
+        if "oracle" not in m or "random" not in m:
+            return np.nan
+        return float((m["oracle"] - m["random"]) * (1 if hib else -1))
+
+    def prepared(records: pd.DataFrame) -> pd.DataFrame:
+        mag = [m for m in records["metric"].unique() if metric_info(m).by_magnitude]
+        if not mag:
+            return records
+        records = records.copy()
+        sel = records["metric"].isin(mag)
+        records.loc[sel, "value"] = records.loc[sel, "value"].abs()
+        return records
+
+    base = prepared(base)
+    base_means = means(base)
+    for name, records in variants.items():
+        records = prepared(records)
+        var_means = means(records)
+        keys = var_means.index.droplevel("explainer").unique()
+        for key in keys:
+            info = metric_info(key[2])
+            hib = info.higher_is_better
+            if hib is None or key not in base_means.index.droplevel("explainer"):
+                continue
+            a, b = base_means.loc[key], var_means.loc[key]
+            common = [
+                e for e in explainers if e in a.index and e in b.index and np.isfinite(a[e]) and np.isfinite(b[e])
+            ]
+            if len(common) < 2:
+                continue
+            x, y = a[common].to_numpy(), b[common].to_numpy()
+            sign = 1.0 if hib else -1.0
+            tau = stats.kendall_tau(x, y)
+            ii, jj = np.triu_indices(len(common), 1)
+            swapped = int(np.sum(np.sign(x[ii] - x[jj]) * np.sign(y[ii] - y[jj]) < 0))
+            top_a, top_b = common[int(np.argmax(sign * x))], common[int(np.argmax(sign * y))]
+            gap = control_gap(records, key, hib)
+            flipped = bool(top_a != top_b or not (np.isfinite(tau) and tau > 0))
+            label = Column(key[2], key[3], info).label
+            rows.append(
+                {
+                    "variant": name,
+                    "task": key[0],
+                    "model": key[1],
+                    "metric": key[2],
+                    "truth": key[3],
+                    "column": label,
+                    "k": len(common),
+                    "kendall_tau": tau,
+                    "swapped_pairs": swapped,
+                    "pairs": len(ii),
+                    "top_run": top_a,
+                    "top_variant": top_b,
+                    "flipped": flipped,
+                    "oracle_beats_random": bool(gap > 0) if np.isfinite(gap) else None,
+                }
+            )
+            where = f"variant `{name}`, {key[0]}/{key[1]}, {label}"
+            if flipped:
+                flags.append(
+                    f"{where}: the ranking flips (top {top_a} in the run, {top_b} in the variant; Kendall's tau = "
+                    f"{tau:.2f}, {swapped} of {len(ii)} pairs swapped)."
+                )
+            if np.isfinite(gap) and gap <= 0:
+                flags.append(f"{where}: the oracle no longer beats random: the metric's protocol fails its anchor.")
+    columns = [
+        "variant", "task", "model", "metric", "truth", "column", "k", "kendall_tau", "swapped_pairs", "pairs",
+        "top_run", "top_variant", "flipped", "oracle_beats_random",
+    ]  # fmt: skip
+    return pd.DataFrame(rows, columns=columns), flags

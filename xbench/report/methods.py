@@ -389,8 +389,47 @@ def provenance(runs: RunSet) -> str:
     return "\n".join(lines)
 
 
+def _changed(base: dict[str, Any], variant: dict[str, Any]) -> list[str]:
+    """Settings (key: name = value) where a variant's manifest differs from the run's."""
+    out = []
+    for key, settings in (variant or {}).items():
+        diff = {k: v for k, v in (settings or {}).items() if (base or {}).get(key, {}).get(k) != v}
+        if diff:
+            out.append(f"{key}: " + ", ".join(f"{k} = {v}" for k, v in diff.items()))
+    return out
+
+
+def variants_paragraph(runs: RunSet, variant_runs: dict[str, RunSet], flags: list[str]) -> str:
+    """The protocol variants: what each changed against the run, and how the rankings moved."""
+    if not variant_runs:
+        return ""
+    items = []
+    for name, rs in variant_runs.items():
+        m = rs.manifests[0] if rs.manifests else {}
+        base = runs.manifest_for(str(m.get("task")))
+        changed = _changed(base.get("metrics") or {}, m.get("metrics") or {})
+        changed += _changed(base.get("explainers") or {}, m.get("explainers") or {})
+        items.append(
+            f"`{name}` re-scored {', '.join(sorted(set(rs.records['metric'])))} for "
+            f"{', '.join(sorted(set(rs.records['explainer'])))} on {', '.join(sorted(set(rs.records['model'])))}"
+            f" with {'; '.join(changed) if changed else 'the same settings'}"
+        )
+    text = (
+        f"We re-ran the protocol in {_plural(len(variant_runs), 'variant')}, each with its own settings over the "
+        "task's: " + "; ".join(items) + ". For every variant, block and column we give Kendall's tau between the "
+        "ranking of the real methods in the run and in the variant, and flag a ranking as flipped when its top "
+        "method changes or tau ≤ 0."
+    )
+    return text + (f" {_plural(len(flags), 'flag')} raised (listed with the tables)." if flags else " No flag raised.")
+
+
 def methods_text(
-    runs: RunSet, summary: Summary, headline: Column | None, bands: dict[str, list[str]]
+    runs: RunSet,
+    summary: Summary,
+    headline: Column | None,
+    bands: dict[str, list[str]],
+    variant_runs: dict[str, RunSet] | None = None,
+    variant_flags: list[str] | None = None,
 ) -> tuple[str, Citations]:
     cites = Citations()
     tasks = list(dict.fromkeys(t for t, _ in summary.blocks))
@@ -422,6 +461,8 @@ def methods_text(
     user_masks = any((m.get("data") or {}).get("pack") for m in runs.manifests)
     out += ["## Metrics", "", metrics_paragraph(summary.columns, metric_settings, cites, user_masks), ""]
     out += ["## Statistics", "", statistics_paragraph(summary, headline, cites), ""]
+    if variant_runs:
+        out += ["## Protocol variants", "", variants_paragraph(runs, variant_runs, variant_flags or []), ""]
     out += ["## What was left out", "", exclusions_paragraph(summary), ""]
     out += ["## Provenance", "", provenance(runs), ""]
     return "\n".join(out), cites

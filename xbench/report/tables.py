@@ -326,6 +326,56 @@ def rank_tables(summary: Summary) -> list[TableSpec]:
     return out
 
 
+def variant_tables(sensitivity: pd.DataFrame) -> list[TableSpec]:
+    """Protocol sensitivity: Kendall's tau between the run's ranking of the real methods and each variant's,
+    one table per task, rows variant / model, columns the metrics the variants re-scored."""
+    out = []
+    if sensitivity is None or sensitivity.empty:
+        return out
+    for task, g in sensitivity.groupby("task", sort=False):
+        cols = list(dict.fromkeys(g["column"]))
+        header = [(c.split(" (")[0], c.split(" (")[1].rstrip(")") if " (" in c else "") for c in cols]
+        rows = []
+        for (variant, model), r in g.groupby(["variant", "model"], sort=False):
+            by_col = r.set_index("column")
+            cells = []
+            for c in cols:
+                if c not in by_col.index:
+                    cells.append(TCell())
+                    continue
+                x = by_col.loc[c]
+                mark = "‡" if bool(x["flipped"]) else ""
+                if x["oracle_beats_random"] is False:
+                    mark += "§"
+                cells.append(
+                    TCell(fmt(float(x["kendall_tau"]), 2) or "n/a", f"({x['swapped_pairs']}/{x['pairs']})", mark)
+                )
+            rows.append((f"{variant} / {model}", cells))
+        caption = (
+            "Kendall's tau (tau-b) between the ranking of the real methods by their mean in the run and in each "
+            "protocol variant (1 = same order, -1 = reversed), with the number of method pairs whose order "
+            "swapped. ‡: the ranking flips (the top method changes, or tau ≤ 0). §: in the variant the oracle "
+            "no longer beats random on that column. A dash: the variant did not re-score that column."
+        )
+        out.append(
+            TableSpec(
+                slug("variants", str(task)),
+                f"{task}: protocol sensitivity",
+                caption,
+                header,
+                rows,
+                row_label="variant / model",
+            )
+        )
+    return out
+
+
+def flags_markdown(title: str, items: list[str]) -> str:
+    if not items:
+        return ""
+    return f"\n## {title}\n\n" + "\n".join(f"- {x}" for x in items) + "\n"
+
+
 def left_out_markdown(summary: Summary) -> str:
     """The document's own list of what the rankings leave out and why (empty when nothing is)."""
     if not summary.left_out:
@@ -466,6 +516,7 @@ _TEX_UNICODE = {
     "±": r"$\pm$",
     "†": r"\textsuperscript{\dag}",
     "‡": r"\textsuperscript{\ddag}",
+    "§": r"\textsuperscript{\S}",
     "<": r"$<$",
     ">": r"$>$",
 }
@@ -480,7 +531,9 @@ def tex_escape(text: str) -> str:
 
 
 def _tex_mark(mark: str) -> str:
-    return f"$^{{{mark}}}$" if mark else ""
+    if not mark:
+        return ""
+    return f"$^{{{mark}}}$" if set(mark) <= {"*"} else tex_escape(mark)
 
 
 def to_latex(t: TableSpec) -> str:

@@ -28,7 +28,7 @@ from xbench.errors import XbenchInputError
 from xbench.report import figures as F
 from xbench.report import tables as T
 from xbench.report.bib import render_bib
-from xbench.report.compare import Column, Summary, summarize
+from xbench.report.compare import Column, Summary, summarize, variant_sensitivity
 from xbench.report.load import RunSet, load_runs
 from xbench.report.methods import methods_text
 
@@ -439,6 +439,29 @@ def _stale_figures(folder: Path, written: set[Path]) -> list[Path]:
     )
 
 
+def find_variants(runs: RunSet, log: list[str]) -> dict[str, RunSet]:
+    """Protocol variants written beside the run folders (``DIR/variants/NAME/``), read as run sets by name."""
+    found: dict[str, list[Path]] = {}
+    for d in runs.dirs:
+        folder = Path(d) / "variants"
+        if folder.is_dir():
+            for sub in sorted(folder.iterdir()):
+                if (sub / "records.parquet").is_file() or (sub / "records.csv").is_file():
+                    found.setdefault(sub.name, []).append(sub)
+    out = {}
+    for name, dirs in found.items():
+        try:
+            out[name] = load_runs(dirs)
+        except XbenchInputError as exc:
+            log.append(f"variant {name}: not read ({exc})")
+    return out
+
+
+def summary_records(runs: RunSet, models: list[str] | None) -> pd.DataFrame:
+    r = runs.records
+    return r[r["model"].isin(models)] if models else r
+
+
 def write_report(
     run_dirs: Any,
     out_dir: str | Path | None = None,
@@ -489,10 +512,15 @@ def write_report(
             figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
             results = T.result_tables(summary)
             ranks = T.rank_tables(summary)
+            variant_runs = find_variants(runs, log)
+            sensitivity, variant_flags = variant_sensitivity(
+                summary_records(runs, models), {k: v.records for k, v in variant_runs.items()}, summary.explainers
+            )
+            ranks += T.variant_tables(sensitivity)
             concept_specs, notes = T.concept_tables(runs.concepts)
             log += notes
             T.number_tables(results + ranks + concept_specs)
-            methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs))
+            methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs), variant_runs, variant_flags)
             log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
     finally:
         mpl_logger.setLevel(mpl_level)
@@ -533,6 +561,9 @@ def write_report(
     ]
     pd.DataFrame(rank_rows).to_csv(out / "ranks.csv", index=False, float_format="%.12g")
     result.paths.append(out / "ranks.csv")
+    if len(sensitivity):
+        sensitivity.to_csv(out / "variants.csv", index=False, float_format="%.12g")
+        result.paths.append(out / "variants.csv")
     if runs.concepts is not None:
         runs.concepts.to_csv(out / "concepts.csv", index=False, float_format="%.12g")
         result.paths.append(out / "concepts.csv")
@@ -541,7 +572,8 @@ def write_report(
             "tables.md",
             "# xbench comparison tables\n\n"
             + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs)
-            + T.left_out_markdown(summary),
+            + T.left_out_markdown(summary)
+            + T.flags_markdown("Protocol sensitivity: rankings that flip", variant_flags),
         )
     if "tex" in fmts:
         write("tables.tex", T.LATEX_PREAMBLE_NOTE + "\n" + "\n".join(T.to_latex(t) for t in results + ranks))
