@@ -350,6 +350,7 @@ def summarize(
     groups = model_groups(manifests, [m for _, m in blocks])
     notes = _cell_notes(manifests)
     column_notes: dict[tuple[str, str, str, str], str] = {}
+    undefined_anchor: dict[str, list[str]] = {}
     rows: list[dict[str, Any]] = []
     grouped = records.groupby(["task", "model", "metric", "truth"], sort=False)
     for col in columns:
@@ -387,14 +388,17 @@ def summarize(
             )
             means = {e: cis[e].mean for e in names}
             anchors, anchor_why = stats.anchor_score(
-                np.array([means[e] for e in names]), means.get("random", np.nan), means.get("oracle", np.nan), hib
+                np.array([means[e] for e in names]),
+                means.get("random", np.nan),
+                means.get("oracle", np.nan),
+                None if col.info.family == "cost" else hib,  # controls cost next to nothing: no anchor for cost
             )
-            flags = control_flags(means, hib)
+            flags = control_flags(means, hib) if col.info.family != "cost" else []
             if flags:
                 column_notes.setdefault(key, "")
                 column_notes[key] = " ".join(x for x in [column_notes[key], *(f + "." for f in flags)] if x)
-            if anchor_why and any(e not in CONTROLS for e in names) and hib is not None:
-                log.append(f"{task}/{model} {col.label}: anchor score undefined ({anchor_why})")
+            if anchor_why and any(e not in CONTROLS for e in names) and hib is not None and col.info.family != "cost":
+                undefined_anchor.setdefault(f"{col.label} ({anchor_why})", []).append(f"{task}/{model}")
             for e, anchor in zip(names, anchors, strict=True):
                 ci = cis[e]
                 p_holm = cmp.p_holm.get(e, np.nan)
@@ -428,6 +432,8 @@ def summarize(
                         "higher_is_better": hib,
                     }
                 )
+    for what, where in undefined_anchor.items():
+        log.append(f"anchor score undefined for {what} on {', '.join(where)}")
     table = pd.DataFrame(rows, columns=SUMMARY_COLUMNS)
     rank_tests: dict[tuple[str, str, str], RankTest] = {}
     for group_name in (TORCH_GROUP, BLACK_BOX_GROUP):
