@@ -8,6 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pytest
 
 from xbench.report import write_report
 from xbench.report.compare import CONTROLS, summarize
@@ -186,3 +187,25 @@ def test_methods_text_names_settings_and_provenance(tmp_path):
     text = write_report([mass], tmp_path / "m2", formats="md", n_resamples=200, figures=False).out_dir / "methods.md"
     text = text.read_text()
     assert "the user's tile pack" in text and "what the scene generator drew" not in text
+
+
+def test_enough_seeds_make_the_seeds_the_units(tmp_path):
+    from scipy import stats
+
+    q = {k: QUALITY[k] for k in ("gradient", "grad-cam", "occlusion", "random", "oracle")}
+    many = fake_run(
+        tmp_path / "r", {"cnn": "cnn"}, q, seeds=range(8), n_tiles=10, metrics=(("mass-accuracy", "planted"),)
+    )
+    records, manifests = _load(many)
+    col = summarize(records, manifests, n_resamples=200).table.set_index("explainer")
+    # 3 methods, 3 pairs: the exact test can reject after Holm from 7 units on; 8 seeds are enough.
+    assert (col.loc[["gradient", "occlusion"], "test_unit"] == "seed").all()
+    seed_means = records.groupby(["seed", "explainer"])["value"].mean().unstack()
+    # Reference: scipy.stats.wilcoxon on the seeds' means (independent training runs as units).
+    ref = stats.wilcoxon(seed_means["grad-cam"], seed_means["gradient"]).pvalue
+    assert col.loc["gradient", "p_value"] == pytest.approx(ref, rel=1e-12) and col.loc["gradient", "test_n"] == 8
+    few = fake_run(
+        tmp_path / "f", {"cnn": "cnn"}, q, seeds=range(3), n_tiles=10, metrics=(("mass-accuracy", "planted"),)
+    )
+    records, manifests = _load(few)
+    assert (summarize(records, manifests, n_resamples=200).table.query("role == 'method'")["test_unit"] == "tile").all()

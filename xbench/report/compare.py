@@ -7,13 +7,15 @@ but never enter the best-selection, the paired tests or the rank statistics. Eve
 between them, (x - random) / (oracle - random), and a column says when a control beats real methods.
 
 Units of analysis. Intervals: a hierarchical bootstrap that resamples model seeds and then tiles within each
-drawn seed (with one seed, the BCa bootstrap over tiles). Paired tests within a column: each tile's value is
-averaged over the seeds, tiles are the units, so a p-value is conditional on the trained network(s) of that
-block (a handful of seeds is too few units for a signed-rank test). All pairs of real methods are tested
-with the Wilcoxon signed-rank test and Holm's correction over all pairs (Benavoli, Corani, Mangili 2016),
-or, with a comparator declared before the run (``against``), that method against each other one with Holm
-over those comparisons. Ranks across blocks: one ranking per model family (torch models, black boxes), over
-task x model x seed blocks (independently trained networks; blocks of one task share its test tiles).
+drawn seed (with one seed, the BCa bootstrap over tiles). Paired tests within a column: with enough model
+seeds for the exact test to reject after Holm, the seeds' means are the units (independent training runs);
+otherwise each tile's value is averaged over the seeds and tiles are the units, so a p-value is conditional on
+the trained network(s) of that block (a handful of seeds is too few units for a signed-rank test). All pairs
+of real methods are tested with the Wilcoxon signed-rank test and Holm's correction over all pairs (Benavoli,
+Corani, Mangili 2016), or, with a comparator declared before the run (``against``), that method against each
+other one with Holm over those comparisons. Ranks across blocks: one ranking per model family (torch models,
+black boxes), over task x model x seed blocks (independently trained networks; blocks of one task share its
+test tiles).
 """
 
 from __future__ import annotations
@@ -109,6 +111,7 @@ SUMMARY_COLUMNS = [
     "explainer",
     "role",
     "unit",
+    "test_unit",
     "n",
     "n_seeds",
     "mean",
@@ -381,11 +384,20 @@ def summarize(
                 reason = notes.get((task, model, f"{col.metric}/{col.truth}"), "no defined value was recorded")
                 column_notes[key] = f"{col.label} has no value for model {model}: {reason}"
             methods = [e for e in names if e not in CONTROLS]
-            cmp = (
-                compare_column(wide, methods, hib, alpha, against)
-                if unit == "tile"
-                else compare_column(wide.iloc[:0], [], None, alpha)
-            )
+            test_unit = "tile"
+            if unit == "tile":
+                # Independent training runs are the better unit: used when there are enough seeds for the
+                # exact test to reject after Holm; else tiles, and the p-value is conditional on the networks.
+                k = len(methods)
+                m = k - 1 if against in methods else k * (k - 1) // 2
+                per_seed = group[group["tile"] >= 0].groupby(["seed", "explainer"])["value"].mean().unstack()
+                if k >= 2 and len(per_seed) >= stats.min_pairs_for_test(m, alpha):
+                    test_unit = "seed"
+                    cmp = compare_column(per_seed, methods, hib, alpha, against)
+                else:
+                    cmp = compare_column(wide, methods, hib, alpha, against)
+            else:
+                cmp = compare_column(wide.iloc[:0], [], None, alpha)
             means = {e: cis[e].mean for e in names}
             anchors, anchor_why = stats.anchor_score(
                 np.array([means[e] for e in names]),
@@ -413,6 +425,7 @@ def summarize(
                         "explainer": e,
                         "role": "control" if e in CONTROLS else "method",
                         "unit": unit,
+                        "test_unit": test_unit if unit == "tile" else "",
                         "n": ci.n,
                         "n_seeds": int(n_seeds.get(e, 0)),
                         "mean": ci.mean,

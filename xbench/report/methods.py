@@ -268,6 +268,9 @@ def statistics_paragraph(summary: Summary, headline: Column | None, cites: Citat
     n_seeds = sorted({len(v) for v in summary.seeds.values()})
     multi = max(n_seeds or [1]) > 1
     n_percentile = int((t["ci_method"] == "percentile").sum())
+    column_keys = ["task", "model", "metric", "truth"]
+    n_tested = t[t["test_unit"].isin(["tile", "seed"])].groupby(column_keys).ngroups
+    n_seed_tested = t[t["test_unit"] == "seed"].groupby(column_keys).ngroups
     text = (
         "For every task, model, metric and explainer we report the mean"
         + (f" (n = {int(tiles.min())} to {int(tiles.max())} seed × tile values)" if len(tiles) else "")
@@ -322,9 +325,15 @@ def statistics_paragraph(summary: Summary, headline: Column | None, cites: Citat
             "possible."
         )
     text += (
-        " The unit of these tests is the tile, each tile's value averaged over the model seeds: the p-values are "
-        "conditional on the trained network(s) of each task × model block (seeds are too few units for a "
-        "signed-rank test), and hold for these test tiles, not for a new training run."
+        " The units of these tests are independent training runs (each seed's mean over tiles) where a block "
+        "has enough model seeds for the exact test to reject; otherwise the tiles, each tile's value averaged "
+        "over the seeds: then the p-values are conditional on the trained network(s) of each task × model block "
+        "and hold for these test tiles, not for a new training run"
+        + (
+            f" ({n_seed_tested} of {n_tested} tested columns use seeds)."
+            if n_seed_tested
+            else " (all tested columns here use tiles)."
+        )
     )
     if any(c.info.by_magnitude for c in summary.columns):
         text += (

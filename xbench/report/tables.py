@@ -124,6 +124,7 @@ def result_tables(summary: Summary) -> list[TableSpec]:
                                 "min_n": int(methods["min_n_for_test"].max()),
                                 "n": int(methods["test_n"].max()),
                                 "comparator": str(methods["comparator"].iloc[0]),
+                                "unit": str(methods["test_unit"].iloc[0]),
                             }
                         )
                 percentile += int((sub["ci_method"] == "percentile").sum())
@@ -229,19 +230,29 @@ def _result_caption(
         if against:
             parts.append(
                 f"Marks: two-sided Wilcoxon signed-rank test of each method against `{against}` (declared before the "
-                f"run), paired by tile, Holm-corrected over the {m} comparisons of the column: * p < 0.05, "
+                f"run), paired by unit, Holm-corrected over the {m} comparisons of the column: * p < 0.05, "
                 "** p < 0.01, *** p < 0.001."
             )
         else:
             parts.append(
                 "Bold: the best real method and every method that cannot be told apart from it. Marks: its "
-                "difference from the best, two-sided Wilcoxon signed-rank test paired by tile, Holm-corrected over "
+                "difference from the best, two-sided Wilcoxon signed-rank test paired by unit, Holm-corrected over "
                 f"all {m} pairs of real methods in the column: * p < 0.05, ** p < 0.01, *** p < 0.001."
             )
-        parts.append(
-            "Tiles are the units (each tile's value averaged over the seeds): p-values are conditional on the "
-            + ("trained network of this block." if len(seeds) <= 1 else f"{len(seeds)} trained networks of this block.")
-        )
+        if any(t["unit"] == "tile" for t in tests):
+            parts.append(
+                "Tiles are the units (each tile's value averaged over the seeds): p-values are conditional on the "
+                + (
+                    "trained network of this block."
+                    if len(seeds) <= 1
+                    else f"{len(seeds)} trained networks of this block."
+                )
+            )
+        if any(t["unit"] == "seed" for t in tests):
+            parts.append(
+                f"In {', '.join(t['label'] for t in tests if t['unit'] == 'seed')} the units are the "
+                f"{len(seeds)} model seeds (each seed's mean over tiles): independent training runs."
+            )
         untestable = [t for t in tests if t["n"] < t["min_n"]]
         if untestable:
             parts.append(
@@ -312,6 +323,14 @@ def rank_tables(summary: Summary) -> list[TableSpec]:
                     else ""
                 )
             )
+            not_drawn = [
+                f"{t.column.label} ({fmt_p(t.friedman.p_value)})" for t in ft if not t.rejects and len(t.blocks) >= 2
+            ]
+            if not_drawn:
+                caption += (
+                    f" The Friedman test does not reject at α = {alpha:g} for {', '.join(not_drawn)}: the average "
+                    "ranks there do not show that any method differs, and no critical-difference diagram is drawn."
+                )
             header = [(t.column.label.split(" (")[0], "" if t.column.truth == "none" else t.column.truth) for t in ft]
             out.append(
                 TableSpec(
