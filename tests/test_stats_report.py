@@ -209,3 +209,14 @@ def test_enough_seeds_make_the_seeds_the_units(tmp_path):
     )
     records, manifests = _load(few)
     assert (summarize(records, manifests, n_resamples=200).table.query("role == 'method'")["test_unit"] == "tile").all()
+
+
+def test_two_models_one_black_box(tmp_path):
+    # The forest cannot run gradient methods; the torch model's ranking still holds all five real methods.
+    run = fake_run(tmp_path / "r", {"cnn": "cnn", "forest": "forest"}, QUALITY, seeds=(0, 1, 2))
+    records, manifests = _load(run)
+    s = summarize(records, manifests, n_resamples=200)
+    torch = s.rank_tests[("torch models", "mass-accuracy", "planted")]
+    assert torch.explainers == GRADIENT_METHODS + BLACK_BOX_METHODS and not torch.excluded
+    assert len(torch.blocks) == 3 and np.isfinite(torch.friedman.p_value)
+    assert s.rank_tests[("black-box models", "mass-accuracy", "planted")].explainers == BLACK_BOX_METHODS
