@@ -99,7 +99,7 @@ def test_controls_never_compete_and_anchor_their_columns(tmp_path):
     r, o = col.loc["random", "mean"], col.loc["oracle", "mean"]
     assert np.isclose((r - r) / (o - r), 0) and np.isclose(col.loc["random", "anchor"], 0.0)
     assert np.isclose(col.loc["oracle", "anchor"], 1.0)
-    note = s.column_notes[("t", "cnn", "mass-accuracy", "planted")]
+    note = s.control_notes[("t", "cnn", "mass-accuracy", "planted")]
     assert "`edges` beats 2 of 5 methods on this column: the metric rewards edge-like maps" in note
 
 

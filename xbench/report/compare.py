@@ -89,7 +89,8 @@ class Summary:
     settings: dict[str, Any]
     seeds: dict[tuple[str, str], list[int]]
     log: list[str] = field(default_factory=list)
-    column_notes: dict[tuple[str, str, str, str], str] = field(default_factory=dict)  # block x column -> text
+    column_notes: dict[tuple[str, str, str, str], str] = field(default_factory=dict)  # block x column: no value, why
+    control_notes: dict[tuple[str, str, str, str], str] = field(default_factory=dict)  # controls beating methods
     model_groups: dict[str, str] = field(default_factory=dict)  # model -> group
     left_out: list[str] = field(default_factory=list)  # sentences for the document: what is left out, why
 
@@ -353,6 +354,7 @@ def summarize(
     groups = model_groups(manifests, [m for _, m in blocks])
     notes = _cell_notes(manifests)
     column_notes: dict[tuple[str, str, str, str], str] = {}
+    control_notes: dict[tuple[str, str, str, str], str] = {}
     undefined_anchor: dict[str, list[str]] = {}
     rows: list[dict[str, Any]] = []
     grouped = records.groupby(["task", "model", "metric", "truth"], sort=False)
@@ -407,8 +409,7 @@ def summarize(
             )
             flags = control_flags(means, hib) if col.info.family != "cost" else []
             if flags:
-                column_notes.setdefault(key, "")
-                column_notes[key] = " ".join(x for x in [column_notes[key], *(f + "." for f in flags)] if x)
+                control_notes[key] = " ".join(f + "." for f in flags)
             if anchor_why and any(e not in CONTROLS for e in names) and hib is not None and col.info.family != "cost":
                 undefined_anchor.setdefault(f"{col.label} ({anchor_why})", []).append(f"{task}/{model}")
             for e, anchor in zip(names, anchors, strict=True):
@@ -469,6 +470,7 @@ def summarize(
     }
     summary = Summary(table, columns, explainers, blocks, rank_tests, settings, seeds, log)
     summary.column_notes = column_notes
+    summary.control_notes = control_notes
     summary.model_groups = groups
     summary.left_out = left_out
     return summary

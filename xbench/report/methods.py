@@ -298,6 +298,15 @@ def statistics_paragraph(summary: Summary, headline: Column | None, cites: Citat
         "between them, (x - random) / (oracle - random) (0 = random, 1 = oracle), undefined where the oracle "
         "does not beat random; a column says when `edges` or `random` beats real methods."
     )
+    notes = list(summary.control_notes.values())
+    n_columns = t[t["role"] == "method"].groupby(["task", "model", "metric", "truth"]).ngroups
+    if notes:
+        n_edges = sum("`edges` beats" in x for x in notes)
+        n_random = sum("`random` beats" in x for x in notes)
+        text += (
+            f" Here `edges` beats at least one real method in {n_edges} and `random` in {n_random} of the "
+            f"{n_columns} task × model × metric columns (named in the tables)."
+        )
     against = s.get("against")
     if against:
         text += (

@@ -130,7 +130,10 @@ def result_tables(summary: Summary) -> list[TableSpec]:
                 percentile += int((sub["ci_method"] == "percentile").sum())
                 note = summary.column_notes.get((task, model, c.metric, c.truth))
                 if note:
-                    col_notes.append(f"{c.label}: {note}" if not note.startswith(c.label) else note)
+                    col_notes.append(note)
+                flag = summary.control_notes.get((task, model, c.metric, c.truth))
+                if flag:
+                    col_notes.append(f"{c.label}: {flag}")
                 for e in explainers:
                     if e not in sub.index or not np.isfinite(sub.at[e, "mean"]):
                         cells[e].append(TCell())
