@@ -408,10 +408,11 @@ def summarize(
                 None if col.info.family == "cost" else hib,  # controls cost next to nothing: no anchor for cost
             )
             flags = control_flags(means, hib) if col.info.family != "cost" else []
-            if flags:
-                control_notes[key] = " ".join(f + "." for f in flags)
             if anchor_why and any(e not in CONTROLS for e in names) and hib is not None and col.info.family != "cost":
                 undefined_anchor.setdefault(f"{col.label} ({anchor_why})", []).append(f"{task}/{model}")
+                flags.insert(0, f"a undefined: {anchor_why}")
+            if flags:
+                control_notes[key] = " ".join(f + "." for f in flags)
             for e, anchor in zip(names, anchors, strict=True):
                 ci = cis[e]
                 p_holm = cmp.p_holm.get(e, np.nan)
@@ -582,16 +583,13 @@ def variant_sensitivity(
         r = records[~records["explainer"].isin(CONTROLS)]
         return r.groupby(["task", "model", "metric", "truth", "explainer"])["value"].mean()
 
-    def control_gap(records: pd.DataFrame, key: tuple, hib: bool) -> float:
-        sel = records.set_index(["task", "model", "metric", "truth"]).sort_index()
+    def control_gap(control_means: pd.Series, key: tuple, hib: bool) -> float:
+        """(oracle - random) in the metric's direction, NaN when a control is missing."""
         try:
-            sub = sel.loc[key]
+            oracle, rnd = control_means.loc[(*key, "oracle")], control_means.loc[(*key, "random")]
         except KeyError:
             return np.nan
-        m = sub.groupby("explainer")["value"].mean()
-        if "oracle" not in m or "random" not in m:
-            return np.nan
-        return float((m["oracle"] - m["random"]) * (1 if hib else -1))
+        return float((oracle - rnd) * (1 if hib else -1))
 
     def prepared(records: pd.DataFrame) -> pd.DataFrame:
         mag = [m for m in records["metric"].unique() if metric_info(m).by_magnitude]
@@ -607,6 +605,8 @@ def variant_sensitivity(
     for name, records in variants.items():
         records = prepared(records)
         var_means = means(records)
+        controls = records[records["explainer"].isin(("oracle", "random"))]
+        control_means = controls.groupby(["task", "model", "metric", "truth", "explainer"])["value"].mean()
         keys = var_means.index.droplevel("explainer").unique()
         for key in keys:
             info = metric_info(key[2])
@@ -625,7 +625,7 @@ def variant_sensitivity(
             ii, jj = np.triu_indices(len(common), 1)
             swapped = int(np.sum(np.sign(x[ii] - x[jj]) * np.sign(y[ii] - y[jj]) < 0))
             top_a, top_b = common[int(np.argmax(sign * x))], common[int(np.argmax(sign * y))]
-            gap = control_gap(records, key, hib)
+            gap = control_gap(control_means, key, hib)
             flipped = bool(top_a != top_b or not (np.isfinite(tau) and tau > 0))
             label = Column(key[2], key[3], info).label
             rows.append(
