@@ -461,7 +461,7 @@ def test_latex_table_structure(report):
     n_tex = report.n_tables - md.count(": concept reports")  # concept lists: Markdown and HTML only
     assert tex.count("\\begin{table}") == tex.count("\\end{table}") == n_tex
     assert tex.count("\\toprule") == tex.count("\\bottomrule") == n_tex
-    assert "\\textbf{" in tex and "Wilcoxon signed-rank" in tex and "BCa bootstrap" in tex
+    assert "\\textbf{" in tex and "Wilcoxon signed-rank" in tex and "hierarchical bootstrap" in tex
     assert "2 model seeds (0, 1)" in tex
 
 
@@ -484,45 +484,66 @@ def test_table_numbers_equal_scipy_on_the_records(runs, report):
     block = summary[
         (summary.task == task) & (summary.model == model) & (summary.metric == metric) & (summary.truth == truth)
     ].set_index("explainer")
-    best = wide.mean().idxmax()
-    assert best == "oracle" and bool(block.loc[best, "best"])
-    ps = {}
-    for e in wide.columns:
-        v = wide[e].dropna().to_numpy()
-        assert block.loc[e, "mean"] == pytest.approx(v.mean(), rel=1e-6)
-        # Reference: scipy.stats.bootstrap, BCa, same resamples and seed as the report used.
-        ci = stats.bootstrap((v,), np.mean, n_resamples=500, method="BCa", rng=np.random.default_rng(0))
-        assert block.loc[e, "ci_low"] == pytest.approx(ci.confidence_interval.low, rel=1e-5)
-        assert block.loc[e, "ci_high"] == pytest.approx(ci.confidence_interval.high, rel=1e-5)
-        if e != best:
-            pair = wide[[best, e]].dropna()
-            # Reference: scipy.stats.wilcoxon on the seed-averaged per-tile values, paired by tile.
-            ps[e] = stats.wilcoxon(pair[best], pair[e]).pvalue
-            assert block.loc[e, "p_value"] == pytest.approx(ps[e], rel=1e-9)
-    names = list(ps)
-    adj = holm([ps[e] for e in names])
-    for e, a in zip(names, adj, strict=True):
-        assert block.loc[e, "p_holm"] == pytest.approx(a, rel=1e-9)
-    assert block.loc["random", "mark"] == "***"
+    methods = [e for e in EXPLAINERS if e not in ("random", "oracle")]
+    best = wide[methods].mean().idxmax()  # controls never compete: the oracle is not "best"
+    assert best == "grad-cam" and bool(block.loc[best, "best"]) and not block.loc["oracle", "best"]
+    sub = records[(records.task == task) & (records.model == model) & (records.metric == metric)]
+    sub = sub[sub.truth == truth]
+    for e in EXPLAINERS:
+        seed_means = sub[sub.explainer == e].groupby("seed")["value"].mean()  # NaN dropped per seed
+        assert block.loc[e, "mean"] == pytest.approx(seed_means.mean(), rel=1e-9)
+    # All pairs of real methods, Holm over all 6 pairs (Holm 1979); reference: scipy.stats.wilcoxon paired by
+    # tile on the seed-averaged values.
+    pairs = [(a, b) for i, a in enumerate(methods) for b in methods[i + 1 :]]
+    raw = []
+    for a, b in pairs:
+        pair = wide[[a, b]].dropna()
+        raw.append(stats.wilcoxon(pair[a], pair[b]).pvalue)
+    adj = dict(zip(pairs, holm(raw), strict=True))
+    for e in methods:
+        if e == best:
+            continue
+        key = (best, e) if (best, e) in adj else (e, best)
+        assert block.loc[e, "p_holm"] == pytest.approx(adj[key], rel=1e-6)
+        assert block.loc[e, "p_value"] == pytest.approx(raw[pairs.index(key)], rel=1e-6)
+    assert pd.isna(block.loc["random", "mark"]) or block.loc["random", "mark"] == ""
+    assert np.isnan(block.loc["random", "p_holm"]) and np.isnan(block.loc["oracle", "p_holm"])
+    # Anchor: (x - random) / (oracle - random) with the table's own means.
+    r, o = block.loc["random", "mean"], block.loc["oracle", "mean"]
+    assert block.loc["gradient", "anchor"] == pytest.approx((block.loc["gradient", "mean"] - r) / (o - r))
+
+
+def test_one_seed_interval_equals_scipy_bootstrap(tmp_path):
+    run = make_run(tmp_path / "one", "t", ["cnn"], [0], n_tiles=20, artifacts=False, extras=False)
+    write_report([run], tmp_path / "out", formats="md", n_resamples=500, figures=False)
+    summary = pd.read_csv(tmp_path / "out" / "summary.csv")
+    rec = pd.read_parquet(run / "records.parquet")
+    row = summary[(summary.metric == "deletion-auc") & (summary.explainer == "gradient")].iloc[0]
+    v = rec[(rec.metric == "deletion-auc") & (rec.explainer == "gradient")]["value"].dropna().to_numpy()
+    # Reference: scipy.stats.bootstrap, BCa, same resamples and seed as the report used.
+    ci = stats.bootstrap((v,), np.mean, n_resamples=500, method="BCa", rng=np.random.default_rng(0))
+    assert (row.ci_low, row.ci_high) == pytest.approx((ci.confidence_interval.low, ci.confidence_interval.high))
 
 
 def test_rank_statistics_equal_scipy_friedman(runs, report):
     records = pd.concat([pd.read_parquet(r / "records.parquet") for r in runs])
     ranks = pd.read_csv(report.out_dir / "ranks.csv")
     r = ranks[(ranks.metric == "deletion-auc")]
-    means = []
-    for task, model in (("orrin-roads", "cnn"), ("orrin-roads", "resnet"), ("orrin-clearcuts", "cnn")):
-        means.append(_seed_averaged(records, task, model, "deletion-auc", "none").mean()[EXPLAINERS])
-    scores = np.array(means)
-    # Reference: scipy.stats.friedmanchisquare over the 3 task x model blocks.
+    methods = [e for e in EXPLAINERS if e not in ("random", "oracle")]
+    assert set(r["explainer"]) == set(methods)  # controls never enter the Friedman inputs
+    sub = records[(records.metric == "deletion-auc")]
+    blocks = sub.groupby(["task", "model", "seed", "explainer"])["value"].mean().unstack()[methods]
+    scores = blocks.to_numpy()
+    assert scores.shape == (6, 4)  # task x model x seed blocks
+    # Reference: scipy.stats.friedmanchisquare over the 6 task x model x seed blocks.
     ref = stats.friedmanchisquare(*scores.T)
     assert r["friedman_chi2"].iloc[0] == pytest.approx(ref.statistic, rel=1e-5)
     assert r["friedman_p"].iloc[0] == pytest.approx(ref.pvalue, rel=1e-4)
     # Average ranks (lower deletion AUC is better, rank 1 = best), scipy.stats.rankdata.
     avg = stats.rankdata(scores, axis=1).mean(axis=0)
-    got = r.set_index("explainer").loc[EXPLAINERS, "avg_rank"].to_numpy()
+    got = r.set_index("explainer").loc[methods, "avg_rank"].to_numpy()
     np.testing.assert_allclose(got, avg, rtol=1e-5)
-    k, n = len(EXPLAINERS), 3
+    k, n = len(methods), 6
     q = stats.studentized_range.ppf(0.95, k, np.inf) / np.sqrt(2)
     assert r["cd"].iloc[0] == pytest.approx(q * np.sqrt(k * (k + 1) / (6 * n)), rel=1e-4)
 
@@ -530,10 +551,14 @@ def test_rank_statistics_equal_scipy_friedman(runs, report):
 def test_markdown_tables_mark_best_and_significance(report):
     md = (report.out_dir / "tables.md").read_text()
     assert "| Explainer |" in md and "**" in md
-    oracle = next(line for line in md.splitlines() if line.startswith("| oracle |"))
-    assert oracle.split("|")[2].strip().startswith("**")  # oracle is best at mass-accuracy (planted)
-    rnd = next(line for line in md.splitlines() if line.startswith("| random |"))
-    assert "\\*\\*\\*" in rnd
+    gradcam = next(line for line in md.splitlines() if line.startswith("| grad-cam |"))
+    assert gradcam.split("|")[2].strip().startswith("**")  # best real method at mass-accuracy (planted)
+    gradient = next(line for line in md.splitlines() if line.startswith("| gradient |"))
+    assert "\\*\\*\\*" in gradient
+    for control in ("random", "oracle"):  # anchors: never bold, never marked, no anchor score
+        line = next(x for x in md.splitlines() if x.startswith(f"| {control} |"))
+        assert "**" not in line and "\\*" not in line and "(a " not in line
+    assert "(a 0." in gradcam
     assert "per seed†" in md  # 'seconds' has one value per seed
 
 

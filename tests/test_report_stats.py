@@ -1,4 +1,4 @@
-"""The report's statistics against published values, hand computations and scipy.stats."""
+"""The shared statistics module (xbench.stats) against published values, hand computations and scipy.stats."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from xbench.report import stats as S
+from xbench import stats as S
 
 # Demsar (2006), JMLR 7, Table 5(a): critical values q_0.05 of the two-tailed Nemenyi test, k = 2..10
 # (values from memory of the paper's table).

@@ -128,7 +128,7 @@ def _variant(old: str, new: str, count: int = 1) -> str:
         ("epochs = 16", "epochs = 0", "models[0].epochs"),  # bad value
         ('name = "resnet"', 'name = "cnn"', "models[1].name"),  # duplicate name
         ("n_trees = 200", 'n_trees = 200\nmax_features = "half"', "models[3].max_features"),
-        ("seeds = [0, 1]", "seeds = [0, -1]", "seeds[1]"),
+        ("seeds = [0, 1, 2]", "seeds = [0, -1, 2]", "seeds[1]"),
         ("explain_tiles = 64", "explain_tiles = 5000", "run.explain_tiles"),  # > test tiles
         ("explain_tiles = 64", "explain_tiles = 64\nworkers = 2", "run.workers"),  # unknown run key
         ("gallery_tiles = 8", "gallery_tiles = 0", "run.gallery_tiles"),

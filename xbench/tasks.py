@@ -38,7 +38,7 @@ MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-call
 # is loaded with torch.load(weights_only=True); for `user-callable` it returns f(images) -> class scores.
 USER_KINDS = ("user-torch", "user-callable")
 
-TOP_KEYS = {"name", "description", "seeds", "data", "models", "explainers", "metrics", "run"}
+TOP_KEYS = {"name", "description", "seeds", "data", "models", "explainers", "metrics", "run", "variants"}
 DATA_KEYS = {
     "recipe",
     "size",
@@ -141,6 +141,8 @@ class Task:
     class_driving_types: dict[int, list[str]]
     lookalike_types: list[str]
     label_rule: Any = None
+    variants: list[Variant] = field(default_factory=list)  # protocol variants ([[variants]])
+    variant: str | None = None  # the variant this task object runs (apply_variant), None for the task itself
 
     def model_spec(self, name: str) -> ModelSpec:
         for spec in self.models:
@@ -381,6 +383,92 @@ def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
         class_driving_types=driving,
         lookalike_types=lookalikes,
         label_rule=rule,
+        variants=parse_variants(doc.get("variants", []), explainers, metrics, [m.name for m in models], f),
+    )
+
+
+# ---------------------------------------------------------------------------------------------------
+# protocol variants
+
+
+@dataclass(frozen=True)
+class Variant:
+    """A protocol variant: the same task run again with some explainer or metric settings overridden, on a
+    subset of its models, explainers and metrics (all when not given). Each runs into ``OUT/variants/NAME/``."""
+
+    name: str
+    description: str
+    explainer_settings: dict[str, dict[str, Any]]
+    metric_settings: dict[str, dict[str, Any]]
+    models: list[str] | None = None
+    explainers: list[str] | None = None
+    metrics: list[str] | None = None
+
+
+VARIANT_KEYS = {"name", "description", "models", "explainers", "metrics", "explainer_settings", "metric_settings"}
+
+
+def parse_variants(raw: Any, explainers: list[str], metrics: list[str], models: list[str], f: str) -> list[Variant]:
+    """``[[variants]]`` tables: ``name`` (letters, digits, '-' and '_'), optional ``description``, optional
+    subsets ``models`` / ``explainers`` / ``metrics`` of the task's lists, and ``[variants.explainer_settings.KEY]``
+    / ``[variants.metric_settings.KEY]`` tables that override the task's settings for that variant."""
+    _expect(raw, (list,), f"{f}: variants", "an array of tables ([[variants]])")
+    out: list[Variant] = []
+    for i, table in enumerate(raw):
+        w = f"{f}: variants[{i}]"
+        _expect(table, (dict,), w, "a table")
+        _unknown(table, VARIANT_KEYS, w)
+        if "name" not in table:
+            raise XbenchInputError(f"{w}.name", "missing required key")
+        name = _expect(table["name"], (str,), f"{w}.name", "a string")
+        if not name or not all(c.isalnum() or c in "-_" for c in name):
+            raise XbenchInputError(f"{w}.name", "bad variant name", expected="letters, digits, '-' or '_'", found=name)
+        if name in {v.name for v in out}:
+            raise XbenchInputError(f"{w}.name", "duplicate variant name", found=name)
+        subsets: dict[str, list[str] | None] = {}
+        for key, allowed in (("models", models), ("explainers", explainers), ("metrics", metrics)):
+            if key not in table:
+                subsets[key] = None
+                continue
+            chosen = _str_list(table[key], f"{w}.{key}")
+            bad = [c for c in chosen if c not in allowed]
+            if bad:
+                raise XbenchInputError(f"{w}.{key}", "not in the task", expected=", ".join(allowed), found=bad[0])
+            subsets[key] = chosen
+        settings = {}
+        for key, allowed in (("explainer_settings", explainers), ("metric_settings", metrics)):
+            sec = _expect(table.get(key, {}), (dict,), f"{w}.{key}", "a table of tables")
+            settings[key] = {}
+            for k, t in sec.items():
+                if k not in allowed:
+                    raise XbenchInputError(f"{w}.{key}.{k}", "not in the task", expected=", ".join(allowed), found=k)
+                settings[key][k] = dict(_expect(t, (dict,), f"{w}.{key}.{k}", "a table"))
+        description = _expect(table.get("description", ""), (str,), f"{w}.description", "a string")
+        out.append(Variant(name, description, settings["explainer_settings"], settings["metric_settings"], **subsets))
+    return out
+
+
+def apply_variant(task: Task, name: str) -> Task:
+    """The task with a variant's settings merged over its own (the variant's subsets are the run's filters)."""
+    from dataclasses import replace
+
+    variant = next((v for v in task.variants if v.name == name), None)
+    if variant is None:
+        raise XbenchInputError(
+            f"{task.path}: variants",
+            "no variant of that name",
+            expected=", ".join(v.name for v in task.variants),
+            found=name,
+        )
+
+    def merge(base: dict[str, dict[str, Any]], over: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+        return {k: {**base.get(k, {}), **over.get(k, {})} for k in dict.fromkeys([*base, *over])}
+
+    return replace(
+        task,
+        explainer_settings=merge(task.explainer_settings, variant.explainer_settings),
+        metric_settings=merge(task.metric_settings, variant.metric_settings),
+        variant=name,
     )
 
 

@@ -30,6 +30,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--resamples", type=int, default=2000, help="bootstrap resamples (default: 2000)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default: 0)")
     parser.add_argument("--alpha", type=float, default=0.05, help="level of the Nemenyi CD (default: 0.05)")
+    parser.add_argument(
+        "--against",
+        metavar="KEY",
+        default=None,
+        help="a real method declared before the run as the comparator of every paired test, Holm over its "
+        "comparisons (default: all pairs of real methods, Holm over all pairs)",
+    )
+    parser.add_argument(
+        "--models",
+        metavar="LIST",
+        default=None,
+        help="comma-separated models whose task x model blocks enter the report (default: all)",
+    )
     parser.add_argument("--no-figures", action="store_true", help="tables and text only")
 
 
@@ -51,6 +64,8 @@ def run(args: argparse.Namespace) -> int:
         seed=args.seed,
         alpha=args.alpha,
         figures=not args.no_figures,
+        against=args.against,
+        models=[m.strip() for m in args.models.split(",") if m.strip()] if args.models else None,
     )
     print(summary)
     for path in summary.paths:

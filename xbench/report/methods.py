@@ -15,10 +15,11 @@ import numpy as np
 from xbench.report.bib import MODEL_KEYS, STATISTICS_KEYS, keys_for_citation
 from xbench.report.compare import Column, Summary
 from xbench.report.load import RunSet
-from xbench.report.meta import explainer_info
-from xbench.report.stats import nemenyi_q
+from xbench.report.meta import explainer_defaults, explainer_info, metric_defaults
+from xbench.stats import min_pairs_for_test, nemenyi_q
 
 CONTROLS = {"random", "edges", "oracle"}
+USER_KINDS = {"user-torch": "a torch module", "user-callable": "a black-box callable"}
 
 
 @dataclass
@@ -58,10 +59,12 @@ def _join(items: list[str]) -> str:
     return ", ".join(items[:-1]) + " and " + items[-1]
 
 
-def _settings(settings: Any) -> str:
-    if not isinstance(settings, dict) or not settings:
-        return "default settings"
-    return ", ".join(f"{k} = {v}" for k, v in settings.items())
+def _settings(settings: Any, defaults: dict[str, Any] | None = None) -> str:
+    """Every setting that changes values: the registry's defaults overridden by the task's settings."""
+    merged = {**(defaults or {}), **(settings if isinstance(settings, dict) else {})}
+    if not merged:
+        return "no settings"
+    return ", ".join(f"{k} = {v}" for k, v in merged.items())
 
 
 def _mean_sd(values: list[float]) -> str:
@@ -161,11 +164,22 @@ def models_paragraph(task: str, m: dict[str, Any], cites: Citations) -> str:
         items.append(desc)
     seed_text = f"{_plural(len(seeds), 'seed')} ({', '.join(map(str, seeds))})"
     spread = " (mean ± sd over seeds)" if len(seeds) > 1 else ""
-    return (
-        f"On task *{task}* we trained {_plural(len(by_name), 'model')} with {seed_text} each{spread}: "
-        + "; ".join(items)
-        + "."
-    )
+    loaded = [i for i, rows in zip(items, by_name.values(), strict=True) if rows[0].get("kind") in USER_KINDS]
+    trained = [i for i, rows in zip(items, by_name.values(), strict=True) if rows[0].get("kind") not in USER_KINDS]
+    parts = []
+    if trained:
+        parts.append(
+            f"On task *{task}* we trained {_plural(len(trained), 'model')} with {seed_text} each{spread}: "
+            + "; ".join(trained)
+            + "."
+        )
+    if loaded:
+        kinds = sorted({USER_KINDS[r[0]["kind"]] for r in by_name.values() if r[0].get("kind") in USER_KINDS})
+        parts.append(
+            f"{'On task *' + task + '* we' if not trained else 'We'} loaded {_plural(len(loaded), 'user model')} "
+            f"({' and '.join(kinds)}, supplied with the task and not trained by us): " + "; ".join(loaded) + "."
+        )
+    return " ".join(parts)
 
 
 def explainers_paragraph(
@@ -178,7 +192,10 @@ def explainers_paragraph(
         info = explainer_info(e)
         desc = info.description if info.description and info.description != e else ""
         items.append(
-            f"`{e}`" + (f" ({desc})" if desc else "") + cites.cite(info.citation, e) + f", {_settings(settings.get(e))}"
+            f"`{e}`"
+            + (f" ({desc})" if desc else "")
+            + cites.cite(info.citation, e)
+            + f", {_settings(settings.get(e), explainer_defaults(e))}"
         )
     text = f"We compared {_plural(len(methods), 'explainer')}: " + "; ".join(items) + "."
     if controls:
@@ -204,7 +221,9 @@ def explainers_paragraph(
     return text
 
 
-def metrics_paragraph(columns: list[Column], settings: dict[str, Any], cites: Citations) -> str:
+def metrics_paragraph(
+    columns: list[Column], settings: dict[str, Any], cites: Citations, user_masks: bool = False
+) -> str:
     metrics: dict[str, Column] = {}
     truths: set[str] = set()
     for c in columns:
@@ -219,13 +238,15 @@ def metrics_paragraph(columns: list[Column], settings: dict[str, Any], cites: Ci
         ]
         rng = f", range {info.value_range[0]:g} to {info.value_range[1]:g}" if info.value_range else ""
         defn = f"{info.definition}; " if info.definition else ""
-        s = settings.get(key)
-        extra = f"; {_settings(s)}" if isinstance(s, dict) and s else ""
+        merged = _settings(settings.get(key), metric_defaults(key))
+        extra = f"; {merged}" if merged != "no settings" else ""
         items.append(f"`{key}` ({defn}{arrow}{rng}{extra}){cites.cite(info.citation, key)}")
     text = f"We scored each map with {_plural(len(metrics), 'metric')}: " + "; ".join(items) + "."
     if truths:
         desc = {
-            "planted": "the planted structure masks (what the scene generator drew)",
+            "planted": "the structure masks of the user's tile pack (the user's own annotation)"
+            if user_masks
+            else "the planted structure masks (what the scene generator drew)",
             "verified": "model-verified evidence (pixels of the planted structures whose removal in a "
             "counterfactual twin lowers the target-class probability)",
         }
@@ -244,53 +265,126 @@ def statistics_paragraph(summary: Summary, headline: Column | None, cites: Citat
     method = {"BCa": "bias-corrected and accelerated (BCa)"}.get(s["ci_method"], s["ci_method"])
     t = summary.table
     tiles = t[t["unit"] == "tile"]["n"]
+    n_seeds = sorted({len(v) for v in summary.seeds.values()})
+    multi = max(n_seeds or [1]) > 1
     n_percentile = int((t["ci_method"] == "percentile").sum())
+    column_keys = ["task", "model", "metric", "truth"]
+    n_tested = t[t["test_unit"].isin(["tile", "seed"])].groupby(column_keys).ngroups
+    n_seed_tested = t[t["test_unit"] == "seed"].groupby(column_keys).ngroups
     text = (
-        "For every task, model, metric and explainer we report the mean over the explained test tiles "
-        "(each tile's value first averaged over the model seeds, so that tiles are the unit of resampling"
-        + (f"; n = {int(tiles.min())} to {int(tiles.max())} tiles per value" if len(tiles) else "")
-        + f") with a {conf}% {method} bootstrap confidence interval over tiles ({s['n_resamples']} "
-        "resamples, "
-        f"seed {s['seed']}) {cites.key(STATISTICS_KEYS['bootstrap'])}"
+        "For every task, model, metric and explainer we report the mean"
+        + (f" (n = {int(tiles.min())} to {int(tiles.max())} seed × tile values)" if len(tiles) else "")
+        + f" with a {conf}% bootstrap confidence interval ({s['n_resamples']} resamples, seed {s['seed']}) "
+        f"{cites.key(STATISTICS_KEYS['bootstrap'])}: "
+        + (
+            "with several model seeds a hierarchical bootstrap that draws seeds with replacement and then "
+            "tiles within each drawn seed, so that training variance and tile variance both enter the interval "
+            "(the mean is the mean of the seeds' tile means); with one seed the "
+            f"{method} bootstrap over tiles"
+            if multi
+            else f"the {method} bootstrap over tiles (one model seed per model, so the interval leaves training "
+            "variance out)"
+        )
         + (
             f"; in {n_percentile} case(s) BCa was undefined and the percentile interval is given"
             if n_percentile
             else ""
         )
-        + ". Metrics with one value per seed rather than per tile are summarised over seeds and not tested. "
-        "Within each table column, every explainer is compared with the column's best explainer by a "
-        "two-sided "
-        f"Wilcoxon signed-rank test paired by tile {cites.key(STATISTICS_KEYS['wilcoxon'])}, and the "
-        "p-values "
-        "of the comparisons in that column are adjusted with Holm's step-down procedure "
-        f"{cites.key(STATISTICS_KEYS['holm'])}; marks give adjusted p < 0.05, 0.01 and 0.001."
+        + ". Metrics with one value per seed rather than per tile are summarised over seeds and not tested."
     )
-    n_blocks = len(summary.blocks)
     text += (
-        f" Across the {_plural(n_blocks, 'task × model block')} we rank the explainers within each block "
-        "(1 = best, ties averaged), test for any difference with the Friedman test and compare pairs with "
-        "the "
-        f"Nemenyi critical difference CD = q_α √(k(k+1)/(6N)) at α = {s['alpha']:g}, where q_α is the "
-        "studentized "
-        f"range quantile for k groups and infinite degrees of freedom divided by √2 "
+        " The controls (`random`, `edges`, `oracle`) are anchors, not contestants: they never enter the choice "
+        "of the best method, the tests or the rankings. Beside each method's mean we give where it sits "
+        "between them, (x - random) / (oracle - random) (0 = random, 1 = oracle), undefined where the oracle "
+        "does not beat random; a column says when `edges` or `random` beats real methods."
+    )
+    notes = list(summary.control_notes.values())
+    n_columns = t[t["role"] == "method"].groupby(["task", "model", "metric", "truth"]).ngroups
+    if notes:
+        n_edges = sum("`edges` beats" in x for x in notes)
+        n_random = sum("`random` beats" in x for x in notes)
+        text += (
+            f" Here `edges` beats at least one real method in {n_edges} and `random` in {n_random} of the "
+            f"{n_columns} task × model × metric columns (named in the tables)."
+        )
+    against = s.get("against")
+    if against:
+        text += (
+            f" Within each column, `{against}` (declared before the run) is compared with every other real method "
+            f"by a two-sided Wilcoxon signed-rank test paired by tile {cites.key(STATISTICS_KEYS['wilcoxon'])}, "
+            f"and the p-values of those comparisons are adjusted with Holm's step-down procedure "
+            f"{cites.key(STATISTICS_KEYS['holm'])}."
+        )
+    else:
+        text += (
+            " Within each column, every pair of real methods is compared by a two-sided Wilcoxon signed-rank "
+            f"test paired by tile {cites.key(STATISTICS_KEYS['wilcoxon'])}, and the p-values of all pairs are "
+            f"adjusted together with Holm's step-down procedure {cites.key(STATISTICS_KEYS['holm'])}, which keeps "
+            "the family-wise error rate at α whatever the true differences (rather than testing against a best "
+            "chosen from the same data, or comparing mean ranks, Benavoli, Corani and Mangili 2016); we report the "
+            "group of methods that cannot be told apart from the best by mean."
+        )
+    methods_k = t[t["role"] == "method"].groupby(["task", "model", "metric", "truth"])["explainer"].nunique()
+    if len(methods_k):
+        k = int(methods_k.max())
+        m = k - 1 if against else k * (k - 1) // 2
+        text += (
+            f" With k = {k} methods ({m} comparisons) the exact test can reject at α = {s['alpha']:g} after Holm only "
+            f"with n ≥ {min_pairs_for_test(m, s['alpha'])} paired tiles; columns with fewer say that no test is "
+            "possible."
+        )
+    text += (
+        " The units of these tests are independent training runs (each seed's mean over tiles) where a block "
+        "has enough model seeds for the exact test to reject; otherwise the tiles, each tile's value averaged "
+        "over the seeds: then the p-values are conditional on the trained network(s) of each task × model block "
+        "and hold for these test tiles, not for a new training run"
+        + (
+            f" ({n_seed_tested} of {n_tested} tested columns use seeds)."
+            if n_seed_tested
+            else " (all tested columns here use tiles)."
+        )
+    )
+    if any(c.info.by_magnitude for c in summary.columns):
+        text += (
+            " The randomization metrics are ranked by the magnitude of the similarity between a map and the map "
+            "of the randomized model (|Spearman ρ| and |SSIM| toward 0: the map moved), since a signed "
+            "'lower is better' would reward anti-correlated maps."
+        )
+    groups = sorted(set(summary.model_groups.values()))
+    text += (
+        f" Across blocks we rank the real methods separately for each model family ({', '.join(groups)}), over "
+        "task × model × seed blocks (each block's value is a seed's mean over tiles; 1 = best, ties averaged); "
+        "blocks of one task share its test tiles and seeds of one model its data, so the blocks are not fully "
+        "independent. We test for any difference with the Friedman test and, only where it rejects, compare "
+        f"pairs with the Nemenyi critical difference CD = q_α √(k(k+1)/(6N)) at α = {s['alpha']:g}, where q_α is "
+        "the studentized range quantile for k groups and infinite degrees of freedom divided by √2 "
         f"{cites.key(STATISTICS_KEYS['friedman-nemenyi'])}."
     )
-    rt = summary.rank_tests.get(headline.key) if headline is not None else None
-    if rt is not None:
+    rts = summary.rank_tests_for(*headline.key) if headline is not None else []
+    for rt in rts:
         k, n = len(rt.explainers), len(rt.blocks)
         fr = rt.friedman
         ftext = (
             f"Friedman χ² = {fr.statistic:.2f}, p = {fr.p_value:.3g}"
             if np.isfinite(fr.statistic)
-            else "the Friedman test needs at least 3 explainers and 2 blocks"
+            else "the Friedman test needs at least 3 methods and 2 blocks"
         )
-        text += (
-            f" For {headline.label}, k = {k} explainers over N = {n} blocks gives q_α = "
-            f"{nemenyi_q(k, s['alpha']):.3f} and CD = {rt.cd:.2f} ({ftext})."
+        text += f" For {headline.label} ({rt.group}), k = {k} methods over N = {n} blocks: {ftext}" + (
+            f"; q_α = {nemenyi_q(k, s['alpha']):.3f} and CD = {rt.cd:.2f}."
+            if rt.rejects
+            else "; no critical difference is drawn."
         )
-    if n_blocks < 2:
+    if len(summary.blocks) < 2 and not multi:
         text += " With a single block the rank statistics are descriptive only."
     return text
+
+
+def exclusions_paragraph(summary: Summary) -> str:
+    """What was left out, and why (from the summary and the run's skipped cells)."""
+    items = list(summary.left_out) + sorted(set(summary.column_notes.values()))
+    if not items:
+        return "Nothing was left out of the tables or the rankings."
+    return "\n".join(f"- {x}" for x in items)
 
 
 def provenance(runs: RunSet) -> str:
@@ -313,8 +407,47 @@ def provenance(runs: RunSet) -> str:
     return "\n".join(lines)
 
 
+def _changed(base: dict[str, Any], variant: dict[str, Any]) -> list[str]:
+    """Settings (key: name = value) where a variant's manifest differs from the run's."""
+    out = []
+    for key, settings in (variant or {}).items():
+        diff = {k: v for k, v in (settings or {}).items() if (base or {}).get(key, {}).get(k) != v}
+        if diff:
+            out.append(f"{key}: " + ", ".join(f"{k} = {v}" for k, v in diff.items()))
+    return out
+
+
+def variants_paragraph(runs: RunSet, variant_runs: dict[str, RunSet], flags: list[str]) -> str:
+    """The protocol variants: what each changed against the run, and how the rankings moved."""
+    if not variant_runs:
+        return ""
+    items = []
+    for name, rs in variant_runs.items():
+        m = rs.manifests[0] if rs.manifests else {}
+        base = runs.manifest_for(str(m.get("task")))
+        changed = _changed(base.get("metrics") or {}, m.get("metrics") or {})
+        changed += _changed(base.get("explainers") or {}, m.get("explainers") or {})
+        items.append(
+            f"`{name}` re-scored {', '.join(sorted(set(rs.records['metric'])))} for "
+            f"{', '.join(sorted(set(rs.records['explainer'])))} on {', '.join(sorted(set(rs.records['model'])))}"
+            f" with {'; '.join(changed) if changed else 'the same settings'}"
+        )
+    text = (
+        f"We re-ran the protocol in {_plural(len(variant_runs), 'variant')}, each with its own settings over the "
+        "task's: " + "; ".join(items) + ". For every variant, block and column we give Kendall's tau between the "
+        "ranking of the real methods in the run and in the variant, and flag a ranking as flipped when its top "
+        "method changes or tau ≤ 0."
+    )
+    return text + (f" {_plural(len(flags), 'flag')} raised (listed with the tables)." if flags else " No flag raised.")
+
+
 def methods_text(
-    runs: RunSet, summary: Summary, headline: Column | None, bands: dict[str, list[str]]
+    runs: RunSet,
+    summary: Summary,
+    headline: Column | None,
+    bands: dict[str, list[str]],
+    variant_runs: dict[str, RunSet] | None = None,
+    variant_flags: list[str] | None = None,
 ) -> tuple[str, Citations]:
     cites = Citations()
     tasks = list(dict.fromkeys(t for t, _ in summary.blocks))
@@ -343,7 +476,11 @@ def methods_text(
             metric_settings.setdefault(k, v)
         cells += list(m.get("cells") or [])
     out += ["## Explainers", "", explainers_paragraph(summary.explainers, settings, cites, cells), ""]
-    out += ["## Metrics", "", metrics_paragraph(summary.columns, metric_settings, cites), ""]
+    user_masks = any((m.get("data") or {}).get("pack") for m in runs.manifests)
+    out += ["## Metrics", "", metrics_paragraph(summary.columns, metric_settings, cites, user_masks), ""]
     out += ["## Statistics", "", statistics_paragraph(summary, headline, cites), ""]
+    if variant_runs:
+        out += ["## Protocol variants", "", variants_paragraph(runs, variant_runs, variant_flags or []), ""]
+    out += ["## What was left out", "", exclusions_paragraph(summary), ""]
     out += ["## Provenance", "", provenance(runs), ""]
     return "\n".join(out), cites

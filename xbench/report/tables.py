@@ -1,8 +1,10 @@
 """Comparison tables: one neutral table model, rendered as Markdown, LaTeX (booktabs) and HTML.
 
 Results tables: one per (task, model) block and metric family; rows are explainers, cells the mean with its
-bootstrap interval and a mark when the explainer differs significantly from the column's best (bold).
-Rank tables: one per metric family; average ranks across blocks with the Friedman test and Nemenyi CD.
+bootstrap interval, its place between the controls (a) and a mark when a real method differs from the
+column's best real method (all pairs with Holm); bold: methods that cannot be told apart from the best.
+Rank tables: one per model family (torch models, black boxes) and metric family; average ranks of the real
+methods across task x model x seed blocks with the Friedman test, and the Nemenyi CD where Friedman rejects.
 """
 
 from __future__ import annotations
@@ -15,9 +17,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from xbench.report.compare import Column, Summary
+from xbench.report.compare import CONTROLS, Column, Summary
 from xbench.report.meta import family_rank
-from xbench.report.stats import MIN_N_FOR_CI
+from xbench.stats import MIN_N_FOR_CI
 
 
 @dataclass
@@ -26,6 +28,7 @@ class TCell:
     ci: str = ""
     mark: str = ""
     bold: bool = False
+    anchor: str = ""  # position between the controls, e.g. "a 0.63"
 
 
 @dataclass
@@ -100,27 +103,46 @@ def result_tables(summary: Summary) -> list[TableSpec]:
             chunks = chunk_columns([c for c in cols if c.info.family == fam])
             parts += [(fam, i + 1, len(chunks), chunk) for i, chunk in enumerate(chunks)]
         for fam, part, n_parts, fcols in parts:
-            header = [(c.metric, _sub(c, block)) for c in fcols]
+            header = [(c.label.split(" (")[0], _sub(c, block)) for c in fcols]
             explainers = [e for e in summary.explainers if e in set(block["explainer"])]
             cells: dict[str, list[TCell]] = {e: [] for e in explainers}
             ns: list[int] = []
-            k_tested = []
+            tests: list[dict] = []
             percentile = 0
+            col_notes: list[str] = []
             for c in fcols:
                 sub = block[(block["metric"] == c.metric) & (block["truth"] == c.truth)].set_index("explainer")
                 d = decimals_for(sub["mean"].to_numpy())
                 if (sub["unit"] == "tile").any():
                     ns.extend(int(n) for n in sub["n"])
-                    k_tested.append(int(sub["test_n"].gt(0).sum()))
+                    methods = sub[sub["role"] == "method"]
+                    if len(methods):
+                        tests.append(
+                            {
+                                "label": c.label,
+                                "m": int(methods["n_comparisons"].max()),
+                                "min_n": int(methods["min_n_for_test"].max()),
+                                "n": int(methods["test_n"].max()),
+                                "comparator": str(methods["comparator"].iloc[0]),
+                                "unit": str(methods["test_unit"].iloc[0]),
+                            }
+                        )
                 percentile += int((sub["ci_method"] == "percentile").sum())
+                note = summary.column_notes.get((task, model, c.metric, c.truth))
+                if note:
+                    col_notes.append(note)
+                flag = summary.control_notes.get((task, model, c.metric, c.truth))
+                if flag:
+                    col_notes.append(f"{c.label}: {flag}")
                 for e in explainers:
                     if e not in sub.index or not np.isfinite(sub.at[e, "mean"]):
                         cells[e].append(TCell())
                         continue
                     r = sub.loc[e]
                     ci = f"[{fmt(r['ci_low'], d)}, {fmt(r['ci_high'], d)}]" if np.isfinite(r["ci_low"]) else ""
-                    cells[e].append(TCell(fmt(r["mean"], d), ci, str(r["mark"]), bool(r["best"])))
-            caption = _result_caption(conf, s, seeds, ns, fcols, block, percentile, max(k_tested or [0]))
+                    anchor = f"a {fmt(r['anchor'], 2)}" if e not in CONTROLS and np.isfinite(r["anchor"]) else ""
+                    cells[e].append(TCell(fmt(r["mean"], d), ci, str(r["mark"]), bool(r["top_group"]), anchor))
+            caption = _result_caption(conf, s, seeds, ns, fcols, block, percentile, tests, col_notes)
             title = f"{task}, model {model}: {fam} metrics"
             if n_parts > 1:
                 title += f" (part {part} of {n_parts})"
@@ -175,32 +197,79 @@ def _result_caption(
     cols: list[Column],
     block,
     percentile: int,
-    k_tested: int,
+    tests: list[dict],
+    col_notes: list[str],
 ) -> str:
     parts = []
     if ns:
         n_text = f"{min(ns)}" if min(ns) == max(ns) else f"{min(ns)} to {max(ns)}"
-        parts.append(
-            f"Mean over n = {n_text} explained test tiles (tiles with a defined value) with a {conf}% "
-            f"{s['ci_method']} bootstrap confidence interval ({s['n_resamples']} resamples over tiles); each "
-            f"tile's value is first averaged over {_seed_text(seeds)}."
-        )
+        if len(seeds) > 1:
+            parts.append(
+                f"Mean over {_seed_text(seeds)} of each seed's mean over its explained test tiles (n = {n_text} "
+                f"seed × tile values) with a {conf}% hierarchical bootstrap interval ({s['n_resamples']} resamples: "
+                "seeds drawn with replacement, then tiles within each drawn seed)."
+            )
+        else:
+            parts.append(
+                f"Mean over n = {n_text} explained test tiles (tiles with a defined value) with a {conf}% "
+                f"{s['ci_method']} bootstrap confidence interval ({s['n_resamples']} resamples over tiles), "
+                f"{_seed_text(seeds)}."
+            )
     if any((block[(block["metric"] == c.metric) & (block["truth"] == c.truth)]["unit"] == "seed").all() for c in cols):
         parts.append(
             f"† One value per seed: mean over {_seed_text(seeds)} (with a {conf}% {s['ci_method']} "
             f"interval when there are at least {MIN_N_FOR_CI} seeds), not tested."
         )
-    if any(c.arrow for c in cols):
-        parts.append("Bold: best explainer in the column (↑ higher is better, ↓ lower is better).")
-    if ns:
-        parts.append(
-            "Marks: two-sided Wilcoxon signed-rank test against the column's best explainer, paired by tile, "
-            f"Holm-corrected across the comparisons in the column (up to {k_tested}): * p < 0.05, ** p < "
-            "0.01, "
-            "*** p < 0.001; unmarked: no significant difference from the best."
-        )
+    if any(c.info.by_magnitude for c in cols):
+        parts.append("|·|: ranked by the magnitude of the similarity to the randomized model's map (toward 0 = moved).")
+    parts.append(
+        "a: where a method's mean sits between the controls, (x - random) / (oracle - random): 0 = random, "
+        "1 = oracle (no a: undefined, e.g. the oracle does not beat random). Controls are anchors: never bold, "
+        "marked or tested."
+    )
+    if tests:
+        against = s.get("against")
+        m = max(t["m"] for t in tests)
+        if against:
+            parts.append(
+                f"Marks: two-sided Wilcoxon signed-rank test of each method against `{against}` (declared before the "
+                f"run), paired by unit, Holm-corrected over the {m} comparisons of the column: * p < 0.05, "
+                "** p < 0.01, *** p < 0.001."
+            )
+        else:
+            parts.append(
+                "Bold: the best real method and every method that cannot be told apart from it. Marks: its "
+                "difference from the best, two-sided Wilcoxon signed-rank test paired by unit, Holm-corrected over "
+                f"all {m} pairs of real methods in the column: * p < 0.05, ** p < 0.01, *** p < 0.001."
+            )
+        if any(t["unit"] == "tile" for t in tests):
+            parts.append(
+                "Tiles are the units (each tile's value averaged over the seeds): p-values are conditional on the "
+                + (
+                    "trained network of this block."
+                    if len(seeds) <= 1
+                    else f"{len(seeds)} trained networks of this block."
+                )
+            )
+        if any(t["unit"] == "seed" for t in tests):
+            parts.append(
+                f"In {', '.join(t['label'] for t in tests if t['unit'] == 'seed')} the units are the "
+                f"{len(seeds)} model seeds (each seed's mean over tiles): independent training runs."
+            )
+        untestable = [t for t in tests if t["n"] < t["min_n"]]
+        if untestable:
+            parts.append(
+                "No test is possible at its n in "
+                + "; ".join(
+                    f"{t['label']} (n = {t['n']}; the exact test needs n ≥ {t['min_n']} to reject at "
+                    f"α = {s['alpha']:g} after Holm over {t['m']} comparisons)"
+                    for t in untestable
+                )
+                + "."
+            )
     if percentile:
         parts.append(f"In {percentile} cell(s) BCa was undefined and the percentile interval is shown.")
+    parts += col_notes
     parts.append("A dash: no value.")
     return " ".join(parts)
 
@@ -208,51 +277,132 @@ def _result_caption(
 def rank_tables(summary: Summary) -> list[TableSpec]:
     alpha = summary.settings["alpha"]
     out = []
-    tests = [summary.rank_tests[c.key] for c in summary.columns if c.key in summary.rank_tests]
-    for fam in sorted({t.column.info.family for t in tests}, key=family_rank):
-        ft = [t for t in tests if t.column.info.family == fam]
-        explainers = [e for e in summary.explainers if any(e in t.explainers for t in ft)]
-        rows = {e: [] for e in explainers}
-        for t in ft:
-            best = float(np.min(t.avg_ranks))
-            for e in explainers:
-                if e in t.explainers:
-                    r = float(t.avg_ranks[t.explainers.index(e)])
-                    rows[e].append(TCell(f"{r:.2f}", bold=bool(np.isclose(r, best))))
-                else:
-                    rows[e].append(TCell())
-        footer = [
-            ("blocks N", [str(t.friedman.n_blocks or len(t.blocks)) for t in ft]),
-            ("explainers k", [str(len(t.explainers)) for t in ft]),
-            ("Friedman χ²", [fmt(t.friedman.statistic, 2) or "n/a" for t in ft]),
-            ("Friedman p", [fmt_p(t.friedman.p_value).replace("p = ", "").replace("p ", "") for t in ft]),
-            (f"Nemenyi CD (α = {alpha:g})", [fmt(t.cd, 2) or "n/a" for t in ft]),
+    groups = list(dict.fromkeys(g for g, _, _ in summary.rank_tests))
+    for group in groups:
+        tests = [
+            summary.rank_tests[(group, c.metric, c.truth)]
+            for c in summary.columns
+            if (group, c.metric, c.truth) in summary.rank_tests
         ]
-        n_blocks = sorted({len(t.blocks) for t in ft})
+        for fam in sorted({t.column.info.family for t in tests}, key=family_rank):
+            ft = [t for t in tests if t.column.info.family == fam]
+            explainers = [e for e in summary.explainers if any(e in t.explainers for t in ft)]
+            rows: dict[str, list[TCell]] = {e: [] for e in explainers}
+            for t in ft:
+                best = float(np.min(t.avg_ranks))
+                for e in explainers:
+                    if e in t.explainers:
+                        r = float(t.avg_ranks[t.explainers.index(e)])
+                        rows[e].append(TCell(f"{r:.2f}", bold=bool(np.isclose(r, best))))
+                    else:
+                        rows[e].append(TCell())
+            footer = [
+                ("blocks N", [str(len(t.blocks)) for t in ft]),
+                ("methods k", [str(len(t.explainers)) for t in ft]),
+                ("Friedman χ²", [fmt(t.friedman.statistic, 2) or "n/a" for t in ft]),
+                ("Friedman p", [fmt_p(t.friedman.p_value).replace("p = ", "").replace("p ", "") for t in ft]),
+                (
+                    f"Nemenyi CD (α = {alpha:g})",
+                    [(fmt(t.cd, 2) or "n/a") if t.rejects else "not drawn" for t in ft],
+                ),
+            ]
+            n_blocks = sorted({len(t.blocks) for t in ft})
+            tasks = sorted({b[0] for t in ft for b in t.blocks})
+            models = sorted({b[1] for t in ft for b in t.blocks})
+            excluded = sorted({e for t in ft for e in t.excluded})
+            caption = (
+                f"Ranking of the {group} ({', '.join(models)}): average rank of each real method (1 = best) across "
+                f"{'/'.join(map(str, n_blocks))} task × model × seed block(s), a block's value being the seed's "
+                "mean over tiles (ties share their average rank). Controls are anchors and never ranked. "
+                "Friedman test over blocks (n/a with fewer than 3 methods or 2 blocks). Blocks of the same task "
+                f"share its test tiles ({', '.join(tasks)}), and seeds of one model share its data: the blocks are "
+                "not fully independent, so the p-values are approximate. Nemenyi critical difference "
+                f"CD = q · sqrt(k(k+1)/(6N)) at α = {alpha:g} (Demsar 2006), given only where the Friedman test "
+                "rejects. Bold: best average rank."
+                + (
+                    f" A dash: the method lacks a value in some block ({', '.join(excluded)}; the document's notes "
+                    "say why)."
+                    if excluded
+                    else ""
+                )
+            )
+            not_drawn = [
+                f"{t.column.label} ({fmt_p(t.friedman.p_value)})" for t in ft if not t.rejects and len(t.blocks) >= 2
+            ]
+            if not_drawn:
+                caption += (
+                    f" The Friedman test does not reject at α = {alpha:g} for {', '.join(not_drawn)}: the average "
+                    "ranks there do not show that any method differs, and no critical-difference diagram is drawn."
+                )
+            header = [(t.column.label.split(" (")[0], "" if t.column.truth == "none" else t.column.truth) for t in ft]
+            out.append(
+                TableSpec(
+                    slug("ranks", group, fam),
+                    f"Average ranks across tasks, {group}: {fam} metrics",
+                    caption,
+                    header,
+                    [(e, rows[e]) for e in explainers],
+                    footer,
+                )
+            )
+    return out
+
+
+def variant_tables(sensitivity: pd.DataFrame) -> list[TableSpec]:
+    """Protocol sensitivity: Kendall's tau between the run's ranking of the real methods and each variant's,
+    one table per task, rows variant / model, columns the metrics the variants re-scored."""
+    out = []
+    if sensitivity is None or sensitivity.empty:
+        return out
+    for task, g in sensitivity.groupby("task", sort=False):
+        cols = list(dict.fromkeys(g["column"]))
+        header = [(c.split(" (")[0], c.split(" (")[1].rstrip(")") if " (" in c else "") for c in cols]
+        rows = []
+        for (variant, model), r in g.groupby(["variant", "model"], sort=False):
+            by_col = r.set_index("column")
+            cells = []
+            for c in cols:
+                if c not in by_col.index:
+                    cells.append(TCell())
+                    continue
+                x = by_col.loc[c]
+                mark = "‡" if bool(x["flipped"]) else ""
+                if x["oracle_beats_random"] is False:
+                    mark += "§"
+                cells.append(
+                    TCell(fmt(float(x["kendall_tau"]), 2) or "n/a", f"({x['swapped_pairs']}/{x['pairs']})", mark)
+                )
+            rows.append((f"{variant} / {model}", cells))
         caption = (
-            f"Average rank of each explainer (1 = best) across {'/'.join(map(str, n_blocks))} task × model "
-            "block(s); a block's value is the mean shown in the results tables (ties share their average "
-            "rank). "
-            "Friedman test over blocks (n/a with fewer than 3 explainers or 2 blocks). Nemenyi critical "
-            f"difference CD = q · sqrt(k(k+1)/(6N)) at α = {alpha:g}, q the studentized range quantile "
-            "(infinite degrees of freedom) over sqrt(2) (Demsar 2006): average ranks closer than CD are not "
-            "significantly different. Bold: best average rank. A dash: the explainer lacks a value in some "
-            "block and is left out of that column."
+            "Kendall's tau (tau-b) between the ranking of the real methods by their mean in the run and in each "
+            "protocol variant (1 = same order, -1 = reversed), with the number of method pairs whose order "
+            "swapped. ‡: the ranking flips (the top method changes, or tau ≤ 0). §: in the variant the oracle "
+            "no longer beats random on that column. A dash: the variant did not re-score that column."
         )
-        header = [
-            (t.column.metric, " ".join(p for p in ([] if t.column.truth == "none" else [t.column.truth]))) for t in ft
-        ]
         out.append(
             TableSpec(
-                slug("ranks", fam),
-                f"Average ranks across tasks and models: {fam} metrics",
+                slug("variants", str(task)),
+                f"{task}: protocol sensitivity",
                 caption,
                 header,
-                [(e, rows[e]) for e in explainers],
-                footer,
+                rows,
+                row_label="variant / model",
             )
         )
     return out
+
+
+def flags_markdown(title: str, items: list[str]) -> str:
+    if not items:
+        return ""
+    return f"\n## {title}\n\n" + "\n".join(f"- {x}" for x in items) + "\n"
+
+
+def left_out_markdown(summary: Summary) -> str:
+    """The document's own list of what the rankings leave out and why (empty when nothing is)."""
+    if not summary.left_out:
+        return ""
+    return "\n## Left out of the rankings, and why\n\n" + "\n".join(f"- {x}" for x in summary.left_out) + "\n"
 
 
 CONCEPT_ROWS_SHOWN = 60
@@ -352,7 +502,7 @@ def to_markdown(t: TableSpec) -> str:
                 out.append("–")
                 continue
             v = f"**{c.main}**" if c.bold else c.main
-            out.append(" ".join(x for x in (v, c.ci) if x) + _md(c.mark))
+            out.append(" ".join(x for x in (v, c.ci) if x) + _md(c.mark) + (f" ({c.anchor})" if c.anchor else ""))
         lines.append(f"| {_md(name)} | " + " | ".join(out) + " |")
     for label, values in t.footer:
         lines.append(f"| *{_md(label)}* | " + " | ".join(_md(v) for v in values) + " |")
@@ -388,6 +538,7 @@ _TEX_UNICODE = {
     "±": r"$\pm$",
     "†": r"\textsuperscript{\dag}",
     "‡": r"\textsuperscript{\ddag}",
+    "§": r"\textsuperscript{\S}",
     "<": r"$<$",
     ">": r"$>$",
 }
@@ -402,7 +553,9 @@ def tex_escape(text: str) -> str:
 
 
 def _tex_mark(mark: str) -> str:
-    return f"$^{{{mark}}}$" if mark else ""
+    if not mark:
+        return ""
+    return f"$^{{{mark}}}$" if set(mark) <= {"*"} else tex_escape(mark)
 
 
 def to_latex(t: TableSpec) -> str:
@@ -437,7 +590,8 @@ def to_latex(t: TableSpec) -> str:
                 continue
             v = f"\\textbf{{{c.main}}}" if c.bold else c.main
             ci = f" {{\\scriptsize {c.ci}}}" if c.ci else ""
-            out.append(v + ci + _tex_mark(c.mark))
+            anchor = f" {{\\scriptsize ({c.anchor})}}" if c.anchor else ""
+            out.append(v + ci + _tex_mark(c.mark) + anchor)
         lines.append("  " + " & ".join([tex_escape(name)] + out) + r" \\")
     if t.footer:
         lines.append(r"  \midrule")
@@ -493,7 +647,8 @@ def to_html(t: TableSpec) -> str:
             v = f"<strong>{_h(c.main)}</strong>" if c.bold else _h(c.main)
             ci = f' <span class="ci">{_h(c.ci)}</span>' if c.ci else ""
             mark = f"<sup>{_h(c.mark)}</sup>" if c.mark else ""
-            out.append(f"<td>{v}{ci}{mark}</td>")
+            anchor = f' <span class="ci">({_h(c.anchor)})</span>' if c.anchor else ""
+            out.append(f"<td>{v}{ci}{mark}{anchor}</td>")
         lines.append(f'<tr><th class="name">{_h(name)}</th>' + "".join(out) + "</tr>")
     lines.append("</tbody>")
     if t.footer:

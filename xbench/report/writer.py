@@ -28,7 +28,7 @@ from xbench.errors import XbenchInputError
 from xbench.report import figures as F
 from xbench.report import tables as T
 from xbench.report.bib import render_bib
-from xbench.report.compare import Column, Summary, summarize
+from xbench.report.compare import Column, Summary, summarize, variant_sensitivity
 from xbench.report.load import RunSet, load_runs
 from xbench.report.methods import methods_text
 
@@ -156,7 +156,8 @@ CAPTIONS = {
         "model. Bands: mean ± 1.96 sd/√n."
     ),
     "cd": (
-        "Average rank of each explainer across the task × model blocks (1 = best, at the left). Thick "
+        "Average rank of each real method across the task × model × seed blocks (1 = best, at the left; "
+        "controls are not ranked). Drawn only where the Friedman test rejects. Thick "
         "bars join explainers whose average ranks differ by less than the Nemenyi critical difference "
         "(CD = {cd:.2f} at α = {alpha:g}, Demsar 2006): those are not significantly different."
     ),
@@ -226,21 +227,24 @@ def make_figures(
             )
     else:
         log.append("no curves.parquet: deletion, insertion and randomization figures left out")
-    for col in summary.columns:
-        rt = summary.rank_tests.get(col.key)
-        if rt is None:
-            continue
+    for rt in summary.rank_tests.values():
+        col = rt.column
+        stem = F.file_stem("cd", col.metric, col.truth) + ("" if rt.group == "torch models" else "__black-box")
         if len(rt.blocks) < 2:
-            log.append(f"CD diagram for {col.label}: needs at least 2 task x model blocks, has {len(rt.blocks)}")
+            log.append(f"CD diagram for {col.label} ({rt.group}): needs at least 2 blocks, has {len(rt.blocks)}")
             continue
         fr = rt.friedman
-        ptext = f"Friedman p = {fr.p_value:.3g}" if np.isfinite(fr.p_value) else "Friedman test n/a"
-        title = f"{col.label} {col.arrow}: N = {len(rt.blocks)} task × model blocks, {ptext}"
+        if not rt.rejects:  # no diagram without a rejecting Friedman test: a sentence in the rank table instead
+            ptext = f"p = {fr.p_value:.3g}" if np.isfinite(fr.p_value) else "not defined"
+            log.append(f"CD diagram for {col.label} ({rt.group}) not drawn: Friedman test does not reject ({ptext})")
+            continue
+        ptext = f"Friedman p = {fr.p_value:.3g}"
+        title = f"{col.label} {col.arrow}, {rt.group}: N = {len(rt.blocks)} task × model × seed blocks, {ptext}"
         emit(
             lambda rt=rt, title=title: F.cd_figure(rt.explainers, rt.avg_ranks, rt.cd, title),
-            F.file_stem("cd", col.metric, col.truth),
+            stem,
             "cd",
-            f"Critical-difference diagram: {col.label}",
+            f"Critical-difference diagram: {col.label}, {rt.group}",
             CAPTIONS["cd"].format(cd=rt.cd, alpha=summary.settings["alpha"]),
         )
     for a in sorted(runs.clusters(), key=lambda a: (a.task, a.model, a.seed)):
@@ -341,6 +345,7 @@ def html_page(
     methods_md: str,
     log: list[str],
     concepts: list[T.TableSpec] = (),
+    left_out: list[str] = (),
 ) -> str:
     h = T._h
     sections = [
@@ -382,6 +387,9 @@ def html_page(
     body.append('<section id="ranks"><h2>Ranks across tasks and models</h2>')
     body += [T.to_html(t) for t in ranks] or ["<p>No rank statistics.</p>"]
     body += [figure_html(f) for f in figs if f.section == "cd"]
+    if left_out:
+        body.append("<h3>Left out of the rankings, and why</h3>")
+        body.append("<ul>" + "".join(f"<li>{_inline_md(x)}</li>" for x in left_out) + "</ul>")
     body.append("</section>")
     for key, name in sections:
         chosen = [f for f in figs if f.section == key]
@@ -431,6 +439,29 @@ def _stale_figures(folder: Path, written: set[Path]) -> list[Path]:
     )
 
 
+def find_variants(runs: RunSet, log: list[str]) -> dict[str, RunSet]:
+    """Protocol variants written beside the run folders (``DIR/variants/NAME/``), read as run sets by name."""
+    found: dict[str, list[Path]] = {}
+    for d in runs.dirs:
+        folder = Path(d) / "variants"
+        if folder.is_dir():
+            for sub in sorted(folder.iterdir()):
+                if (sub / "records.parquet").is_file() or (sub / "records.csv").is_file():
+                    found.setdefault(sub.name, []).append(sub)
+    out = {}
+    for name, dirs in found.items():
+        try:
+            out[name] = load_runs(dirs)
+        except XbenchInputError as exc:
+            log.append(f"variant {name}: not read ({exc})")
+    return out
+
+
+def summary_records(runs: RunSet, models: list[str] | None) -> pd.DataFrame:
+    r = runs.records
+    return r[r["model"].isin(models)] if models else r
+
+
 def write_report(
     run_dirs: Any,
     out_dir: str | Path | None = None,
@@ -444,11 +475,15 @@ def write_report(
     seed: int = 0,
     gallery_tiles: int = 6,
     figures: bool = True,
+    against: str | None = None,
+    models: list[str] | None = None,
 ) -> ReportSummary:
     """Read the run folders and write tables, figures, methods text and BibTeX into ``out_dir``.
 
     ``out_dir`` defaults to ``<first run folder>/report``. ``headline_metric`` / ``headline_truth`` choose
-    the quality axis of the cost figure and the worked CD numbers in the methods text. Prints nothing.
+    the quality axis of the cost figure and the worked CD numbers in the methods text. ``against`` names a
+    real method declared before the run as the comparator of the paired tests (default: all pairs with Holm);
+    ``models`` chooses the models whose blocks enter (default: all). Prints nothing.
     """
     fmts = _formats(formats)
     runs = load_runs(run_dirs)
@@ -469,16 +504,23 @@ def write_report(
                 n_resamples=n_resamples,
                 seed=seed,
                 alpha=alpha,
+                against=against,
+                models=models,
             )
             log += summary.log
             headline = choose_headline(summary, headline_metric, headline_truth, log)
             figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
             results = T.result_tables(summary)
             ranks = T.rank_tables(summary)
+            variant_runs = find_variants(runs, log)
+            sensitivity, variant_flags = variant_sensitivity(
+                summary_records(runs, models), {k: v.records for k, v in variant_runs.items()}, summary.explainers
+            )
+            ranks += T.variant_tables(sensitivity)
             concept_specs, notes = T.concept_tables(runs.concepts)
             log += notes
             T.number_tables(results + ranks + concept_specs)
-            methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs))
+            methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs), variant_runs, variant_flags)
             log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
     finally:
         mpl_logger.setLevel(mpl_level)
@@ -502,6 +544,7 @@ def write_report(
     result.paths.append(out / "summary.csv")
     rank_rows = [
         {
+            "group": rt.group,
             "metric": rt.column.metric,
             "truth": rt.column.truth,
             "explainer": e,
@@ -518,18 +561,24 @@ def write_report(
     ]
     pd.DataFrame(rank_rows).to_csv(out / "ranks.csv", index=False, float_format="%.12g")
     result.paths.append(out / "ranks.csv")
+    if len(sensitivity):
+        sensitivity.to_csv(out / "variants.csv", index=False, float_format="%.12g")
+        result.paths.append(out / "variants.csv")
     if runs.concepts is not None:
         runs.concepts.to_csv(out / "concepts.csv", index=False, float_format="%.12g")
         result.paths.append(out / "concepts.csv")
     if "md" in fmts:
         write(
             "tables.md",
-            "# xbench comparison tables\n\n" + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs),
+            "# xbench comparison tables\n\n"
+            + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs)
+            + T.left_out_markdown(summary)
+            + T.flags_markdown("Protocol sensitivity: rankings that flip", variant_flags),
         )
     if "tex" in fmts:
         write("tables.tex", T.LATEX_PREAMBLE_NOTE + "\n" + "\n".join(T.to_latex(t) for t in results + ranks))
     if "html" in fmts:
-        write("report.html", html_page(runs, results, ranks, figs, methods_md, log, concept_specs))
+        write("report.html", html_page(runs, results, ranks, figs, methods_md, log, concept_specs, summary.left_out))
     write("methods.md", methods_md)
     write("refs.bib", render_bib(cites.keys))
     for f in figs:

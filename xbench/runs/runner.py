@@ -18,7 +18,7 @@ from tqdm.auto import tqdm
 from xbench import __version__
 from xbench.runs.execute import prepare, task_and_data
 from xbench.runs.executors import executor_for
-from xbench.runs.grid import Grid, content_hash, expand_grid
+from xbench.runs.grid import Grid, content_hash, expand_grid, validate_task_keys
 from xbench.runs.store import (
     CELL_IDENTITY,
     REASON_COLUMNS,
@@ -55,6 +55,7 @@ class RunSummary:
     undefined: list[str] = field(default_factory=list)  # "metric/truth: reason" of NaN values (once each)
     warnings: list[str] = field(default_factory=list)  # models at chance level, saturated maps...
     kept_earlier: int = 0  # cells of earlier runs (other explainers, metrics or tasks) kept in the folder
+    variants: dict[str, RunSummary] = field(default_factory=dict)  # protocol variants, in OUT/variants/NAME
 
     @property
     def ok(self) -> bool:
@@ -121,12 +122,25 @@ def run_task(
     models: list[str] | None = None,
     seeds: list[int] | None = None,
     metrics: list[str] | None = None,
+    variant: str | None = None,
 ) -> RunSummary:
-    """Run a task's grid into ``out_dir``; finished cells are reused, so a killed run resumes."""
-    from xbench.tasks import load_task
+    """Run a task's grid into ``out_dir``; finished cells are reused, so a killed run resumes.
+
+    The task's protocol variants (``[[variants]]``) run afterwards, each into ``out_dir/variants/NAME``;
+    ``variant`` runs one variant alone (its settings over the task's, its subsets as filters)."""
+    from xbench.tasks import apply_variant, load_task
 
     started = time.perf_counter()
     task_obj = load_task(task)  # validates the file before any work
+    if variant is not None:
+        task_obj = apply_variant(task_obj, variant)
+        spec = next(v for v in task_obj.variants if v.name == variant)
+        explainers = _narrow(explainers, spec.explainers)
+        models = _narrow(models, spec.models)
+        metrics = _narrow(metrics, spec.metrics)
+    else:  # every variant's settings are checked against the registries before any work
+        for v in task_obj.variants:
+            validate_task_keys(apply_variant(task_obj, v.name))
     task_path = task_obj  # the parsed task itself travels to the cells: parsed once, also when given as a dict
     grid: Grid = expand_grid(task_obj, explainers=explainers, models=models, seeds=seeds, metrics=metrics)
     run_for = executor_for(executor, jobs, scheduler)  # validates the executor name before any work
@@ -183,8 +197,25 @@ def run_task(
     bar.close()
     # Failed cells of an earlier attempt that were not retried here cannot exist: every pending cell ran.
     assemble(out, task_obj, grid, store, preps, model_rows, run_id, summary)
+    if variant is None:
+        summary.variants = run_variants(
+            task_obj, task_obj.variants, out, jobs=jobs, executor=executor, scheduler=scheduler, progress=progress,
+            explainers=explainers, models=models, seeds=seeds, metrics=metrics,
+        )  # fmt: skip
     summary.seconds = time.perf_counter() - started
     return summary
+
+
+def _narrow(chosen: list[str] | None, subset: list[str] | None) -> list[str] | None:
+    """The run's filter within a variant's subset (either may be None = everything)."""
+    if subset is None:
+        return chosen
+    return list(subset) if chosen is None else [c for c in chosen if c in subset]
+
+
+def run_variants(task: Any, variants: list, out: Path, **options: Any) -> dict[str, RunSummary]:
+    """Run each protocol variant of a task into ``out/variants/NAME`` (same models, cached; new cells)."""
+    return {v.name: run_task(task, out / "variants" / v.name, variant=v.name, **options) for v in variants}
 
 
 def model_warnings(task: Any, model_rows: list[dict[str, Any]]) -> list[str]:
@@ -411,6 +442,7 @@ def assemble(
         "task_file": str(task.path),
         "task_hash": task.file_hash,
         "description": task.description,
+        "variant": getattr(task, "variant", None),
         "xbench_version": __version__,
         "versions": _versions(),
         "git_commit": git["commit"],
