@@ -583,44 +583,47 @@ def _place_labels(ax, points: list[tuple[str, float, float]], min_gap: float = 1
 def cost_quality_figure(
     points: pd.DataFrame, explainers: list[str], styles: dict[str, dict], y_label: str, title: str
 ) -> Figure | None:
-    """points: explainer, block, seconds (per tile), value. One faint point per block, a labelled mean."""
+    """points: explainer, block, seconds (per tile), value. One panel per task x model block and one point
+    per explainer in it, so that every point in a panel was measured on the same tiles with the same model
+    (averaging over blocks would compare methods run on different sets of blocks). Controls are drawn
+    hollow: they are anchors, not candidates."""
     p = points[np.isfinite(points["seconds"]) & (points["seconds"] > 0) & np.isfinite(points["value"])]
     if p.empty:
         return None
-    names = [e for e in explainers if e in set(p["explainer"])]
-    means: list[tuple[str, float, float]] = []
+    blocks = list(dict.fromkeys(p["block"]))
+    ncols = min(3, len(blocks))
+    nrows = -(-len(blocks) // ncols)
+    controls = ("random", "edges", "oracle")
     with matplotlib.rc_context(RC):
-        fig = new_figure(6.0, 4.0)
-        ax = fig.add_subplot()
-        for e in names:
-            d = p[p["explainer"] == e]
-            st = styles[e]
-            if len(d) > 1:
+        fig = new_figure(3.1 * ncols + 0.3, 2.7 * nrows + 0.5)
+        axes = fig.subplots(nrows, ncols, squeeze=False, sharey=True)
+        for k, block in enumerate(blocks):
+            ax = axes[k // ncols, k % ncols]
+            d = p[p["block"] == block]
+            labels: list[tuple[str, float, float]] = []
+            for e in [e for e in explainers if e in set(d["explainer"])]:
+                row = d[d["explainer"] == e].iloc[0]
+                st = styles[e]
+                hollow = e in controls
                 ax.scatter(
-                    d["seconds"],
-                    d["value"],
-                    s=12,
-                    color=st["color"],
+                    [row["seconds"]],
+                    [row["value"]],
+                    s=30,
                     marker=st["marker"],
-                    alpha=0.35,
-                    linewidths=0,
+                    facecolors="none" if hollow else st["color"],
+                    edgecolors=st["color"] if hollow else "black",
+                    linewidths=0.9 if hollow else 0.4,
+                    zorder=3,
                 )
-            sx, sy = float(np.exp(np.log(d["seconds"]).mean())), float(d["value"].mean())
-            ax.scatter(
-                [sx],
-                [sy],
-                s=36,
-                color=st["color"],
-                marker=st["marker"],
-                edgecolors="black",
-                linewidths=0.5,
-                zorder=3,
-            )
-            means.append((e, sx, sy))
-        ax.set_xscale("log")
-        _place_labels(ax, means)
-        ax.set_xlabel("explainer time per tile (s, log scale)")
-        ax.set_ylabel(y_label)
-        ax.grid(alpha=0.3, linewidth=0.5, which="both")
-        fig.suptitle(title, fontsize=9)
+                labels.append((e, float(row["seconds"]), float(row["value"])))
+            ax.set_xscale("log")
+            _place_labels(ax, labels)
+            ax.set_title(block)
+            ax.set_xlabel("explainer time per tile (s, log)")
+            if k % ncols == 0:
+                ax.set_ylabel(y_label)
+            ax.grid(alpha=0.3, linewidth=0.5, which="both")
+        for k in range(len(blocks), nrows * ncols):
+            axes[k // ncols, k % ncols].set_visible(False)
+        fig.suptitle(title + " (hollow markers: controls)", fontsize=9)
     return fig
