@@ -55,6 +55,7 @@ figure{margin:1.2em 0}figcaption{font-size:.85em;color:var(--ink);max-width:62em
 figure.plot img{max-width:100%;height:auto;border:1px solid var(--rule);background:#fff}
 code{background:#eef1f1;padding:0 .25em;border-radius:2px}
 ul.notes li{font-size:.85em;color:var(--muted)}
+td.why{text-align:left}
 """
 
 PAGE = Template(

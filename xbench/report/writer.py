@@ -455,7 +455,7 @@ def skipped_section(reasons: pd.DataFrame | None) -> tuple[str, str]:
         md.append(f"| {g.task} / {g.model} | {metric} | {g.explainers or 'all'} | {g.reason} |")
         rows_html.append(
             f"<tr><td>{html.escape(f'{g.task} / {g.model}')}</td><td>{html.escape(metric)}</td>"
-            f"<td>{html.escape(g.explainers or 'all')}</td><td style='text-align:left'>{html.escape(g.reason)}</td></tr>"
+            f"<td>{html.escape(g.explainers or 'all')}</td><td class='why'>{html.escape(g.reason)}</td></tr>"
         )
     inner = (
         "<p>Values the run could not compute, with the reason it recorded (NaN cells in the tables come from "
