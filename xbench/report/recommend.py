@@ -8,8 +8,8 @@ For each (task, model) block and each of three questions a user asks before choo
 
 one primary metric is chosen (the first of a preference list that the run has, else the family's first
 column) and the *top group* is formed: the best explainer by mean and every explainer whose paired
-per-tile values cannot be told apart from the best's (two-sided Wilcoxon signed-rank test, Wilcoxon 1945,
-of each explainer against the best, Holm's step-down correction over those comparisons, Holm 1979).
+per-tile values cannot be told apart from the best's (two-sided Wilcoxon signed-rank tests of every pair,
+Wilcoxon 1945, with Holm's step-down correction over all pairs, Holm 1979; see :func:`top_group`).
 Controls (``random``, ``edges``, ``oracle``) never compete: they are shown as anchors beside the group.
 Every number on the page comes from the same summary table as the result tables.
 """
@@ -55,40 +55,43 @@ ASPECT_QUESTION = {
 MIN_TILES_FOR_CONFIDENCE = 20  # fewer paired tiles than this: the page says the group is wide for that reason
 
 
+def _pair_p(a: np.ndarray, b: np.ndarray) -> float:
+    """Two-sided Wilcoxon signed-rank p-value of a - b over the pairs where both are finite."""
+    ok = np.isfinite(a) & np.isfinite(b)
+    d = a[ok] - b[ok]
+    if d.size < 2:
+        return float("nan")  # cannot be tested
+    if not np.any(d):
+        return 1.0
+    return float(wilcoxon(d, alternative="two-sided").pvalue)
+
+
 def top_group(values_by_method: dict[str, Any], higher_is_better: bool, alpha: float = 0.05) -> list[str]:
     """The best method by mean and every method that cannot be told apart from it, best first.
 
     ``values_by_method`` maps a method to its per-unit values (tiles), aligned across methods (position i is
-    the same tile for every method; NaN = undefined, dropped pairwise). Each other method is compared with
-    the best by a two-sided Wilcoxon signed-rank test on the pairs where both are finite (all differences
-    zero: p = 1; fewer than two pairs: not distinguishable); the p-values are Holm-adjusted over those
-    comparisons, and a method stays in the group when its adjusted p-value is at least ``alpha``. The
+    the same tile for every method; NaN = undefined, dropped pairwise). Every pair of methods is compared
+    by a two-sided Wilcoxon signed-rank test (Wilcoxon 1945) on the pairs where both are finite (all
+    differences zero: p = 1; fewer than two pairs: untestable), and the p-values of all k(k-1)/2 pairs are
+    Holm-adjusted together (Holm 1979), which keeps the family-wise error rate at ``alpha`` whichever method
+    the data make the leader (adjusting only the leader's k-1 comparisons does not: the leader is chosen on
+    the same tiles). A method stays in the group unless its comparison with the leader is rejected. The
     group is ordered by mean (best first); methods without any finite value are left out.
     """
     arrays = {m: np.asarray(v, dtype=np.float64).ravel() for m, v in values_by_method.items()}
+    shapes = {a.shape for a in arrays.values()}
+    if len(shapes) > 1:
+        raise ValueError(f"top_group: values are not aligned across methods (shapes {sorted(shapes)})")
     means = {m: float(np.nanmean(a)) for m, a in arrays.items() if np.isfinite(a).any()}
     if not means:
         return []
     sign = 1.0 if higher_is_better else -1.0
     ordered = sorted(means, key=lambda m: -sign * means[m])
     best = ordered[0]
-    others = ordered[1:]
-    pvalues = []
-    for m in others:
-        a, b = arrays[best], arrays[m]
-        if a.shape != b.shape:
-            raise ValueError(f"top_group: values of {best!r} and {m!r} are not aligned ({a.shape} vs {b.shape})")
-        ok = np.isfinite(a) & np.isfinite(b)
-        d = a[ok] - b[ok]
-        if d.size < 2:
-            pvalues.append(np.nan)  # cannot be tested: stays in the group
-        elif not np.any(d):
-            pvalues.append(1.0)
-        else:
-            pvalues.append(float(wilcoxon(d, alternative="two-sided").pvalue))
-    adjusted = holm(pvalues)
-    group = [best] + [m for m, p in zip(others, adjusted, strict=True) if not (np.isfinite(p) and p < alpha)]
-    return group
+    pairs = [(a, b) for i, a in enumerate(ordered) for b in ordered[i + 1 :]]
+    adjusted = holm([_pair_p(arrays[a], arrays[b]) for a, b in pairs])
+    rejected = {b for (a, b), p in zip(pairs, adjusted, strict=True) if a == best and np.isfinite(p) and p < alpha}
+    return [m for m in ordered if m not in rejected]
 
 
 @dataclass
