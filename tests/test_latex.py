@@ -69,3 +69,20 @@ def test_tables_tex_holds_every_table_including_concepts(tables_tex):
     assert n == tex.count("\\end{table*}") and n > 18
     assert "concept" in tex.lower()
     assert tex.count("\\clearpage") >= n // 6
+
+
+@pytest.mark.skipif(shutil.which("bibtex") is None, reason="bibtex is not installed")
+def test_refs_bib_runs_through_bibtex_without_warnings(tmp_path):
+    from xbench.report.bib import CATALOGUE, render_bib
+
+    (tmp_path / "refs.bib").write_text(render_bib(list(CATALOGUE)))
+    (tmp_path / "d.tex").write_text(
+        "\\documentclass{article}\n\\begin{document}\n\\nocite{*}\n\\bibliographystyle{plain}\n"
+        "\\bibliography{refs}\n\\end{document}\n"
+    )
+    run = dict(cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert subprocess.run(["pdflatex", "-interaction=nonstopmode", "d.tex"], **run).returncode == 0
+    assert subprocess.run(["bibtex", "d"], **run).returncode == 0
+    blg = (tmp_path / "d.blg").read_text()
+    assert "Warning" not in blg and "error" not in blg.lower(), blg
+    assert (tmp_path / "d.bbl").read_text().count("\\bibitem") == len(CATALOGUE)
