@@ -627,3 +627,89 @@ def cost_quality_figure(
             axes[k // ncols, k % ncols].set_visible(False)
         fig.suptitle(title + " (hollow markers: controls)", fontsize=9)
     return fig
+
+
+# ---------------------------------------------------------------- one tile, every explainer
+
+CORE_COVERAGE = 0.5  # the planted truth's default core threshold (coverage at or above it)
+
+
+def tile_figure(
+    data: dict[str, np.ndarray],
+    index: int,
+    explainers: list[str],
+    values: dict[str, list[str]],
+    title: str,
+    ncols: int = 5,
+) -> Figure:
+    """One tile: natural and false colour, planted truth (core and fringe when coverage is known), verified
+    evidence, then one panel per explainer (its map, a colour bar, its metric values underneath).
+
+    ``values`` maps an explainer to lines of text ("mass-accuracy 0.61"). Bands are stretched 2-98 % over
+    this tile alone; each map is scaled to its own largest magnitude (viridis, or RdBu when signed).
+    """
+    images = np.asarray(data["images"])[index : index + 1]
+    band_names = data.get("band_names", np.array([]))
+    nat_idx, _ = band_index(band_names, ("red", "green", "blue"))
+    fc_idx, _ = band_index(band_names, ("nir", "red", "green"))
+    natural, false = stretch(images, nat_idx)[0], stretch(images, fc_idx)[0]
+    planted = np.asarray(data["planted"])[index].astype(bool) if "planted" in data else None
+    coverage = np.asarray(data["coverage"])[index] if "coverage" in data else None
+    evidence = np.asarray(data["evidence"])[index] if "evidence" in data else None
+    names = [e for e in explainers if f"map__{e}" in data]
+    names += sorted(k[5:] for k in data if k.startswith("map__") and k[5:] not in names)
+    truth_panels: list[tuple[str, str, Any]] = [
+        ("natural colour\n(red, green, blue)", "rgb", natural),
+        ("false colour\n(nir, red, green)", "rgb", false),
+    ]
+    if planted is not None:
+        if coverage is not None:
+            if coverage.ndim == 3:  # one plane per structure type: the largest coverage per pixel
+                coverage = coverage.max(axis=0)
+            label = np.where(coverage >= CORE_COVERAGE, 2, np.where(coverage > 0, 1, 0))
+            truth_panels.append(("planted truth\n(core and fringe)", "truth", label))
+        else:
+            truth_panels.append(("planted structures", "truth", planted.astype(int) * 2))
+    if evidence is not None:
+        truth_panels.append(("verified evidence\n(model-checked)", "map", evidence))
+    n_rows = 1 + -(-len(names) // ncols)
+    truth_cmap = ListedColormap(["#f2f2f2", "#f0a35e", "#8c2d04"])
+    with matplotlib.rc_context(RC):
+        fig = new_figure(2.0 * ncols, 2.35 * n_rows + 0.5)
+        grid = fig.add_gridspec(n_rows, ncols)
+        for j, (label, kind, arr) in enumerate(truth_panels[:ncols]):
+            ax = fig.add_subplot(grid[0, j])
+            if kind == "rgb":
+                ax.imshow(arr, interpolation="nearest")
+            elif kind == "truth":
+                ax.imshow(arr, cmap=truth_cmap, norm=BoundaryNorm([-0.5, 0.5, 1.5, 2.5], 3), interpolation="nearest")
+                ax.legend(
+                    handles=[Patch(color="#8c2d04", label="core"), Patch(color="#f0a35e", label="fringe")]
+                    if coverage is not None
+                    else [Patch(color="#8c2d04", label="planted")],
+                    loc="upper center",
+                    bbox_to_anchor=(0.5, -0.02),
+                    ncol=2,
+                    frameon=False,
+                    fontsize=6,
+                )
+            else:
+                im = ax.imshow(np.nan_to_num(arr), cmap="magma", vmin=0, interpolation="nearest")
+                fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).ax.tick_params(labelsize=6)
+            ax.set_title(label, fontsize=7)
+            _blank(ax)
+        for k, e in enumerate(names):
+            ax = fig.add_subplot(grid[1 + k // ncols, k % ncols])
+            m = np.nan_to_num(np.asarray(data[f"map__{e}"])[index].astype(np.float64))
+            a = float(np.max(np.abs(m))) or 1.0
+            signed = m.min() < -1e-9 * a
+            im = ax.imshow(m, cmap="RdBu_r" if signed else "viridis", vmin=-a if signed else 0, vmax=a)
+            if planted is not None and planted.any() and not planted.all():
+                ax.contour(planted.astype(float), levels=[0.5], colors="black" if signed else "white", linewidths=0.6)
+            fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).ax.tick_params(labelsize=6)
+            ax.set_title(e, fontsize=8, fontweight="bold")
+            ax.set_xlabel("\n".join(values.get(e, ["no values recorded"])), fontsize=6.5, linespacing=1.15)
+            ax.set_xticks([])
+            ax.set_yticks([])
+        fig.suptitle(title, fontsize=9)
+    return fig
