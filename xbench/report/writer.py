@@ -142,17 +142,15 @@ def _gallery_bands(runs: RunSet) -> dict[str, list[str]]:
 
 CAPTIONS = {
     "gallery": (
-        "Rows: explained test tiles (with the target class). Columns: natural colour (red, green, "
-        "blue) and false colour (nir, red, green), each band stretched linearly between its 2nd and "
-        "98th percentile over the tiles shown; the planted structure mask (white); the model-verified "
-        "evidence map; then each explainer's map for the same tiles. Maps are scaled per tile to their "
-        "largest magnitude (viridis for non-negative maps, RdBu centred on zero for signed maps); the "
-        "outline marks the planted structures."
+        "Rows: explained test tiles with their target class (the first tile of every class is shown). "
+        "Columns: natural colour (red, green, blue) and false colour (nir, red, green), bands stretched "
+        "2-98 %; planted structures (white); model-verified evidence; explainer maps, each scaled to its "
+        "tile's largest magnitude (colour bars below); outlines mark planted structures."
     ),
     "curves": (
-        "Target-class probability as the most relevant pixels (by each explainer's map) are removed "
-        "(deletion: a fast drop is good) or inserted into the baseline image (insertion: a fast rise "
-        "is good). Lines: mean over tiles, pooled over seeds; bands: mean ± 1.96 sd/√n."
+        "One panel per explainer: target-class probability as its most relevant pixels are removed "
+        "(deletion, red: a fast drop is good) or inserted into the baseline image (insertion, blue: a fast "
+        "rise is good); grey: the random control. Mean over tiles and seeds; bands: mean ± 1.96 sd/√n."
     ),
     "randomization": (
         "Similarity between each explainer's map for the trained model and for the model with its "
@@ -212,13 +210,16 @@ def make_figures(
 
     for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
         title = f"{a.task}, model {a.model}, seed {a.seed}"
-        emit(
-            lambda a=a, title=title: F.gallery_figure(a.load(), summary.explainers, title, gallery_tiles),
-            F.file_stem("gallery", a.task, a.model, a.seed),
-            "gallery",
-            f"Heatmap gallery: {title}",
-            CAPTIONS["gallery"],
-        )
+        try:
+            pages, notes = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles)
+        except Exception as exc:  # one odd artifact must not sink the whole report
+            log.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
+            continue
+        log.extend(notes)
+        for k, page in enumerate(pages, start=1):
+            stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{k}" if len(pages) > 1 else "")
+            part = f" (part {k} of {len(pages)})" if len(pages) > 1 else ""
+            emit(lambda page=page: page, stem, "gallery", f"Heatmap gallery: {title}{part}", CAPTIONS["gallery"])
     if runs.curves is not None:
         for (task, model), c in runs.curves.groupby(["task", "model"], sort=False):
             title = f"{task}, model {model}"
