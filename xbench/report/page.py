@@ -39,7 +39,8 @@ section.advice h2{border-bottom-color:var(--sand-edge)}
 section.advice ul.reading li{margin:.2em 0}
 table.advice{border-collapse:collapse;width:100%;background:#fff;font-size:.9em}
 table.advice th{background:var(--spruce);color:#fff;text-align:left;padding:.35em .6em;font-weight:600}
-table.advice td{border-top:1px solid var(--rule);padding:.35em .6em;vertical-align:top}
+table.advice td{border-top:1px solid var(--rule);padding:.35em .6em;vertical-align:top;text-align:left}
+span.pick.lead span.cost{color:#eef3e6}
 span.pick{display:inline-block;margin:.1em .3em .1em 0;padding:.05em .45em;border-radius:3px;background:#e6eedb;
 border:1px solid #b9cc9c;white-space:nowrap}
 span.pick.lead{background:var(--moss);color:#fff;border-color:var(--moss);font-weight:600}
@@ -122,7 +123,7 @@ def recommendation_html(recs: list[R.BlockRecommendation], alpha: float) -> str:
     out = ['<section class="advice" id="advice"><h2>Which explainer to use</h2>']
     out.append(
         "<p>Per task and model: the explainers that cannot be told apart from the best on each question "
-        f"(paired Wilcoxon tests against the leader, Holm-adjusted, α = {alpha:g}), with their cost per tile. "
+        f"(paired Wilcoxon tests of every pair of methods, Holm-adjusted, α = {alpha:g}), with their cost per tile. "
         "Controls (<code>random</code>, <code>edges</code>, <code>oracle</code>) are anchors, not candidates.</p>"
     )
     if not recs:
@@ -140,7 +141,7 @@ def recommendation_html(recs: list[R.BlockRecommendation], alpha: float) -> str:
                 f'<span class="cost">({h(R.fmt_seconds(r.seconds_per_tile.get(e)))})</span></span>'
                 for i, e in enumerate(a.group)
             )
-            anchors = "; ".join(f"{h(e)} {h(R._fmt(v))}" for e, v in a.anchors.items()) or "–"
+            anchors = "<br/>".join(f"{h(e)} {h(R._fmt(v))}" for e, v in a.anchors.items()) or "–"
             out.append(
                 f"<tr><td><b>{h(a.aspect)}</b>: {h(R.ASPECT_QUESTION[a.aspect])}</td>"
                 f"<td>{h(a.label)} {h(a.arrow)}</td><td>{picks}</td><td>{anchors}</td></tr>"

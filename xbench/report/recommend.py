@@ -328,7 +328,7 @@ def to_markdown(recs: list[BlockRecommendation], alpha: float = 0.05) -> str:
     lines = ["# Which explainer to use", ""]
     lines.append(
         "Per task and model: the explainers that cannot be told apart from the best (paired Wilcoxon tests "
-        f"against the leader, Holm-adjusted, α = {alpha:g}) on each question, with their cost per tile. "
+        f"of every pair of methods, Holm-adjusted, α = {alpha:g}) on each question, with their cost per tile. "
         "Controls (`random`, `edges`, `oracle`) are anchors, not candidates."
     )
     if not recs:
