@@ -630,3 +630,35 @@ def test_figures_of_an_earlier_report_are_replaced(tmp_path):
     assert not (figs / "cd__old-metric__none.png").exists() and (figs / "my-own-figure.png").exists()
     assert sorted(p.name for p in figs.glob("*.png")) == ["cost_quality.png", "my-own-figure.png"]
     assert any("earlier report" in w for w in s.warnings)
+
+
+def test_breakdowns_by_class_type_and_coverage_and_models_side_by_side(tmp_path):
+    run = make_run(tmp_path / "run", "orrin-roads", ["cnn", "resnet"], [0, 1], artifacts=False)
+    tiles = pd.DataFrame(
+        {
+            "task": "orrin-roads",
+            "tile": np.arange(24),
+            "class_name": np.where(np.arange(24) % 2 == 0, "road", "clearing"),
+            "main_type": np.where(np.arange(24) % 3 == 0, "road", "clearing"),
+            "coverage": np.linspace(0.0, 0.2, 24),
+        }
+    )
+    tiles.to_parquet(run / "tiles.parquet", index=False)
+    s = write_report([run], tmp_path / "out", "md,tex", n_resamples=200, figures=False)
+    md = (tmp_path / "out" / "tables.md").read_text()
+    assert "# Breakdowns" in md
+    assert "orrin-roads, model cnn: mass-accuracy (planted) by class" in md
+    assert "orrin-roads, model cnn: mass-accuracy (planted) by structure type" in md
+    assert "orrin-roads, model cnn: mass-accuracy (planted) by coverage" in md
+    assert "orrin-roads: models side by side" in md
+    # Known answer: the by-class mean of grad-cam on road tiles, computed here with pandas from the records
+    # (tiles averaged over seeds first, then over the class's tiles).
+    rec = pd.read_parquet(run / "records.parquet")
+    r = rec[(rec.model == "cnn") & (rec.metric == "mass-accuracy") & (rec.truth == "planted")]
+    r = r[r.explainer == "grad-cam"]
+    per_tile = r.groupby("tile")["value"].mean()
+    expected = per_tile[per_tile.index % 2 == 0].mean()
+    table = md.split("mass-accuracy (planted) by class")[1].split("\n\n")[1]
+    row = next(line for line in table.splitlines() if line.startswith("| grad-cam"))
+    assert f"{expected:.3f}" in row
+    assert s.n_tables == len(re.findall(r"\\begin\{table\*\}", (tmp_path / "out" / "tables.tex").read_text()))

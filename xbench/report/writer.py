@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from xbench.errors import XbenchInputError
+from xbench.report import breakdown as B
 from xbench.report import figures as F
 from xbench.report import page as P
 from xbench.report import recommend as R
@@ -357,7 +358,10 @@ def write_report(
             ranks = T.rank_tables(summary)
             concept_specs, notes = T.concept_tables(runs.concepts)
             log += notes
-            T.number_tables(results + ranks + concept_specs)
+            breakdowns = B.breakdown_tables(
+                summary.table, runs.records, B.tile_attributes(runs.dirs, runs.manifests, log)
+            )
+            T.number_tables(results + ranks + concept_specs + breakdowns)
             methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs))
             log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
     finally:
@@ -412,12 +416,14 @@ def write_report(
             advice_md
             + "\n# xbench comparison tables\n\n"
             + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs)
+            + ("\n# Breakdowns\n\n" + "\n".join(T.to_markdown(t) for t in breakdowns) if breakdowns else "")
             + ("\n" + skipped_md if skipped_md else ""),
         )
     if "tex" in fmts:
-        write("tables.tex", T.latex_document_body(results + ranks + concept_specs))
+        write("tables.tex", T.latex_document_body(results + ranks + concept_specs + breakdowns))
     if "html" in fmts:
-        extra = [("skipped", "Skipped metrics and undefined values", skipped_html)] if skipped_html else []
+        extra = [("breakdowns", "Breakdowns", "\n".join(T.to_html(t) for t in breakdowns))] if breakdowns else []
+        extra += [("skipped", "Skipped metrics and undefined values", skipped_html)] if skipped_html else []
         write(
             "report.html",
             P.render_page(runs.dirs, recs, alpha, results, ranks, figs, methods_md, log, concept_specs, extra),
@@ -428,7 +434,7 @@ def write_report(
         result.paths += [f.png, f.pdf]
     write("report.log", "\n".join(log) + ("\n" if log else ""))
     result.warnings = log
-    result.n_tables = len(results) + len(ranks) + len(concept_specs)
+    result.n_tables = len(results) + len(ranks) + len(concept_specs) + len(breakdowns)
     result.n_figures = len(figs)
     result.recommendations = recs
     return result
