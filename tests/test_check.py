@@ -930,3 +930,10 @@ def test_explainers_and_metrics_flags_restrict_the_check(runs, capsys):
     assert "gradient" not in table and "rank-accuracy" not in table and "mass-accuracy" in table
     code, _, err = run_cli([*args, "--explainers", "gradeint"], capsys)
     assert code == 2 and "explainer 'gradeint' is in neither run" in err
+
+
+def test_assert_faithful_takes_the_command_options(runs):
+    result = assert_faithful(runs["missing"], gates=runs["gates"], baseline=runs["baseline"], allow_missing=True)
+    assert result.passed and result.skipped_missing == {"explainer": ["occlusion"]}
+    with pytest.raises(AssertionError, match="missing from the current run"):
+        assert_faithful(runs["missing"], gates=runs["gates"], baseline=runs["baseline"])

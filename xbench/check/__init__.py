@@ -90,14 +90,21 @@ def assert_faithful(
     run_dir: str | Path | pd.DataFrame,
     gates: str | Path | dict | GateSpec | None = None,
     baseline: str | Path | pd.DataFrame | None = None,
+    *,
+    explainers: list[str] | None = None,
+    metrics: list[str] | None = None,
+    allow_missing: bool = False,
 ) -> CheckResult:
     """Apply gates to a run (absolute gates only without a baseline); raise AssertionError with the table.
 
     ``gates`` is a gate file path, gate data shaped like the TOML (``{"default": {...}, "gate": [...]}``)
-    or None for the built-in gates. Returns the :class:`CheckResult` when every gate passes.
+    or None for the built-in gates; ``explainers``, ``metrics`` and ``allow_missing`` act as the command's
+    options of the same names. Returns the :class:`CheckResult` when every gate passes.
     """
     __tracebackhide__ = True
-    result = compare(run_dir, baseline=baseline, gates=gates)
+    result = compare(
+        run_dir, baseline=baseline, gates=gates, explainers=explainers, metrics=metrics, allow_missing=allow_missing
+    )
     if not result.outcomes:
         raise AssertionError("xbench: no gate applied to this run (check the gate selectors)\n" + result.table())
     if not result.passed:
