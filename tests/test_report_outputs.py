@@ -662,3 +662,25 @@ def test_breakdowns_by_class_type_and_coverage_and_models_side_by_side(tmp_path)
     row = next(line for line in table.splitlines() if line.startswith("| grad-cam"))
     assert f"{expected:.3f}" in row
     assert s.n_tables == len(re.findall(r"\\begin\{table\*\}", (tmp_path / "out" / "tables.tex").read_text()))
+
+
+def test_skipped_metrics_and_their_reasons_are_in_the_report(tmp_path):
+    run = make_run(tmp_path / "run", "orrin-roads", ["cnn"], [0], artifacts=False)
+    manifest = json.loads((run / "manifest.json").read_text())
+    manifest["cells"][0]["notes"] = {"deletion-auc/none": "the pack has no twins: needs counterfactual twins"}
+    (run / "manifest.json").write_text(json.dumps(manifest))
+    write_report([run], tmp_path / "a", "md,html", n_resamples=200, figures=False)
+    md = (tmp_path / "a" / "tables.md").read_text()
+    assert "# Skipped metrics and undefined values" in md
+    line = next(x for x in md.splitlines() if "needs counterfactual twins" in x)
+    assert "deletion-auc" in line and manifest["cells"][0]["explainer"] in line
+    assert "needs counterfactual twins" in (tmp_path / "a" / "report.html").read_text()
+    # a reasons table written by the run takes precedence over the manifest's notes
+    cols = ["task", "model", "seed", "explainer", "metric", "truth", "reason"]
+    pd.DataFrame(
+        [("orrin-roads", "cnn", 0, "", "insertion-auc", "none", "skipped: no twins")], columns=cols
+    ).to_parquet(run / "reasons.parquet", index=False)
+    write_report([run], tmp_path / "b", "md", n_resamples=200, figures=False)
+    md = (tmp_path / "b" / "tables.md").read_text()
+    assert "skipped: no twins" in md and "needs counterfactual twins" not in md
+    assert "| orrin-roads / cnn | insertion-auc | all | skipped: no twins |" in md
