@@ -271,7 +271,7 @@ def test_shuffled_explainer_fails_and_the_table_names_it(runs, tmp_path, capsys)
     assert len(fail_lines) == 5
     assert all("gradient" in line for line in fail_lines)
     assert any("mass-accuracy" in line and "paired test" in line and "Wilcoxon" in line for line in fail_lines)
-    assert "5 FAILED" in out.splitlines()[0]
+    assert "5 FAILED" in next(line for line in out.splitlines() if line.startswith("xbench check:"))
     # JUnit: the failing testcases carry a <failure> with the reason
     root = ET.parse(ju).getroot()
     failing = [c for c in root.iter("testcase") if c.find("failure") is not None]
@@ -358,9 +358,9 @@ def test_zero_allowed_drop_means_no_worsening_at_all(runs, tmp_path):
 
 def test_metric_without_direction_counts_any_change(runs, monkeypatch):
     """A metric the registry knows but with no preferred direction: a change either way is "worse"."""
-    import xbench.check
+    import xbench.check.apply
 
-    monkeypatch.setattr(xbench.check, "_metric_info", lambda metric: (None, None, True))
+    monkeypatch.setattr(xbench.check.apply, "_metric_info", lambda metric: (None, None, True))
     gates = {"default": {"max_relative_drop": 0.4}}
     for current, baseline in (("slow", "baseline"), ("baseline", "slow")):
         result = compare(runs[current], baseline=runs[baseline], gates=gates)
@@ -381,16 +381,49 @@ def test_gate_precedence_and_switching_off(runs):
     assert spec.rule_for({**group, "metric": "m", "explainer": "x"})["max_drop"] == 0.9
 
 
-def test_paired_test_catches_a_small_consistent_drop(runs, tmp_path):
-    """A drop below max_drop but consistent over tiles is caught by the paired test alone."""
+MARGIN_GATES = {
+    "settings": {"alpha": 0.01, "min_pairs": 8},
+    "default": {"max_drop": 0.02, "paired_test": True},
+    "gate": [*DIRECTIONS, {"metric": "seconds", "skip": True}],
+}
+
+
+def test_a_consistent_drop_inside_the_margin_passes(runs, tmp_path):
+    """Every tile 0.01 worse, margin 0.02: the mean is inside the margin and the paired test (on differences
+    shifted by the margin, so every shifted difference is +0.01, on the good side) cannot be significant."""
     frame = fabricate_records()
     sel = (frame["explainer"] == "occlusion") & (frame["metric"] == "mass-accuracy")
     frame.loc[sel, "value"] -= 0.01
-    result = compare(write_run(tmp_path / "small", frame), baseline=runs["baseline"], gates=runs["gates"])
-    assert [(o.explainer, o.metric, o.check) for o in result.failures] == [
-        ("occlusion", "mass-accuracy", "paired-test")
+    result = compare(write_run(tmp_path / "small", frame), baseline=runs["baseline"], gates=MARGIN_GATES)
+    assert result.passed, result.table()
+    paired = [o for o in result.outcomes if o.explainer == "occlusion" and o.metric == "mass-accuracy"]
+    test = next(o for o in paired if o.check == "paired-test")
+    assert "margin 0.02" in test.message and test.p_value > 0.5 and test.n_pairs == 2 * (TILES - 1)
+
+
+def test_a_consistent_drop_beyond_the_margin_fails(runs, tmp_path):
+    """Every tile 0.03 worse, margin 0.02: both the mean gate and the shifted paired test fail."""
+    frame = fabricate_records()
+    sel = (frame["explainer"] == "occlusion") & (frame["metric"] == "mass-accuracy")
+    frame.loc[sel, "value"] -= 0.03
+    result = compare(write_run(tmp_path / "big", frame), baseline=runs["baseline"], gates=MARGIN_GATES)
+    assert sorted((o.explainer, o.metric, o.check) for o in result.failures) == [
+        ("occlusion", "mass-accuracy", "max-drop"),
+        ("occlusion", "mass-accuracy", "paired-test"),
     ]
-    assert result.failures[0].p_value < 0.01 and result.failures[0].n_pairs == 2 * (TILES - 1)
+    paired = next(o for o in result.failures if o.check == "paired-test")
+    # 2 x 11 tiles all shifted by -0.01: the one-sided exact Wilcoxon p-value is 2**-22 (scipy's exact null)
+    assert paired.p_value < 1e-5 and "margin" in paired.message
+
+
+def test_a_noisy_drop_beyond_the_margin_is_caught_by_the_paired_test(runs, tmp_path):
+    """Mean drop 0.025 (beyond 0.02) with tile noise: the shifted test still sees it with 22 pairs."""
+    frame = fabricate_records()
+    sel = (frame["explainer"] == "gradient") & (frame["metric"] == "rank-accuracy")
+    rng = np.random.default_rng(3)
+    frame.loc[sel, "value"] -= 0.025 + rng.normal(0, 0.001, sel.sum())
+    result = compare(write_run(tmp_path / "noisy", frame), baseline=runs["baseline"], gates=MARGIN_GATES)
+    assert ("gradient", "rank-accuracy", "paired-test") in [(o.explainer, o.metric, o.check) for o in result.failures]
 
 
 def test_holm_correction_and_min_pairs(runs):
@@ -534,6 +567,13 @@ MALFORMED = [
     ("selector type", "[[gate]]\nmetric = 3\nmax_drop = 1\n", ["line 2", "key 'metric'", "a name"]),
     ("empty rule", '[[gate]]\nmetric = "x"\n', ["line 1", "sets no gate"]),
     ("syntax", "[default]\nmax_drop = = 0.1\n", ["TOML syntax error", "line 2"]),
+    ("empty file", "# nothing here\n", ["sets no gate"]),
+    ("empty default", "[default]\n", ["sets no gate"]),
+    (
+        "misspelled metric",
+        '[default]\nmax_drop = 0.1\n[[gate]]\nmetric = "mass-acuracy"\nat_least = 0.1\n',
+        ["[[gate]] 1 key 'metric'", "unknown metric 'mass-acuracy'", "mass-accuracy"],
+    ),
 ]
 
 
@@ -819,3 +859,81 @@ def test_plugin_end_to_end_with_a_user_explainer(pytester, tmp_path, monkeypatch
         unregister_explainer("smooth-saliency")
     result.assert_outcomes(passed=1, failed=1)
     result.stdout.fnmatch_lines(["*test_random_control_does_not*", "*FAIL*random*mask-auroc*planted*at least*"])
+
+
+# ----------------------------------------------------------------------------- manifests and flags
+def _with_manifest(folder: Path, accuracy: float, weights: str, torch_version: str = "2.13.0") -> Path:
+    manifest = {
+        "task": "upland-mini",
+        "task_hash": "abc",
+        "models": [
+            {
+                "name": "cnn",
+                "seed": 0,
+                "kind": "cnn",
+                "weights_hash": weights,
+                "seconds": 3.0,
+                "accuracy": {"balanced_test": accuracy},
+            }
+        ],
+        "explainers": {"gradient": {}, "occlusion": {"window": 4}, "random": {}},
+        "metrics": {"mass-accuracy": {}, "rank-accuracy": {}},
+        "versions": {"torch": torch_version, "xbench": "0.1.0"},
+    }
+    (folder / "manifest.json").write_text(json.dumps(manifest))
+    return folder
+
+
+def test_check_after_a_retrain_prints_the_model_change_first(runs, tmp_path, capsys):
+    base = _with_manifest(write_run(tmp_path / "base", fabricate_records()), 0.969, "w1")
+    cur = _with_manifest(
+        write_run(tmp_path / "retrained", fabricate_records({"gradient": "shuffle"})), 0.733, "w2", "2.14.0"
+    )
+    js = tmp_path / "summary.json"
+    code, out, _ = run_cli(
+        ["--baseline", str(base), "--current", str(cur), "--gates", str(runs["gates"]), "--json", str(js)], capsys
+    )
+    assert code == 1
+    lines = out.splitlines()
+    assert lines[0].startswith("manifests: 3 change(s)")
+    # the model changes come first, then the package version, all above the gate table
+    assert "model cnn seed 0 test balanced accuracy: 0.969 -> 0.733 (-0.236)" in lines[1]
+    assert "model cnn seed 0 weights_hash: w1 -> w2" in lines[2]
+    assert "version torch: 2.13.0 -> 2.14.0" in lines[3]
+    assert lines[4].startswith("xbench check: ")
+    summary = json.loads(js.read_text())
+    assert summary["manifests_compared"] is True
+    assert [c["kind"] for c in summary["changes"]] == ["model", "model", "version"]
+
+
+def test_unchanged_manifests_say_so(runs, tmp_path, capsys):
+    base = _with_manifest(write_run(tmp_path / "b", fabricate_records()), 0.9, "w")
+    cur = _with_manifest(write_run(tmp_path / "c", fabricate_records()), 0.9, "w")
+    code, out, _ = run_cli(["--baseline", str(base), "--current", str(cur), "--gates", str(runs["gates"])], capsys)
+    assert code == 0 and out.splitlines()[0].startswith("manifests: no change")
+
+
+def test_allow_missing_on_the_command_line_says_what_was_skipped(runs, tmp_path, capsys):
+    js = tmp_path / "s.json"
+    args = ["--baseline", str(runs["baseline"]), "--current", str(runs["missing"]), "--gates", str(runs["gates"])]
+    code, out, _ = run_cli([*args, "--allow-missing", "--json", str(js)], capsys)
+    assert code == 0, out
+    assert "skipped (in the baseline, not in the current run; allowed): explainers occlusion" in out
+    assert json.loads(js.read_text())["skipped_missing"] == {"explainer": ["occlusion"]}
+
+
+def test_explainers_and_metrics_flags_restrict_the_check(runs, capsys):
+    args = ["--baseline", str(runs["baseline"]), "--current", str(runs["shuffled"]), "--gates", str(runs["gates"])]
+    code, out, _ = run_cli([*args, "--explainers", "occlusion,random", "--metrics", "mass-accuracy"], capsys)
+    assert code == 0, out
+    table = "\n".join(line for line in out.splitlines() if not line.startswith("warning:"))
+    assert "gradient" not in table and "rank-accuracy" not in table and "mass-accuracy" in table
+    code, _, err = run_cli([*args, "--explainers", "gradeint"], capsys)
+    assert code == 2 and "explainer 'gradeint' is in neither run" in err
+
+
+def test_assert_faithful_takes_the_command_options(runs):
+    result = assert_faithful(runs["missing"], gates=runs["gates"], baseline=runs["baseline"], allow_missing=True)
+    assert result.passed and result.skipped_missing == {"explainer": ["occlusion"]}
+    with pytest.raises(AssertionError, match="missing from the current run"):
+        assert_faithful(runs["missing"], gates=runs["gates"], baseline=runs["baseline"])

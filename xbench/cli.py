@@ -29,6 +29,7 @@ VERBS: dict[str, str] = {
     "demo": "the whole pipeline on the small demo task, report included",
     "explainers": "list the explainers with their citations, needs and defaults",
     "metrics": "list the metrics with definitions, citations, ranges and needs",
+    "show": "one tile's bands, truths and every explainer's map with its metric values, as a PNG",
 }
 
 

@@ -30,7 +30,7 @@ import pytest
 __all__ = ["assert_faithful", "xbench_task_run", "xbench_assert_faithful"]
 
 
-def assert_faithful(run_dir: str | Path, gates: Any = None, baseline: str | Path | None = None) -> Any:
+def assert_faithful(run_dir: str | Path, gates: Any = None, baseline: str | Path | None = None, **options: Any) -> Any:
     """Apply gates to ``run_dir`` and raise AssertionError with the gate table when one fails.
 
     ``gates``: a gate file path, gate data shaped like the TOML (``{"default": {...}, "gate": [...]}``),
@@ -40,7 +40,7 @@ def assert_faithful(run_dir: str | Path, gates: Any = None, baseline: str | Path
     __tracebackhide__ = True
     from xbench.check import assert_faithful as _assert_faithful
 
-    return _assert_faithful(run_dir, gates=gates, baseline=baseline)
+    return _assert_faithful(run_dir, gates=gates, baseline=baseline, **options)
 
 
 def pytest_addoption(parser: pytest.Parser) -> None:
@@ -114,9 +114,9 @@ def xbench_assert_faithful(request: pytest.FixtureRequest) -> Callable:
     """:func:`assert_faithful` with the ini option ``xbench_gates`` as the default gate file."""
     default_gates = _ini_path(request.config, "xbench_gates")
 
-    def check(run_dir: str | Path, gates: Any = None, baseline: str | Path | None = None) -> Any:
+    def check(run_dir: str | Path, gates: Any = None, baseline: str | Path | None = None, **options: Any) -> Any:
         __tracebackhide__ = True
         chosen = gates if gates is not None else default_gates
-        return assert_faithful(run_dir, gates=chosen, baseline=baseline)
+        return assert_faithful(run_dir, gates=chosen, baseline=baseline, **options)
 
     return check

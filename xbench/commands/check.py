@@ -1,7 +1,9 @@
 """`xbench check`: compare a run with a baseline under faithfulness gates.
 
 Exit codes: 0 every gate passes, 1 at least one gate fails (a regression), 2 usage or input errors
-(unknown option, malformed gate file, missing run folder or records).
+(unknown option, malformed or empty gate file, a gate naming an unknown metric, missing run folder or
+records, or no gate applied at all). Before the gate table it prints what changed between the two runs'
+manifests (models and their accuracy, task, explainer and metric settings, package versions).
 """
 
 from __future__ import annotations
@@ -32,6 +34,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--jobs", type=int, default=1, metavar="N", help="with --task: worker processes")
     parser.add_argument("--failures-only", action="store_true", help="print only the failing gates in the table")
+    parser.add_argument(
+        "--explainers", metavar="LIST", help="check only these explainers (comma-separated keys)", default=None
+    )
+    parser.add_argument(
+        "--metrics", metavar="LIST", help="check only these metrics (comma-separated keys)", default=None
+    )
+    parser.add_argument(
+        "--allow-missing",
+        action="store_true",
+        help="groups of the baseline absent from the current run are skipped (and listed), not failed",
+    )
 
 
 def _run_task(args: argparse.Namespace, task) -> Path:
@@ -70,7 +83,27 @@ def run(args: argparse.Namespace) -> int:
             raise XbenchInputError("xbench check", "--baseline BASE_DIR is required with --current")
         current, baseline = Path(args.current), Path(args.baseline)
 
-    result = compare(current, baseline=baseline, gates=args.gates)
+    result = compare(
+        current,
+        baseline=baseline,
+        gates=args.gates,
+        explainers=_keys(args.explainers),
+        metrics=_keys(args.metrics),
+        allow_missing=args.allow_missing,
+    )
+    if not result.outcomes:
+        raise XbenchInputError(
+            str(args.gates or "<built-in gates>"),
+            "no gate applied to the run (the selectors, --explainers or --metrics match nothing)",
+            expected="gates that match the run's records",
+        )
     print(result.table(only_failures=args.failures_only))
     write_outputs(result, json_path=args.json, junit_path=args.junit)
     return 0 if result.passed else 1
+
+
+def _keys(text: str | None) -> list[str] | None:
+    if text is None:
+        return None
+    keys = [k.strip() for k in text.split(",") if k.strip()]
+    return keys or None

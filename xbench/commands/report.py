@@ -73,8 +73,20 @@ def run(args: argparse.Namespace) -> int:
             print(f"  {path}")
     if summary.n_figures:
         print(f"  {summary.out_dir / 'figures'}/ ({summary.n_figures} figures, PNG and PDF)")
+    _print_recommendations(summary)
     if summary.warnings:
         print(f"notes ({len(summary.warnings)}, also in report.log):")
         for w in summary.warnings:
             print(f"  - {w}")
     return 0
+
+
+def _print_recommendations(summary) -> None:
+    """The recommendation page in a few lines: per block and question, the methods tied with the best."""
+    from xbench.report.recommend import console_lines
+
+    lines = console_lines(summary.recommendations)
+    if lines:
+        print("which explainer to use (cannot be told apart from the best; cost per tile; recommendations.md):")
+        for line in lines:
+            print(f"  {line}")

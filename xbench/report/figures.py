@@ -143,75 +143,127 @@ def _blank(ax) -> None:
         s.set_visible(False)
 
 
-def gallery_figure(
+def wrap_name(name: str, width: int = 10) -> str:
+    """Break a hyphenated key over lines of about ``width`` characters (at hyphens) for narrow panels."""
+    lines, current = [], ""
+    for part in name.split("-"):
+        piece = part if not current else current + "-" + part
+        if current and len(piece) > width:
+            lines.append(current + "-")
+            current = part
+        else:
+            current = piece
+    return "\n".join([*lines, current])
+
+
+def choose_gallery_tiles(targets: np.ndarray | None, n_tiles: int, max_tiles: int) -> list[int]:
+    """Row indices of the gallery: the first tile of every target class (so each class is shown), then the
+    next tiles in order, at most ``max_tiles``."""
+    if targets is None or len(targets) == 0:
+        return list(range(min(n_tiles, max_tiles)))
+    t = np.asarray(targets)[:n_tiles]
+    firsts = [int(np.flatnonzero(t == c)[0]) for c in dict.fromkeys(t.tolist())]
+    rest = [i for i in range(n_tiles) if i not in firsts]
+    return sorted((firsts + rest)[:max_tiles])
+
+
+GALLERY_WIDTH = 7.0  # inches: a page's text width
+GALLERY_MAPS_PER_PART = 6
+
+
+def gallery_figures(
     data: dict[str, np.ndarray], explainers: list[str], title: str, max_tiles: int = 6
-) -> tuple[Figure, list[str]]:
-    """Rows: tiles. Columns: natural and false colour, planted mask, verified evidence, explainer maps."""
+) -> tuple[list[Figure], list[str]]:
+    """The heatmap gallery as page-wide figures: rows are tiles (the first of every class first), columns
+    natural and false colour, planted structures, verified evidence and up to six explainers per figure
+    (more explainers: more figures, each repeating the tile columns). Colour bars for the per-tile map
+    scales and for the evidence sit under each figure."""
     notes: list[str] = []
-    images = np.asarray(data["images"])
-    g = min(len(images), max_tiles)
-    images = images[:g]
+    images_all = np.asarray(data["images"])
+    targets_all = data.get("targets")
+    rows = choose_gallery_tiles(targets_all, len(images_all), max_tiles)
+    images = images_all[rows]
     band_names = data.get("band_names", np.array([]))
     nat_idx, ok1 = band_index(band_names, ("red", "green", "blue"))
     fc_idx, ok2 = band_index(band_names, ("nir", "red", "green"))
     if not (ok1 and ok2):
         notes.append(f"{title}: bands red/green/blue/nir not all named; showing the first three bands")
     natural, false = stretch(images, nat_idx), stretch(images, fc_idx)
-    planted = np.asarray(data["planted"])[:g] if "planted" in data else None
-    evidence = np.asarray(data["evidence"])[:g] if "evidence" in data else None
-    maps = [(e, np.asarray(data[f"map__{e}"])[:g]) for e in explainers if f"map__{e}" in data]
-    extra = sorted(k[5:] for k in data if k.startswith("map__") and k[5:] not in explainers)
-    maps += [(e, np.asarray(data[f"map__{e}"])[:g]) for e in extra]
-    cols = ["natural colour\n(red, green, blue)", "false colour\n(nir, red, green)"]
-    if planted is not None:
-        cols.append("planted\nstructures")
-    if evidence is not None:
-        cols.append("verified\nevidence")
-    cols += [e for e, _ in maps]
-    size = 1.15
-    with matplotlib.rc_context(RC):
-        fig = new_figure(size * len(cols) + 0.4, size * g + 1.0)
-        axes = np.atleast_2d(fig.subplots(g, len(cols), squeeze=False))
-        tiles = data.get("tiles")
-        targets, classes = data.get("targets"), data.get("class_names")
-        cmaps = set()
-        for i in range(g):
-            mask = planted[i].astype(bool) if planted is not None else None
-            panels: list[Any] = [("rgb", natural[i]), ("rgb", false[i])]
-            if planted is not None:
-                panels.append(("mask", planted[i]))
-            if evidence is not None:
-                panels.append(("map", evidence[i]))
-            panels += [("map", m[i]) for _, m in maps]
-            for j, (kind, arr) in enumerate(panels):
-                ax = axes[i, j]
-                if kind == "rgb":
-                    ax.imshow(arr, interpolation="nearest")
-                elif kind == "mask":
-                    ax.imshow(arr.astype(float), cmap="gray", vmin=0, vmax=1, interpolation="nearest")
-                else:
-                    cmaps.add(_show_map(ax, arr, mask))
-                _blank(ax)
-                if i == 0:
-                    ax.set_title(cols[j], fontsize=7)
-            label = f"tile {int(tiles[i])}" if tiles is not None and i < len(tiles) else f"tile {i + 1}"
-            if targets is not None and classes is not None and i < len(targets):
-                t = int(targets[i])
-                if 0 <= t < len(classes):
-                    label += f"\ntarget: {classes[t]}"
-            axes[i, 0].set_ylabel(label, fontsize=7)
-        fig.suptitle(title, fontsize=9)
-        scale = (
-            "viridis: 0 to the map's maximum"
-            if cmaps == {"viridis"}
-            else "viridis: 0 to max (non-negative maps); RdBu: -max to +max (signed maps)"
-        )
-        fig.supxlabel(
-            f"Bands stretched 2-98 % over the tiles shown. Maps scaled per tile ({scale}); "
-            "outline: planted structures.",
-            fontsize=7,
-        )
-    return fig, notes
+    planted = np.asarray(data["planted"])[rows] if "planted" in data else None
+    evidence = np.asarray(data["evidence"])[rows] if "evidence" in data else None
+    names = [e for e in explainers if f"map__{e}" in data]
+    names += sorted(k[5:] for k in data if k.startswith("map__") and k[5:] not in names)
+    chunks = [names[i : i + GALLERY_MAPS_PER_PART] for i in range(0, len(names), GALLERY_MAPS_PER_PART)] or [[]]
+    tiles, classes = data.get("tiles"), data.get("class_names")
+    if targets_all is not None and classes is not None:
+        missing = [str(c) for i, c in enumerate(classes) if i not in set(np.asarray(targets_all).tolist())]
+        if missing:
+            notes.append(f"{title}: the run's gallery tiles hold no tile of class {', '.join(missing)}")
+    ev_max = float(np.nanmax(evidence)) if evidence is not None and evidence.size else 1.0
+    figs = []
+    for part, chunk in enumerate(chunks, start=1):
+        cols = ["natural\ncolour", "false\ncolour"]
+        cols += ["planted"] if planted is not None else []
+        cols += ["verified\nevidence"] if evidence is not None else []
+        cols += [wrap_name(e) for e in chunk]
+        cell = GALLERY_WIDTH / len(cols)
+        with matplotlib.rc_context(RC):
+            fig = new_figure(GALLERY_WIDTH, cell * (len(rows) + 1.6) + 0.9)
+            grid = fig.add_gridspec(len(rows) + 1, len(cols), height_ratios=[1.0] * len(rows) + [0.9])
+            signed_any = False
+            for i in range(len(rows)):
+                mask = planted[i].astype(bool) if planted is not None else None
+                panels: list[Any] = [("rgb", natural[i]), ("rgb", false[i])]
+                if planted is not None:
+                    panels.append(("mask", planted[i]))
+                if evidence is not None:
+                    panels.append(("evidence", evidence[i]))
+                panels += [("map", np.asarray(data[f"map__{e}"])[rows[i]]) for e in chunk]
+                for j, (kind, arr) in enumerate(panels):
+                    ax = fig.add_subplot(grid[i, j])
+                    if kind == "rgb":
+                        ax.imshow(arr, interpolation="nearest")
+                    elif kind == "mask":
+                        ax.imshow(arr.astype(float), cmap="gray", vmin=0, vmax=1, interpolation="nearest")
+                    elif kind == "evidence":
+                        ax.imshow(np.nan_to_num(arr), cmap="magma", vmin=0, vmax=ev_max or 1.0, interpolation="nearest")
+                    else:
+                        signed_any |= _show_map(ax, arr, mask) == "RdBu_r"
+                    _blank(ax)
+                    if i == 0:
+                        ax.set_title(cols[j], fontsize=6.5)
+                label = f"tile {int(tiles[rows[i]])}" if tiles is not None else f"tile {rows[i] + 1}"
+                if targets_all is not None and classes is not None:
+                    t = int(np.asarray(targets_all)[rows[i]])
+                    if 0 <= t < len(classes):
+                        label += f"\n{classes[t]}"
+                fig.axes[-len(panels)].set_ylabel(label, fontsize=6.5)
+            # colour bars: the evidence scale and the explainers' per-tile scales
+            bars = [("magma", 0.0, ev_max or 1.0, "verified evidence\n(prob. drop × coverage)")]
+            bars.append(("viridis", 0.0, 1.0, "non-negative map: 0 to the tile's max"))
+            if signed_any:
+                bars.append(("RdBu_r", -1.0, 1.0, "signed map: −max to +max"))
+            bar_grid = grid[len(rows), :].subgridspec(2, len(bars), wspace=0.35, height_ratios=[0.25, 0.75])
+            for k, (cmap, lo, hi, label) in enumerate(bars):
+                cax = fig.add_subplot(bar_grid[0, k])
+                sm = matplotlib.cm.ScalarMappable(norm=matplotlib.colors.Normalize(lo, hi), cmap=cmap)
+                cb = fig.colorbar(sm, cax=cax, orientation="horizontal")
+                cb.set_label(label, fontsize=6)
+                cb.ax.tick_params(labelsize=5.5)
+                if cmap != "magma":
+                    cb.set_ticks([lo, hi], labels=["−max" if lo < 0 else "0", "max"])
+            suffix = f" (part {part} of {len(chunks)})" if len(chunks) > 1 else ""
+            fig.suptitle(title + suffix, fontsize=8)
+        figs.append(fig)
+    return figs, notes
+
+
+def gallery_figure(
+    data: dict[str, np.ndarray], explainers: list[str], title: str, max_tiles: int = 6
+) -> tuple[Figure, list[str]]:
+    """The first page of :func:`gallery_figures` (all explainers when there are at most six)."""
+    figs, notes = gallery_figures(data, explainers, title, max_tiles)
+    return figs[0], notes
 
 
 # ---------------------------------------------------------------- curves
@@ -258,8 +310,11 @@ def _legend(fig, names: list[str], styles: dict[str, dict], marker: bool = False
 
 
 def deletion_insertion_figure(
-    curves: pd.DataFrame, explainers: list[str], styles: dict[str, dict], title: str
+    curves: pd.DataFrame, explainers: list[str], styles: dict[str, dict], title: str, ncols: int = 4
 ) -> Figure | None:
+    """Small multiples: one panel per explainer with its deletion and insertion curves (one colour per
+    curve kind, one line style per baseline), the ``random`` control's curves in grey in every panel as
+    the reference a useful explainer must beat."""
     c = curves[curves["curve"].isin(["deletion", "insertion"])]
     if c.empty:
         return None
@@ -268,33 +323,55 @@ def deletion_insertion_figure(
     baselines = list(dict.fromkeys(pooled["baseline"]))
     kinds = [k for k in ("deletion", "insertion") if k in set(pooled["curve"])]
     names = [e for e in explainers if e in set(pooled["explainer"])]
+    kind_colour = {"deletion": "#B2182B", "insertion": "#2166AC"}
+    base_style = dict(zip(baselines, ["-", "--", ":", "-."], strict=False))
+    ncols = min(ncols, len(names))
+    nrows = -(-len(names) // ncols)
+
+    def line(ax, e: str, kind: str, b: str, colour: str, width: float, band: bool) -> None:
+        d = pooled[(pooled["explainer"] == e) & (pooled["curve"] == kind) & (pooled["baseline"] == b)]
+        if d.empty:
+            return
+        d = d.sort_values("step")
+        x, m = 100 * d["x"].to_numpy(), d["mean"].to_numpy()
+        ax.plot(x, m, color=colour, linestyle=base_style.get(b, "-"), linewidth=width)
+        if band:
+            half = 1.96 * d["sd"].to_numpy() / np.sqrt(np.maximum(d["n"].to_numpy(), 1))
+            ax.fill_between(x, m - half, m + half, color=colour, alpha=0.15, linewidth=0)
+
     with matplotlib.rc_context(RC):
-        fig = new_figure(3.2 * len(kinds) + 1.6, 2.6 * len(baselines) + 0.4)
-        axes = fig.subplots(len(baselines), len(kinds), squeeze=False)
-        for i, b in enumerate(baselines):
-            for j, kind in enumerate(kinds):
-                ax = axes[i, j]
-                for e in names:
-                    d = pooled[(pooled["explainer"] == e) & (pooled["curve"] == kind) & (pooled["baseline"] == b)]
-                    if d.empty:
-                        continue
-                    d = d.sort_values("step")
-                    _band(
-                        ax,
-                        100 * d["x"].to_numpy(),
-                        d["mean"].to_numpy(),
-                        d["sd"].to_numpy(),
-                        d["n"].to_numpy(),
-                        styles[e],
-                    )
-                verb = "removed" if kind == "deletion" else "inserted"
-                ax.set_xlabel(f"pixels {verb}, most relevant first (% of tile)")
-                ax.set_ylabel("target-class probability")
-                ax.set_title(f"{kind}" + (f" (baseline: {b})" if b else ""))
-                ax.set_xlim(0, 100)
-                ax.grid(alpha=0.3, linewidth=0.5)
-        _legend(fig, names, styles)
-        fig.suptitle(f"{title}: mean over tiles and seeds, band = mean ± 1.96 sd/√n", fontsize=9)
+        fig = new_figure(1.75 * ncols + 0.2, 1.45 * nrows + 0.9)
+        axes = fig.subplots(nrows, ncols, squeeze=False, sharex=True, sharey=True)
+        for k, e in enumerate(names):
+            ax = axes[k // ncols, k % ncols]
+            for b in baselines:
+                for kind in kinds:
+                    if e != "random" and "random" in names:
+                        line(ax, "random", kind, b, "0.65", 0.8, False)
+                    line(ax, e, kind, b, kind_colour[kind], 1.3, True)
+            ax.set_title(e, fontsize=7.5)
+            ax.set_xlim(0, 100)
+            ax.grid(alpha=0.3, linewidth=0.4)
+            if k % ncols == 0:
+                ax.set_ylabel("target prob.")
+            if k + ncols >= len(names):
+                ax.xaxis.set_tick_params(labelbottom=True)
+        for k in range(len(names), nrows * ncols):
+            axes[k // ncols, k % ncols].set_visible(False)
+        handles = [Line2D([], [], color=kind_colour[k], linewidth=1.3) for k in kinds]
+        labels = [f"{k} ({'fast drop is good' if k == 'deletion' else 'fast rise is good'})" for k in kinds]
+        if len(baselines) > 1:
+            handles += [Line2D([], [], color="black", linestyle=base_style[b], linewidth=1) for b in baselines]
+            labels += [f"baseline: {b or 'default'}" for b in baselines]
+        if "random" in names:
+            handles.append(Line2D([], [], color="0.65", linewidth=0.8))
+            labels.append("random control (reference)")
+        fig.legend(handles, labels, loc="outside lower center", ncol=min(4, len(labels)), frameon=False)
+        fig.suptitle(
+            f"{title}\nx: % of the tile's pixels removed or inserted, most relevant first; "
+            "mean over tiles and seeds, band = mean ± 1.96 sd/√n",
+            fontsize=8,
+        )
     return fig
 
 
@@ -583,44 +660,133 @@ def _place_labels(ax, points: list[tuple[str, float, float]], min_gap: float = 1
 def cost_quality_figure(
     points: pd.DataFrame, explainers: list[str], styles: dict[str, dict], y_label: str, title: str
 ) -> Figure | None:
-    """points: explainer, block, seconds (per tile), value. One faint point per block, a labelled mean."""
+    """points: explainer, block, seconds (per tile), value. One panel per task x model block and one point
+    per explainer in it, so that every point in a panel was measured on the same tiles with the same model
+    (averaging over blocks would compare methods run on different sets of blocks). Controls are drawn
+    hollow: they are anchors, not candidates."""
     p = points[np.isfinite(points["seconds"]) & (points["seconds"] > 0) & np.isfinite(points["value"])]
     if p.empty:
         return None
-    names = [e for e in explainers if e in set(p["explainer"])]
-    means: list[tuple[str, float, float]] = []
+    blocks = list(dict.fromkeys(p["block"]))
+    ncols = min(3, len(blocks))
+    nrows = -(-len(blocks) // ncols)
+    controls = ("random", "edges", "oracle")
     with matplotlib.rc_context(RC):
-        fig = new_figure(6.0, 4.0)
-        ax = fig.add_subplot()
-        for e in names:
-            d = p[p["explainer"] == e]
-            st = styles[e]
-            if len(d) > 1:
+        fig = new_figure(3.1 * ncols + 0.3, 2.7 * nrows + 0.5)
+        axes = fig.subplots(nrows, ncols, squeeze=False, sharey=True)
+        for k, block in enumerate(blocks):
+            ax = axes[k // ncols, k % ncols]
+            d = p[p["block"] == block]
+            labels: list[tuple[str, float, float]] = []
+            for e in [e for e in explainers if e in set(d["explainer"])]:
+                row = d[d["explainer"] == e].iloc[0]
+                st = styles[e]
+                hollow = e in controls
                 ax.scatter(
-                    d["seconds"],
-                    d["value"],
-                    s=12,
-                    color=st["color"],
+                    [row["seconds"]],
+                    [row["value"]],
+                    s=30,
                     marker=st["marker"],
-                    alpha=0.35,
-                    linewidths=0,
+                    facecolors="none" if hollow else st["color"],
+                    edgecolors=st["color"] if hollow else "black",
+                    linewidths=0.9 if hollow else 0.4,
+                    zorder=3,
                 )
-            sx, sy = float(np.exp(np.log(d["seconds"]).mean())), float(d["value"].mean())
-            ax.scatter(
-                [sx],
-                [sy],
-                s=36,
-                color=st["color"],
-                marker=st["marker"],
-                edgecolors="black",
-                linewidths=0.5,
-                zorder=3,
-            )
-            means.append((e, sx, sy))
-        ax.set_xscale("log")
-        _place_labels(ax, means)
-        ax.set_xlabel("explainer time per tile (s, log scale)")
-        ax.set_ylabel(y_label)
-        ax.grid(alpha=0.3, linewidth=0.5, which="both")
+                labels.append((e, float(row["seconds"]), float(row["value"])))
+            ax.set_xscale("log")
+            _place_labels(ax, labels)
+            ax.set_title(block)
+            ax.set_xlabel("explainer time per tile (s, log)")
+            if k % ncols == 0:
+                ax.set_ylabel(y_label)
+            ax.grid(alpha=0.3, linewidth=0.5, which="both")
+        for k in range(len(blocks), nrows * ncols):
+            axes[k // ncols, k % ncols].set_visible(False)
+        fig.suptitle(title + " (hollow markers: controls)", fontsize=9)
+    return fig
+
+
+# ---------------------------------------------------------------- one tile, every explainer
+
+CORE_COVERAGE = 0.5  # the planted truth's default core threshold (coverage at or above it)
+
+
+def tile_figure(
+    data: dict[str, np.ndarray],
+    index: int,
+    explainers: list[str],
+    values: dict[str, list[str]],
+    title: str,
+    ncols: int = 5,
+) -> Figure:
+    """One tile: natural and false colour, planted truth (core and fringe when coverage is known), verified
+    evidence, then one panel per explainer (its map, a colour bar, its metric values underneath).
+
+    ``values`` maps an explainer to lines of text ("mass-accuracy 0.61"). Bands are stretched 2-98 % over
+    this tile alone; each map is scaled to its own largest magnitude (viridis, or RdBu when signed).
+    """
+    images = np.asarray(data["images"])[index : index + 1]
+    band_names = data.get("band_names", np.array([]))
+    nat_idx, _ = band_index(band_names, ("red", "green", "blue"))
+    fc_idx, _ = band_index(band_names, ("nir", "red", "green"))
+    natural, false = stretch(images, nat_idx)[0], stretch(images, fc_idx)[0]
+    planted = np.asarray(data["planted"])[index].astype(bool) if "planted" in data else None
+    coverage = np.asarray(data["coverage"])[index] if "coverage" in data else None
+    evidence = np.asarray(data["evidence"])[index] if "evidence" in data else None
+    names = [e for e in explainers if f"map__{e}" in data]
+    names += sorted(k[5:] for k in data if k.startswith("map__") and k[5:] not in names)
+    truth_panels: list[tuple[str, str, Any]] = [
+        ("natural colour\n(red, green, blue)", "rgb", natural),
+        ("false colour\n(nir, red, green)", "rgb", false),
+    ]
+    if planted is not None:
+        if coverage is not None:
+            if coverage.ndim == 3:  # one plane per structure type: the largest coverage per pixel
+                coverage = coverage.max(axis=0)
+            label = np.where(coverage >= CORE_COVERAGE, 2, np.where(coverage > 0, 1, 0))
+            truth_panels.append(("planted truth\n(core and fringe)", "truth", label))
+        else:
+            truth_panels.append(("planted structures", "truth", planted.astype(int) * 2))
+    if evidence is not None:
+        truth_panels.append(("verified evidence\n(model-checked)", "map", evidence))
+    n_rows = 1 + -(-len(names) // ncols)
+    truth_cmap = ListedColormap(["#f2f2f2", "#f0a35e", "#8c2d04"])
+    with matplotlib.rc_context(RC):
+        fig = new_figure(2.0 * ncols, 2.35 * n_rows + 0.5)
+        grid = fig.add_gridspec(n_rows, ncols)
+        for j, (label, kind, arr) in enumerate(truth_panels[:ncols]):
+            ax = fig.add_subplot(grid[0, j])
+            if kind == "rgb":
+                ax.imshow(arr, interpolation="nearest")
+            elif kind == "truth":
+                ax.imshow(arr, cmap=truth_cmap, norm=BoundaryNorm([-0.5, 0.5, 1.5, 2.5], 3), interpolation="nearest")
+                ax.legend(
+                    handles=[Patch(color="#8c2d04", label="core"), Patch(color="#f0a35e", label="fringe")]
+                    if coverage is not None
+                    else [Patch(color="#8c2d04", label="planted")],
+                    loc="upper center",
+                    bbox_to_anchor=(0.5, -0.02),
+                    ncol=2,
+                    frameon=False,
+                    fontsize=6,
+                )
+            else:
+                im = ax.imshow(np.nan_to_num(arr), cmap="magma", vmin=0, interpolation="nearest")
+                fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).ax.tick_params(labelsize=6)
+            ax.set_title(label, fontsize=7)
+            _blank(ax)
+        for k, e in enumerate(names):
+            ax = fig.add_subplot(grid[1 + k // ncols, k % ncols])
+            m = np.nan_to_num(np.asarray(data[f"map__{e}"])[index].astype(np.float64))
+            a = float(np.max(np.abs(m))) or 1.0
+            signed = m.min() < -1e-9 * a
+            im = ax.imshow(m, cmap="RdBu_r" if signed else "viridis", vmin=-a if signed else 0, vmax=a)
+            if planted is not None and planted.any() and not planted.all():
+                ax.contour(planted.astype(float), levels=[0.5], colors="black" if signed else "white", linewidths=0.6)
+            fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).ax.tick_params(labelsize=6)
+            ax.set_title(e, fontsize=8, fontweight="bold")
+            ax.set_xlabel("\n".join(values.get(e, ["no values recorded"])), fontsize=6.5, linespacing=1.15)
+            ax.set_xticks([])
+            ax.set_yticks([])
         fig.suptitle(title, fontsize=9)
     return fig

@@ -54,6 +54,7 @@ class RunSet:
     concepts: pd.DataFrame | None = None
     artifacts: list[Artifact] = field(default_factory=list)
     log: list[str] = field(default_factory=list)
+    reasons: pd.DataFrame | None = None  # task, model, seed, explainer, metric, truth, reason (skips, NaN causes)
 
     def manifest_for(self, task: str) -> dict[str, Any]:
         """The (first) manifest of a task, or an empty dict."""
@@ -83,6 +84,64 @@ def find_artifacts(run_dir: Path, log: list[str]) -> list[Artifact]:
     return out
 
 
+REASON_COLUMNS = ["task", "model", "seed", "explainer", "metric", "truth", "reason"]
+
+
+def read_reasons(run_dir: Path, manifest: dict[str, Any], log: list[str]) -> pd.DataFrame | None:
+    """Why values are missing or NaN: ``reasons.parquet`` when the run wrote one, else the manifest's notes.
+
+    The manifest fallback takes each cell's ``notes`` (``metric/truth -> reason``), each failed cell's error
+    and the run's ``skipped`` list. One row per (task, model, seed, explainer, metric, truth, reason).
+    """
+    path = run_dir / "reasons.parquet"
+    if path.is_file():
+        try:
+            frame = pd.read_parquet(path)
+        except Exception as exc:  # noqa: BLE001 - an unreadable optional table is logged, not fatal
+            log.append(f"{path}: not read ({type(exc).__name__}: {exc}); reasons taken from the manifest")
+        else:
+            if "reason" in frame.columns:
+                for c in REASON_COLUMNS:
+                    if c not in frame.columns:
+                        frame[c] = "" if c != "seed" else -1
+                return frame[REASON_COLUMNS].drop_duplicates().reset_index(drop=True)
+            log.append(f"{path}: no 'reason' column; reasons taken from the manifest")
+    task = str(manifest.get("task", ""))
+    rows = []
+    for c in manifest.get("cells") or []:
+        base = {
+            "task": task,
+            "model": c.get("model", ""),
+            "seed": c.get("seed", -1),
+            "explainer": c.get("explainer", ""),
+        }
+        for key, reason in (c.get("notes") or {}).items():
+            metric, _, truth = str(key).partition("/")
+            rows.append({**base, "metric": metric, "truth": truth or "none", "reason": str(reason)})
+        if c.get("status") not in ("ok", None) and c.get("error"):
+            rows.append({**base, "metric": "", "truth": "", "reason": f"cell {c.get('status')}: {c.get('error')}"})
+    for item in manifest.get("skipped") or []:
+        if isinstance(item, dict):
+            rows.append(
+                {
+                    "task": task,
+                    "model": item.get("model", ""),
+                    "seed": item.get("seed", -1),
+                    "explainer": item.get("explainer", ""),
+                    "metric": item.get("metric", ""),
+                    "truth": item.get("truth", ""),
+                    "reason": str(item.get("reason", item)),
+                }
+            )
+        else:
+            rows.append(
+                {"task": task, "model": "", "seed": -1, "explainer": "", "metric": "", "truth": "", "reason": str(item)}
+            )
+    if not rows:
+        return None
+    return pd.DataFrame(rows, columns=REASON_COLUMNS).drop_duplicates().reset_index(drop=True)
+
+
 def _concat(frames: list[pd.DataFrame | None]) -> pd.DataFrame | None:
     frames = [f for f in frames if f is not None and len(f)]
     return pd.concat(frames, ignore_index=True) if frames else None
@@ -96,7 +155,7 @@ def load_runs(run_dirs: Any) -> RunSet:
     if not dirs:
         raise XbenchInputError("run folders", "none given", expected="at least one run folder")
     log: list[str] = []
-    records, manifests, curves, reliance, concepts, artifacts = [], [], [], [], [], []
+    records, manifests, curves, reliance, concepts, artifacts, reasons = [], [], [], [], [], [], []
     for d in dirs:
         if not d.is_dir():
             raise XbenchInputError(str(d), "run folder not found")
@@ -106,6 +165,7 @@ def load_runs(run_dirs: Any) -> RunSet:
         reliance.append(read_table(d, "reliance.parquet", log))
         concepts.append(read_table(d, "concepts.parquet", log))
         artifacts.extend(find_artifacts(d, log))
+        reasons.append(read_reasons(d, manifests[-1], log))
     rec = pd.concat(records, ignore_index=True)
     dup = rec.duplicated(RECORD_KEY, keep="last")
     if dup.any():
@@ -126,4 +186,5 @@ def load_runs(run_dirs: Any) -> RunSet:
         concepts=_concat(concepts),
         artifacts=list(seen.values()),
         log=log,
+        reasons=_concat(reasons),
     )

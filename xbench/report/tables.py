@@ -561,14 +561,13 @@ def _tex_mark(mark: str) -> str:
 def to_latex(t: TableSpec) -> str:
     ncol = len(t.header)
     lines = [
-        r"\begin{table}[htbp]",
+        r"\begin{table*}[p]",  # a float page of its own: fits one- and two-column papers (spans both columns)
         r"  \centering",
         r"  \small",
         f"  \\caption{{{tex_escape(t.title)}. {tex_escape(t.caption)}}}",
         f"  \\label{{tab:xbench-{t.ident}}}",
     ]
-    # Shrink to the line width when wider (graphicx: \width is the table's natural width); never enlarge.
-    lines.append(r"  \resizebox{\ifdim\width>\linewidth\linewidth\else\width\fi}{!}{%")
+    lines.append(r"  \xbenchfit{%")  # shrink to the line width (and page height) when larger; never enlarge
     lines.append(f"  \\begin{{tabular}}{{l{'c' * ncol}}}")
     lines.append(r"  \toprule")
     groups = _groups(t.header)
@@ -600,14 +599,36 @@ def to_latex(t: TableSpec) -> str:
     lines.append(r"  \bottomrule")
     lines.append(r"  \end{tabular}%")
     lines.append("  }")
-    lines.append(r"\end{table}")
+    lines.append(r"\end{table*}")
     return "\n".join(lines) + "\n"
 
 
 LATEX_PREAMBLE_NOTE = (
     "% xbench comparison tables. Needs \\usepackage{booktabs} and \\usepackage{graphicx}\n"
-    "% in the preamble; \\input this file where the tables go.\n"
+    "% in the preamble; \\input this file where the tables go (one- or two-column article).\n"
 )
+# \xbenchfit{...}: the table at its natural size, shrunk to the line width and to 85 % of the text height when
+# larger. Defined once (\providecommand), so the file can be input twice.
+LATEX_FIT_MACRO = r"""\makeatletter
+\@ifundefined{xbench@box}{\newsavebox{\xbench@box}}{}
+\providecommand{\xbenchfit}[1]{\begingroup\sbox{\xbench@box}{#1}%
+  \ifdim\wd\xbench@box>\linewidth\sbox{\xbench@box}{\resizebox{\linewidth}{!}{\usebox{\xbench@box}}}\fi
+  \@tempdima=\ht\xbench@box\advance\@tempdima by \dp\xbench@box
+  \ifdim\@tempdima>0.85\textheight\sbox{\xbench@box}{\resizebox*{!}{0.85\textheight}{\usebox{\xbench@box}}}\fi
+  \usebox{\xbench@box}\endgroup}
+\makeatother
+"""
+LATEX_FLUSH_EVERY = 6  # \clearpage after this many tables: LaTeX holds at most 18 floats in waiting
+
+
+def latex_document_body(tables: list[TableSpec]) -> str:
+    """The whole tables.tex: the note, the fit macro, the tables, a \\clearpage every few tables and at the end."""
+    parts = [LATEX_PREAMBLE_NOTE, LATEX_FIT_MACRO]
+    for i, t in enumerate(tables, start=1):
+        parts.append(to_latex(t))
+        if i % LATEX_FLUSH_EVERY == 0 or i == len(tables):
+            parts.append("\\clearpage\n")
+    return "\n".join(parts)
 
 
 # ---------------------------------------------------------------- HTML

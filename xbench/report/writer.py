@@ -12,10 +12,8 @@ Output folder::
 
 from __future__ import annotations
 
-import base64
 import html
 import logging
-import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -25,7 +23,10 @@ import numpy as np
 import pandas as pd
 
 from xbench.errors import XbenchInputError
+from xbench.report import breakdown as B
 from xbench.report import figures as F
+from xbench.report import page as P
+from xbench.report import recommend as R
 from xbench.report import tables as T
 from xbench.report.bib import render_bib
 from xbench.report.compare import Column, Summary, summarize, variant_sensitivity
@@ -44,6 +45,7 @@ class ReportSummary:
     warnings: list[str] = field(default_factory=list)
     n_tables: int = 0
     n_figures: int = 0
+    recommendations: list[R.BlockRecommendation] = field(default_factory=list)
 
     def __str__(self) -> str:
         return (
@@ -82,8 +84,8 @@ def choose_headline(summary: Summary, metric: str, truth: str, log: list[str]) -
 # ---------------------------------------------------------------- figures
 
 
-def cost_points(runs: RunSet, summary: Summary, column: Column, log: list[str]) -> pd.DataFrame:
-    """Seconds per tile per (task, model, explainer), from the manifests' cell costs, else from records."""
+def explainer_costs(runs: RunSet, log: list[str]) -> pd.DataFrame:
+    """Explainer seconds per tile per (task, model, explainer), from the manifests' cell costs, else records."""
     rows = []
     for m in runs.manifests:
         task = m.get("task")
@@ -105,18 +107,22 @@ def cost_points(runs: RunSet, summary: Summary, column: Column, log: list[str]) 
     if frame.empty:
         rec = runs.records[runs.records["metric"] == "seconds"]
         if rec.empty:
-            log.append("cost vs quality: no timings in the manifests and no 'seconds' records; figure left out")
-            return frame.assign(value=[])
-        log.append("cost vs quality: timings from the 'seconds' records (no per-cell costs in the manifests)")
+            log.append("cost per tile: no timings in the manifests and no 'seconds' records")
+            return frame
+        log.append("cost per tile: timings from the 'seconds' records (no per-cell costs in the manifests)")
         frame = (
             rec.groupby(["task", "model", "explainer"], as_index=False)["value"]
             .mean()
             .rename(columns={"value": "seconds"})
         )
-    secs = frame.groupby(["task", "model", "explainer"], as_index=False)["seconds"].mean()
+    return frame.groupby(["task", "model", "explainer"], as_index=False)["seconds"].mean()
+
+
+def cost_points(costs: pd.DataFrame, summary: Summary, column: Column) -> pd.DataFrame:
+    """One point per (task, model, explainer): seconds per tile and the column's mean in that block."""
     t = summary.table
     vals = t[(t["metric"] == column.metric) & (t["truth"] == column.truth)][["task", "model", "explainer", "mean"]]
-    out = secs.merge(vals.rename(columns={"mean": "value"}), on=["task", "model", "explainer"], how="inner")
+    out = costs.merge(vals.rename(columns={"mean": "value"}), on=["task", "model", "explainer"], how="inner")
     out["block"] = out["task"] + " / " + out["model"]
     return out
 
@@ -137,17 +143,15 @@ def _gallery_bands(runs: RunSet) -> dict[str, list[str]]:
 
 CAPTIONS = {
     "gallery": (
-        "Rows: explained test tiles (with the target class). Columns: natural colour (red, green, "
-        "blue) and false colour (nir, red, green), each band stretched linearly between its 2nd and "
-        "98th percentile over the tiles shown; the planted structure mask (white); the model-verified "
-        "evidence map; then each explainer's map for the same tiles. Maps are scaled per tile to their "
-        "largest magnitude (viridis for non-negative maps, RdBu centred on zero for signed maps); the "
-        "outline marks the planted structures."
+        "Rows: explained test tiles with their target class (the first tile of every class is shown). "
+        "Columns: natural colour (red, green, blue) and false colour (nir, red, green), bands stretched "
+        "2-98 %; planted structures (white); model-verified evidence; explainer maps, each scaled to its "
+        "tile's largest magnitude (colour bars below); outlines mark planted structures."
     ),
     "curves": (
-        "Target-class probability as the most relevant pixels (by each explainer's map) are removed "
-        "(deletion: a fast drop is good) or inserted into the baseline image (insertion: a fast rise "
-        "is good). Lines: mean over tiles, pooled over seeds; bands: mean ± 1.96 sd/√n."
+        "One panel per explainer: target-class probability as its most relevant pixels are removed "
+        "(deletion, red: a fast drop is good) or inserted into the baseline image (insertion, blue: a fast "
+        "rise is good); grey: the random control. Mean over tiles and seeds; bands: mean ± 1.96 sd/√n."
     ),
     "randomization": (
         "Similarity between each explainer's map for the trained model and for the model with its "
@@ -172,14 +176,21 @@ CAPTIONS = {
         "estimate with its 95 % confidence interval."
     ),
     "cost": (
-        "Explainer time per tile (log scale) against {label}. Large markers: geometric mean time and "
-        "mean score over the task × model blocks; small markers: single blocks."
+        "Explainer time per tile (log scale) against {label}, one panel per task × model block and one "
+        "point per explainer in it (so that points in a panel share tiles and model). Hollow markers: "
+        "controls (anchors, not candidates)."
     ),
 }
 
 
 def make_figures(
-    runs: RunSet, summary: Summary, headline: Column | None, folder: Path, log: list[str], gallery_tiles: int
+    runs: RunSet,
+    summary: Summary,
+    headline: Column | None,
+    folder: Path,
+    log: list[str],
+    gallery_tiles: int,
+    costs: pd.DataFrame | None = None,
 ) -> list[F.FigureFile]:
     out: list[F.FigureFile] = []
     styles = F.explainer_styles(summary.explainers)
@@ -201,13 +212,16 @@ def make_figures(
 
     for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
         title = f"{a.task}, model {a.model}, seed {a.seed}"
-        emit(
-            lambda a=a, title=title: F.gallery_figure(a.load(), summary.explainers, title, gallery_tiles),
-            F.file_stem("gallery", a.task, a.model, a.seed),
-            "gallery",
-            f"Heatmap gallery: {title}",
-            CAPTIONS["gallery"],
-        )
+        try:
+            pages, notes = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles)
+        except Exception as exc:  # one odd artifact must not sink the whole report
+            log.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
+            continue
+        log.extend(notes)
+        for k, page in enumerate(pages, start=1):
+            stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{k}" if len(pages) > 1 else "")
+            part = f" (part {k} of {len(pages)})" if len(pages) > 1 else ""
+            emit(lambda page=page: page, stem, "gallery", f"Heatmap gallery: {title}{part}", CAPTIONS["gallery"])
     if runs.curves is not None:
         for (task, model), c in runs.curves.groupby(["task", "model"], sort=False):
             title = f"{task}, model {model}"
@@ -268,7 +282,7 @@ def make_figures(
     else:
         log.append("no reliance.parquet: reliance chart left out")
     if headline is not None:
-        points = cost_points(runs, summary, headline, log)
+        points = cost_points(costs if costs is not None else explainer_costs(runs, log), summary, headline)
         if len(points):
             ylabel = f"{headline.label} {headline.arrow}".strip()
             emit(
@@ -281,145 +295,6 @@ def make_figures(
                 CAPTIONS["cost"].format(label=headline.label),
             )
     return out
-
-
-# ---------------------------------------------------------------- HTML page
-
-CSS = """
-body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;margin:2em auto;max-width:1200px;color:#222;
-line-height:1.45;padding:0 1em}
-h1{font-size:1.6em}h2{border-bottom:1px solid #ccc;padding-bottom:.2em;margin-top:2em}
-table{border-collapse:collapse;margin:.6em 0 .3em;font-size:.85em}
-thead tr:first-child th{border-top:2px solid #222}thead tr:last-child th{border-bottom:1px solid #222}
-tbody tr:last-child td,tbody tr:last-child th{border-bottom:2px solid #222}
-th,td{padding:.25em .6em;text-align:center}th.name{text-align:left;font-weight:normal}
-tfoot th,tfoot td{font-size:.9em;color:#444}
-.ci{color:#555;font-size:.85em}td.na{color:#999}
-figure{margin:1.2em 0}figcaption{font-size:.85em;color:#333;max-width:60em}
-figure.plot img{max-width:100%;height:auto;border:1px solid #eee}
-nav ul{columns:2}code{background:#f4f4f4;padding:0 .2em}.notes li{font-size:.85em;color:#555}
-"""
-
-
-def _inline_md(text: str) -> str:
-    s = html.escape(text, quote=True)
-    s = re.sub(r"`([^`]+)`", r"<code>\1</code>", s)
-    s = re.sub(r"\*([^*]+)\*", r"<em>\1</em>", s)
-    return s
-
-
-def markdown_to_html(md: str) -> str:
-    """The small subset methods.md uses: headings, paragraphs, '- ' lists, `code` and *emphasis*."""
-    out, para, items = [], [], []
-
-    def flush() -> None:
-        if para:
-            out.append("<p>" + _inline_md(" ".join(para)) + "</p>")
-            para.clear()
-        if items:
-            out.append("<ul>" + "".join(f"<li>{_inline_md(i)}</li>" for i in items) + "</ul>")
-            items.clear()
-
-    for line in md.splitlines():
-        if line.startswith("#"):
-            flush()
-            level = min(len(line) - len(line.lstrip("#")) + 1, 6)
-            out.append(f"<h{level}>{_inline_md(line.lstrip('#').strip())}</h{level}>")
-        elif line.startswith("- "):
-            if para:
-                flush()
-            items.append(line[2:])
-        elif not line.strip():
-            flush()
-        else:
-            para.append(line.strip())
-    flush()
-    return "\n".join(out)
-
-
-def html_page(
-    runs: RunSet,
-    results: list[T.TableSpec],
-    ranks: list[T.TableSpec],
-    figs: list[F.FigureFile],
-    methods_md: str,
-    log: list[str],
-    concepts: list[T.TableSpec] = (),
-    left_out: list[str] = (),
-) -> str:
-    h = T._h
-    sections = [
-        ("gallery", "Heatmap gallery"),
-        ("curves", "Deletion and insertion"),
-        ("randomization", "Randomization sanity check"),
-        ("clusters", "Activation clusters"),
-        ("reliance", "Interventional importance"),
-        ("cost", "Cost vs quality"),
-    ]
-    body = [
-        "<header>",
-        "<h1>xbench comparison report</h1>",
-        "<p>Run folders: " + ", ".join(f"<code>{h(str(d))}</code>" for d in runs.dirs) + ".</p>",
-        "</header>",
-        "<nav><h2>Contents</h2><ul>",
-        '<li><a href="#results">Results by task and model</a></li>',
-        '<li><a href="#ranks">Ranks across tasks and models</a></li>',
-    ]
-    body += [f'<li><a href="#fig-{k}">{h(v)}</a></li>' for k, v in sections if any(f.section == k for f in figs)]
-    if concepts:
-        body.append('<li><a href="#concepts">Concept reports</a></li>')
-    body += [
-        '<li><a href="#methods">Methods text</a></li>',
-        '<li><a href="#notes">Notes</a></li>',
-        "</ul></nav>",
-    ]
-
-    def figure_html(f: F.FigureFile) -> str:
-        data = base64.b64encode(f.png.read_bytes()).decode("ascii")
-        return (
-            f'<figure class="plot" id="{h(f.stem)}"><img src="data:image/png;base64,{data}" '
-            f'alt="{h(f.title)}"/><figcaption><b>{h(f.title)}.</b> {h(f.caption)}</figcaption></figure>'
-        )
-
-    body.append('<section id="results"><h2>Results by task and model</h2>')
-    body += [T.to_html(t) for t in results] or ["<p>No results.</p>"]
-    body.append("</section>")
-    body.append('<section id="ranks"><h2>Ranks across tasks and models</h2>')
-    body += [T.to_html(t) for t in ranks] or ["<p>No rank statistics.</p>"]
-    body += [figure_html(f) for f in figs if f.section == "cd"]
-    if left_out:
-        body.append("<h3>Left out of the rankings, and why</h3>")
-        body.append("<ul>" + "".join(f"<li>{_inline_md(x)}</li>" for x in left_out) + "</ul>")
-    body.append("</section>")
-    for key, name in sections:
-        chosen = [f for f in figs if f.section == key]
-        if chosen:
-            body.append(f'<section id="fig-{key}"><h2>{h(name)}</h2>')
-            body += [figure_html(f) for f in chosen]
-            body.append("</section>")
-    if concepts:
-        body.append('<section id="concepts"><h2>Concept reports</h2>')
-        body += [T.to_html(t) for t in concepts]
-        body.append("</section>")
-    body.append('<section id="methods"><h2>Methods text</h2>')
-    body.append(markdown_to_html(re.sub(r"^# .*\n", "", methods_md)))
-    body.append("</section>")
-    body.append('<section id="notes"><h2>Notes</h2>')
-    body.append(
-        '<ul class="notes">' + "".join(f"<li>{h(x)}</li>" for x in log) + "</ul>"
-        if log
-        else "<p>Nothing was left out.</p>"
-    )
-    body.append("</section>")
-    return (
-        '<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8"/>\n'
-        '<meta name="viewport" content="width=device-width, initial-scale=1"/>\n'
-        "<title>xbench comparison report</title>\n<style>"
-        + CSS
-        + "</style>\n</head>\n<body>\n"
-        + "\n".join(body)
-        + "\n</body>\n</html>\n"
-    )
 
 
 # ---------------------------------------------------------------- entry point
@@ -509,7 +384,9 @@ def write_report(
             )
             log += summary.log
             headline = choose_headline(summary, headline_metric, headline_truth, log)
-            figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles) if figures else []
+            costs = explainer_costs(runs, log)
+            recs = R.recommend(summary.table, runs.records, costs, summary.seeds, alpha=alpha)
+            figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles, costs) if figures else []
             results = T.result_tables(summary)
             ranks = T.rank_tables(summary)
             variant_runs = find_variants(runs, log)
@@ -519,7 +396,10 @@ def write_report(
             ranks += T.variant_tables(sensitivity)
             concept_specs, notes = T.concept_tables(runs.concepts)
             log += notes
-            T.number_tables(results + ranks + concept_specs)
+            breakdowns = B.breakdown_tables(
+                summary.table, runs.records, B.tile_attributes(runs.dirs, runs.manifests, log)
+            )
+            T.number_tables(results + ranks + concept_specs + breakdowns)
             methods_md, cites = methods_text(runs, summary, headline, _gallery_bands(runs), variant_runs, variant_flags)
             log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
     finally:
@@ -567,24 +447,76 @@ def write_report(
     if runs.concepts is not None:
         runs.concepts.to_csv(out / "concepts.csv", index=False, float_format="%.12g")
         result.paths.append(out / "concepts.csv")
+    advice_md = R.to_markdown(recs, alpha)
+    R.recommendation_rows(recs).to_csv(out / "recommendations.csv", index=False, float_format="%.12g")
+    result.paths.append(out / "recommendations.csv")
+    write("recommendations.md", advice_md)
+    skipped_md, skipped_html = skipped_section(runs.reasons)
     if "md" in fmts:
         write(
             "tables.md",
-            "# xbench comparison tables\n\n"
+            advice_md
+            + "\n# xbench comparison tables\n\n"
             + "\n".join(T.to_markdown(t) for t in results + ranks + concept_specs)
+            + ("\n# Breakdowns\n\n" + "\n".join(T.to_markdown(t) for t in breakdowns) if breakdowns else "")
             + T.left_out_markdown(summary)
-            + T.flags_markdown("Protocol sensitivity: rankings that flip", variant_flags),
+            + T.flags_markdown("Protocol sensitivity: rankings that flip", variant_flags)
+            + ("\n" + skipped_md if skipped_md else ""),
         )
     if "tex" in fmts:
-        write("tables.tex", T.LATEX_PREAMBLE_NOTE + "\n" + "\n".join(T.to_latex(t) for t in results + ranks))
+        write("tables.tex", T.latex_document_body(results + ranks + concept_specs + breakdowns))
     if "html" in fmts:
-        write("report.html", html_page(runs, results, ranks, figs, methods_md, log, concept_specs, summary.left_out))
+        extra = [("breakdowns", "Breakdowns", "\n".join(T.to_html(t) for t in breakdowns))] if breakdowns else []
+        extra += [("skipped", "Skipped metrics and undefined values", skipped_html)] if skipped_html else []
+        if summary.left_out:
+            items = "".join(f"<li>{P.inline_markdown(x)}</li>" for x in summary.left_out)
+            extra += [("left-out", "Left out of the rankings, and why", f"<ul>{items}</ul>")]
+        if variant_flags:
+            items = "".join(f"<li>{P.inline_markdown(x)}</li>" for x in variant_flags)
+            extra += [("protocol", "Protocol sensitivity: rankings that flip", f"<ul>{items}</ul>")]
+        write(
+            "report.html",
+            P.render_page(runs.dirs, recs, alpha, results, ranks, figs, methods_md, log, concept_specs, extra),
+        )
     write("methods.md", methods_md)
     write("refs.bib", render_bib(cites.keys))
     for f in figs:
         result.paths += [f.png, f.pdf]
     write("report.log", "\n".join(log) + ("\n" if log else ""))
     result.warnings = log
-    result.n_tables = len(results) + len(ranks) + len(concept_specs)
+    result.n_tables = len(results) + len(ranks) + len(concept_specs) + len(breakdowns)
     result.n_figures = len(figs)
+    result.recommendations = recs
     return result
+
+
+def skipped_section(reasons: pd.DataFrame | None) -> tuple[str, str]:
+    """Markdown and HTML listing every (task, model, metric, truth, reason) with the explainers it hit."""
+    if reasons is None or reasons.empty:
+        return "", ""
+    r = reasons.fillna("").astype({"explainer": str, "metric": str, "truth": str, "reason": str})
+    grouped = (
+        r.groupby(["task", "model", "metric", "truth", "reason"], sort=True)
+        .agg(explainers=("explainer", lambda x: ", ".join(sorted({e for e in x if e}))), seeds=("seed", "nunique"))
+        .reset_index()
+    )
+    md = [
+        "# Skipped metrics and undefined values",
+        "",
+        "| task / model | metric | explainers | reason |",
+        "|---|---|---|---|",
+    ]
+    rows_html = []
+    for g in grouped.itertuples():
+        metric = g.metric + (f" ({g.truth})" if g.truth and g.truth != "none" else "") if g.metric else "(whole cell)"
+        md.append(f"| {g.task} / {g.model} | {metric} | {g.explainers or 'all'} | {g.reason} |")
+        rows_html.append(
+            f"<tr><td>{html.escape(f'{g.task} / {g.model}')}</td><td>{html.escape(metric)}</td>"
+            f"<td>{html.escape(g.explainers or 'all')}</td><td class='why'>{html.escape(g.reason)}</td></tr>"
+        )
+    inner = (
+        "<p>Values the run could not compute, with the reason it recorded (NaN cells in the tables come from "
+        "these).</p><table><thead><tr><th>task / model</th><th>metric</th><th>explainers</th><th>reason</th>"
+        "</tr></thead><tbody>" + "".join(rows_html) + "</tbody></table>"
+    )
+    return "\n".join(md) + "\n", inner
