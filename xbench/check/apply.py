@@ -200,7 +200,9 @@ def compare(
     with manifests, their differences are in ``CheckResult.changes``.
     """
     spec = load_gates(gates)
-    cur = _as_records(current, "current")
+    cur_or_none = _as_records(current, "current")
+    assert cur_or_none is not None  # a current run is always given
+    cur: pd.DataFrame = cur_or_none
     base = _as_records(baseline, "baseline")
     settings = spec.settings
     tol = settings.tolerance

@@ -9,6 +9,7 @@ from __future__ import annotations
 import base64
 import html
 import re
+from collections.abc import Sequence
 from string import Template
 
 from xbench.report import figures as F
@@ -90,7 +91,9 @@ def inline_markdown(text: str) -> str:
 
 def markdown_to_html(md: str) -> str:
     """The small subset methods.md uses: headings, paragraphs, '- ' lists, `code` and *emphasis*."""
-    out, para, items = [], [], []
+    out: list[str] = []
+    para: list[str] = []
+    items: list[str] = []
 
     def flush() -> None:
         if para:
@@ -182,8 +185,8 @@ def render_page(
     figs: list[F.FigureFile],
     methods_md: str,
     log: list[str],
-    concepts: list[T.TableSpec] = (),
-    extra_sections: list[tuple[str, str, str]] = (),
+    concepts: Sequence[T.TableSpec] = (),
+    extra_sections: Sequence[tuple[str, str, str]] = (),
 ) -> str:
     """The whole HTML page. ``extra_sections``: (anchor, heading, inner HTML) placed before the methods."""
     h = html.escape
