@@ -22,7 +22,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from xbench.stats import holm, wilcoxon_paired
+from xbench.report.compare import compare_column
+from xbench.stats import wilcoxon_paired
 
 CONTROLS = ("random", "edges", "oracle")
 
@@ -54,11 +55,6 @@ ASPECT_QUESTION = {
 MIN_TILES_FOR_CONFIDENCE = 20  # fewer paired tiles than this: the page says the group is wide for that reason
 
 
-def _pair_p(a: np.ndarray, b: np.ndarray) -> float:
-    """Two-sided Wilcoxon signed-rank p-value of a - b over the pairs where both are finite."""
-    return wilcoxon_paired(a, b, alternative="two-sided").p_value  # NaN below 2 pairs, 1 when all equal
-
-
 def top_group(values_by_method: dict[str, Any], higher_is_better: bool, alpha: float = 0.05) -> list[str]:
     """The best method by mean and every method that cannot be told apart from it, best first.
 
@@ -78,13 +74,11 @@ def top_group(values_by_method: dict[str, Any], higher_is_better: bool, alpha: f
     means = {m: float(np.nanmean(a)) for m, a in arrays.items() if np.isfinite(a).any()}
     if not means:
         return []
+    # The same all-pairs procedure as the result tables' marks (report.compare.compare_column).
+    wide = pd.DataFrame({m: arrays[m] for m in means})
+    group = compare_column(wide, list(means), higher_is_better, alpha).top_group
     sign = 1.0 if higher_is_better else -1.0
-    ordered = sorted(means, key=lambda m: -sign * means[m])
-    best = ordered[0]
-    pairs = [(a, b) for i, a in enumerate(ordered) for b in ordered[i + 1 :]]
-    adjusted = holm([_pair_p(arrays[a], arrays[b]) for a, b in pairs])
-    rejected = {b for (a, b), p in zip(pairs, adjusted, strict=True) if a == best and np.isfinite(p) and p < alpha}
-    return [m for m in ordered if m not in rejected]
+    return sorted(group, key=lambda m: -sign * means[m])
 
 
 @dataclass
