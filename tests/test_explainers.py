@@ -120,7 +120,7 @@ def test_integrated_gradients_completeness(baseline):
     exp = explain("integrated-gradients", model, x, TARGETS, ctx, baseline=baseline, n_steps=64)
     from xbench.explainers.base import make_baseline
 
-    base = make_baseline("integrated-gradients", baseline, x, ctx)
+    base = make_baseline(x, baseline, ctx.twins)
     with torch.no_grad():
         fx = net(torch.from_numpy(x))[np.arange(4), TARGETS]
         fb = net(torch.from_numpy(base))[np.arange(4), TARGETS]

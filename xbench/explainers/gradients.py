@@ -148,7 +148,7 @@ def integrated_gradients(model, images, targets, context, *, baseline, n_steps, 
     )
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     ig = IntegratedGradients(model.module)
     raw = _per_batch(
         model,
@@ -231,7 +231,7 @@ def deeplift(model, images, targets, context, *, baseline, blur_sigma, reduce):
     check_choice(key, "baseline", baseline, BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     _require_modules(key, model, DEEPLIFT_MODULES, "nn.ReLU (or other DeepLIFT-supported activation)")
     method = DeepLift(model.module)
     try:

@@ -56,7 +56,7 @@ def occlusion(model, images, targets, context, *, window, stride, baseline, blur
     check_choice(key, "baseline", baseline, PERTURB_BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     forward = score_function(key, model, score)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     c = images.shape[1]
     method = Occlusion(forward)
     out = np.empty(images.shape, dtype=np.float32)
@@ -113,7 +113,7 @@ def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_si
     forward = score_function(key, model, score)
     n, c, h, w = images.shape
     masks = rise_masks(n_masks, grid, p, (h, w), context.rng(stream=1))
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     out = np.zeros((n, h, w), dtype=np.float64)
     for i in range(n):
         x = images[i][None]
@@ -170,7 +170,7 @@ def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_s
     check_choice(key, "baseline", baseline, PERTURB_BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     forward = score_function(key, model, score)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     n, c, h, w = images.shape
     method = KernelShap(forward)
     out = np.empty(images.shape, dtype=np.float32)

@@ -339,6 +339,8 @@ def _defaults(own: dict[str, Any] | None = None, weights: bool = False) -> dict[
 
 def _docs(own: dict[str, str] | None = None, weights: bool = False) -> dict[str, str]:
     return {**(own or {}), **COMMON_DOC, **(WEIGHT_DOC if weights else {})}
+
+
 _ARRAS = "Arras, Osman, Samek. Ground-truth evaluation of neural network explanations. Information Fusion 81, 2022."
 
 
