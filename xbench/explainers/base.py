@@ -173,6 +173,38 @@ def check_float(
 
 
 # ---------------------------------------------------------------------------------------------------
+# Signed or unsigned maps
+# ---------------------------------------------------------------------------------------------------
+
+SIGNED_REDUCTIONS = ("sum", "mean")
+
+
+def signed_maps(rule: bool | Callable[[dict[str, Any]], bool]) -> Callable[[Any], Any]:
+    """Decorator (below ``@register_explainer``): declare whether the explainer's maps are signed (negative
+    values = evidence against the target), as a constant or as a function of the settings."""
+
+    def decorate(fn: Any) -> Any:
+        fn.__xbench_signed__ = rule
+        return fn
+
+    return decorate
+
+
+def maps_signed(fn: Any, settings: dict[str, Any]) -> bool | None:
+    """Whether ``fn``'s maps are signed under ``settings`` (None: the explainer does not say). Overlap
+    metrics take the positive part of every map as evidence for the target (a no-op on unsigned maps)."""
+    rule = getattr(fn, "__xbench_signed__", None)
+    if rule is None:
+        return None
+    return bool(rule(settings)) if callable(rule) else bool(rule)
+
+
+def reduce_is_signed(settings: dict[str, Any]) -> bool:
+    """Maps reduced over bands by a signed sum or mean are signed; absolute reductions are not."""
+    return settings.get("reduce") in SIGNED_REDUCTIONS
+
+
+# ---------------------------------------------------------------------------------------------------
 # Arrays and batches
 # ---------------------------------------------------------------------------------------------------
 
