@@ -51,6 +51,7 @@ EXPECTED_KEYS = [
     "aopc-morf",
     "aopc-lerf",
     "subset-drop-corr",
+    "completeness-gap",
     "randomization-spearman",
     "randomization-ssim",
     "max-sensitivity",

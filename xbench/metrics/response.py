@@ -424,3 +424,50 @@ def _subset_drop_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]
             else:
                 reasons[i] = "the model's score did not change over the subsets: correlation undefined"
     return tile_result(key, truth, values, reasons, settings)
+
+
+# -- explainer self-checks ----------------------------------------------------------------------------------
+COMPLETENESS_WARN = 0.05  # a gap above 5% of the score change is reported
+
+
+def completeness_warning(values: np.ndarray, limit: float = COMPLETENESS_WARN) -> str | None:
+    """A warning text when any tile's completeness gap exceeds ``limit`` (a share of the score change)."""
+    v = np.asarray(values, dtype=np.float64)
+    bad = np.isfinite(v) & (v > limit)
+    if not bad.any():
+        return None
+    return (
+        f"completeness gap above {limit:.0%} of the score change on {int(bad.sum())} of {int(np.isfinite(v).sum())} "
+        f"tiles (largest {np.nanmax(v):.1%}, median {np.nanmedian(v):.1%}): the map's total does not equal the "
+        "model's change from the baseline (more integration steps, or a model whose non-linearities captum "
+        "can follow, narrow it)"
+    )
+
+
+@register_metric(
+    "completeness-gap",
+    definition="|sum of the attributions - (f(tile) - f(baseline))| / |f(tile) - f(baseline)| of the target "
+    "logit: the explainer's own completeness error (captum's convergence delta), integrated gradients and "
+    "DeepLIFT only",
+    citation="Sundararajan, Taly, Yan. Axiomatic attribution for deep networks. ICML 2017 (completeness); "
+    "Shrikumar, Greenside, Kundaje. ICML 2017 (summation-to-delta).",
+    value_range=(0, np.inf),
+    higher_is_better=False,
+    family="response",
+    needs=(),
+    per_tile=True,
+)
+def _completeness_gap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    key = "completeness-gap"
+    checks = inputs.self_checks or {}
+    if key not in checks:
+        spec = get_metric(key)
+        reason = "the explainer records no completeness gap (only integrated-gradients and deeplift do)"
+        return nan_result(spec, inputs, truth, reason, settings)
+    values = np.asarray(checks[key], dtype=np.float64).reshape(-1)[: inputs.n_tiles]
+    reasons = {
+        int(i): "the target logit barely changes from the baseline to the tile: relative gap undefined"
+        for i in np.flatnonzero(~np.isfinite(values))
+    }
+    warning = completeness_warning(values)
+    return tile_result(key, truth, values, reasons, {**settings, **({"warning": warning} if warning else {})})
