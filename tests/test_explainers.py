@@ -558,3 +558,26 @@ def test_deeplift_and_guided_backprop_report_unsupported_modules_clearly():
     for key in ("deeplift", "guided-backprop"):
         with pytest.raises(XbenchInputError, match="no nn.ReLU"):
             explain(key, handle(Functional()), images(), TARGETS)
+
+
+def test_completeness_gap_is_the_relative_convergence_delta():
+    # Sundararajan et al. 2017 (completeness): sum of IG attributions = f(x) - f(baseline); the self-check is
+    # |sum - (f(x) - f(b))| / |f(x) - f(b)| of the target logit, computed here by hand from the model.
+    from xbench.explainers.gradients import COMPLETENESS_KEY
+
+    x = images()
+    for key, steps, act in (("integrated-gradients", {"n_steps": 4}, nn.Softplus), ("deeplift", {}, nn.Sigmoid)):
+        net = SmallNet(act=act)
+        model = handle(net)
+        checks: dict = {}
+        ctx = ExplainContext(batch_size=3, self_checks=checks)
+        exp = explain(key, model, x, TARGETS, ctx, baseline="zero", **steps)
+        with torch.no_grad():
+            change = (net(torch.from_numpy(x)) - net(torch.zeros_like(torch.from_numpy(x))))[np.arange(4), TARGETS]
+        total = exp.attributions.reshape(4, -1).sum(axis=1)
+        expected = np.abs(total - change.numpy()) / np.abs(change.numpy())
+        np.testing.assert_allclose(checks[COMPLETENESS_KEY], expected, rtol=1e-3, atol=1e-5)
+        # the self-check costs no counted model calls
+        plain = explain(key, model, x, TARGETS, ExplainContext(batch_size=3), baseline="zero", **steps)
+        assert plain.cost.forward_calls == exp.cost.forward_calls
+    assert checks[COMPLETENESS_KEY].max() > 0  # not exact on these nets: a non-vacuous check
