@@ -122,3 +122,14 @@ def test_type_roles() -> None:
         "outcrop": "unused",
         "clearing": "unused",
     }
+
+
+def test_unverified_tiles_are_counted_with_reasons() -> None:
+    from xbench.truth import unverified_summary
+
+    scene = _scene_with(2, {"clearing": 1.0})
+    # The model ignores both instances: no change, so no verified evidence, and the reason says so.
+    rel = compute_reliance(_detector(scene, lambda present: 0.6), [scene], np.array([1]), n_boot=50)
+    table = rel.unverified_table()
+    assert list(table["reason"]) == ["no-change"] and table.attrs["fraction"] == 1.0
+    assert "1 of 1 tiles" in unverified_summary(rel)

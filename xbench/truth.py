@@ -100,6 +100,17 @@ class Reliance:
         return out.reset_index(drop=True)
 
 
+def unverified_summary(reliance: Reliance) -> str:
+    """One line for notes and reports: how many tiles have no verified evidence, and why."""
+    table = reliance.unverified_table()
+    total = 0 if reliance.tile_table is None else len(reliance.tile_table)
+    if table.empty:
+        return f"every one of {total} tiles has verified evidence"
+    counts = table["reason"].value_counts()
+    why = "; ".join(f"{int(n)}: {UNVERIFIED_REASONS.get(str(r), str(r))}" for r, n in counts.items())
+    return f"{len(table)} of {total} tiles ({table.attrs['fraction']:.0%}) have no verified evidence ({why})"
+
+
 def type_roles(relied: Sequence[str], lookalikes: Sequence[str], types: Sequence[str]) -> dict[str, str]:
     """Role of each structure type from measured reliance: ``relied-on`` (relied on, not a look-alike),
     ``relied-on look-alike`` (a look-alike the model verifiably relies on: evidence, never a false alarm)

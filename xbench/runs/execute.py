@@ -283,6 +283,10 @@ def _compute_cell(
     rows: list[tuple] = []
     curves: list[dict[str, Any]] = []
     notes: dict[str, str] = {}
+    if prep.reliance is not None:
+        from xbench.truth import unverified_summary
+
+        notes["verified truth"] = unverified_summary(prep.reliance)
     metric_seconds: dict[str, float] = {}
     tiles = prep.explain_index.astype(np.int64)
     # Self-checks the explainer recorded (integrated gradients' and DeepLIFT's completeness gap) are
