@@ -16,17 +16,17 @@
 Perturbations are drawn per tile from ``[seed, tile, salt]``, so a tile's draw does not depend on the others.
 
 **Noise calibrated to the data** (default ``noise = "auto"`` / ``radius = "auto"``): the noise of a band is a
-fraction f of the band's spread (its standard deviation over the explained tiles), f starting at
-``START_FRACTION`` (0.5) and halved until at most ``max_flips`` of the perturbed copies change the model's
-predicted class (at most ``MAX_HALVINGS`` halvings): 10% for max-sensitivity, 1% for infidelity, whose
-perturbations must stay where a first-order explanation can predict the score drop (on the demo's cnn, at 5.6%
-flips the gradient scored no better than random noise; at 0.6% it scored four times better). A perturbation that
-flips most predictions measures the model's collapse, not the explanation: with the former fixed 0.02 reflectance, 69% of the demo's
-predictions flipped and every explainer, random included, scored alike. The chosen f, the per-band noise and
-the measured flip share are recorded with the result (``settings['calibrated']``, which the runner writes to
-the manifest's notes). For infidelity the per-pixel perturbation I is the noise in band units of the mean
-spread (band c gets I x spread_c / mean spread), so I . Phi keeps its per-pixel meaning. A number instead of
-``"auto"`` gives the former fixed noise in reflectance units, the same in every band.
+fraction f of the band's spread (its standard deviation over the explained tiles), f starting at ``START_FRACTION``
+(0.5) and halved until at most ``max_flips`` of the perturbed copies change the model's predicted class (at most
+``MAX_HALVINGS`` halvings): 10% for max-sensitivity, 1% for infidelity, whose perturbations must stay where a
+first-order explanation can predict the score drop (on the demo's cnn, at 5.6% flips the gradient scored no better
+than random noise; at 0.6% it scored four times better). A perturbation that flips most predictions measures the
+model's collapse, not the explanation: with the former fixed 0.02 reflectance, 69% of the demo's predictions
+flipped and every explainer, random included, scored alike. The chosen f, the per-band noise and the measured flip
+share are recorded with the result (``settings['calibrated']``, which the runner writes to the manifest's notes).
+For infidelity the per-pixel perturbation I is the noise in band units of the mean spread (band c gets I x spread_c
+/ mean spread), so I . Phi keeps its per-pixel meaning. A number instead of ``"auto"`` gives the former fixed noise
+in reflectance units, the same in every band.
 """
 
 from __future__ import annotations
