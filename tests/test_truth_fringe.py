@@ -134,3 +134,25 @@ def test_coverage_weighted_auroc_and_ap() -> None:
         planted_coverage=cov,
     )
     assert compute_metric("mask-auroc", inputs, weighting="coverage")[0].values[0] == pytest.approx(2.125 / 2.25)
+
+
+def test_tile_pack_may_carry_coverage_instead_of_masks(tmp_path) -> None:
+    from xbench.data import load_pack
+    from xbench.errors import XbenchInputError
+
+    rng = np.random.default_rng(0)
+    coverage = np.zeros((2, 1, 4, 4), np.float32)
+    coverage[0, 0, 1, 1:3] = (1.0, 0.3)
+    arrays = {
+        "images": rng.random((2, 3, 4, 4)).astype(np.float32),
+        "labels": np.array([1, 0]),
+        "class_names": np.array(["intact", "road"]),
+        "band_names": np.array(["blue", "green", "red"]),
+        "mask_names": np.array(["road"]),
+    }
+    np.savez(tmp_path / "p.npz", coverage=coverage, **arrays)
+    pack = load_pack(tmp_path / "p.npz")
+    np.testing.assert_array_equal(pack.masks, coverage > 0)
+    np.savez(tmp_path / "bad.npz", coverage=coverage * 2, **arrays)
+    with pytest.raises(XbenchInputError, match="coverage"):
+        load_pack(tmp_path / "bad.npz")
