@@ -18,6 +18,7 @@ from sklearn.metrics import average_precision_score, roc_auc_score
 from torch import nn
 
 from xbench.errors import XbenchInputError
+from xbench.explainers.base import make_baseline
 from xbench.metrics import METRIC_KEYS, MetricInputs, compute_metric, get_metric, list_metrics
 from xbench.metrics.model_dependence import spearman_rows, ssim_rows
 from xbench.metrics.overlap import (
@@ -31,7 +32,6 @@ from xbench.metrics.overlap import (
 from xbench.metrics.response import (
     aopc,
     curve_auc,
-    make_baseline,
     perturbation_curves,
     perturbation_curves_loop,
     pixel_order,
@@ -51,6 +51,7 @@ EXPECTED_KEYS = [
     "aopc-morf",
     "aopc-lerf",
     "subset-drop-corr",
+    "completeness-gap",
     "randomization-spearman",
     "randomization-ssim",
     "max-sensitivity",

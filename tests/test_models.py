@@ -35,9 +35,12 @@ def test_zoo_shapes_layers_and_size(kind: str) -> None:
     with pytest.warns(UserWarning, match="training mode") if module.training else warnings.catch_warnings():
         handle = ModelHandle(kind, 3, module=module)
     convs = handle.conv_layer_names()
-    # explain_layer names the last conv layer, and the handle's default layer follows it
-    assert module.explain_layer == convs[-1] == handle.default_layer()
-    assert isinstance(handle.get_layer(handle.default_layer()), nn.Conv2d)
+    # explain_layer names the rectified output of the last conv block (the ReLU module that follows the
+    # last conv), and the handle's default layer follows it
+    assert module.explain_layer == handle.default_layer()
+    assert isinstance(handle.get_layer(handle.default_layer()), nn.ReLU)
+    names = [n for n, _ in module.named_modules()]
+    assert names.index(module.explain_layer) > names.index(convs[-1])
     # distinct, non-inplace ReLU modules (hook-based explainers override each one)
     relus = [m for m in module.modules() if isinstance(m, nn.ReLU)]
     assert relus and all(not r.inplace for r in relus) and len({id(r) for r in relus}) == len(relus)

@@ -112,16 +112,3 @@ def test_one_copy_of_the_report_statistics():
 
     for name in ("holm", "wilcoxon_paired", "bootstrap_ci", "friedman", "nemenyi_q", "cd_groups"):
         assert getattr(report_stats, name) is getattr(S, name)
-
-
-def test_drop_in_replacements_for_the_copies_in_truth_and_check():
-    # The truth stage's percentile interval and the gates' Holm are the shared functions with these arguments
-    # (the copies can be removed at merge).
-    from xbench.check import _holm
-    from xbench.truth import bootstrap_ci as truth_bootstrap_ci
-
-    v = np.random.default_rng(0).normal(size=30)
-    shared = S.bootstrap_ci(v, 0.95, 1000, method="percentile", seed=np.random.default_rng(5), min_n=2)
-    assert truth_bootstrap_ci(v, np.random.default_rng(5), 1000) == (shared.low, shared.high)
-    p = [0.01, 0.04, 0.03, 0.005, 0.5]
-    np.testing.assert_allclose(_holm(p), S.holm(p))

@@ -101,12 +101,15 @@ def test_evidence_and_verified_masks(analytic_scenes) -> None:
         rows = rel.instance_table[rel.instance_table["tile"] == t]
         expected = np.zeros((32, 32))
         verified = np.zeros((32, 32), dtype=bool)
-        largest = rows["drop"].max() if len(rows) else 0.0
+        largest = rows["share"].max() if len(rows) else 0.0
         for row in rows.itertuples():
             inst = next(i for i in scene.instances if i.instance_id == row.instance_id)
-            expected += max(row.drop, 0.0) * inst.coverage
-            if row.drop >= max(VERIFIED_MIN_DROP, VERIFIED_REL_DROP * largest):
+            expected += max(row.share, 0.0) * inst.coverage
+            if row.share >= max(VERIFIED_MIN_DROP, VERIFIED_REL_DROP * largest):
                 verified |= inst.coverage > 0
+        # Efficiency (Shapley 1953): the shares add up to the change from the empty to the full tile.
+        total = _index_mean(scene.render()) - _index_mean(scene.render(omit=scene.instance_ids()))
+        assert rows["share"].sum() == pytest.approx(-K * total, abs=1e-6)
         np.testing.assert_allclose(rel.evidence[t], expected, atol=1e-6)
         np.testing.assert_array_equal(rel.verified_masks[t], verified)
 

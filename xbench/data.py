@@ -163,6 +163,9 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
         _check(arr.shape == want, f"{source}: array '{name}'", "wrong shape", str(want), arr.shape)
         _check(arr.dtype == np.float32, f"{source}: array '{name}'", "wrong dtype", "float32", str(arr.dtype))
         _check(bool(np.isfinite(arr).all()), f"{source}: array '{name}'", "non-finite values", "finite", "NaN/inf")
+        if name == "coverage":
+            lo, hi = float(arr.min(initial=0.0)), float(arr.max(initial=0.0))
+            _check(lo >= 0.0 and hi <= 1.0, f"{source}: array 'coverage'", "out of range", "[0, 1]", f"{lo}..{hi}")
     for name, arr in (("clean_labels", pack.clean_labels), ("cue", pack.cue)):
         if arr is not None:
             _check(arr.shape == (n,), f"{source}: array '{name}'", "wrong shape", f"({n},)", arr.shape)
@@ -241,7 +244,9 @@ REQUIRED_ARRAYS = ("images", "labels", "class_names", "band_names", "masks", "ma
 
 def _read_pack(data: Any, path: Path) -> TilePack:
     with data:
-        missing = [k for k in REQUIRED_ARRAYS if k not in data.files]
+        # Coverage (float in [0, 1]) may stand in for the boolean masks: masks = coverage > 0.
+        present = set(data.files) | ({"masks"} if "coverage" in data.files else set())
+        missing = [k for k in REQUIRED_ARRAYS if k not in present]
         if missing:
             raise XbenchInputError(
                 str(path),
@@ -255,7 +260,7 @@ def _read_pack(data: Any, path: Path) -> TilePack:
             labels=data["labels"],
             class_names=[str(s) for s in data["class_names"]],
             band_names=[str(s) for s in data["band_names"]],
-            masks=data["masks"],
+            masks=data["masks"] if "masks" in data.files else np.asarray(data["coverage"]) > 0,
             mask_names=[str(s) for s in data["mask_names"]],
             twins=data["twins"] if "twins" in data.files else None,
             clean_labels=data["clean_labels"] if "clean_labels" in data.files else None,

@@ -43,6 +43,10 @@ class ExplainContext:
         ``fit_masks`` (Nf, K, H, W) for the clusters' IoU and purity against the planted types).
     concept_sets: ``tcav`` example sets: structure type -> images (n, C, H, W); keys ``random-0``,
         ``random-1``, ... hold random sets.
+    band_spread: (C,) per-band standard deviation of the training split: the unit of noise levels given as a
+        fraction of a band's spread (``smoothgrad``); when absent, the spread of the explained tiles is used.
+    self_checks: a dict the caller passes to receive per-tile self-checks an explainer can make of itself
+        (``completeness-gap`` of integrated gradients and DeepLIFT, float (N,)); None = not wanted.
     """
 
     seed: int = 0
@@ -56,6 +60,8 @@ class ExplainContext:
     fit_labels: np.ndarray | None = None
     fit_masks: np.ndarray | None = None
     concept_sets: dict[str, np.ndarray] | None = None
+    band_spread: np.ndarray | None = None
+    self_checks: dict[str, np.ndarray] | None = None
 
     def rng(self, stream: int = 0) -> np.random.Generator:
         """A numpy generator seeded from ``seed`` (``stream`` separates independent uses)."""
@@ -167,6 +173,38 @@ def check_float(
 
 
 # ---------------------------------------------------------------------------------------------------
+# Signed or unsigned maps
+# ---------------------------------------------------------------------------------------------------
+
+SIGNED_REDUCTIONS = ("sum", "mean")
+
+
+def signed_maps(rule: bool | Callable[[dict[str, Any]], bool]) -> Callable[[Any], Any]:
+    """Decorator (below ``@register_explainer``): declare whether the explainer's maps are signed (negative
+    values = evidence against the target), as a constant or as a function of the settings."""
+
+    def decorate(fn: Any) -> Any:
+        fn.__xbench_signed__ = rule
+        return fn
+
+    return decorate
+
+
+def maps_signed(fn: Any, settings: dict[str, Any]) -> bool | None:
+    """Whether ``fn``'s maps are signed under ``settings`` (None: the explainer does not say). Overlap
+    metrics take the positive part of every map as evidence for the target (a no-op on unsigned maps)."""
+    rule = getattr(fn, "__xbench_signed__", None)
+    if rule is None:
+        return None
+    return bool(rule(settings)) if callable(rule) else bool(rule)
+
+
+def reduce_is_signed(settings: dict[str, Any]) -> bool:
+    """Maps reduced over bands by a signed sum or mean are signed; absolute reductions are not."""
+    return settings.get("reduce") in SIGNED_REDUCTIONS
+
+
+# ---------------------------------------------------------------------------------------------------
 # Arrays and batches
 # ---------------------------------------------------------------------------------------------------
 
@@ -236,15 +274,24 @@ def nearest_index_upsample(maps: np.ndarray, size: tuple[int, int]) -> np.ndarra
 BASELINES = ("zero", "mean", "blur", "twin")
 
 
+BLUR_SIGMA = 4.0  # pixels; the one default of every blurred baseline (explainers and response metrics)
+
+
 def make_baseline(
-    key: str, kind: str, images: np.ndarray, context: ExplainContext, blur_sigma: float = 4.0
+    images: np.ndarray,
+    kind: str,
+    twins: np.ndarray | None = None,
+    blur_sigma: float = BLUR_SIGMA,
+    where: str = "baseline",
 ) -> np.ndarray:
-    """A reference input per tile, float32 (N, C, H, W).
+    """A reference input per tile, float32 (N, C, H, W); the one baseline maker of explainers and metrics.
 
     ``zero``: all bands 0 (black); ``mean``: each band filled with the tile's own band mean;
     ``blur``: each band Gaussian-blurred with ``blur_sigma`` pixels (Sundararajan et al. 2017 discuss
-    blurred baselines); ``twin``: the tile's structure-free twin from ``context.twins``.
+    blurred baselines; Petsiuk et al. 2018 insert into a blurred image); ``twin``: the tile's
+    structure-free twin ``twins``. ``where`` names the caller in errors (e.g. ``explainer 'deeplift'``).
     """
+    images = np.asarray(images, dtype=np.float32)
     if kind == "zero":
         return np.zeros_like(images, dtype=np.float32)
     if kind == "mean":
@@ -252,16 +299,13 @@ def make_baseline(
     if kind == "blur":
         return ndimage.gaussian_filter(images, sigma=(0, 0, blur_sigma, blur_sigma), mode="reflect").astype(np.float32)
     if kind == "twin":
-        if context.twins is None:
+        if twins is None:
             raise XbenchInputError(
-                f"explainer '{key}': baseline 'twin'",
-                "needs the tiles' twins",
-                expected="ExplainContext.twins (N, C, H, W)",
-                found=None,
+                f"{where}: baseline 'twin'", "needs the tiles' twins", expected="twins (N, C, H, W)", found=None
             )
-        return np.asarray(context.twins, dtype=np.float32)
+        return np.asarray(twins, dtype=np.float32)
     raise XbenchInputError(
-        f"explainer '{key}': setting 'baseline'", "unknown value", expected="one of " + ", ".join(BASELINES), found=kind
+        f"{where}: setting 'baseline'", "unknown value", expected="one of " + ", ".join(BASELINES), found=kind
     )
 
 

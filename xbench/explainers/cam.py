@@ -3,7 +3,11 @@ grad-cam-pp (Grad-CAM++, written here: captum lacks it).
 
 Both attribute the target logit, take the layer's output feature map (N, K, h, w), and upsample the
 (h, w) map to the input size (``upsample``: bilinear by default). The layer defaults to
-``model.default_layer()`` (the module's ``explain_layer`` or its last Conv2d).
+``model.default_layer()``: the module's ``explain_layer``, which every zoo model sets to the rectified output
+of its last conv block (the ReLU module after the last conv and batch-norm, the feature maps A of
+Selvaraju et al. and Chattopadhay et al.); a user model names its layer the same way (an ``explain_layer``
+attribute, or the ``layer`` setting). Without one, the last Conv2d is read (its raw, unrectified output).
+Grad-CAM maps are unsigned with ``relu = true`` (the default), Grad-CAM++ maps always.
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ from xbench.explainers.base import (
     backward_counted,
     batches,
     check_choice,
+    signed_maps,
 )
 from xbench.explainers.base import (
     upsample as resize_maps,
@@ -45,6 +50,7 @@ UPSAMPLE = ("bilinear", "nearest")
     description="layer feature maps weighted by their spatially averaged gradients, ReLU, "
     "upsampled (captum LayerGradCam + LayerAttribution.interpolate)",
 )
+@signed_maps(lambda settings: not settings["relu"])
 def grad_cam(model, images, targets, context, *, layer, relu, upsample):
     key = "grad-cam"
     mode = check_choice(key, "upsample", upsample, UPSAMPLE)
@@ -76,6 +82,7 @@ def grad_cam(model, images, targets, context, *, layer, relu, upsample):
     description="Grad-CAM++: feature maps weighted by positive gradients with per-position "
     "weights from higher-order terms (exponential score), ReLU, upsampled",
 )
+@signed_maps(False)
 def grad_cam_pp(model, images, targets, context, *, layer, upsample):
     """Grad-CAM++ (Chattopadhay et al. 2018, eqs. 19 and 9 with Y = exp(S)).
 

@@ -57,6 +57,7 @@ from xbench.explainers.base import (
     check_int,
     layer_activations,
     nearest_index_upsample,
+    signed_maps,
     upsample,
 )
 from xbench.explainers.registry import register_explainer
@@ -160,6 +161,7 @@ def _ttest(d: np.ndarray) -> float | None:
     "each replaced by a baseline inside the network; attribution = cluster "
     "maps weighted by the target-score drop; reports IoU/purity per type",
 )
+@signed_maps(True)
 def activation_clusters(
     model,
     images,

@@ -17,7 +17,7 @@ from scipy import ndimage
 from skimage.filters import sobel
 
 from xbench.errors import XbenchInputError
-from xbench.explainers.base import check_choice, check_float
+from xbench.explainers.base import check_choice, check_float, signed_maps
 from xbench.explainers.registry import register_explainer
 
 CITE_RANDOM = "Control (common practice): uniform noise from a seeded generator."
@@ -36,6 +36,7 @@ CITE_ORACLE = "Control: the planted structure masks of the synthetic scenes (gro
     defaults={"distribution": "uniform"},
     description="seeded noise, independent of model and image (uniform [0, 1) or standard normal)",
 )
+@signed_maps(lambda settings: settings["distribution"] == "normal")
 def random_map(model, images, targets, context, *, distribution):
     distribution = check_choice("random", "distribution", distribution, ("uniform", "normal"))
     rng = context.rng(stream=7)
@@ -54,6 +55,7 @@ def random_map(model, images, targets, context, *, distribution):
     description="Sobel gradient magnitude of each band (optionally Gaussian-smoothed "
     "first), combined over bands by mean or max; ignores the model",
 )
+@signed_maps(False)
 def edges(model, images, targets, context, *, sigma, combine):
     sigma = check_float("edges", "sigma", sigma, 0.0)
     combine = check_choice("edges", "combine", combine, ("mean", "max"))
@@ -75,6 +77,7 @@ def edges(model, images, targets, context, *, sigma, combine):
     description="1 on the planted pixels of the target class's driving structure types "
     "(context.driving_types), 0 elsewhere; needs the planted masks",
 )
+@signed_maps(False)
 def oracle(model, images, targets, context):
     names = list(context.mask_names)
     if context.driving_types is None:

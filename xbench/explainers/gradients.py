@@ -7,6 +7,20 @@ All attribute the target class *logit* of the torch module (``model.module``), b
   the method's total attribution, so completeness statements carry over to the map);
 - ``max-abs`` for plain gradients, SmoothGrad and guided backprop (Simonyan et al. 2014 take the maximum
   over channels of the absolute gradient).
+
+Each explainer declares whether its maps are signed (``signed_maps``): the signed reductions (``sum``,
+``mean``) give signed maps, the absolute ones unsigned maps.
+
+SmoothGrad's noise is a fraction (``noise_fraction``, default 0.15; Smilkov et al. 2017 suggest 10-20% of the
+input range) of each band's spread, the band's standard deviation on the training split
+(``ExplainContext.band_spread``; without it, over the explained tiles). ``stdev`` (reflectance units, same
+for every band) overrides the rule.
+
+Integrated gradients and DeepLIFT check themselves: captum's convergence delta
+(``compute_convergence_delta``: sum of the attributions minus the target logit's change from the baseline
+to the tile) divided by that change, in absolute value, is the tile's ``completeness-gap`` (NaN where
+the change is below 1e-6), put into
+``context.self_checks`` when the caller passes a dict there.
 """
 
 from __future__ import annotations
@@ -20,7 +34,6 @@ from captum.attr import (
     GuidedBackprop,
     InputXGradient,
     IntegratedGradients,
-    NoiseTunnel,
     Saliency,
 )
 
@@ -37,6 +50,8 @@ from xbench.explainers.base import (
     check_int,
     make_baseline,
     reduce_channels,
+    reduce_is_signed,
+    signed_maps,
 )
 from xbench.explainers.registry import register_explainer
 from xbench.models.base import ModelHandle
@@ -82,6 +97,51 @@ def _per_batch(
     return out
 
 
+COMPLETENESS_KEY = "completeness-gap"
+MIN_SCORE_CHANGE = 1e-6
+
+
+def completeness_gap(deltas: np.ndarray, score_change: np.ndarray) -> np.ndarray:
+    """|convergence delta| / |score change| per tile; NaN where the change is below ``MIN_SCORE_CHANGE``."""
+    d = np.abs(np.asarray(deltas, dtype=np.float64))
+    c = np.abs(np.asarray(score_change, dtype=np.float64))
+    out = np.full(d.shape, np.nan)
+    ok = c >= MIN_SCORE_CHANGE
+    out[ok] = d[ok] / c[ok]
+    return out
+
+
+def _record_completeness(
+    context: ExplainContext,
+    model: ModelHandle,
+    method: IntegratedGradients | DeepLift,
+    raw: np.ndarray,
+    images: np.ndarray,
+    base: np.ndarray,
+    targets: np.ndarray,
+) -> None:
+    """Put the completeness gap (captum's ``compute_convergence_delta`` over the logit change) into
+    ``context.self_checks``. Its forward passes are a check, not part of the method: they are not counted
+    in the explainer's cost."""
+    if context.self_checks is None:
+        return
+    before = (model.calls.forward, model.calls.backward)
+    deltas = np.empty(images.shape[0])
+    change = np.empty(images.shape[0])
+    with torch.no_grad():
+        for sl in batches(images.shape[0], context.batch_size):
+            t = torch.from_numpy(targets[sl])
+            x, b = as_tensor(images[sl]), as_tensor(base[sl])
+            deltas[sl] = as_numpy(
+                method.compute_convergence_delta(as_tensor(raw[sl]), start_point=b, end_point=x, target=t)
+            ).reshape(-1)
+            fx = model.module(x).double().gather(1, t[:, None])[:, 0]
+            fb = model.module(b).double().gather(1, t[:, None])[:, 0]
+            change[sl] = (fx - fb).numpy()
+    model.calls.forward, model.calls.backward = before
+    context.self_checks[COMPLETENESS_KEY] = completeness_gap(deltas, change)
+
+
 def _require_modules(key: str, model: ModelHandle, types: tuple[type, ...], what: str) -> None:
     """captum's modified backpropagation works through hooks on activation *modules*; a network whose
     non-linearities are all functional calls would silently get plain gradients instead."""
@@ -109,6 +169,7 @@ def _modified_backprop_error(key: str, model: ModelHandle, exc: Exception) -> Xb
     defaults={"reduce": "max-abs"},
     description="gradient of the target logit w.r.t. the input (captum Saliency); bands reduced by max |gradient|",
 )
+@signed_maps(reduce_is_signed)
 def gradient(model, images, targets, context, *, reduce):
     reduce = check_choice("gradient", "reduce", reduce, REDUCTIONS)
     method = Saliency(model.module)
@@ -123,6 +184,7 @@ def gradient(model, images, targets, context, *, reduce):
     defaults={"reduce": "sum"},
     description="input times gradient of the target logit (captum InputXGradient); bands summed",
 )
+@signed_maps(reduce_is_signed)
 def input_x_gradient(model, images, targets, context, *, reduce):
     reduce = check_choice("input-x-gradient", "reduce", reduce, REDUCTIONS)
     method = InputXGradient(model.module)
@@ -139,6 +201,7 @@ def input_x_gradient(model, images, targets, context, *, reduce):
     "tile's structure-free twin) to the tile (captum IntegratedGradients); "
     "bands summed; baseline 'twin' needs the twins",
 )
+@signed_maps(reduce_is_signed)
 def integrated_gradients(model, images, targets, context, *, baseline, n_steps, method, blur_sigma, reduce):
     key = "integrated-gradients"
     check_choice(key, "baseline", baseline, BASELINES)
@@ -148,7 +211,7 @@ def integrated_gradients(model, images, targets, context, *, baseline, n_steps, 
     )
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     ig = IntegratedGradients(model.module)
     raw = _per_batch(
         model,
@@ -164,38 +227,71 @@ def integrated_gradients(model, images, targets, context, *, baseline, n_steps, 
             internal_batch_size=context.batch_size,
         ),
     )
+    _record_completeness(context, model, ig, raw, images, base, targets)
     return reduce_channels(raw, reduce)
+
+
+SMOOTHGRAD_NOISE_FRACTION = 0.15
+
+
+def band_spread(images: np.ndarray, context: ExplainContext) -> np.ndarray:
+    """(C,) per-band standard deviation: the training split's (``context.band_spread``) when given, else the
+    explained tiles'."""
+    if context.band_spread is not None:
+        spread = np.asarray(context.band_spread, dtype=np.float64).reshape(-1)
+        if spread.shape != (images.shape[1],) or not np.isfinite(spread).all() or (spread < 0).any():
+            raise XbenchInputError(
+                "ExplainContext.band_spread",
+                "wrong shape or values",
+                expected=f"({images.shape[1]},) finite values >= 0",
+                found=spread.shape,
+            )
+        return spread
+    return np.asarray(images, dtype=np.float64).std(axis=(0, 2, 3))
 
 
 @register_explainer(
     "smoothgrad",
     citation=CITE_SMOOTHGRAD,
     needs={"gradients"},
-    defaults={"n_samples": 25, "stdev": 0.05, "reduce": "max-abs"},
-    description="gradients averaged over noisy copies of the tile (captum NoiseTunnel "
-    "over Saliency); noise sd 'stdev' in reflectance units; bands by max |.|",
+    defaults={"n_samples": 25, "noise_fraction": SMOOTHGRAD_NOISE_FRACTION, "stdev": None, "reduce": "max-abs"},
+    description="gradients averaged over noisy copies of the tile (captum Saliency); noise sd per band = "
+    "noise_fraction x the band's spread on the training split (or 'stdev' reflectance); bands by max |.|",
 )
-def smoothgrad(model, images, targets, context, *, n_samples, stdev, reduce):
+@signed_maps(reduce_is_signed)
+def smoothgrad(model, images, targets, context, *, n_samples, noise_fraction, stdev, reduce):
+    """SmoothGrad (Smilkov et al. 2017): the mean gradient over ``n_samples`` copies x + e, with e Gaussian
+    of sd ``noise_fraction`` x the band's spread in each band (or ``stdev`` in every band). Each tile's noise
+    comes from ``[seed, tile, 11]``, so it does not depend on the batch."""
     key = "smoothgrad"
     n_samples = check_int(key, "n_samples", n_samples, 1)
-    stdev = check_float(key, "stdev", stdev, 0.0)
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
-    tunnel = NoiseTunnel(Saliency(model.module))
-
-    def attribute(x, t, sl):
-        per_eval = max(1, context.batch_size // x.shape[0])
-        return tunnel.attribute(
-            x,
-            nt_type="smoothgrad",
-            nt_samples=n_samples,
-            stdevs=stdev,
-            nt_samples_batch_size=per_eval,
-            target=t,
-            abs=False,
+    if stdev is None:
+        sigma = check_float(key, "noise_fraction", noise_fraction, 0.0) * band_spread(images, context)
+    else:
+        sigma = np.full(images.shape[1], check_float(key, "stdev", stdev, 0.0))
+    saliency = Saliency(model.module)
+    n, c, h, w = images.shape
+    out = np.zeros(images.shape, dtype=np.float64)
+    per_chunk = max(1, context.batch_size // n_samples)
+    for start in range(0, n, per_chunk):
+        ids = np.arange(start, min(n, start + per_chunk))
+        noise = (
+            np.stack(
+                [
+                    np.random.default_rng([int(context.seed), int(i), 11]).standard_normal((n_samples, c, h, w))
+                    for i in ids
+                ]
+            )
+            * sigma[None, None, :, None, None]
         )
-
-    raw = _per_batch(model, images, targets, context, attribute)
-    return reduce_channels(raw, reduce)
+        noisy = (images[ids][:, None] + noise).reshape(-1, c, h, w).astype(np.float32)
+        t = torch.from_numpy(np.repeat(targets[ids], n_samples))
+        grads = np.empty(noisy.shape, dtype=np.float32)
+        for sl in batches(noisy.shape[0], context.batch_size):
+            grads[sl] = as_numpy(saliency.attribute(as_tensor(noisy[sl]), target=t[sl], abs=False))
+        out[ids] = grads.reshape(len(ids), n_samples, c, h, w).mean(axis=1)
+    return reduce_channels(out.astype(np.float32), reduce)
 
 
 @register_explainer(
@@ -206,6 +302,7 @@ def smoothgrad(model, images, targets, context, *, n_samples, stdev, reduce):
     description="gradient with negative signals zeroed at every ReLU (captum "
     "GuidedBackprop; needs nn.ReLU modules); bands by max |.|",
 )
+@signed_maps(reduce_is_signed)
 def guided_backprop(model, images, targets, context, *, reduce):
     key = "guided-backprop"
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
@@ -226,12 +323,13 @@ def guided_backprop(model, images, targets, context, *, reduce):
     description="DeepLIFT rescale rule against a baseline (zero, mean, blur or twin) "
     "(captum DeepLift; needs nn.ReLU modules, none reused); bands summed",
 )
+@signed_maps(reduce_is_signed)
 def deeplift(model, images, targets, context, *, baseline, blur_sigma, reduce):
     key = "deeplift"
     check_choice(key, "baseline", baseline, BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     _require_modules(key, model, DEEPLIFT_MODULES, "nn.ReLU (or other DeepLIFT-supported activation)")
     method = DeepLift(model.module)
     try:
@@ -244,4 +342,5 @@ def deeplift(model, images, targets, context, *, baseline, blur_sigma, reduce):
         )
     except (RuntimeError, AssertionError, TypeError) as exc:
         raise _modified_backprop_error(key, model, exc) from exc
+    _record_completeness(context, model, method, raw, images, base, targets)
     return reduce_channels(raw, reduce)

@@ -28,6 +28,7 @@ from xbench.explainers.base import (
     make_baseline,
     reduce_channels,
     score_function,
+    signed_maps,
 )
 from xbench.explainers.registry import register_explainer
 
@@ -49,6 +50,7 @@ PERTURB_BASELINES = ("zero", "mean", "blur")
     "replaced by a baseline, averaged over the windows covering each pixel "
     "(captum Occlusion); black box ok",
 )
+@signed_maps(True)
 def occlusion(model, images, targets, context, *, window, stride, baseline, blur_sigma, score):
     key = "occlusion"
     window = check_int(key, "window", window, 1)
@@ -56,7 +58,7 @@ def occlusion(model, images, targets, context, *, window, stride, baseline, blur
     check_choice(key, "baseline", baseline, PERTURB_BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     forward = score_function(key, model, score)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     c = images.shape[1]
     method = Occlusion(forward)
     out = np.empty(images.shape, dtype=np.float32)
@@ -100,6 +102,7 @@ def rise_masks(n_masks: int, grid: int, p: float, size: tuple[int, int], rng: np
     description="target score under random smooth masks, averaged per pixel weighted by "
     "the mask (masked-out pixels take the baseline); black box ok",
 )
+@signed_maps(False)
 def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_sigma, score):
     """RISE saliency S(x) = sum_i f_t(x * M_i + b * (1 - M_i)) M_i / (n * p) (Petsiuk et al. 2018;
     b = 0 in the paper). The same seeded masks serve every tile, so a tile's map does not depend on the
@@ -113,7 +116,7 @@ def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_si
     forward = score_function(key, model, score)
     n, c, h, w = images.shape
     masks = rise_masks(n_masks, grid, p, (h, w), context.rng(stream=1))
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     out = np.zeros((n, h, w), dtype=np.float64)
     for i in range(n):
         x = images[i][None]
@@ -162,6 +165,7 @@ def superpixels(tile: np.ndarray, n_segments: int, compactness: float, seed: int
     "random coalitions (captum KernelShap with a feature mask); each pixel "
     "gets its superpixel's value; black box ok",
 )
+@signed_maps(True)
 def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_samples, baseline, blur_sigma, score):
     key = "kernel-shap"
     n_segments = check_int(key, "n_segments", n_segments, 2)
@@ -170,7 +174,7 @@ def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_s
     check_choice(key, "baseline", baseline, PERTURB_BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     forward = score_function(key, model, score)
-    base = make_baseline(key, baseline, images, context, blur_sigma)
+    base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     n, c, h, w = images.shape
     method = KernelShap(forward)
     out = np.empty(images.shape, dtype=np.float32)

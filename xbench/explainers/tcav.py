@@ -63,6 +63,7 @@ from xbench.explainers.base import (
     check_float,
     check_int,
     layer_activations,
+    signed_maps,
     upsample,
 )
 from xbench.explainers.registry import register_explainer
@@ -123,6 +124,7 @@ def _ttest_ind(a: np.ndarray, b: np.ndarray) -> float:
     "layer); TCAV score per class and concept, t-test against >= 10 random "
     "concepts with Bonferroni; attribution = weighted concept-presence maps",
 )
+@signed_maps(True)  # concept presence weighted by (TCAV score - 0.5): negative for counter-evidence
 def tcav(model, images, targets, context, *, layer, pool, regularization, test, alpha, min_random):
     pool = check_choice(KEY, "pool", pool, ("mean", "none"))
     test = check_choice(KEY, "test", test, ("set", "runs"))

@@ -74,6 +74,9 @@ class MetricInputs:
     planted: np.ndarray | None = None
     verified: np.ndarray | None = None
     evidence: np.ndarray | None = None
+    planted_coverage: np.ndarray | None = None  # float (N, H, W) in [0, 1]: core/fringe of the planted truth
+    verified_coverage: np.ndarray | None = None  # float (N, H, W) in [0, 1]: core/fringe of the verified truth
+    self_checks: dict[str, np.ndarray] | None = None  # explainer self-checks per tile (e.g. completeness-gap)
     twins: np.ndarray | None = None
     type_masks: np.ndarray | None = None
     mask_names: list[str] | None = None
@@ -95,6 +98,10 @@ class MetricInputs:
 
     def truth_mask(self, truth: str) -> np.ndarray | None:
         return {"planted": self.planted, "verified": self.verified}.get(truth)
+
+    def truth_coverage(self, truth: str) -> np.ndarray | None:
+        """Coverage (N, H, W) of the truth kind's structures (None when only the boolean mask is known)."""
+        return {"planted": self.planted_coverage, "verified": self.verified_coverage}.get(truth)
 
     def cache_key(self, *parts: Any) -> tuple:
         """A key for shared work: the given parts plus a digest of the attributions and images."""
@@ -255,7 +262,7 @@ def validate_inputs(inputs: MetricInputs) -> None:
             expected=f"0..{inputs.model.n_classes - 1}",
             found=(int(t.min()), int(t.max())),
         )
-    for name in ("planted", "verified", "evidence"):
+    for name in ("planted", "verified", "evidence", "planted_coverage", "verified_coverage"):
         arr = getattr(inputs, name)
         if arr is not None and np.shape(arr) != (n, h, w):
             raise XbenchInputError(

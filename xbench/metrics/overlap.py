@@ -1,10 +1,23 @@
-"""Localization: how well an attribution map points at a truth mask (planted or model-verified).
+"""Overlap: how well an attribution map points at a truth mask (planted or model-verified).
 
 Pure cores take ``attributions`` (N, H, W) and ``masks`` (N, H, W) bool and return float64 (N,), NaN where
-the value is undefined; :func:`localization_reasons` says why. Conventions:
+the value is undefined; :func:`localization_reasons` says why. Conventions (every one a metric setting,
+recorded with the result):
 
-- Signed attributions are ranked as they are (larger = more evidence); mass accuracy uses only the
-  positive part, as Arras et al. (2022) do.
+- **Void fringe** (``fringe``, ``core_threshold``): when the truth's coverage is known, a structure's
+  *core* is its pixels with coverage >= ``core_threshold`` (default 0.5) and its *fringe* the pixels with
+  0 < coverage < threshold (anti-aliased edges, often invisible to a model). By default (``fringe =
+  "void"``) fringe pixels are left out, neither positive nor negative, as segmentation benchmarks leave a
+  void band at object boundaries (Everingham et al., IJCV 2010); ``"positive"`` counts them as mask
+  (coverage > 0, the former convention), ``"negative"`` as background. Without coverage the boolean
+  mask is used as it is.
+- **Signed maps** (``signed``): the positive part of the map is the evidence for the target (default
+  ``"positive-part"``: negative values count as no evidence, as mass accuracy has always done, Arras et
+  al. 2022); ``"magnitude"`` ranks |attribution| instead (a protocol variant). Unsigned maps are the same
+  under both.
+- **Coverage weights** (``weighting``, mask-auroc and mask-ap only): ``"coverage"`` scores every pixel
+  as a positive with weight = coverage and as a negative with weight 1 - coverage
+  (``sklearn.metrics.roc_auc_score`` / ``average_precision_score`` with ``sample_weight``).
 - Ties are never broken arbitrarily: where the top-k set or the maximum is tied, the value is its
   expectation under random tie-breaking (a constant map scores the chance level, the mask's area share).
 - Empty masks give NaN ("mask is empty"); AUROC also needs a background ("mask covers the whole tile").
@@ -18,11 +31,13 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 from scipy.stats import rankdata
+from sklearn.metrics import average_precision_score, roc_auc_score
 
 from xbench.metrics.base import (
     NONFINITE_REASON,
     MetricInputs,
     MetricResult,
+    check_choice,
     check_number,
     register_metric,
     tile_result,
@@ -153,6 +168,98 @@ def mask_ap(attributions: np.ndarray, masks: np.ndarray) -> np.ndarray:
     return out
 
 
+FRINGE_POLICIES = ("void", "positive", "negative")
+SIGNED_CONVENTIONS = ("positive-part", "magnitude")
+WEIGHTINGS = ("none", "coverage")
+
+
+def truth_regions(
+    mask: np.ndarray, coverage: np.ndarray | None, fringe: str = "void", core_threshold: float = 0.5
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """The positive pixels and the scored pixels (None = all) of a truth under a fringe policy.
+
+    core = coverage >= core_threshold; fringe = 0 < coverage < core_threshold. ``void``: positives = core,
+    fringe not scored (Everingham et al. 2010); ``positive``: positives = coverage > 0; ``negative``:
+    positives = core, fringe scored as background. Without coverage: (mask, None)."""
+    mask = np.asarray(mask, dtype=bool)
+    if coverage is None:
+        return mask, None
+    cov = np.asarray(coverage, dtype=np.float64)
+    core = cov >= core_threshold
+    if fringe == "positive":
+        return cov > 0, None
+    if fringe == "negative":
+        return core, None
+    return core, ~((cov > 0) & ~core)
+
+
+def signed_map(attributions: np.ndarray, signed: str = "positive-part") -> np.ndarray:
+    """The map as evidence for the target: its positive part (default) or its magnitude."""
+    a = np.asarray(attributions, dtype=np.float64)
+    return np.abs(a) if signed == "magnitude" else np.maximum(a, 0.0)
+
+
+def scored_pixels(
+    core: Callable[..., np.ndarray], attributions: np.ndarray, masks: np.ndarray, valid: np.ndarray | None, **kw: Any
+) -> np.ndarray:
+    """Apply a pure core to the scored pixels only (``valid`` (N, H, W) bool; None = all pixels): each tile's
+    valid pixels become one row, so void pixels are neither positive nor negative."""
+    if valid is None:
+        return core(attributions, masks, **kw)
+    a, m = _flat(attributions, masks)
+    v = np.asarray(valid, dtype=bool).reshape(a.shape[0], -1)
+    out = np.full(a.shape[0], np.nan)
+    for i in range(a.shape[0]):
+        if v[i].any():
+            out[i] = core(a[i][v[i]][None, :], m[i][v[i]][None, :], **kw)[0]
+    return out
+
+
+def _weighted(score_fn: Callable[..., float], attributions: np.ndarray, coverage: np.ndarray) -> np.ndarray:
+    a = np.asarray(attributions, dtype=np.float64).reshape(len(attributions), -1)
+    c = np.clip(np.asarray(coverage, dtype=np.float64).reshape(len(a), -1), 0.0, 1.0)
+    out = np.full(a.shape[0], np.nan)
+    for i in range(a.shape[0]):
+        pos, neg = c[i].sum(), (1.0 - c[i]).sum()
+        if not np.isfinite(a[i]).all() or pos <= 0 or (score_fn is roc_auc_score and neg <= 0):
+            continue
+        y = np.r_[np.ones(a.shape[1]), np.zeros(a.shape[1])]
+        out[i] = score_fn(y, np.r_[a[i], a[i]], sample_weight=np.r_[c[i], 1.0 - c[i]])
+    return out
+
+
+def mask_auroc_weighted(attributions: np.ndarray, coverage: np.ndarray) -> np.ndarray:
+    """Coverage-weighted ROC AUC: each pixel is a positive with weight = coverage and a negative with
+    weight 1 - coverage (``sklearn.metrics.roc_auc_score`` with ``sample_weight``). NaN without positive
+    or negative weight."""
+    return _weighted(roc_auc_score, attributions, coverage)
+
+
+def mask_ap_weighted(attributions: np.ndarray, coverage: np.ndarray) -> np.ndarray:
+    """Coverage-weighted average precision (``sklearn.metrics.average_precision_score`` with
+    ``sample_weight``, the same soft labels as :func:`mask_auroc_weighted`). NaN without positive weight."""
+    return _weighted(average_precision_score, attributions, coverage)
+
+
+def pointing_game_scored(
+    attributions: np.ndarray, masks: np.ndarray, valid: np.ndarray | None, tolerance: float = 1.0
+) -> np.ndarray:
+    """Pointing game whose maximum is taken over the scored pixels only (void pixels can neither hit nor
+    miss)."""
+    if valid is None:
+        return pointing_game(attributions, masks, tolerance)
+    a = np.where(np.asarray(valid, dtype=bool), np.asarray(attributions, dtype=np.float64), -np.inf)
+    m = np.asarray(masks, dtype=bool)
+    out = np.full(a.shape[0], np.nan)
+    for i in range(a.shape[0]):
+        if not m[i].any() or not np.isfinite(attributions[i]).all() or not np.isfinite(a[i]).any():
+            continue
+        hit = m[i] if tolerance <= 0 else ndimage.distance_transform_edt(~m[i]) <= tolerance
+        peak = a[i] == a[i].max()
+        out[i] = (peak & hit).sum() / peak.sum()
+    return out
+
+
 def localization_reasons(
     attributions: np.ndarray,
     masks: np.ndarray,
@@ -160,13 +267,16 @@ def localization_reasons(
     *,
     need_background: bool = False,
     positive_mass: bool = False,
+    fringe_only: np.ndarray | None = None,
 ) -> dict[int, str]:
-    """Why each NaN value is undefined."""
+    """Why each NaN value is undefined (``fringe_only``: tiles whose truth has fringe pixels but no core)."""
     a, m = _flat(attributions, masks)
     reasons: dict[int, str] = {}
     for i in np.flatnonzero(~np.isfinite(values)):
         if not np.isfinite(a[i]).all():
             reasons[int(i)] = NONFINITE_REASON
+        elif not m[i].any() and fringe_only is not None and fringe_only[i]:
+            reasons[int(i)] = "mask has no core: every pixel of the truth is covered below core_threshold (fringe)"
         elif not m[i].any():
             reasons[int(i)] = "mask is empty: the tile holds no evidence of this truth kind"
         elif need_background and m[i].all():
@@ -179,15 +289,58 @@ def localization_reasons(
 
 
 # -- registration ---------------------------------------------------------------------------------------
+COMMON_DEFAULTS = {"fringe": "void", "core_threshold": 0.5, "signed": "positive-part"}
+COMMON_DOC = {
+    "fringe": "fringe pixels (0 < coverage < core_threshold): void (left out), positive or negative",
+    "core_threshold": "coverage at or above which a pixel is the structure's core",
+    "signed": "signed maps as evidence: positive-part (negative = no evidence) or magnitude",
+}
+WEIGHT_DEFAULTS = {"weighting": "none"}
+WEIGHT_DOC = {"weighting": "none, or coverage (pixels weighted by coverage as positive, 1 - coverage as negative)"}
+
+
 def _run(
     key: str, core: Callable[..., np.ndarray], inputs: MetricInputs, truth: str, settings: dict[str, Any], **flags: bool
 ) -> MetricResult:
+    check_choice(key, "fringe", settings["fringe"], FRINGE_POLICIES)
+    check_number(key, "core_threshold", settings["core_threshold"], 1e-9, 1)
+    check_choice(key, "signed", settings["signed"], SIGNED_CONVENTIONS)
+    extra = {k: v for k, v in settings.items() if k not in COMMON_DEFAULTS and k not in WEIGHT_DEFAULTS}
     mask = np.asarray(inputs.truth_mask(truth), dtype=bool)
-    values = core(inputs.attributions, mask, **settings)
-    return tile_result(key, truth, values, localization_reasons(inputs.attributions, mask, values, **flags), settings)
+    coverage = inputs.truth_coverage(truth)
+    a = signed_map(inputs.attributions, settings["signed"])
+    a = np.where(np.isfinite(np.asarray(inputs.attributions, dtype=np.float64)), a, np.nan)
+    if settings.get("weighting", "none") == "coverage":
+        if coverage is None:
+            cov = mask.astype(np.float64)
+        else:
+            cov = np.asarray(coverage, dtype=np.float64)
+        weighted = mask_auroc_weighted if core is mask_auroc else mask_ap_weighted
+        values = weighted(a, cov)
+        positives = cov > 0
+        fringe_only = None
+    else:
+        positives, valid = truth_regions(mask, coverage, settings["fringe"], float(settings["core_threshold"]))
+        if core is pointing_game:
+            values = pointing_game_scored(a, positives, valid, **extra)
+        else:
+            values = scored_pixels(core, a, positives, valid, **extra)
+        fringe_only = None if coverage is None else (~positives.any(axis=(1, 2)) & mask.any(axis=(1, 2)))
+    reasons = localization_reasons(inputs.attributions, positives, values, fringe_only=fringe_only, **flags)
+    return tile_result(key, truth, values, reasons, settings)
 
 
 _LOC = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
+
+
+def _defaults(own: dict[str, Any] | None = None, weights: bool = False) -> dict[str, Any]:
+    return {**(own or {}), **COMMON_DEFAULTS, **(WEIGHT_DEFAULTS if weights else {})}
+
+
+def _docs(own: dict[str, str] | None = None, weights: bool = False) -> dict[str, str]:
+    return {**(own or {}), **COMMON_DOC, **(WEIGHT_DOC if weights else {})}
+
+
 _ARRAS = "Arras, Osman, Samek. Ground-truth evaluation of neural network explanations. Information Fusion 81, 2022."
 
 
@@ -197,6 +350,8 @@ _ARRAS = "Arras, Osman, Samek. Ground-truth evaluation of neural network explana
     citation=_ARRAS,
     value_range=(0, 1),
     higher_is_better=True,
+    defaults=_defaults(),
+    settings_doc=_docs(),
     **_LOC,
 )
 def _mass_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
@@ -209,6 +364,8 @@ def _mass_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -
     citation=_ARRAS,
     value_range=(0, 1),
     higher_is_better=True,
+    defaults=_defaults(),
+    settings_doc=_docs(),
     **_LOC,
 )
 def _rank_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
@@ -222,8 +379,8 @@ def _rank_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -
     "excitation backprop. ECCV 2016 / IJCV 2018.",
     value_range=(0, 1),
     higher_is_better=True,
-    defaults={"tolerance": 1.0},
-    settings_doc={"tolerance": "hit radius in pixels around the mask (Euclidean; 0 = inside)"},
+    defaults=_defaults({"tolerance": 1.0}),
+    settings_doc=_docs({"tolerance": "hit radius in pixels around the mask (Euclidean; 0 = inside)"}),
     **_LOC,
 )
 def _pointing_game(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
@@ -237,9 +394,12 @@ def _pointing_game(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -
     citation="Common practice (ROC AUC as in sklearn.metrics.roc_auc_score).",
     value_range=(0, 1),
     higher_is_better=True,
+    defaults=_defaults(weights=True),
+    settings_doc=_docs(weights=True),
     **_LOC,
 )
 def _mask_auroc(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    check_choice("mask-auroc", "weighting", settings["weighting"], WEIGHTINGS)
     return _run("mask-auroc", mask_auroc, inputs, truth, settings, need_background=True)
 
 
@@ -249,9 +409,12 @@ def _mask_auroc(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
     citation="Common practice (average precision as in sklearn.metrics.average_precision_score).",
     value_range=(0, 1),
     higher_is_better=True,
+    defaults=_defaults(weights=True),
+    settings_doc=_docs(weights=True),
     **_LOC,
 )
 def _mask_ap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    check_choice("mask-ap", "weighting", settings["weighting"], WEIGHTINGS)
     return _run("mask-ap", mask_ap, inputs, truth, settings)
 
 
@@ -261,8 +424,8 @@ def _mask_ap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> Metr
     citation="Common practice (thresholded saliency vs. mask intersection over union).",
     value_range=(0, 1),
     higher_is_better=True,
-    defaults={"fraction": 0.1},
-    settings_doc={"fraction": "share of the tile's pixels kept as the top-k set"},
+    defaults=_defaults({"fraction": 0.1}),
+    settings_doc=_docs({"fraction": "share of the tile's pixels kept as the top-k set (of the scored pixels)"}),
     **_LOC,
 )
 def _topk_iou(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:

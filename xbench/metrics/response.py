@@ -34,9 +34,8 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from scipy import ndimage
 
-from xbench.errors import XbenchInputError
+from xbench.explainers.base import BLUR_SIGMA, make_baseline
 from xbench.metrics.base import (
     NONFINITE_REASON,
     MetricInputs,
@@ -57,24 +56,6 @@ ProbFn = Callable[[np.ndarray], np.ndarray]
 
 
 # -- pure pieces ----------------------------------------------------------------------------------------
-def make_baseline(
-    images: np.ndarray, kind: str, twins: np.ndarray | None = None, blur_sigma: float = 3.0
-) -> np.ndarray:
-    """The replacement image (N, C, H, W) float32 for each tile."""
-    images = np.asarray(images, dtype=np.float32)
-    if kind == "zero":
-        return np.zeros_like(images)
-    if kind == "mean":
-        return np.broadcast_to(images.mean(axis=(2, 3), keepdims=True), images.shape).astype(np.float32)
-    if kind == "blur":
-        return ndimage.gaussian_filter(images, sigma=(0, 0, blur_sigma, blur_sigma), mode="reflect")
-    if kind == "twin":
-        if twins is None:
-            raise XbenchInputError("metric baseline 'twin'", "needs twins")
-        return np.asarray(twins, dtype=np.float32)
-    raise XbenchInputError("metric setting 'baseline'", "unknown baseline", expected=" | ".join(BASELINES), found=kind)
-
-
 def pixel_order(
     attributions: np.ndarray, seed: int, most_relevant_first: bool = True, tile_ids: np.ndarray | None = None
 ) -> np.ndarray:
@@ -274,7 +255,7 @@ def subset_drop_correlation_scores(
 
 
 # -- runners --------------------------------------------------------------------------------------------
-_FAITH_DEFAULTS = {"baseline": "twin", "steps": 20, "blur_sigma": 3.0}
+_FAITH_DEFAULTS = {"baseline": "twin", "steps": 20, "blur_sigma": BLUR_SIGMA}
 _FAITH_DOC = {
     "baseline": "replacement for perturbed pixels: twin (structure-free twin), zero, mean (the tile's "
     "band means), blur (Gaussian-blurred tile)",
@@ -322,7 +303,7 @@ def _curves(inputs: MetricInputs, settings: dict[str, Any], mode: str, morf: boo
     if good.size:
         images = np.asarray(inputs.images, dtype=np.float32)[good]
         twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
-        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
+        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]), where="metric")
         order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf, tile_ids=good)
         out[good] = perturbation_curves(
             _prob_fn(inputs), images, np.asarray(inputs.targets)[good], base, order, steps, mode
@@ -397,7 +378,7 @@ register_metric(
     family="response",
     needs=("model", "twins"),
     per_tile=True,
-    defaults={"baseline": "twin", "fraction": 0.1, "runs": 32, "blur_sigma": 3.0},
+    defaults={"baseline": "twin", "fraction": 0.1, "runs": 32, "blur_sigma": BLUR_SIGMA},
     settings_doc={
         "baseline": _FAITH_DOC["baseline"],
         "fraction": "share of the tile's pixels in each subset",
@@ -424,7 +405,7 @@ def _subset_drop_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]
     if good.size:
         images = np.asarray(inputs.images, dtype=np.float32)[good]
         twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
-        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]))
+        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]), where="metric")
         subsets = random_subsets(n, h * w, size, runs, inputs.seed, tile_ids=good)
         sums, drops = subset_drop_correlation_scores(
             _prob_fn(inputs),
@@ -443,3 +424,50 @@ def _subset_drop_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]
             else:
                 reasons[i] = "the model's score did not change over the subsets: correlation undefined"
     return tile_result(key, truth, values, reasons, settings)
+
+
+# -- explainer self-checks ----------------------------------------------------------------------------------
+COMPLETENESS_WARN = 0.05  # a gap above 5% of the score change is reported
+
+
+def completeness_warning(values: np.ndarray, limit: float = COMPLETENESS_WARN) -> str | None:
+    """A warning text when any tile's completeness gap exceeds ``limit`` (a share of the score change)."""
+    v = np.asarray(values, dtype=np.float64)
+    bad = np.isfinite(v) & (v > limit)
+    if not bad.any():
+        return None
+    return (
+        f"completeness gap above {limit:.0%} of the score change on {int(bad.sum())} of {int(np.isfinite(v).sum())} "
+        f"tiles (largest {np.nanmax(v):.1%}, median {np.nanmedian(v):.1%}): the map's total does not equal the "
+        "model's change from the baseline (more integration steps, or a model whose non-linearities captum "
+        "can follow, narrow it)"
+    )
+
+
+@register_metric(
+    "completeness-gap",
+    definition="|sum of the attributions - (f(tile) - f(baseline))| / |f(tile) - f(baseline)| of the target "
+    "logit: the explainer's own completeness error (captum's convergence delta), integrated gradients and "
+    "DeepLIFT only",
+    citation="Sundararajan, Taly, Yan. Axiomatic attribution for deep networks. ICML 2017 (completeness); "
+    "Shrikumar, Greenside, Kundaje. ICML 2017 (summation-to-delta).",
+    value_range=(0, np.inf),
+    higher_is_better=False,
+    family="response",
+    needs=(),
+    per_tile=True,
+)
+def _completeness_gap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    key = "completeness-gap"
+    checks = inputs.self_checks or {}
+    if key not in checks:
+        spec = get_metric(key)
+        reason = "the explainer records no completeness gap (only integrated-gradients and deeplift do)"
+        return nan_result(spec, inputs, truth, reason, settings)
+    values = np.asarray(checks[key], dtype=np.float64).reshape(-1)[: inputs.n_tiles]
+    reasons = {
+        int(i): "the target logit barely changes from the baseline to the tile: relative gap undefined"
+        for i in np.flatnonzero(~np.isfinite(values))
+    }
+    warning = completeness_warning(values)
+    return tile_result(key, truth, values, reasons, {**settings, **({"warning": warning} if warning else {})})

@@ -4,7 +4,8 @@ Every module takes raw reflectance (N, C, H, W) in [0, 1] and returns logits (N,
 standardisation lives inside the module (``BandNorm``, statistics set from the training split and saved
 in the state_dict). Activations are separate ``nn.ReLU`` modules (never reused, never in place) so that
 hook-based explainers (guided backpropagation, DeepLIFT) can override each one. ``explain_layer`` names
-the last conv layer, which layer-based explainers (Grad-CAM, activation clusters, TCAV) use by default.
+the module after the last ReLU of the last conv block (its rectified output), which layer-based explainers
+(Grad-CAM, activation clusters, TCAV) use by default; every model of the zoo sets it.
 
 - ``cnn``: plain conv stack (conv, batch-norm, ReLU), global average pooling and a linear head.
 - ``resnet``: a tiny residual network after He et al. (CVPR 2016): a stem, three basic blocks with identity
@@ -70,7 +71,7 @@ class PlainCNN(nn.Module):
         self.flatten = nn.Flatten()
         self.dropout = nn.Dropout(dropout)
         self.head = nn.Linear(2 * w, n_classes)
-        self.explain_layer = "conv4"
+        self.explain_layer = "relu4"  # rectified output of the last conv block
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = self.norm(x)
@@ -126,7 +127,7 @@ class TinyResNet(nn.Module):
         self.flatten = nn.Flatten()
         self.dropout = nn.Dropout(dropout)
         self.head = nn.Linear(2 * w, n_classes)
-        self.explain_layer = "mix"
+        self.explain_layer = "mix_relu"  # rectified output of the last conv block
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = self.stem_relu(self.stem_bn(self.stem(self.norm(x))))
@@ -184,7 +185,7 @@ class EvidenceUNet(nn.Module):
         self.flatten = nn.Flatten()
         self.dropout = nn.Dropout(dropout)
         self.head = nn.Linear(2 * int(n_maps), n_classes)
-        self.explain_layer = "evidence"
+        self.explain_layer = "evidence_relu"  # rectified output of the last conv block
 
     def evidence_maps(self, x: torch.Tensor) -> torch.Tensor:
         """The non-negative evidence maps (N, n_maps, H, W) at input resolution."""

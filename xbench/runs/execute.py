@@ -48,6 +48,8 @@ class Prepared:
     fit_labels: np.ndarray
     fit_masks: np.ndarray
     concept_sets: dict[str, np.ndarray] | None
+    planted_coverage: np.ndarray | None = None  # float32 (N, H, W): max coverage of the driving types
+    band_spread: np.ndarray | None = None  # (C,) per-band standard deviation of the training split
 
 
 _TASK_CACHE: dict[str, tuple[Any, Any]] = {}
@@ -137,8 +139,11 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     # A user's tile pack has no scenes: no per-instance twins, so no model-verified truth.
     reliance = compute_reliance(trained.handle, scenes, targets, seed=int(seed)) if scenes else None
     planted = np.zeros((len(index),) + sub.images.shape[2:], dtype=bool)
+    planted_coverage = None if sub.coverage is None else np.zeros(planted.shape, dtype=np.float32)
     for row, cls in enumerate(targets):
         planted[row] = _union(sub, row, task.class_driving_types.get(int(cls), []))
+        if planted_coverage is not None:
+            planted_coverage[row] = _union_coverage(sub, row, task.class_driving_types.get(int(cls), []))
     # Fitting set for activation-clusters: correctly classified training tiles.
     train = data.train
     n_fit = int(task.run["fit_tiles"])
@@ -161,6 +166,8 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
         fit_labels=train.labels[correct],
         fit_masks=train.masks[correct],
         concept_sets=concept_sets_for(task, list(sub.mask_names)) if need_concepts else None,
+        planted_coverage=planted_coverage,
+        band_spread=train.images.std(axis=(0, 2, 3), dtype=np.float64),
     )
     _PREP_CACHE[key] = prep
     return prep
@@ -171,6 +178,14 @@ def _union(pack: Any, row: int, types: list[str]) -> np.ndarray:
     for name in types:
         if name in pack.mask_names:
             out |= pack.masks[row, pack.mask_names.index(name)]
+    return out
+
+
+def _union_coverage(pack: Any, row: int, types: list[str]) -> np.ndarray:
+    out = np.zeros(pack.coverage.shape[2:], dtype=np.float32)
+    for name in types:
+        if name in pack.mask_names:
+            out = np.maximum(out, pack.coverage[row, pack.mask_names.index(name)])
     return out
 
 
@@ -190,19 +205,30 @@ def explain_context(prep: Prepared, cell: Cell) -> Any:
         fit_labels=prep.fit_labels,
         fit_masks=prep.fit_masks,
         concept_sets=prep.concept_sets,
+        band_spread=prep.band_spread,
+        self_checks={},
     )
 
 
 def type_groups(prep: Prepared) -> tuple[dict[str, float] | None, list[str], list[str], list[str]]:
-    """Interventional importance per type, and the relied-on, look-alike and unused types."""
+    """Interventional importance per type, and the relied-on, look-alike and unused types.
+
+    Roles come from measured reliance (``xbench.truth.type_roles``): a look-alike the model verifiably relies
+    on is relied-on evidence (role ``relied-on look-alike``), listed with the relied-on types and not with
+    the look-alikes; only types the model does not rely on (unused look-alikes and other unused types) can
+    be false alarms."""
+    from xbench.truth import type_roles
+
     lookalikes = [t for t in prep.task.lookalike_types if t in prep.mask_names]
     if prep.reliance is None:
         return None, [], lookalikes, [t for t in prep.mask_names if t not in lookalikes]
     table = prep.reliance.type_table
     importance = {str(k): float(v) for k, v in zip(table["kind"], table["mean_drop"], strict=True) if k != "cue"}
-    relied = [t for t in prep.reliance.relied_types() if t != "cue"]
-    unused = [t for t in prep.mask_names if t not in relied and t not in lookalikes]
-    return importance, relied, lookalikes, unused
+    roles = type_roles(prep.reliance.relied_types(), lookalikes, prep.mask_names)
+    relied = [t for t, role in roles.items() if role != "unused"]
+    unused_lookalikes = [t for t in lookalikes if roles[t] == "unused"]
+    unused = [t for t, role in roles.items() if role == "unused" and t not in lookalikes]
+    return importance, relied, unused_lookalikes, unused
 
 
 class CellTimeout(BaseException):
@@ -293,6 +319,9 @@ def _compute_cell(
         planted=prep.planted,
         verified=None if prep.reliance is None else prep.reliance.verified_masks,
         evidence=None if prep.reliance is None else prep.reliance.evidence,
+        planted_coverage=prep.planted_coverage,
+        verified_coverage=None if prep.reliance is None else prep.reliance.verified_coverage,
+        self_checks=dict(context.self_checks or {}) or None,
         twins=prep.twins,
         type_masks=prep.masks,
         mask_names=prep.mask_names,
@@ -319,9 +348,16 @@ def _compute_cell(
     curves: list[dict[str, Any]] = []
     notes: dict[str, str] = {}
     reasons: list[tuple] = []  # whole reasons of skipped metrics and NaN values, keyed like the records
+    if prep.reliance is not None:
+        from xbench.truth import unverified_summary
+
+        notes["verified truth"] = unverified_summary(prep.reliance)
     metric_seconds: dict[str, float] = {}
     tiles = prep.explain_index.astype(np.int64)
-    for key in metric_keys:
+    # Self-checks the explainer recorded (integrated gradients' and DeepLIFT's completeness gap) are
+    # recorded for every such cell, listed in the task or not.
+    keys = list(metric_keys) + [k for k in sorted(full.self_checks or {}) if k not in metric_keys]
+    for key in keys:
         t0 = time.perf_counter()
         settings = dict(metric_settings.get(key, {}))
         size = min(int(settings.pop(TILE_SUBSET_SETTING, len(tiles))), len(tiles))
@@ -355,6 +391,9 @@ def _compute_cell(
             if result.reasons:
                 notes[tag] = "; ".join(sorted({str(r) for r in result.reasons.values()}))
                 reasons.append(ident + (notes[tag],))
+            for what in ("warning", "calibrated"):  # texts the report and the manifest read
+                if result.settings.get(what):
+                    notes[f"{tag} {what}"] = str(result.settings[what])
             curves.extend(curve_rows(cell, key, result))
         metric_seconds[key] = time.perf_counter() - t0
     records = pd.DataFrame(rows, columns=RECORD_COLUMNS)
@@ -412,11 +451,12 @@ def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
         # `tiles`: for each row of `images`, the index of the explained tile it is a copy of.
         if tiles is None and images.shape[0] == size:
             tiles = np.arange(size)
+        # Re-runs record no self-checks: those of the cell are the explained tiles' own.
         if tiles is None:
-            ctx = replace(context, twins=None, masks=None)
+            ctx = replace(context, twins=None, masks=None, self_checks=None)
         else:
             tiles = np.asarray(tiles, dtype=np.int64)
-            ctx = replace(context, twins=rows(context.twins, tiles), masks=rows(context.masks, tiles))
+            ctx = replace(context, twins=rows(context.twins, tiles), masks=rows(context.masks, tiles), self_checks=None)
         return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
 
     return rerun_explainer
@@ -439,7 +479,8 @@ def subset_inputs(full: Any, size: int, rerun_explainer: Any) -> Any:
 
 
 def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:
-    """Mean curves (with sd and n) for the figures: deletion/insertion per step, randomization per layer."""
+    """Mean curves (with sd and n) for the figures: removal curves with x = fraction removed, the
+    randomization cascade with x = layer step."""
     out: list[dict[str, Any]] = []
     curves = getattr(result, "curves", None) or {}
     labels = getattr(result, "curve_labels", None) or {}
@@ -456,7 +497,9 @@ def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:
         names = list(labels.get(name, [])) if isinstance(labels, dict) else list(labels)
         for step in range(steps):
             label = names[step] if step < len(names) else ""
-            x = step / max(steps - 1, 1) if name in ("deletion", "insertion") else float(step)
+            # Removal curves (deletion, insertion, deletion-lerf, ...) run over the fraction of pixels removed;
+            # labelled curves (the randomization cascade's layers) keep their step number.
+            x = float(step) if names else step / max(steps - 1, 1)
             out.append(
                 {
                     "task": cell.task,
