@@ -169,3 +169,14 @@ def test_train_on_a_pack_task_says_what_it_does(tmp_path, module_dir, capsys):
     printed = capsys.readouterr().out
     assert "uses a tile pack" in printed and "accuracy" in printed
     assert (tmp_path / "train" / "pack__train.csv").is_file()
+
+
+def test_another_package_version_recomputes_every_cell(make_task, tmp_path, monkeypatch):
+    import xbench.runs.grid as grid
+
+    task = make_task(explainers='["random", "edges"]')
+    out = tmp_path / "run"
+    assert run_task(task, out).ok
+    assert run_task(task, out).cells_done == 0
+    monkeypatch.setattr(grid, "package_versions", lambda: grid.package_versions.__wrapped__() | {"torch": "0.0"})
+    assert run_task(task, out).cells_done == 2
