@@ -52,6 +52,7 @@ class RunSet:
     curves: pd.DataFrame | None = None
     reliance: pd.DataFrame | None = None
     concepts: pd.DataFrame | None = None
+    reasons: pd.DataFrame | None = None  # why values are missing or NaN (reasons.parquet), keyed like the records
     artifacts: list[Artifact] = field(default_factory=list)
     log: list[str] = field(default_factory=list)
 
@@ -96,7 +97,7 @@ def load_runs(run_dirs: Any) -> RunSet:
     if not dirs:
         raise XbenchInputError("run folders", "none given", expected="at least one run folder")
     log: list[str] = []
-    records, manifests, curves, reliance, concepts, artifacts = [], [], [], [], [], []
+    records, manifests, curves, reliance, concepts, reasons, artifacts = [], [], [], [], [], [], []
     for d in dirs:
         if not d.is_dir():
             raise XbenchInputError(str(d), "run folder not found")
@@ -105,6 +106,7 @@ def load_runs(run_dirs: Any) -> RunSet:
         curves.append(read_table(d, "curves.parquet", log))
         reliance.append(read_table(d, "reliance.parquet", log))
         concepts.append(read_table(d, "concepts.parquet", log))
+        reasons.append(read_table(d, "reasons.parquet", log))
         artifacts.extend(find_artifacts(d, log))
     rec = pd.concat(records, ignore_index=True)
     dup = rec.duplicated(RECORD_KEY, keep="last")
@@ -124,6 +126,7 @@ def load_runs(run_dirs: Any) -> RunSet:
         curves=_concat(curves),
         reliance=_concat(reliance),
         concepts=_concat(concepts),
+        reasons=_concat(reasons),
         artifacts=list(seen.values()),
         log=log,
     )
