@@ -622,7 +622,7 @@ def test_bad_records_exit_2(runs, tmp_path, capsys):
     bad.mkdir()
     fabricate_records().drop(columns=["tile"]).to_parquet(bad / "records.parquet")
     code, _, err = run_cli(["--baseline", str(runs["baseline"]), "--current", str(bad)], capsys)
-    assert code == 2 and "records.parquet" in err and "missing record columns" in err
+    assert code == 2 and "records.parquet" in err and "records lack columns" in err
 
 
 def test_unknown_metric_direction_exits_2(runs, tmp_path, capsys):

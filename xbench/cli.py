@@ -10,6 +10,7 @@ import errno
 import importlib
 import os
 import sys
+import warnings
 
 from xbench import __version__
 from xbench.errors import XbenchInputError
@@ -63,6 +64,22 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     verb = f"xbench {args.verb}"
+
+    def one_line_warning(message, category, filename, lineno, file=None, line=None) -> None:  # noqa: ANN001
+        try:
+            print(f"{verb}: warning: {' '.join(str(message).split())}", file=sys.stderr)
+        except (BrokenPipeError, OSError):
+            pass
+
+    saved = warnings.showwarning
+    warnings.showwarning = one_line_warning  # library warnings as one line each, without source lines
+    try:
+        return _run_verb(args, verb)
+    finally:
+        warnings.showwarning = saved
+
+
+def _run_verb(args: argparse.Namespace, verb: str) -> int:
     try:
         return int(args._run(args) or 0)
     except XbenchInputError as exc:

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import shutil
+from pathlib import Path
 
 import pandas as pd
 import pytest
@@ -114,3 +115,69 @@ def test_a_damaged_data_cache_is_rebuilt(make_task, tmp_path, monkeypatch):
     with pytest.warns(UserWarning, match="damaged data cache"):
         again = build_task_data(task)
     assert (again.train.images == first.train.images).all()
+
+
+def _pack_task(tmp_path: Path, module_dir: Path) -> tuple[Path, object]:
+    """A task on a user's tile pack (`mine.npz`, 16 px) with an untrained user model; returns the task file
+    and a function that (re-)exports the pack from a given synthesis seed."""
+    from tests.faults.conftest import MODULE_NAME
+    from xbench.data import save_pack
+    from xbench.scenes import parse_label_rule, synthesize
+
+    rule = parse_label_rule(
+        {
+            "classes": ["intact", "road"],
+            "default": "intact",
+            "rule": [{"class": "road", "type": "road", "stat": "coverage", "above": 0.005}],
+        },
+        "rule",
+    )
+
+    def export(seed: int) -> None:
+        pack, _ = synthesize("conifer-upland", 24, seed, size=16, twins=True, presence={"road": 0.6}, label_rule=rule)
+        save_pack(pack, tmp_path / "mine.npz")
+
+    save_weights(module_dir, tmp_path / "a.pt", 1)
+    task = tmp_path / "pack.toml"
+    task.write_text(
+        'name = "pack"\nseeds = [0]\n[data]\npack = "mine.npz"\ntrain = 4\nval = 4\ntest = 16\n'
+        '[data.drives]\nroad = ["road"]\n'
+        f'[[models]]\nname = "n"\nkind = "user-torch"\nfactory = "{MODULE_NAME}:build_net"\nweights = "a.pt"\n'
+        '[explainers]\nkeys = ["random", "oracle"]\n[metrics]\nkeys = ["mass-accuracy", "gini"]\n'
+        "[run]\nexplain_tiles = 4\ngallery_tiles = 2\nfit_tiles = 4\n"
+    )
+    export(1)
+    return task, export
+
+
+def test_a_changed_tile_pack_recomputes_and_matches_a_fresh_run(tmp_path, module_dir):
+    task, export = _pack_task(tmp_path, module_dir)
+    out = tmp_path / "run"
+    assert run_task(task, out).ok
+    export(2)  # the user re-exports the pack with other tiles
+    again = run_task(task, out)
+    assert again.cells_cached == 0 and again.cells_done == 2
+    run_task(task, tmp_path / "fresh")
+    pd.testing.assert_frame_equal(comparable(load_records(out)), comparable(load_records(tmp_path / "fresh")))
+
+
+def test_train_on_a_pack_task_says_what_it_does(tmp_path, module_dir, capsys):
+    from xbench.cli import main as cli_main
+
+    task, _ = _pack_task(tmp_path, module_dir)
+    assert cli_main(["train", str(task), "--out", str(tmp_path / "train")]) == 0
+    printed = capsys.readouterr().out
+    assert "uses a tile pack" in printed and "accuracy" in printed
+    assert (tmp_path / "train" / "pack__train.csv").is_file()
+
+
+def test_another_package_version_recomputes_every_cell(make_task, tmp_path, monkeypatch):
+    import xbench.runs.grid as grid
+
+    task = make_task(explainers='["random", "edges"]')
+    out = tmp_path / "run"
+    assert run_task(task, out).ok
+    assert run_task(task, out).cells_done == 0
+    installed = grid.package_versions()
+    monkeypatch.setattr(grid, "package_versions", lambda: installed | {"torch": "0.0"})
+    assert run_task(task, out).cells_done == 2

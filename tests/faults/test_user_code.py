@@ -93,3 +93,6 @@ def test_skipped_metrics_are_said_and_stored(make_task, tmp_path, capsys):
     assert "near chance level" in printed  # an untrained network: flagged, with its balanced accuracy
     reasons = pd.read_parquet(tmp_path / "r" / "reasons.parquet")
     assert (reasons["metric"] == "concept-detection").any() and reasons["reason"].str.len().min() > 0
+    from xbench.report.load import load_runs
+
+    assert len(load_runs(tmp_path / "r").reasons) == len(reasons)  # the report reads them from the table

@@ -10,7 +10,6 @@ from typing import Any
 
 from xbench.errors import XbenchInputError
 
-RECORD_COLUMNS = ("run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value")
 GROUP_KEYS = ("task", "model", "explainer", "metric", "truth")
 PAIR_KEYS = ("seed", "tile")  # within a group, the model is fixed: pairs are by (model, seed, tile)
 

@@ -9,7 +9,9 @@ exactly the cells it affects; a comment in the task file recomputes nothing.
 
 from __future__ import annotations
 
+import functools
 import hashlib
+import importlib.metadata
 import importlib.util
 import json
 import re
@@ -57,6 +59,22 @@ class Grid:
     cells: list[Cell]
     skipped: list[dict[str, str]]  # (model, explainer, reason) that cannot run, e.g. gradients on a black box
     metrics: list[str] = field(default_factory=list)  # metric keys scored in every cell
+
+
+# Packages whose version can change a value (numerics, models, attribution methods): part of every cell key.
+VALUE_PACKAGES = ("numpy", "scipy", "scikit-learn", "scikit-image", "pandas", "torch", "captum")
+
+
+@functools.lru_cache(maxsize=1)
+def package_versions() -> dict[str, str]:
+    """Installed versions of the packages that can change values (``not installed`` when absent)."""
+    out = {}
+    for name in VALUE_PACKAGES:
+        try:
+            out[name] = importlib.metadata.version(name)
+        except importlib.metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
 
 
 def check_safe_name(name: str, where: str) -> str:
@@ -182,6 +200,7 @@ def expand_grid(
         )
     base = {
         "xbench": __version__,
+        "packages": package_versions(),
         "task": data_fingerprint(task),
         "metrics": {k: task.metric_settings.get(k, {}) for k in metric_keys},
     }

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import functools
-import importlib.metadata
 import platform
 import subprocess
 import time
@@ -18,7 +17,7 @@ from tqdm.auto import tqdm
 from xbench import __version__
 from xbench.runs.execute import prepare, task_and_data
 from xbench.runs.executors import executor_for
-from xbench.runs.grid import Grid, content_hash, expand_grid, validate_task_keys
+from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
     CELL_IDENTITY,
     REASON_COLUMNS,
@@ -64,13 +63,7 @@ class RunSummary:
 
 
 def _versions() -> dict[str, str]:
-    out = {"python": platform.python_version(), "xbench": __version__}
-    for name in ("numpy", "scipy", "scikit-learn", "scikit-image", "pandas", "torch", "captum"):
-        try:
-            out[name] = importlib.metadata.version(name)
-        except importlib.metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
+    return {"python": platform.python_version(), "xbench": __version__} | package_versions()
 
 
 def _git_commit() -> str | None:

@@ -233,7 +233,10 @@ class CellStore:
 
 # --------------------------------------------------------------------------------------- reading a run folder
 def type_records(frame: pd.DataFrame, where: str) -> pd.DataFrame:
-    """The record columns in schema order, typed (seed, tile int64; value float64; truth never empty)."""
+    """The record columns in schema order, typed (seed, tile int64; value float64; truth never empty). A
+    frame built by hand may leave out ``run_id`` (it becomes empty)."""
+    if "run_id" not in frame.columns:
+        frame = frame.assign(run_id="")
     missing = [c for c in RECORD_COLUMNS if c not in frame.columns]
     if missing:
         raise XbenchInputError(
