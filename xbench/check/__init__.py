@@ -49,7 +49,6 @@ from xbench.check.gates import (
     CHECK_LABEL,
     CHECK_ORDER,
     GROUP_KEYS,
-    RECORD_COLUMNS,
     GateSpec,
     Rule,
     Settings,
@@ -59,6 +58,7 @@ from xbench.check.gates import (
 from xbench.check.manifests import ManifestChange, manifest_changes, read_manifest
 from xbench.check.output import format_table, junit_xml, summary_json, write_outputs
 from xbench.check.records import load_records, validate_records
+from xbench.runs.store import RECORD_COLUMNS
 
 __all__ = [
     "BUILTIN_GATES",

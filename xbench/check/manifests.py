@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from xbench.errors import XbenchInputError
+from xbench.runs.store import read_manifest as store_read_manifest
 
 # Model fields that differ between two runs of the same model (not a change of the model).
 VOLATILE_MODEL_KEYS = {"seconds", "cached", "path", "cache_path", "train_seconds"}
@@ -62,17 +62,8 @@ def _short(v: Any, limit: int = 70) -> str:
 
 
 def read_manifest(run_dir: str | Path) -> dict[str, Any] | None:
-    """A run folder's manifest, or None when it has none (records handed in without a folder)."""
-    path = Path(run_dir) / "manifest.json"
-    if not path.is_file():
-        return None
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
-        raise XbenchInputError(str(path), f"cannot read the manifest ({exc})") from None
-    if not isinstance(data, dict):
-        raise XbenchInputError(str(path), "a manifest is a JSON object", found=type(data).__name__)
-    return data
+    """A run folder's manifest (the store's reader), or None when it has none (records without a folder)."""
+    return store_read_manifest(run_dir) or None
 
 
 def _accuracy(model: dict[str, Any]) -> float | None:
