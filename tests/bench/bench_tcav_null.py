@@ -18,8 +18,8 @@ def main() -> int:
     trials = int(sys.argv[1]) if len(sys.argv) > 1 else 100
     sys.path.insert(0, "tests")
     import torch
+    from test_explainers_concepts import C, GateNet, H, W
 
-    from test_explainers_concepts import C, H, W, GateNet
     from xbench.explainers import ExplainContext, explain
     from xbench.models.base import ModelHandle
 

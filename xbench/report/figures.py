@@ -19,10 +19,8 @@ import matplotlib
 import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.colors import BoundaryNorm, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
-from matplotlib.patches import Patch
 
 OKABE_ITO = ["#0072B2", "#D55E00", "#009E73", "#E69F00", "#CC79A7", "#56B4E9", "#000000", "#F0E442"]
 LINE_COLOURS = OKABE_ITO[:7]  # yellow is too pale for thin lines on white
@@ -405,93 +403,6 @@ def cd_figure(names: list[str], ranks: np.ndarray, cd: float, title: str) -> Fig
             y = -0.15 - grp_h * g
             ax.plot([r[a] - 0.03, r[b] + 0.03], [y, y], color="black", linewidth=3.0, solid_capstyle="round")
         fig.suptitle(title, fontsize=9)
-    return fig
-
-
-# ---------------------------------------------------------------- activation clusters
-
-
-def _categorical(n: int) -> ListedColormap:
-    colours = (
-        OKABE_ITO if n <= len(OKABE_ITO) else [matplotlib.colormaps["viridis"](i / max(n - 1, 1)) for i in range(n)]
-    )
-    return ListedColormap(colours[:n])
-
-
-def clusters_figure(data: dict[str, np.ndarray], title: str, max_tiles: int = 4) -> Figure:
-    images = np.asarray(data["images"])
-    maps = np.asarray(data["cluster_maps"])
-    changes = np.asarray(data["score_changes"], dtype=np.float64)
-    classes = [str(c) for c in data.get("class_names", [])] or [f"class {j}" for j in range(changes.shape[-1])]
-    g = min(len(images), len(maps), max_tiles)
-    n_clusters = int(changes.shape[0]) if changes.ndim == 3 else int(maps.max()) + 1
-    band_names = data.get("band_names", np.array(["blue", "green", "red"]))
-    idx, _ = band_index(band_names, ("red", "green", "blue"))
-    rgb = stretch(images[:g], idx)
-    ncols_h = min(4, max(n_clusters, 1))
-    nrows_h = int(np.ceil(n_clusters / ncols_h)) if n_clusters else 0
-    cmap = _categorical(max(n_clusters, 1))
-    norm = BoundaryNorm(np.arange(-0.5, max(n_clusters, 1) + 0.5), cmap.N)
-    with matplotlib.rc_context(RC):
-        fig = new_figure(max(1.5 * g, 2.2 * ncols_h) + 1.4, 3.2 + 2.0 * nrows_h)
-        top, bottom = fig.subfigures(2, 1, height_ratios=[3.0, 2.0 * max(nrows_h, 1)])
-        axes = top.subplots(2, g, squeeze=False)
-        h, w = images.shape[-2:]
-        for i in range(g):
-            axes[0, i].imshow(rgb[i], interpolation="nearest")
-            cm = np.ma.masked_less(maps[i], 0)
-            axes[1, i].imshow(cm, cmap=cmap, norm=norm, interpolation="nearest", extent=(0, w, h, 0))
-            for a in axes[:, i]:
-                _blank(a)
-            axes[0, i].set_title(f"tile {i + 1}", fontsize=7)
-        axes[0, 0].set_ylabel("natural colour", fontsize=7)
-        axes[1, 0].set_ylabel("cluster map", fontsize=7)
-        top.legend(
-            [Patch(color=cmap(c)) for c in range(n_clusters)],
-            [f"cluster {c}" for c in range(n_clusters)],
-            loc="outside right center",
-            frameon=False,
-        )
-        top.suptitle(f"{title}: activation clusters", fontsize=9)
-        if n_clusters and changes.ndim == 3:
-            hax = bottom.subplots(nrows_h, ncols_h, squeeze=False)
-            finite = changes[np.isfinite(changes)]
-            lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (-1.0, 1.0)
-            if hi <= lo:
-                lo, hi = lo - 0.5, hi + 0.5
-            bins = np.linspace(lo, hi, 21)
-            for c in range(nrows_h * ncols_h):
-                ax = hax.flat[c]
-                if c >= n_clusters:
-                    ax.axis("off")
-                    continue
-                for j in range(changes.shape[2]):
-                    v = changes[c, :, j]
-                    v = v[np.isfinite(v)]
-                    ax.hist(
-                        v,
-                        bins=bins,
-                        histtype="step",
-                        linewidth=1.3,
-                        color=LINE_COLOURS[j % 7],
-                        linestyle=LINESTYLES[(j // 7) % 4],
-                        label=classes[j] if j < len(classes) else str(j),
-                    )
-                ax.axvline(0, color="0.5", linewidth=0.6)
-                ax.set_title(f"cluster {c} occluded", fontsize=8)
-                ax.set_xlabel("change in class probability")
-                ax.set_ylabel("tiles (count)")
-            handles = [
-                Line2D([], [], color=LINE_COLOURS[j % 7], linestyle=LINESTYLES[(j // 7) % 4])
-                for j in range(changes.shape[2])
-            ]
-            bottom.legend(
-                handles,
-                classes[: changes.shape[2]],
-                loc="outside right center",
-                frameon=False,
-                title="class score",
-            )
     return fig
 
 

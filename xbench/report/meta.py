@@ -152,11 +152,11 @@ _METRICS: dict[str, tuple[str, bool | None, tuple[float, float] | None, str, str
         "Chalasani, Chen, Chowdhury, Wu, Jha 2020",
     ),
     "entropy": ("spread", False, None, "entropy of the normalised absolute attributions", ""),
-    "concept-agreement": (
+    "concept-recovery": (
         "concepts",
         True,
         (0, 1),
-        "agreement of concept scores with interventional importance",
+        "AUROC of importance per type for relied-on vs unused types (chance 0.5)",
         "",
     ),
     "concept-detection": (
@@ -170,7 +170,7 @@ _METRICS: dict[str, tuple[str, bool | None, tuple[float, float] | None, str, str
         "concepts",
         False,
         (0, 1),
-        "share of unused or look-alike types reported as concepts",
+        "share of unused types (look-alikes not relied on included) flagged",
         "",
     ),
     "model-calls": ("cost", False, None, "model forward and backward passes per tile", ""),
