@@ -25,9 +25,9 @@ def roles_of(n_relied: int) -> dict[str, str]:
     return type_roles(TYPES, TYPES[:n_relied], ["river", "outcrop", "natural-gap"])
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(
-    values=st.lists(st.floats(-1, 1, allow_nan=False), min_size=4, max_size=6),
+    values=st.lists(st.floats(-1, 1, allow_nan=False), min_size=3, max_size=5),
     n_relied=st.integers(1, 3),
 )
 def test_recovery_chance_level_is_exact_over_every_assignment(values, n_relied):
@@ -35,6 +35,7 @@ def test_recovery_chance_level_is_exact_over_every_assignment(values, n_relied):
     # unrelated to reliance does on average), each (relied-on, unused) pair is ordered either way equally
     # often and ties count 1/2, so the mean AUROC is exactly 0.5.
     types = TYPES[: len(values)]
+    n_relied = min(n_relied, len(values) - 1)
     roles = type_roles(types, types[:n_relied], [])
     scores = [recovery_auroc(dict(zip(types, perm, strict=True)), roles) for perm in itertools.permutations(values)]
     assert np.mean(scores) == pytest.approx(0.5, abs=1e-12)
@@ -50,14 +51,18 @@ def test_recovery_matches_sklearn_and_random_control_sits_at_chance():
     roles = roles_of(3)  # road, clearing, river (a relied-on look-alike) against three unused types
     labels = [roles[t] != "unused" for t in TYPES]
     values = []
-    for seed in range(400):
+    for seed in range(300):
         imp = np.random.default_rng(seed).normal(size=len(TYPES))
         v = recovery_auroc(dict(zip(TYPES, imp, strict=True)), roles)
         # reference: scikit-learn's roc_auc_score (the Mann-Whitney statistic / (n1 n2): common practice)
-        assert v == pytest.approx(roc_auc_score(labels, imp))
+        if seed < 20:  # and scipy's Mann-Whitney U
+            assert v == pytest.approx(roc_auc_score(labels, imp))
+            pos = imp[np.array(labels)]
+            neg = imp[~np.array(labels)]
+            assert v == pytest.approx(stats.mannwhitneyu(pos, neg).statistic / (len(pos) * len(neg)))
         values.append(v)
     # the random control over many seeds: mean at the stated chance level (sd of one value ~0.3, of the
-    # mean over 400 seeds ~0.015)
+    # mean over 300 seeds ~0.017)
     assert np.mean(values) == pytest.approx(0.5, abs=0.05)
     oracle = {t: float(roles[t] != "unused") + 0.01 * rng.random() for t in TYPES}
     assert recovery_auroc(oracle, roles) == 1.0

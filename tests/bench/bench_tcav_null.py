@@ -3,7 +3,8 @@ as a concept should come out significant at about the nominal level. Prints the 
 trials at the 5% level (one concept, so Bonferroni changes nothing) for each setting of ``resample``.
 
 Model: the GateNet of tests/test_explainers_concepts.py (its gradients flip sign from tile to tile, so
-random directions score near 0.5 with real spread). Usage: python tests/bench/bench_tcav_null.py [TRIALS]
+random directions score near 0.5 with real spread).
+Usage: python tests/bench/bench_tcav_null.py [TRIALS] [RANDOM_SETS] [RESAMPLE: true,false] [TEST: runs | set]
 """
 
 from __future__ import annotations
@@ -16,6 +17,9 @@ import numpy as np
 
 def main() -> int:
     trials = int(sys.argv[1]) if len(sys.argv) > 1 else 100
+    n_random = int(sys.argv[2]) if len(sys.argv) > 2 else 10
+    test = sys.argv[4] if len(sys.argv) > 4 else "runs"
+    resamples = [v == "true" for v in (sys.argv[3] if len(sys.argv) > 3 else "true,false").split(",")]
     sys.path.insert(0, "tests")
     import torch
     from test_explainers_concepts import C, GateNet, H, W
@@ -25,22 +29,22 @@ def main() -> int:
 
     torch.set_num_threads(1)
     model = ModelHandle("gate", 2, module=GateNet().eval())
-    for resample in (True, False):
+    for resample in resamples:
         t0 = time.perf_counter()
         p_values = []
         for trial in range(trials):
             rng = np.random.default_rng(100 + trial)
-            sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(10)}
+            sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(n_random)}
             sets["noise"] = rng.random((10, C, H, W), dtype=np.float32)
             x = rng.random((12, C, H, W), dtype=np.float32)
             ctx = ExplainContext(seed=trial, concept_sets=sets)
-            rep = explain("tcav", model, x, np.ones(12, int), ctx, layer="feat", resample=resample).concepts
+            rep = explain("tcav", model, x, np.ones(12, int), ctx, layer="feat", resample=resample, test=test).concepts
             p_values.append(rep.rows[0]["p_value"])
         p = np.array(p_values)
         rate = float((p < 0.05).mean())
         se = np.sqrt(rate * (1 - rate) / trials)
         print(
-            f"resample={resample}: significant at 5% in {rate:.3f} (+- {1.96 * se:.3f}) of {trials} null trials; "
+            f"test {test}, random sets {n_random}, resample={resample}: significant at 5% in {rate:.3f} (+- {1.96 * se:.3f}) of {trials} null trials; "
             f"share of p < 0.01: {(p < 0.01).mean():.3f}  ({time.perf_counter() - t0:.0f} s)",
             flush=True,
         )

@@ -156,6 +156,7 @@ def _run_layer(
     pool: str,
     regularization: float,
     resample: bool,
+    test: str,
     seed: int,
     batch_size: int,
 ) -> dict[str, Any]:
@@ -208,6 +209,15 @@ def _run_layer(
             for r in range(n_r)
         ]
     )  # (runs, classes)
+    set_means = None
+    if test == "set":  # each random set posing as a concept against the others: its mean score is one null draw
+        pair = np.full((n_r, n_r, len(classes)), np.nan)
+        for i in range(n_r):
+            for j in range(i + 1, n_r):
+                v = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 5000 + i * n_r + j)
+                pair[i, j] = run_scores(gfeat, targets, classes, v)
+                pair[j, i] = run_scores(gfeat, targets, classes, -v)  # the CAV of j against i points the other way
+        set_means = np.nanmean(pair, axis=1)  # (n_r, classes)
     concept_runs, cavs = {}, {}
     for ci, concept in enumerate(concepts):
         vs = [
@@ -222,6 +232,7 @@ def _run_layer(
     return {
         "classes": classes,
         "random_runs": random_runs,
+        "set_means": set_means,
         "concept_runs": concept_runs,
         "cavs": cavs,
         "acts": acts_a,
@@ -229,13 +240,16 @@ def _run_layer(
     }
 
 
-def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], correction: str) -> list[dict]:
+def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], correction: str, test: str) -> list[dict]:
     m_tests = len(concepts) if correction == "bonferroni" else 1
     rows = []
     for concept in concepts:
         c_runs = res["concept_runs"][concept]
         for j, k in enumerate(res["classes"]):
-            p = ttest_runs(c_runs[:, j], res["random_runs"][:, j])
+            if test == "runs":
+                p = ttest_runs(c_runs[:, j], res["random_runs"][:, j])
+            else:  # the concept's mean score as one new draw against the random sets' mean scores
+                p = ttest_runs(c_runs[:, j].mean(keepdims=True), res["set_means"][:, j])
             rows.append(
                 {
                     "concept": concept,
@@ -262,6 +276,7 @@ def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], corr
         "pool": "mean",
         "regularization": 1.0,
         "resample": True,
+        "test": "runs",
         "correction": "bonferroni",
         "alpha": 0.05,
         "min_random": 10,
@@ -271,10 +286,24 @@ def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], corr
     "random-concept runs (Kim et al.), Bonferroni over concepts; attribution = weighted concept-presence maps",
 )
 def tcav(
-    model, images, targets, context, *, layer, layers, pool, regularization, resample, correction, alpha, min_random
+    model,
+    images,
+    targets,
+    context,
+    *,
+    layer,
+    layers,
+    pool,
+    regularization,
+    resample,
+    test,
+    correction,
+    alpha,
+    min_random,
 ):
     pool = check_choice(KEY, "pool", pool, ("mean", "none"))
     correction = check_choice(KEY, "correction", correction, ("bonferroni", "none"))
+    test = check_choice(KEY, "test", test, ("runs", "set"))
     regularization = check_float(KEY, "regularization", regularization, 0.0, inclusive_min=False)
     alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
     min_random = check_int(KEY, "min_random", min_random, 2)
@@ -308,6 +337,7 @@ def tcav(
         list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
     )
     common = dict(
+        test=test,
         pool=pool,
         regularization=regularization,
         resample=resample,
@@ -315,13 +345,13 @@ def tcav(
         batch_size=context.batch_size,
     )
     res = _run_layer(model, images, targets, sets, concepts, randoms, layer, **common)
-    rows = _rows(res, concepts, class_names, correction)
+    rows = _rows(res, concepts, class_names, correction, test)
     layer_rows = []
     for other in layers:
         other_res = (
             res if other == layer else _run_layer(model, images, targets, sets, concepts, randoms, other, **common)
         )
-        layer_rows += [{"layer": other, **r} for r in _rows(other_res, concepts, class_names, correction)]
+        layer_rows += [{"layer": other, **r} for r in _rows(other_res, concepts, class_names, correction, test)]
 
     classes = [int(k) for k in res["classes"]]
     random_mean = res["random_runs"].mean(axis=0)  # (classes,)

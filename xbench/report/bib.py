@@ -387,6 +387,17 @@ CATALOGUE: dict[str, BibEntry] = {
             "he",
             memory=True,
         ),
+        _e(
+            "howard2017mobilenets",
+            "article",
+            "Howard and Zhu and Chen and Kalenichenko and Wang and Weyand and Andreetto and Adam",
+            "MobileNets: Efficient convolutional neural networks for mobile vision applications",
+            "journal",
+            "arXiv:1704.04861",
+            "2017",
+            "howard",
+            memory=True,
+        ),
     ]
 }
 
@@ -396,7 +407,7 @@ STATISTICS_KEYS = {
     "holm": "holm1979simple",
     "friedman-nemenyi": "demsar2006statistical",
 }
-MODEL_KEYS = {"resnet": "he2016deep"}
+MODEL_KEYS = {"resnet": "he2016deep", "separable": "howard2017mobilenets"}
 
 
 def _fold(text: str) -> str:
