@@ -315,6 +315,9 @@ def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
     ctx_b = ExplainContext(concept_sets=sets, class_names=names, driving_types={2: ["band0-lines"], 1: []})
     rep_b = explain("tcav", model, x, y, ctx_b, layer="feat").concepts
     assert rep_b.type_importance["band0-lines"] < -0.3 and not rep_b.flagged["band0-lines"]
+    # the set-level test runs on the same runs and gives p-values in [0, 1] (its power is low by design)
+    rep_set = explain("tcav", model, x, y, ctx, layer="feat", test="set").concepts
+    assert all(0 <= r["p_value"] <= 1 for r in rep_set.rows) and rep_set.set_means.shape == (10, 2)
     # per-layer rows for every requested layer
     assert {r["layer"] for r in rep.layer_rows} == {"feat", "relu"}
     assert exp.cost.backward_calls == 24 * 2  # the explained layer, then the extra layer 'relu'

@@ -19,8 +19,10 @@ Outputs
 - attributions: for each tile, the cluster map with each position carrying the drop of the tile's target
   score when its cluster is replaced, upsampled (bilinear) to the input size.
 - Overlap: IoU = |cluster & type| / |cluster | type| and purity = |cluster & type| / |cluster| over all
-  pixels of the fitting set (``fit_masks``; else the explained tiles' ``masks``), the cluster maps
-  upsampled by nearest neighbour, for every (cluster, type): ``extras['overlap_rows']`` and the matrices
+  cells of the fitting set (``fit_masks``; else the explained tiles' ``masks``) at the layer's resolution,
+  a cell counting for a type when the type covers any of its pixels (when the tile size is not a multiple
+  of the layer's, over pixels with the cluster maps upsampled by nearest neighbour), for every
+  (cluster, type): ``extras['overlap_rows']`` and the matrices
   ``iou`` / ``purity`` (n_clusters, K). A cluster is *labelled* with the type of best IoU only when that
   IoU is at least ``min_iou`` (default 0.2); below it the cluster stands for no type.
 - ConceptReport rows, one per (cluster, class) for the classes among the targets: ``score`` = mean drop
@@ -121,7 +123,14 @@ def _fit_mixture(
 def _overlap(cluster_maps: np.ndarray, masks: np.ndarray, n_clusters: int) -> tuple[np.ndarray, np.ndarray]:
     """IoU and purity (n_clusters, K) of each upsampled cluster region against each planted type."""
     n, k_types, h, w = masks.shape
-    full = nearest_index_upsample(cluster_maps, (h, w))
+    ch, cw = cluster_maps.shape[1:]
+    if h % ch == 0 and w % cw == 0:
+        # at the layer's resolution: a cell belongs to a type when the type covers any of its pixels
+        # (a cluster cannot be thinner than one cell, so a thin road is compared with the cells it crosses)
+        full = cluster_maps
+        masks = masks.reshape(n, k_types, ch, h // ch, cw, w // cw).any(axis=(3, 5))
+    else:
+        full = nearest_index_upsample(cluster_maps, (h, w))
     m = masks.transpose(1, 0, 2, 3).reshape(k_types, -1)
     type_area = m.sum(axis=1).astype(np.float64)
     iou = np.zeros((n_clusters, k_types))
