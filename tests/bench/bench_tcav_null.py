@@ -44,7 +44,8 @@ def main() -> int:
         rate = float((p < 0.05).mean())
         se = np.sqrt(rate * (1 - rate) / trials)
         print(
-            f"test {test}, random sets {n_random}, resample={resample}: significant at 5% in {rate:.3f} (+- {1.96 * se:.3f}) of {trials} null trials; "
+            f"test {test}, random sets {n_random}, resample={resample}: significant at 5% in {rate:.3f} "
+            f"(+- {1.96 * se:.3f}) of {trials} null trials; "
             f"share of p < 0.01: {(p < 0.01).mean():.3f}  ({time.perf_counter() - t0:.0f} s)",
             flush=True,
         )
