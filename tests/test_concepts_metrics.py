@@ -187,7 +187,7 @@ def test_cluster_figure_table_and_render():
     }
     fig = cluster_drop_figure(data, rows, "demo, model cnn, seed 0")
     texts = [t.get_text() for ax in fig.get_axes() for t in ax.texts]
-    assert any("+0.3" in t for t in texts) and "absent" in texts
+    assert any("+0.3" in t for t in texts) and "no tiles" in texts
     labels = [a.get_ylabel() for a in fig.get_axes()] + [a.get_xlabel() for a in fig.get_axes()]
     assert "mean probability drop (original - replaced)" in labels
     assert not any("change in class probability" in x for x in labels)

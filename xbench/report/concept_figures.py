@@ -3,7 +3,8 @@
 Design (ours): a cluster x class heat map of the mean *drop* of the class's probability when the cluster is
 replaced inside the network (original minus replaced, on the tiles of that class where the cluster
 occurs; positive = the cluster supports the class), on a diverging scale centred on 0, each cell annotated
-with the mean, its 95% t-interval (mean +- t(0.975, n-1) sd / sqrt(n); common practice) and n. Row labels
+with the mean, its 95% t-interval (mean +- t(0.975, n-1) sd / sqrt(n); common practice) and n ("no tiles"
+when no explained tile of the class holds the cluster). Row labels
 give each cluster's colour, the structure type it is labelled with and that overlap (IoU), or "no type"
 with the best overlap when it is below the explainer's minimum. A strip above shows up to four tiles in
 natural colour over their cluster maps, in the row colours.
@@ -116,7 +117,7 @@ def cluster_drop_figure(
         for c in range(k):
             for j in range(n_classes):
                 if n[c, j] == 0:
-                    text = "absent"
+                    text = "no tiles"
                 elif np.isfinite(lo[c, j]):
                     text = f"{mean[c, j]:+.3f}\n[{lo[c, j]:+.3f}, {hi[c, j]:+.3f}]\nn={n[c, j]}"
                 else:
