@@ -36,7 +36,8 @@ direct implementation on arrays is shorter and keeps everything in memory and se
   two-sample t-test (scipy ``ttest_ind``) of the concept runs' scores against the random-concept runs'
   scores. ``test = "set"``: each random set posing as a concept against every other random set gives one
   mean score (one null draw at the level of sets); the concept's mean score is tested as one new draw
-  against them (``ttest_ind`` with a sample of one). Its level is right by exchangeability, but where a
+  against them (``ttest_ind`` with a sample of one). Its level is right by exchangeability (null
+  simulation, 10 random sets, 60 trials: 1.7% significant at p < 0.05), but where a
   set's score is mostly decided by the set (as on the demo's cnn) it has little power: road, score 0.93 on
   class road, p = 1 after Bonferroni with 30 random sets, where ``runs`` gives p = 0.0027.
   ``correction = "bonferroni"`` (default) multiplies p by the number of concepts (capped at 1),
