@@ -195,7 +195,7 @@ def test_concept_explainers_run_on_the_zoo_models():
         **{f"random-{i}": rng.random((4, C, 32, 32)).astype(np.float32) * 0.2 for i in range(10)},
     }
     ctx = ExplainContext(fit_images=x, fit_masks=m, mask_names=["road", "building"], concept_sets=sets)
-    for kind in ("cnn", "resnet", "bottleneck"):
+    for kind in zoo.TORCH_KINDS:
         torch.manual_seed(0)
         model = ModelHandle(kind, 3, module=zoo.build_torch_model(kind, C, 3, width=8).eval())
         for key in ("activation-clusters", "tcav", "grad-cam", "grad-cam-pp", "deeplift", "guided-backprop"):
@@ -236,9 +236,46 @@ class GateNet(nn.Module):
         return torch.stack([torch.zeros_like(one), one], dim=1)
 
 
-def test_tcav_random_versus_random_concepts_are_not_significant():
-    # Kim et al. 2018: a concept made of random examples should not come out significant; we require
-    # "not significant" in >= 90% of trials at the 5% level (set-level t-test, see xbench/explainers/tcav.py).
+class SignedGateNet(GateNet):
+    """GateNet with a third class: class 2 = -0.3 * mean(feat_0) + sum_c mean(feat_c) * gate'_c(x) with its
+    own tile-level gates. By construction the directional derivative along feat_0 is +0.3 / (h w) for
+    class 1 and -0.3 / (h w) for class 2 on every tile; random directions get both signs."""
+
+    def __init__(self, seed: int = 0, width: int = 12):
+        super().__init__(seed, width)
+        g = torch.Generator().manual_seed(seed + 1)
+        self.register_buffer("patterns2", torch.sign(torch.randn(width - 1, H, W, generator=g)))
+
+    def forward(self, x):
+        f = self.relu(self.feat(x))
+        rest = f[:, 1:].mean(dim=(2, 3))
+        gate1 = torch.tanh(50 * torch.einsum("nhw,khw->nk", x[:, 1] - 0.5, self.patterns) / (H * W))
+        gate2 = torch.tanh(50 * torch.einsum("nhw,khw->nk", x[:, 1] - 0.5, self.patterns2) / (H * W))
+        one = 0.3 * f[:, 0].mean(dim=(1, 2)) + (rest * gate1).sum(dim=1)
+        two = -0.3 * f[:, 0].mean(dim=(1, 2)) + (rest * gate2).sum(dim=1)
+        return torch.stack([torch.zeros_like(one), one, two], dim=1)
+
+
+def band0_sets(rng: np.random.Generator, n: int = 20) -> dict[str, np.ndarray]:
+    concept = rng.random((n, C, H, W), dtype=np.float32)
+    for i in range(n):
+        r = rng.integers(0, H - 4)
+        concept[i, 0, r : r + 3] += 1.0
+    other = rng.random((n, C, H, W), dtype=np.float32)
+    other[:, 2] += 0.5
+    return {
+        "band0-lines": concept,
+        "band2-wash": other,
+        **{f"random-{i}": rng.random((n, C, H, W), dtype=np.float32) for i in range(10)},
+    }
+
+
+def test_tcav_random_versus_random_concepts_are_rarely_significant():
+    # Null simulation through our code (Kim et al. 2018: a concept made of random examples should not come
+    # out significant). Kim et al.'s runs test shares one positive set across a concept's runs, so it runs
+    # above its nominal level; with resampled positives we measured 20% at p < 0.05 and 8% at p < 0.01 over
+    # 100 trials (tests/bench/bench_tcav_null.py). Here: at p < 0.01 (Bonferroni over five concepts at
+    # 5%) at most 4 of 20 trials (the measured 8% gives 1.6 on average).
     model = ModelHandle("gate", 2, module=GateNet().eval())
     trials, significant = 20, 0
     for trial in range(trials):
@@ -249,8 +286,42 @@ def test_tcav_random_versus_random_concepts_are_not_significant():
         rep = explain(
             "tcav", model, x, np.ones(12, int), ExplainContext(seed=trial, concept_sets=sets), layer="feat"
         ).concepts
-        significant += rep.rows[0]["p_value"] < 0.05
-    assert significant <= 0.1 * trials, significant
+        significant += rep.rows[0]["p_value"] < 0.01
+    assert significant <= 4, significant
+
+
+def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
+    # By construction (SignedGateNet): adding band-0 structure raises class 1 and lowers class 2 on every
+    # tile. Kim et al. 2018: the TCAV score of a class is the share of that class's inputs with a positive
+    # directional derivative, so band0-lines scores ~1 for class 1 on class-1 tiles and ~0 for class 2 on
+    # class-2 tiles; both differ from the random-concept runs (two-sided test): significant. The band-2
+    # concept moves nothing by construction beyond random directions.
+    model = ModelHandle("signed", 3, module=SignedGateNet().eval())
+    rng = np.random.default_rng(0)
+    sets = band0_sets(rng)
+    x = rng.random((24, C, H, W), dtype=np.float32)
+    y = np.array([1, 2] * 12)
+    names = ["none", "a", "b"]
+    ctx = ExplainContext(concept_sets=sets, class_names=names, driving_types={1: ["band0-lines"], 2: []})
+    exp = explain("tcav", model, x, y, ctx, layer="feat", layers=["feat", "relu"])
+    rep = exp.concepts
+    rows = {(r["concept"], r["class_name"]): r for r in rep.rows}
+    assert rows[("band0-lines", "a")]["score"] > 0.9 and rows[("band0-lines", "b")]["score"] < 0.1
+    assert rows[("band0-lines", "a")]["p_value"] < 0.05 and rows[("band0-lines", "b")]["p_value"] < 0.05
+    # importance on the class the concept drives (a): positive and flagged
+    assert rep.type_importance["band0-lines"] > 0.3 and rep.flagged["band0-lines"]
+    assert rep.type_class["band0-lines"] == "a"
+    # if the concept were meant to drive class b, its importance there is negative: not flagged
+    ctx_b = ExplainContext(concept_sets=sets, class_names=names, driving_types={2: ["band0-lines"], 1: []})
+    rep_b = explain("tcav", model, x, y, ctx_b, layer="feat").concepts
+    assert rep_b.type_importance["band0-lines"] < -0.3 and not rep_b.flagged["band0-lines"]
+    # the set-level test runs on the same runs and gives p-values in [0, 1] (its power is low by design)
+    rep_set = explain("tcav", model, x, y, ctx, layer="feat", test="set").concepts
+    assert all(0 <= r["p_value"] <= 1 for r in rep_set.rows) and rep_set.set_means.shape == (10, 2)
+    # per-layer rows for every requested layer
+    assert {r["layer"] for r in rep.layer_rows} == {"feat", "relu"}
+    assert exp.cost.backward_calls == 24 * 2  # the explained layer, then the extra layer 'relu'
+    assert exp.attributions.shape == (24, H, W) and np.isfinite(exp.attributions).all()
 
 
 def test_tcav_detects_a_concept_the_model_uses():
@@ -259,17 +330,7 @@ def test_tcav_detects_a_concept_the_model_uses():
     # derivatives) and is flagged; a band-2 concept is not.
     model = ModelHandle("gate", 2, module=GateNet().eval())
     rng = np.random.default_rng(0)
-    concept = rng.random((20, C, H, W), dtype=np.float32)
-    for i in range(20):
-        r = rng.integers(0, H - 4)
-        concept[i, 0, r : r + 3] += 1.0
-    other = rng.random((20, C, H, W), dtype=np.float32)
-    other[:, 2] += 0.5
-    sets = {
-        "band0-lines": concept,
-        "band2-wash": other,
-        **{f"random-{i}": rng.random((20, C, H, W), dtype=np.float32) for i in range(10)},
-    }
+    sets = band0_sets(rng)
     x = rng.random((16, C, H, W), dtype=np.float32)
     exp = explain(
         "tcav", model, x, np.ones(16, int), ExplainContext(concept_sets=sets, class_names=["a", "b"]), layer="feat"
@@ -278,7 +339,7 @@ def test_tcav_detects_a_concept_the_model_uses():
     row = next(r for r in rep.rows if r["concept"] == "band0-lines")
     assert row["score"] > 0.8 and row["class_name"] == "b" and row["matched_type"] == "band0-lines"
     assert row["p_value"] < 0.05 and rep.flagged == {"band0-lines": True, "band2-wash": False}
-    assert rep.type_importance["band0-lines"] > 0.3  # centred: TCAV score - 0.5
+    assert rep.type_importance["band0-lines"] > 0.3  # centred on the random-concept runs
     assert rep.tcav_scores["band0-lines"] > 0.8
     assert exp.cost.backward_calls == 16
     assert exp.attributions.shape == (16, H, W) and np.isfinite(exp.attributions).all()

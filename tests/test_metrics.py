@@ -58,7 +58,7 @@ EXPECTED_KEYS = [
     "infidelity",
     "gini",
     "entropy",
-    "concept-agreement",
+    "concept-recovery",
     "concept-detection",
     "concept-false-alarm",
     "model-calls",
@@ -386,16 +386,13 @@ def test_concept_metrics_for_a_pixel_method():
     a = np.zeros((3, 10, 10), np.float32)
     a[:, 0:3, 0:3] = 5.0  # strongest on road
     a[:, 5:8, 5:8] = 2.0  # then clearing
-    a[:, 0:2, 6:9] = 0.2  # a little on the river
+    a[:, 0:2, 6:9] = 0.2  # a little on the river (below the tile mean)
     a[:, 7:9, 0:2] = -0.5  # negative on the outcrop
     inputs = concept_inputs(a)
-    # same order of importance per type as the interventions: Spearman 1 (scipy.stats.spearmanr definition)
-    assert compute_metric("concept-agreement", inputs)[0].values[0] == pytest.approx(1.0)
-    assert compute_metric("concept-agreement", inputs, measure="sign")[0].values[0] == pytest.approx(1.0)
+    # relied-on road and clearing are enriched above the unused river and outcrop: AUROC 1
+    assert compute_metric("concept-recovery", inputs)[0].values[0] == pytest.approx(1.0)
     assert compute_metric("concept-detection", inputs)[0].values[0] == 1.0
     assert compute_metric("concept-false-alarm", inputs)[0].values[0] == 0.0
-    (res,) = compute_metric("concept-agreement", inputs, measure="sign", tolerance=0.1)
-    assert res.values[0] == pytest.approx(1.0)
 
 
 def test_concept_metrics_for_a_concept_method_and_missing_pieces():
@@ -404,14 +401,12 @@ def test_concept_metrics_for_a_concept_method_and_missing_pieces():
         flagged={"road": True, "clearing": False, "river": True},
     )
     inputs = concept_inputs(np.zeros((2, 10, 10), np.float32), concept_report=report, type_masks=None, mask_names=None)
-    rho = compute_metric("concept-agreement", inputs)[0].values[0]
+    auc = compute_metric("concept-recovery", inputs)[0].values[0]
     types = ["road", "clearing", "river", "outcrop"]
-    # reference: scipy.stats.spearmanr across types
-    assert rho == pytest.approx(
-        spearmanr([report.type_importance[t] for t in types], [inputs.type_importance[t] for t in types]).statistic
-    )
+    # reference: sklearn.metrics.roc_auc_score, relied-on (road, clearing) against unused (river, outcrop)
+    assert auc == pytest.approx(roc_auc_score([1, 1, 0, 0], [report.type_importance[t] for t in types]))
     assert compute_metric("concept-detection", inputs)[0].values[0] == 0.5
-    # outcrop is not in the report: only river is assessed
+    # outcrop is not flagged in the report: only river is assessed
     assert compute_metric("concept-false-alarm", inputs)[0].values[0] == 1.0
     bare = concept_inputs(
         np.ones((2, 10, 10), np.float32),
@@ -422,7 +417,7 @@ def test_concept_metrics_for_a_concept_method_and_missing_pieces():
         lookalike_types=None,
         unused_types=None,
     )
-    for key in ("concept-agreement", "concept-detection", "concept-false-alarm"):
+    for key in ("concept-recovery", "concept-detection", "concept-false-alarm"):
         (res,) = compute_metric(key, bare)
         assert np.isnan(res.values[0]) and res.reasons[-1].startswith("needs")
 
@@ -506,8 +501,8 @@ def test_degenerate_inputs_give_values_or_reasons_never_crashes():
     assert np.isnan(rs.values[0]) and "zero everywhere" in rs.reasons[0]
     ms = res["max-sensitivity"][0]
     assert np.isnan(ms.values[0]) and "zero everywhere" in ms.reasons[0]
-    # one-type tasks cannot give a rank correlation: NaN with the reason
-    ca = res["concept-agreement"][0]
+    # one-type tasks have no unused type to rank against: NaN with the reason
+    ca = res["concept-recovery"][0]
     assert np.isnan(ca.values[0]) and "type" in ca.reasons[-1]
 
 

@@ -127,7 +127,7 @@ def test_array_metrics_stay_within_their_stated_range(case):
     for key in LOCALIZATION + [
         "gini",
         "entropy",
-        "concept-agreement",
+        "concept-recovery",
         "concept-detection",
         "concept-false-alarm",
         "model-calls",

@@ -46,12 +46,33 @@ def test_zoo_shapes_layers_and_size(kind: str) -> None:
     assert relus and all(not r.inplace for r in relus) and len({id(r) for r in relus}) == len(relus)
 
 
-def test_bottleneck_evidence_maps_at_input_resolution() -> None:
-    module = build_torch_model("bottleneck", 6, 2, n_maps=3).eval()
-    maps = module.evidence_maps(torch.rand(2, 6, 32, 32))
-    assert maps.shape == (2, 3, 32, 32) and bool((maps >= 0).all())
-    with pytest.raises(XbenchInputError, match="multiple of 4"):
-        module(torch.rand(1, 6, 30, 30))
+def test_separable_blocks_are_depthwise_then_pointwise() -> None:
+    # Howard et al. 2017 (MobileNets): a depthwise conv (groups = channels) followed by a 1x1 pointwise conv
+    module = build_torch_model("separable", 6, 2).eval()
+    depthwise = [m for n, m in module.named_modules() if n.endswith(".depthwise")]
+    pointwise = [m for n, m in module.named_modules() if n.endswith(".pointwise")]
+    assert depthwise and len(depthwise) == len(pointwise)
+    assert all(m.groups == m.in_channels == m.out_channels and m.kernel_size == (3, 3) for m in depthwise)
+    assert all(m.kernel_size == (1, 1) and m.groups == 1 for m in pointwise)
+    assert module.explain_layer == "block4.pointwise_relu"
+    out = {}
+    module.get_submodule(module.explain_layer).register_forward_hook(lambda _m, _a, o: out.setdefault("a", o))
+    module(torch.rand(2, 6, 48, 48))
+    assert out["a"].shape == (2, 64, 12, 12) and bool((out["a"] >= 0).all())  # rectified, 1/4 resolution
+
+
+def test_old_bottleneck_kind_names_its_replacement(tmp_path: Path) -> None:
+    with pytest.raises(XbenchInputError, match="renamed to 'separable'"):
+        build_torch_model("bottleneck", 6, 2)
+    from xbench.tasks import load_task
+
+    text = (Path(__file__).parents[1] / "tasks" / "roads.toml").read_text()
+    old = text.replace('name = "separable"\nkind = "separable"', 'name = "unet"\nkind = "bottleneck"')
+    assert old != text
+    path = tmp_path / "old.toml"
+    path.write_text(old)
+    with pytest.raises(XbenchInputError, match="'bottleneck' was renamed to 'separable'"):
+        load_task(path)
 
 
 def test_band_norm_inside_module() -> None:

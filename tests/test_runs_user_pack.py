@@ -48,7 +48,7 @@ def write_task(folder):
         keys = ["gradient", "oracle", "tcav"]
 
         [metrics]
-        keys = ["mass-accuracy", "deletion-auc", "concept-agreement"]
+        keys = ["mass-accuracy", "deletion-auc", "concept-recovery"]
 
         [run]
         explain_tiles = 8

@@ -49,7 +49,7 @@ DESIGN_METRICS = {
     "infidelity",
     "gini",
     "entropy",
-    "concept-agreement",
+    "concept-recovery",
     "concept-detection",
     "concept-false-alarm",
     "model-calls",
@@ -65,7 +65,7 @@ def test_shipped_tasks_load() -> None:
         assert set(task.explainers) == DESIGN_EXPLAINERS
         assert set(task.metrics) == DESIGN_METRICS
         assert len(task.file_hash) == 64
-        assert all(m.kind in ("cnn", "resnet", "bottleneck", "forest") for m in task.models)
+        assert all(m.kind in ("cnn", "resnet", "separable", "forest") for m in task.models)
         for key in ("explain_tiles", "gallery_tiles", "batch_size", "concept_set_size", "fit_tiles"):
             assert isinstance(task.run[key], int)
 

@@ -13,7 +13,7 @@ STRUCTURE_TYPES: tuple[str, ...] = HUMAN_TYPES + LOOKALIKE_TYPES
 
 # Renamed keys, per kind of key. Each entry: old -> new.
 RENAMED: dict[str, dict[str, str]] = {
-    "metric": {"sparseness": "gini", "faithfulness-corr": "subset-drop-corr"},
+    "metric": {"sparseness": "gini", "faithfulness-corr": "subset-drop-corr", "concept-agreement": "concept-recovery"},
     "metric family": {
         "localization": "overlap",
         "faithfulness": "response",

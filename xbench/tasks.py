@@ -32,7 +32,7 @@ from xbench.errors import XbenchInputError, load_toml, repo_root
 from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, RENAMED, renamed_hint
 from xbench.schema import Where
 
-MODEL_KINDS = ("cnn", "resnet", "bottleneck", "forest", "user-torch", "user-callable")
+MODEL_KINDS = ("cnn", "resnet", "separable", "forest", "user-torch", "user-callable")
 # Bring your own model: `factory` is an import path `package.module:function`. For `user-torch` it returns a
 # torch module (raw reflectance in, logits out) and `weights` (a state_dict file, relative to the task file)
 # is loaded with torch.load(weights_only=True); for `user-callable` it returns f(images) -> class scores.
@@ -77,7 +77,7 @@ TORCH_TRAIN_PARAMS: dict[str, tuple[type, ...]] = {
 MODEL_PARAMS: dict[str, dict[str, tuple[type, ...]]] = {
     "cnn": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
     "resnet": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
-    "bottleneck": {"width": (int,), "n_maps": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
+    "separable": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
     "forest": {"n_trees": (int,), "max_depth": (int,), "min_samples_leaf": (int,), "max_features": (int, float, str)},
     "user-torch": {"factory": (str,), "weights": (str,)},
     "user-callable": {"factory": (str,), "output": (str,)},
@@ -667,7 +667,9 @@ def _load_models(raw: Any, f: str) -> list[ModelSpec]:
             raise XbenchInputError(f"{w}.name", "model names must be non-empty, without spaces or slashes", found=name)
         kind = _expect(entry["kind"], (str,), f"{w}.kind", "a string")
         if kind not in MODEL_KINDS:
-            raise XbenchInputError(f"{w}.kind", "unknown model kind", expected=" | ".join(MODEL_KINDS), found=kind)
+            hint = renamed_hint("model", kind)
+            problem = "unknown model kind" + (f": {hint}" if hint else "")
+            raise XbenchInputError(f"{w}.kind", problem, expected=" | ".join(MODEL_KINDS), found=kind)
         allowed = MODEL_PARAMS[kind]
         params: dict[str, Any] = {}
         for key, value in entry.items():
@@ -712,7 +714,7 @@ def _check_user_model(params: dict[str, Any], kind: str, w: str, task_file: Path
 
 
 def _check_model_values(params: dict[str, Any], w: str) -> None:
-    positive_ints = ("epochs", "batch_size", "width", "n_maps", "n_trees", "max_depth", "min_samples_leaf")
+    positive_ints = ("epochs", "batch_size", "width", "n_trees", "max_depth", "min_samples_leaf")
     for key in positive_ints:
         if key in params:
             _int_in(params[key], f"{w}.{key}", 1)

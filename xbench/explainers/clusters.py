@@ -18,21 +18,35 @@ U-shaped networks alike, since only a forward hook on the named layer is used):
 Outputs
 - attributions: for each tile, the cluster map with each position carrying the drop of the tile's target
   score when its cluster is replaced, upsampled (bilinear) to the input size.
+- Overlap: IoU = |cluster & type| / |cluster | type| and purity = |cluster & type| / |cluster| over all
+  cells of the fitting set (``fit_masks``; else the explained tiles' ``masks``) at the layer's resolution,
+  a cell counting for a type when the type covers any of its pixels (when the tile size is not a multiple
+  of the layer's, over pixels with the cluster maps upsampled by nearest neighbour), for every
+  (cluster, type): ``extras['overlap_rows']`` and the matrices
+  ``iou`` / ``purity`` (n_clusters, K). A cluster is *labelled* with the type of best IoU only when that
+  IoU is at least ``min_iou`` (default 0.2); below it the cluster stands for no type.
 - ConceptReport rows, one per (cluster, class) for the classes among the targets: ``score`` = mean drop
-  of that class's score over the tiles of that target class where the cluster occurs (positive = the
-  cluster supports the class), ``spread`` = its standard deviation, ``p_value`` = two-sided one-sample
-  t-test of the drops against 0 (scipy), Bonferroni-adjusted over the clusters (min(1, p * n_clusters);
-  None with fewer than two tiles), ``matched_type`` = the planted type with the best IoU,
-  ``iou`` / ``purity`` against it. IoU = |cluster & type| / |cluster | type| and purity = |cluster & type|
-  / |cluster| over all pixels of the fitting set (``fit_masks``; else the explained tiles' ``masks``), the
-  cluster maps upsampled by nearest neighbour.
-- ``type_importance[t]``: mean target-score drop of the cluster best matched to t (over the tiles where it
-  occurs; 0 when no cluster reaches ``min_iou``); ``flagged[t]``: that mean drop exceeds ``min_drop``
-  (0.01 by default: a consistent but negligible effect is not "use") and is significant (one-sample
-  t-test, Bonferroni over the types, level ``alpha``).
+  of that class's score when the cluster is replaced, over the tiles *of that class* where the cluster
+  occurs (positive = the cluster supports the class), ``spread`` = its standard deviation, ``p_value`` =
+  two-sided one-sample t-test of those drops against 0 (scipy), Bonferroni-adjusted over the clusters
+  (min(1, p * n_clusters); None with fewer than two tiles), ``matched_type`` = the label (None below
+  ``min_iou``), ``iou`` / ``purity`` = the cluster's overlap with its best-overlapping type (given even
+  when it is below ``min_iou``, so a weak match stays visible).
+- ``type_importance[t]`` is taken on the class t is meant to drive (the class whose label rule uses t,
+  ``context.driving_types``; a type that drives no class: every class some type drives, keeping the
+  largest): the mean drop of that class's score when the cluster labelled t (best IoU >= ``min_iou``) is
+  replaced, over that class's tiles where it occurs; 0 when no cluster is labelled t (the method found no
+  concept for it). ``flagged[t]``: that mean drop is significant (two-sided one-sample t-test over the
+  tiles, Bonferroni over the types, level ``alpha``) and positive: the flagging rule shared by every family
+  (xbench/metrics/concepts.py), with the practical floor of the truth's relied-on rule (a drop of at
+  least ``min_drop`` = 0.02 in probability, as ``Reliance.relied_types``), since a consistent but
+  negligible drop is not "use". ``extras['type_samples'][t]`` holds the
+  per-tile drops behind it.
 - extras (also attributes of the report): ``cluster_maps`` int (N, h, w) of the explained tiles,
-  ``score_changes`` (n_clusters, N, n_classes) = score *drops* (original minus replaced), ``fit_cluster_maps``,
-  ``iou`` and ``purity`` (n_clusters, K), ``mask_names``, ``class_names``, ``n_clusters``, ``bic``, ``layer``.
+  ``score_changes`` (n_clusters, N, n_classes) = drop of class j's score (original minus replaced) on
+  tile i, NaN unless tile i is of class j and holds the cluster (the samples behind the rows),
+  ``all_drops`` the same for every tile and class (0 where the cluster is absent), ``fit_cluster_maps``,
+  ``matched_types``, ``mask_names``, ``class_names``, ``n_clusters``, ``bic``, ``layer``.
 """
 
 from __future__ import annotations
@@ -60,6 +74,7 @@ from xbench.explainers.base import (
     signed_maps,
     upsample,
 )
+from xbench.explainers.concept_sets import classes_of_type
 from xbench.explainers.registry import register_explainer
 
 CITE_CLUSTERS = (
@@ -109,7 +124,14 @@ def _fit_mixture(
 def _overlap(cluster_maps: np.ndarray, masks: np.ndarray, n_clusters: int) -> tuple[np.ndarray, np.ndarray]:
     """IoU and purity (n_clusters, K) of each upsampled cluster region against each planted type."""
     n, k_types, h, w = masks.shape
-    full = nearest_index_upsample(cluster_maps, (h, w))
+    ch, cw = cluster_maps.shape[1:]
+    if h % ch == 0 and w % cw == 0:
+        # at the layer's resolution: a cell belongs to a type when the type covers any of its pixels
+        # (a cluster cannot be thinner than one cell, so a thin road is compared with the cells it crosses)
+        full = cluster_maps
+        masks = masks.reshape(n, k_types, ch, h // ch, cw, w // cw).any(axis=(3, 5))
+    else:
+        full = nearest_index_upsample(cluster_maps, (h, w))
     m = masks.transpose(1, 0, 2, 3).reshape(k_types, -1)
     type_area = m.sum(axis=1).astype(np.float64)
     iou = np.zeros((n_clusters, k_types))
@@ -154,8 +176,8 @@ def _ttest(d: np.ndarray) -> float | None:
         "baseline": "fit-mean",
         "score": "probability",
         "alpha": 0.05,
-        "min_drop": 0.01,
-        "min_iou": 0.1,
+        "min_drop": 0.02,
+        "min_iou": 0.2,
     },
     description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
     "each replaced by a baseline inside the network; attribution = cluster "
@@ -294,13 +316,21 @@ def activation_clusters(
         list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
     )
     present_all = np.stack([(cluster_maps == c).reshape(n, -1).any(axis=1) for c in range(k)])  # (k, n)
+    # the samples of the per-class importance: class j's drop on the tiles of class j where c occurs
+    class_drops = np.full_like(drops, np.nan)
+    for j in np.unique(targets):
+        sel = present_all & (targets == j)[None, :]
+        class_drops[:, :, j] = np.where(sel, drops[:, :, j], np.nan)
+    best_type = np.argmax(iou, axis=1) if iou is not None and iou.shape[1] else None
+    matched: list[str | None] = [
+        names[int(best_type[c])] if best_type is not None and iou[c, best_type[c]] >= max(min_iou, 1e-12) else None
+        for c in range(k)
+    ]
     rows = []
     for c in range(k):
-        best = int(np.argmax(iou[c])) if iou is not None and iou.shape[1] else None
-        matched = names[best] if best is not None and iou[c, best] > 0 else None
         for cls in np.unique(targets):
-            sel = present_all[c] & (targets == cls)
-            d = drops[c, sel, cls]
+            d = class_drops[c, :, cls]
+            d = d[np.isfinite(d)]
             p = _ttest(d)
             rows.append(
                 {
@@ -309,23 +339,42 @@ def activation_clusters(
                     "score": float(d.mean()) if d.size else None,
                     "spread": float(d.std(ddof=1)) if d.size > 1 else None,
                     "p_value": None if p is None else min(1.0, p * k),  # Bonferroni over the clusters
-                    "matched_type": matched,
-                    "iou": float(iou[c, best]) if matched is not None else None,
-                    "purity": float(purity[c, best]) if matched is not None else None,
+                    "matched_type": matched[c],
+                    "iou": float(iou[c, best_type[c]]) if best_type is not None else None,
+                    "purity": float(purity[c, best_type[c]]) if best_type is not None else None,
                 }
             )
+    overlap_rows = [
+        {"concept": f"cluster-{c}", "type": t, "iou": float(iou[c, j]), "purity": float(purity[c, j])}
+        for c in range(k)
+        for j, t in enumerate(names)
+    ]
 
+    # per type: the cluster matched to it (best IoU, at least min_iou), its drop on the class the type drives
     importance: dict[str, float] = {}
     flagged: dict[str, bool] = {}
+    samples: dict[str, np.ndarray] = {}
+    type_class: dict[str, str] = {}
+    classes = [int(j) for j in np.unique(targets)]
     for j, name in enumerate(names):
         c = int(np.argmax(iou[:, j]))
-        if iou[c, j] < min_iou or iou[c, j] == 0:
-            importance[name], flagged[name] = 0.0, False
-            continue
-        d = target_drop[c, present_all[c]]
-        importance[name] = float(d.mean()) if d.size else 0.0
-        p = _ttest(d)
-        flagged[name] = bool(p is not None and p < alpha / max(len(names), 1) and d.mean() > min_drop)
+        candidates = [q for q in classes_of_type(name, context.driving_types, classes) if q in classes]
+        if not candidates:
+            continue  # no explained tile of the class it drives: not assessable
+        best = None
+        for q in candidates:
+            if iou[c, j] < min_iou or iou[c, j] == 0:
+                d = np.zeros(0)  # no cluster stands for the type: no evidence that it is used
+            else:
+                d = class_drops[c, :, q]
+                d = d[np.isfinite(d)]
+            mean = float(d.mean()) if d.size else 0.0
+            p = _ttest(d)
+            hit = bool(p is not None and p * max(len(names), 1) < alpha and mean >= max(min_drop, 1e-12))
+            if best is None or (hit, mean) > (best[1], best[0]):
+                best = (mean, hit, d, q)
+        importance[name], flagged[name], samples[name] = best[0], best[1], best[2]
+        type_class[name] = class_names[best[3]] if best[3] < len(class_names) else str(best[3])
 
     report = ConceptReport(
         rows=rows,
@@ -333,7 +382,12 @@ def activation_clusters(
         flagged=flagged,
         extras={
             "cluster_maps": cluster_maps.astype(np.int64),
-            "score_changes": drops.astype(np.float32),
+            "score_changes": class_drops.astype(np.float32),
+            "all_drops": drops.astype(np.float32),
+            "overlap_rows": overlap_rows,
+            "matched_types": matched,
+            "type_samples": samples,
+            "type_class": type_class,
             "fit_cluster_maps": fit_maps.astype(np.int64),
             "iou": iou,
             "purity": purity,

@@ -67,3 +67,16 @@ def make_concept_sets(
     for r in range(int(n_random)):
         sets[f"random-{r}"] = draw(1000 + r, None)
     return sets
+
+
+def classes_of_type(kind: str, driving_types: dict[int, list[str]] | None, classes: Iterable[int]) -> list[int]:
+    """The classes a structure type is meant to drive: those whose label rule uses it. A type that drives
+    no class (a look-alike, an unused type) gets every class that some type drives (a method that calls
+    it used claims it drives one of them); without driving types, every given class."""
+    classes = [int(k) for k in classes]
+    if not driving_types:
+        return classes
+    own = [int(k) for k, types in driving_types.items() if kind in types]
+    if own:
+        return own
+    return [int(k) for k, types in driving_types.items() if types]

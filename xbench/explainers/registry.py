@@ -424,7 +424,8 @@ def explain(
             expected="a torch model, or a black-box explainer: " + ok,
         )
     if "layer" in spec.needs:
-        layer = merged.get("layer") or model.default_layer()
+        rule = getattr(spec.fn, "default_layer", None)  # an explainer may state its own default-layer rule
+        layer = merged.get("layer") or (rule(model) if rule is not None else model.default_layer())
         model.get_layer(str(layer))  # raises, listing the model's layers
         merged["layer"] = str(layer)
     context = _check_context(spec, model, images, context if context is not None else ExplainContext(), merged)

@@ -5,51 +5,70 @@ direct implementation on arrays is shorter and keeps everything in memory and se
 - Concept example sets come from ``context.concept_sets`` (see :mod:`xbench.explainers.concept_sets`):
   structure type -> tiles holding only that type, on varied backgrounds; ``random-0``, ``random-1``, ...
   -> random tiles. At least ``min_random`` (default 10) random sets are required.
+- Layer (``layer``; default: a stated rule, :func:`tcav_default_layer`): the last ``nn.ReLU`` registered
+  before the model's explain layer, i.e. the rectified output that feeds the last conv block (``cnn``:
+  ``relu3``; ``resnet``: ``block3.relu2``; ``separable``: ``block4.depthwise_relu``). Why not the explain
+  layer itself: between it and a global-pooling + linear head the gradient of a class logit with respect
+  to the pooled activations is (nearly) the same vector on every tile, so every direction gets a score
+  of about 0 or 1 and random concepts cannot be told from real ones (no power). One block earlier the
+  gradient still varies from tile to tile. ``layers = [...]`` adds the rows of other layers to
+  ``extras['layer_rows']`` (each with its ``layer``) so the choice can be checked per layer.
 - Features at the layer: ``pool = "mean"`` (default) averages the layer's (K, h, w) map over positions,
-  so a CAV is a direction in channel space, independent of where the structure lies in the tile (the
-  directional derivative is then that of the target logit when the direction is added at every position);
+  so a CAV is a direction in channel space, independent of where the structure lies in the tile;
   ``pool = "none"`` uses the flattened map as in Kim et al. 2018.
-- CAV: the unit normal of a logistic regression (scikit-learn, L2, ``regularization`` = C) separating the
-  concept's activations from one random set's.
-- TCAV score of a concept for class k: the fraction of explained tiles with target k whose directional
-  derivative grad_A h_k . v_C is positive. Each concept is scored against every random set (one CAV each);
-  ``score`` = mean over those, ``spread`` = standard deviation.
-- Significance (``test``), two-sided t-tests (scipy ``ttest_ind``) against at least ``min_random`` random
-  concepts. ``set`` (default): every random set in turn plays a concept against the other random sets
-  (the CAV of set j against set i is minus that of i against j); its mean TCAV score is one draw from the
-  null distribution of *set-level* scores, and the concept's mean score is tested against these draws
-  (``ttest_ind`` with a sample of one: the t-test for one new observation). ``runs``: Kim et al. 2018's
-  comparison of the concept's per-CAV scores with the per-CAV scores of ``random-0`` against the other
-  random sets. Scores within one group share their positive set, so ``runs`` counts set-level luck as
-  signal: in our random-versus-random trials (a random set posing as the concept) it came out significant
-  in 45-70% of the trials at the 5% level, ``set`` in 0-7% (tests/test_explainers_concepts.py).
-  ``p_value`` is Bonferroni-adjusted over the concepts tested for a class: min(1, p * n_concepts).
-  Power: the score is a fraction of signs, so when the class gradient at the layer points the same way on
-  most tiles (typically the last conv layer before global pooling and a linear head), random directions
-  already score near 0 or 1 and no concept can stand out against ten random sets; use an earlier layer
-  or more random sets.
-- ``type_importance[type]``: the TCAV score over all explained tiles, each with its own target (the class
-  score when all tiles share one target), centred: score - 0.5, so that 0 means no effect as for the
-  other concept methods and the truth (the raw scores are in ``extras['tcav_scores']``);
-  ``flagged[type]``: that score is above 0.5 and significant (Bonferroni over the concepts, level
-  ``alpha``).
+- CAV: the unit normal of a logistic regression (scikit-learn, L2, ``regularization`` = C) separating a
+  positive set's activations from a negative set's.
+- TCAV score of a CAV for class k: the fraction of the explained tiles *of class k* (target k) whose
+  directional derivative grad_A h_k . v is positive (Kim et al. 2018).
+- Runs (Kim et al. 2018): concept run r = CAV of the concept examples against random set r
+  (r = 0..R-1); random-concept run r = CAV of random set r against random set r+1 (mod R), so each
+  random run has its own positive set rather than one shared random counterpart. With ``resample = true``
+  (default) the positive examples of each run are a bootstrap resample (seeded). Null simulation through
+  this code (tests/bench/bench_tcav_null.py, a random set posing as the concept, 100 trials): significant
+  at p < 0.05 in 20% of trials (19% without resampling) and at p < 0.01 in 8% (12% without); the runs of
+  one concept still share that set's luck, so the test runs above its nominal level, and more so with
+  more runs: with 30 random sets, 37% at p < 0.05 and 25% at p < 0.01 (the earlier design with one shared
+  random counterpart: 45-70% with 10). Bonferroni over the 5-8 concepts of a task brings the per-concept
+  threshold near 0.01. Power on the demo's cnn at the default layer: with 10 random sets road (score 0.98
+  on class road) gets p = 0.38 and clearing (1.00 on class clearing) p = 0.013; with 30, p = 0.0027 and
+  9e-6. The trade-off is the task's ``[run] random_sets``.
+- Significance (``test = "runs"``, default; Kim et al. 2018): per (concept, class), the two-sided
+  two-sample t-test (scipy ``ttest_ind``) of the concept runs' scores against the random-concept runs'
+  scores. ``test = "set"``: each random set posing as a concept against every other random set gives one
+  mean score (one null draw at the level of sets); the concept's mean score is tested as one new draw
+  against them (``ttest_ind`` with a sample of one). Its level is right by exchangeability (null
+  simulation, 10 random sets, 60 trials: 1.7% significant at p < 0.05), but where a
+  set's score is mostly decided by the set (as on the demo's cnn) it has little power: road, score 0.93 on
+  class road, p = 1 after Bonferroni with 30 random sets, where ``runs`` gives p = 0.0027.
+  ``correction = "bonferroni"`` (default) multiplies p by the number of concepts (capped at 1),
+  ``"none"`` reports raw p-values. Rows: ``score`` = mean over concept runs, ``spread`` = their standard
+  deviation, ``p_value`` as above.
+- ``type_importance[type]`` is taken on the class the type is meant to drive (the class whose label rule
+  uses the type, from ``context.driving_types``): mean concept-run score minus mean random-run score on
+  that class (0 = no effect beyond random directions). A type that drives no class is scored on every
+  class that some type drives, keeping the class with the largest value (a claim that it drives any of
+  them). ``flagged[type]``: on such a class the effect is positive and the corrected p-value is below
+  ``alpha``. A type whose class has no explained tile is left out (not assessable).
+  Raw scores on that class: ``extras['tcav_scores']``; the class used: ``extras['type_class']``.
 - Pixel attribution (documented choice): concept-presence maps at the layer, weighted by how much the
   concept pushes the tile's target. For each concept C with mean CAV v and random-set mean activation mu,
   presence(i, j) = relu(v . (A(i, j) - mu)) (per position; for ``pool = "none"`` with the position's own
-  CAV slice); attribution = sum_C (TCAV_C(target) - 0.5) * presence_C, upsampled bilinearly. It is large
-  where concepts that raise the target score appear, negative where concepts that lower it appear.
+  CAV slice); attribution = sum_C (score_C(target) - random score(target)) * presence_C, upsampled
+  bilinearly.
 """
 
 from __future__ import annotations
 
 import re
 import warnings
+from typing import Any
 
 import numpy as np
 import torch
 from scipy import stats
 from sklearn.linear_model import LogisticRegression
 from threadpoolctl import threadpool_limits
+from torch import nn
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
@@ -66,7 +85,9 @@ from xbench.explainers.base import (
     signed_maps,
     upsample,
 )
+from xbench.explainers.concept_sets import classes_of_type
 from xbench.explainers.registry import register_explainer
+from xbench.models.base import ModelHandle
 
 CITE_TCAV = (
     "Kim, Wattenberg, Gilmer, Cai, Wexler, Viegas, Sayres. Interpretability beyond feature "
@@ -81,6 +102,19 @@ def split_sets(sets: dict[str, np.ndarray]) -> tuple[list[str], list[str]]:
     randoms = sorted((k for k in sets if _RANDOM.fullmatch(k)), key=lambda k: int(k.split("-")[1]))
     concepts = [k for k in sets if not _RANDOM.fullmatch(k)]
     return concepts, randoms
+
+
+def tcav_default_layer(model: ModelHandle) -> str:
+    """The stated default layer rule: the last ``nn.ReLU`` registered before the model's explain layer
+    (the rectified map feeding the last conv block); the explain layer itself when none precedes it."""
+    explain_layer = model.default_layer()
+    previous = None
+    for name, module in model.module.named_modules():
+        if name == explain_layer:
+            break
+        if isinstance(module, nn.ReLU):
+            previous = name
+    return previous or explain_layer
 
 
 def _features(acts: np.ndarray, pool: str) -> np.ndarray:
@@ -102,11 +136,11 @@ def _cav(pos: np.ndarray, neg: np.ndarray, regularization: float, seed: int) -> 
     return v / norm if norm > 0 else v
 
 
-def _ttest_ind(a: np.ndarray, b: np.ndarray) -> float:
-    """Two-sided two-sample t-test (scipy); constant samples give 1.0 (equal) or 0.0 (different)."""
+def ttest_runs(a: np.ndarray, b: np.ndarray) -> float:
+    """Two-sided two-sample t-test (scipy ``ttest_ind``) of run scores; constant samples give 1.0
+    (equal) or 0.0 (different)."""
+    a, b = np.asarray(a, float), np.asarray(b, float)
     if np.ptp(a) == 0 and np.ptp(b) == 0:
-        return 1.0 if a[0] == b[0] else 0.0
-    if len(a) == 1 and np.ptp(b) == 0:
         return 1.0 if a[0] == b[0] else 0.0
     with np.errstate(all="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # near-identical samples: precision note only
@@ -114,23 +148,186 @@ def _ttest_ind(a: np.ndarray, b: np.ndarray) -> float:
     return p if np.isfinite(p) else 1.0
 
 
+def run_scores(gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """TCAV score of direction ``v`` per class: the share of that class's tiles with grad . v > 0."""
+    positive = (gfeat @ v) > 0
+    return np.array([positive[targets == k].mean() for k in classes])
+
+
+def _run_layer(
+    model: ModelHandle,
+    images: np.ndarray,
+    targets: np.ndarray,
+    sets: dict[str, np.ndarray],
+    concepts: list[str],
+    randoms: list[str],
+    layer: str,
+    *,
+    pool: str,
+    regularization: float,
+    resample: bool,
+    test: str,
+    seed: int,
+    batch_size: int,
+) -> dict[str, Any]:
+    """Concept and random-concept runs at one layer: per-class scores of every run, plus what the pixel
+    attribution needs (activations, CAVs, random mean)."""
+    n = images.shape[0]
+    grads, acts = [], []
+    with LayerTap(KEY, model, layer, mode="grad") as t:
+        for sl in batches(n, batch_size):
+            x = as_tensor(images[sl])
+            idx = torch.from_numpy(targets[sl])
+            with torch.enable_grad(), backward_counted(model, x.shape[0]):
+                logits = t.forward(x)
+                (g,) = torch.autograd.grad(logits.gather(1, idx[:, None]).sum(), t.activation)
+            grads.append(as_numpy(g))
+            acts.append(as_numpy(t.activation))
+    grads_a, acts_a = np.concatenate(grads), np.concatenate(acts)
+    gfeat = grads_a.sum(axis=(2, 3)) if pool == "mean" else grads_a.reshape(n, -1)
+    gfeat = gfeat.astype(np.float64)
+    feats, raw = {}, {}
+    for name in concepts + randoms:
+        a = layer_activations(KEY, model, layer, sets[name], batch_size)
+        if pool == "none" and a.shape[1:] != acts_a.shape[1:]:
+            raise XbenchInputError(
+                f"explainer '{KEY}': context.concept_sets['{name}']",
+                "layer map size differs from the explained tiles' (pool = 'none' needs equal sizes)",
+                expected=acts_a.shape[1:],
+                found=a.shape[1:],
+            )
+        raw[name] = a
+        feats[name] = _features(a, pool)
+    classes = np.unique(targets)
+
+    def positives(name: str, salt: int, r: int) -> np.ndarray:
+        f = feats[name]
+        if not resample:
+            return f
+        rng = np.random.default_rng([seed, salt, r])
+        return f[rng.integers(0, len(f), len(f))]
+
+    n_r = len(randoms)
+    random_runs = np.array(
+        [
+            run_scores(
+                gfeat,
+                targets,
+                classes,
+                _cav(positives(randoms[r], 7919, r), feats[randoms[(r + 1) % n_r]], regularization, seed + r),
+            )
+            for r in range(n_r)
+        ]
+    )  # (runs, classes)
+    set_means = None
+    if test == "set":  # each random set posing as a concept against the others: its mean score is one null draw
+        pair = np.full((n_r, n_r, len(classes)), np.nan)
+        for i in range(n_r):
+            for j in range(i + 1, n_r):
+                v = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 5000 + i * n_r + j)
+                pair[i, j] = run_scores(gfeat, targets, classes, v)
+                pair[j, i] = run_scores(gfeat, targets, classes, -v)  # the CAV of j against i points the other way
+        set_means = np.nanmean(pair, axis=1)  # (n_r, classes)
+    concept_runs, cavs = {}, {}
+    for ci, concept in enumerate(concepts):
+        vs = [
+            _cav(positives(concept, ci, r), feats[randoms[r]], regularization, seed + 1000 * (ci + 1) + r)
+            for r in range(n_r)
+        ]
+        concept_runs[concept] = np.array([run_scores(gfeat, targets, classes, v) for v in vs])
+        v = np.mean(vs, axis=0)
+        cavs[concept] = v / (np.linalg.norm(v) or 1.0)
+    mu = np.concatenate([raw[r] for r in randoms])
+    mu = mu.mean(axis=(0, 2, 3)) if pool == "mean" else mu.mean(axis=0)
+    return {
+        "classes": classes,
+        "random_runs": random_runs,
+        "set_means": set_means,
+        "concept_runs": concept_runs,
+        "cavs": cavs,
+        "acts": acts_a,
+        "mu": mu,
+    }
+
+
+def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], correction: str, test: str) -> list[dict]:
+    m_tests = len(concepts) if correction == "bonferroni" else 1
+    rows = []
+    for concept in concepts:
+        c_runs = res["concept_runs"][concept]
+        for j, k in enumerate(res["classes"]):
+            if test == "runs":
+                p = ttest_runs(c_runs[:, j], res["random_runs"][:, j])
+            else:  # the concept's mean score as one new draw against the random sets' mean scores
+                p = ttest_runs(c_runs[:, j].mean(keepdims=True), res["set_means"][:, j])
+            rows.append(
+                {
+                    "concept": concept,
+                    "class_name": class_names[int(k)] if int(k) < len(class_names) else str(int(k)),
+                    "score": float(c_runs[:, j].mean()),
+                    "spread": float(c_runs[:, j].std(ddof=1)) if len(c_runs) > 1 else None,
+                    "p_value": min(1.0, p * m_tests),
+                    "matched_type": concept,
+                    "iou": None,
+                    "purity": None,
+                }
+            )
+    return rows
+
+
 @register_explainer(
     KEY,
     citation=CITE_TCAV,
     needs={"gradients", "layer", "concept-sets"},
     kind="concept",
-    defaults={"layer": None, "pool": "mean", "regularization": 1.0, "test": "set", "alpha": 0.05, "min_random": 10},
-    description="concept activation vectors from example sets (logistic regression at a "
-    "layer); TCAV score per class and concept, t-test against >= 10 random "
-    "concepts with Bonferroni; attribution = weighted concept-presence maps",
+    defaults={
+        "layer": None,
+        "layers": [],
+        "pool": "mean",
+        "regularization": 1.0,
+        "resample": True,
+        "test": "runs",
+        "correction": "bonferroni",
+        "alpha": 0.05,
+        "min_random": 10,
+    },
+    description="concept activation vectors from example sets (logistic regression at a layer); TCAV "
+    "score per (concept, class) on that class's tiles; two-sided t-test of concept runs against "
+    "random-concept runs (Kim et al.), Bonferroni over concepts; attribution = weighted concept-presence maps",
 )
 @signed_maps(True)  # concept presence weighted by (TCAV score - 0.5): negative for counter-evidence
-def tcav(model, images, targets, context, *, layer, pool, regularization, test, alpha, min_random):
+def tcav(
+    model,
+    images,
+    targets,
+    context,
+    *,
+    layer,
+    layers,
+    pool,
+    regularization,
+    resample,
+    test,
+    correction,
+    alpha,
+    min_random,
+):
     pool = check_choice(KEY, "pool", pool, ("mean", "none"))
-    test = check_choice(KEY, "test", test, ("set", "runs"))
+    correction = check_choice(KEY, "correction", correction, ("bonferroni", "none"))
+    test = check_choice(KEY, "test", test, ("runs", "set"))
     regularization = check_float(KEY, "regularization", regularization, 0.0, inclusive_min=False)
     alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
     min_random = check_int(KEY, "min_random", min_random, 2)
+    if not isinstance(resample, bool):
+        raise XbenchInputError(
+            f"explainer '{KEY}': setting 'resample'", "bad value", expected="true or false", found=resample
+        )
+    if not isinstance(layers, (list, tuple)) or not all(isinstance(v, str) for v in layers):
+        raise XbenchInputError(
+            f"explainer '{KEY}': setting 'layers'", "bad value", expected="a list of layer names", found=layers
+        )
+    for name in layers:
+        model.get_layer(name)  # raises, listing the model's layers
     sets = context.concept_sets
     concepts, randoms = split_sets(sets)
     if len(randoms) < min_random:
@@ -147,116 +344,62 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
             expected="structure type -> example tiles, besides the random sets",
             found=sorted(sets),
         )
-    seed = int(context.seed)
-    bs = context.batch_size
-    n = images.shape[0]
-
-    # gradients of each tile's target logit w.r.t. the layer, and the layer's activations
-    grads, acts = [], []
-    with LayerTap(KEY, model, layer, mode="grad") as t:
-        for sl in batches(n, bs):
-            x = as_tensor(images[sl])
-            idx = torch.from_numpy(targets[sl])
-            with torch.enable_grad(), backward_counted(model, x.shape[0]):
-                logits = t.forward(x)
-                (g,) = torch.autograd.grad(logits.gather(1, idx[:, None]).sum(), t.activation)
-            grads.append(as_numpy(g))
-            acts.append(as_numpy(t.activation))
-    grads_a, acts_a = np.concatenate(grads), np.concatenate(acts)
-    gfeat = grads_a.sum(axis=(2, 3)).astype(np.float64) if pool == "mean" else grads_a.reshape(n, -1).astype(np.float64)
-
-    feats, raw = {}, {}
-    for name in concepts + randoms:
-        a = layer_activations(KEY, model, layer, sets[name], bs)
-        if pool == "none" and a.shape[1:] != acts_a.shape[1:]:
-            raise XbenchInputError(
-                f"explainer '{KEY}': context.concept_sets['{name}']",
-                "layer map size differs from the explained tiles' (pool = 'none' needs equal sizes)",
-                expected=acts_a.shape[1:],
-                found=a.shape[1:],
-            )
-        raw[name] = a
-        feats[name] = _features(a, pool)
-
-    classes = np.unique(targets)
-
-    def scores(v: np.ndarray) -> tuple[np.ndarray, float]:
-        positive = (gfeat @ v) > 0
-        per_class = np.array([positive[targets == k].mean() for k in classes])
-        return per_class, float(positive.mean())
-
-    def mean_scores_of(pos: np.ndarray, negs: list[str], salt: int) -> tuple[np.ndarray, np.ndarray, list]:
-        """TCAV scores of the CAVs of ``pos`` (features) against each random set in ``negs``."""
-        per_class, pooled, vs = [], [], []
-        for i, neg in enumerate(negs):
-            v = _cav(pos, feats[neg], regularization, seed + salt + i)
-            pc, pl = scores(v)
-            per_class.append(pc)
-            pooled.append(pl)
-            vs.append(v)
-        return np.array(per_class), np.array(pooled), vs  # (runs, classes), (runs,)
-
-    # random versus random: each random set in turn plays a concept against the other random sets
-    n_r = len(randoms)
-    pair_class = np.full((n_r, n_r, len(classes)), np.nan)
-    pair_pooled = np.full((n_r, n_r), np.nan)
-    for i in range(n_r):
-        for j in range(i + 1, n_r):
-            v = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 1000 + i * n_r + j)
-            pair_class[i, j], pair_pooled[i, j] = scores(v)
-            pair_class[j, i], pair_pooled[j, i] = scores(-v)  # the CAV of j against i points the other way
-    null_class = np.nanmean(pair_class, axis=1)  # (n_r, classes): each random set's mean score
-    null_pooled = np.nanmean(pair_pooled, axis=1)
-    kim_class, kim_pooled = pair_class[0, 1:], pair_pooled[0, 1:]  # random-0 against the others
-
-    def pvalue(c_runs: np.ndarray, null: np.ndarray, kim: np.ndarray) -> float:
-        if test == "set":
-            return _ttest_ind(np.array([c_runs.mean()]), null)
-        return _ttest_ind(c_runs, kim)
-
     class_names = (
         list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
     )
-    m_tests = len(concepts)  # Bonferroni family: the concepts tested for one class
-    rows, importance, flagged, mean_scores, cavs, pooled_scores = [], {}, {}, {}, {}, {}
-    for concept in concepts:
-        c_class, c_pooled, vs = mean_scores_of(feats[concept], randoms, 0)
-        for j, k in enumerate(classes):
-            p = pvalue(c_class[:, j], null_class[:, j], kim_class[:, j])
-            rows.append(
-                {
-                    "concept": concept,
-                    "class_name": class_names[int(k)] if int(k) < len(class_names) else str(int(k)),
-                    "score": float(c_class[:, j].mean()),
-                    "spread": float(c_class[:, j].std(ddof=1)),
-                    "p_value": min(1.0, p * m_tests),
-                    "matched_type": concept,
-                    "iou": None,
-                    "purity": None,
-                }
-            )
-        p_pooled = min(1.0, pvalue(c_pooled, null_pooled, kim_pooled) * m_tests)
-        pooled_scores[concept] = float(c_pooled.mean())
-        importance[concept] = pooled_scores[concept] - 0.5  # signed: 0 = no effect (as clusters, truth)
-        flagged[concept] = bool(p_pooled < alpha and c_pooled.mean() > 0.5)
-        mean_scores[concept] = c_class.mean(axis=0)
-        v = np.mean(vs, axis=0)
-        cavs[concept] = v / (np.linalg.norm(v) or 1.0)
+    common = dict(
+        test=test,
+        pool=pool,
+        regularization=regularization,
+        resample=resample,
+        seed=int(context.seed),
+        batch_size=context.batch_size,
+    )
+    res = _run_layer(model, images, targets, sets, concepts, randoms, layer, **common)
+    rows = _rows(res, concepts, class_names, correction, test)
+    layer_rows = []
+    for other in layers:
+        other_res = (
+            res if other == layer else _run_layer(model, images, targets, sets, concepts, randoms, other, **common)
+        )
+        layer_rows += [{"layer": other, **r} for r in _rows(other_res, concepts, class_names, correction, test)]
 
-    # pixel attribution: concept presence maps weighted by (TCAV score for the tile's target - 0.5)
-    mu = np.concatenate([raw[r] for r in randoms])
-    mu = mu.mean(axis=(0, 2, 3)) if pool == "mean" else mu.mean(axis=0)
-    class_pos = {int(k): j for j, k in enumerate(classes)}
-    low = np.zeros((n,) + acts_a.shape[2:], dtype=np.float64)
+    classes = [int(k) for k in res["classes"]]
+    random_mean = res["random_runs"].mean(axis=0)  # (classes,)
+    by_key = {(r["concept"], r["class_name"]): r for r in rows}
+    importance: dict[str, float] = {}
+    flagged: dict[str, bool] = {}
+    tcav_scores: dict[str, float] = {}
+    type_class: dict[str, str] = {}
     for concept in concepts:
-        v = cavs[concept]
-        centred = acts_a - (mu[None, :, None, None] if pool == "mean" else mu[None])
+        best = None
+        for k in classes_of_type(concept, context.driving_types, classes):
+            if k not in classes:
+                continue  # no explained tile of that class
+            j = classes.index(k)
+            row = by_key[(concept, class_names[k] if k < len(class_names) else str(k))]
+            effect = row["score"] - float(random_mean[j])
+            hit = effect > 0 and row["p_value"] < alpha
+            if best is None or (hit, effect) > (best[1], best[0]):
+                best = (effect, hit, row["score"], row["class_name"])
+        if best is None:
+            continue
+        importance[concept], flagged[concept], tcav_scores[concept], type_class[concept] = best
+
+    # pixel attribution: concept presence maps weighted by the concept's effect on the tile's target
+    acts_a, mu = res["acts"], res["mu"]
+    n = images.shape[0]
+    low = np.zeros((n,) + acts_a.shape[2:], dtype=np.float64)
+    centred = acts_a - (mu[None, :, None, None] if pool == "mean" else mu[None])
+    col = np.searchsorted(res["classes"], targets)
+    for concept in concepts:
+        v = res["cavs"][concept]
         if pool == "mean":
             presence = np.einsum("nkij,k->nij", centred, v)
         else:
             presence = (centred * v.reshape(acts_a.shape[1:])[None]).sum(axis=1)
-        weight = np.array([mean_scores[concept][class_pos[int(k)]] - 0.5 for k in targets])
-        low += weight[:, None, None] * np.maximum(presence, 0.0)
+        effect = res["concept_runs"][concept].mean(axis=0) - random_mean
+        low += effect[col][:, None, None] * np.maximum(presence, 0.0)
     attributions = upsample(low.astype(np.float32), images.shape[2:], "bilinear")
 
     report = ConceptReport(
@@ -267,12 +410,20 @@ def tcav(model, images, targets, context, *, layer, pool, regularization, test, 
             "layer": layer,
             "pool": pool,
             "n_random": len(randoms),
-            "cavs": cavs,
+            "cavs": res["cavs"],
+            "correction": correction,
+            "random_runs": res["random_runs"],
+            "set_means": res["set_means"],
             "test": test,
-            "null_scores": null_class,
-            "tcav_scores": pooled_scores,
-            "classes": [int(k) for k in classes],
+            "concept_runs": res["concept_runs"],
+            "tcav_scores": tcav_scores,
+            "type_class": type_class,
+            "classes": classes,
             "class_names": class_names,
+            "layer_rows": layer_rows,
         },
     )
     return attributions, report
+
+
+tcav.default_layer = tcav_default_layer  # type: ignore[attr-defined]  # read by the registry

@@ -1,27 +1,43 @@
 """Concept recovery: does a method's importance per structure type match what the model really used?
 
-The reference is the truth module's interventional importance per structure type (``type_importance``:
-the mean drop of the target score when that type's instances are removed; signed, 0 = no effect) and
-the type roles (relied-on types, look-alikes, unused types).
+The reference is the truth module's measured reliance: a type is *relied on* when removing its instances
+from the tiles drops the target score reliably (``MetricInputs.relied_types``; ``Reliance.relied_types``).
+Roles (:func:`type_roles`): **relied-on types**, **relied-on look-alikes** (natural look-alikes the model
+does use) and **unused types** (every other type, look-alikes included). A method that flags a relied-on
+look-alike has found something the model uses: that is a detection, never a false alarm. Only unused
+types can be false alarms.
 
-A method's importance per type:
-- **concept methods** (``concept_report`` given): their ``concept_report.type_importance`` (signed,
-  0 = no effect) and ``concept_report.flagged``. The explainers fill these: ``activation-clusters`` with
-  the score sensitivity of the cluster matched to each type, ``tcav`` with its score per type centred
-  on 0.5 (score - 0.5) and ``flagged`` = significant against random concepts;
-- **pixel methods**: from ``type_masks``, over the tiles where the type is present,
-  importance = mean of (attribution summed inside the type's mask) / (sum of |attribution|) (the signed
-  mass share, in [-1, 1]); a type is *flagged* when its mean positive-mass share exceeds
-  ``factor`` (default 2) times its mean area share, i.e. the method concentrates on it beyond chance.
+A method's evidence per type, on the class the type is meant to drive (the class whose label rule uses it;
+a type that drives no class: the classes some type drives):
+- **concept methods** (``concept_report`` given): ``concept_report.type_importance`` and
+  ``concept_report.flagged``. ``tcav``: mean TCAV score of the concept runs minus that of the
+  random-concept runs on that class; ``activation-clusters``: mean drop of that class's probability when
+  the cluster labelled with the type is replaced, on that class's tiles.
+- **pixel methods**: per tile, the type's *enrichment* = (mean attribution inside the type's mask - mean
+  attribution over the tile) / standard deviation of the attribution over the tile (scale-free; 0 for a
+  map unrelated to the type, whatever the type's area). Tiles used: those holding the type whose target
+  class the type drives (most of its pixels lie in the planted mask, the union of the target class's
+  driving types), or, for a type that drives no class there, the tiles of classes some type drives
+  (non-empty planted mask). Importance = mean enrichment over those tiles.
+
+**One flagging rule for every family**: a type is flagged when its effect on its class is positive and
+significant: a two-sided t-test over the method's samples (pixel methods: the per-tile enrichments
+against 0; ``activation-clusters``: the per-tile probability drops against 0, with the truth's practical
+floor of 0.02; ``tcav``: Kim et al.'s test of the concept runs against the random-concept runs), at level
+``alpha`` (0.05) with Bonferroni over the types. Concept explainers apply it themselves (their ``flagged``);
+pixel methods get it here.
 
 Metrics (one value each, not per tile):
-- ``concept-agreement``: Spearman correlation across types (``measure = "spearman"``, default; needs at
-  least ``min_types`` types) or the share of types whose signs agree (``measure = "sign"``; values with
-  |v| <= ``tolerance`` count as 0).
-- ``concept-detection``: share of the relied-on types that the method flags.
-- ``concept-false-alarm``: share of the look-alike and unused types that the method flags.
-Types a method cannot assess (absent from every tile for pixel methods, missing from the concept report)
-are left out of the shares; when none is left the value is NaN with a reason.
+- ``concept-recovery``: the AUROC (Mann-Whitney; ties count 1/2) of the method's importance per type for
+  telling relied-on types (look-alikes included) from unused types. Chance level 0.5: averaged over every
+  assignment of a method's values to the types, each (relied-on, unused) pair is ordered either way
+  equally often, so a method unrelated to reliance (the ``random`` control) scores 0.5 on average; 1 when
+  every relied-on type outranks every unused type (the ``oracle`` when the model uses what the labels
+  say). NaN when either group is empty.
+- ``concept-detection``: share of the relied-on types and relied-on look-alikes that the method flags.
+- ``concept-false-alarm``: share of the unused types that the method flags.
+Types a method cannot assess (absent from every tile it is scored on for pixel methods, missing from the
+concept report) are left out; when none is left the value is NaN with a reason.
 """
 
 from __future__ import annotations
@@ -29,61 +45,100 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 from xbench.metrics.base import (
     MetricInputs,
     MetricResult,
     bad_attribution_tiles,
-    check_choice,
     check_number,
     register_metric,
 )
-from xbench.metrics.model_dependence import spearman_rows
+
+ROLES = ("relied-on", "relied-on look-alike", "unused")
 
 
 # -- pure cores -------------------------------------------------------------------------------------------
-def pixel_type_shares(attributions: np.ndarray, type_masks: np.ndarray) -> dict[str, np.ndarray]:
-    """Per type k (K,), averaged over the tiles where k is present (NaN when it is nowhere):
-    ``signed`` = sum_{mask_k} a / sum |a|; ``positive`` = sum_{mask_k} a+ / sum a+;
-    ``area`` = |mask_k| / pixels. Tiles with zero or non-finite attribution are left out."""
+def type_roles(types: list[str], relied: list[str], lookalikes: list[str]) -> dict[str, str]:
+    """Role of each type: ``relied-on``, ``relied-on look-alike`` or ``unused`` (not relied on, look-alikes
+    included)."""
+    relied_set, look = set(relied), set(lookalikes)
+    return {
+        t: ("relied-on look-alike" if t in look else "relied-on") if t in relied_set else "unused"
+        for t in dict.fromkeys(types)
+    }
+
+
+def recovery_auroc(importance: dict[str, float], roles: dict[str, str]) -> float:
+    """AUROC of ``importance`` for relied-on (either relied role) against unused types; ties count 1/2.
+    NaN when a group is empty. Chance level 0.5."""
+    pos = [importance[t] for t, r in roles.items() if r != "unused" and t in importance]
+    neg = [importance[t] for t, r in roles.items() if r == "unused" and t in importance]
+    if not pos or not neg:
+        return float("nan")
+    p, n = np.asarray(pos, float)[:, None], np.asarray(neg, float)[None, :]
+    return float(np.mean((p > n) + 0.5 * (p == n)))  # the Mann-Whitney U / (n1 n2)
+
+
+def one_sample_p(values: np.ndarray) -> float:
+    """Two-sided one-sample t-test of ``values`` against 0 (scipy); 1 for fewer than 2 values or all 0,
+    0 for a constant non-zero sample."""
+    v = np.asarray(values, dtype=np.float64)
+    if v.size < 2:
+        return 1.0
+    if np.ptp(v) == 0:
+        return 1.0 if v[0] == 0 else 0.0
+    p = float(stats.ttest_1samp(v, 0.0).pvalue)
+    return p if np.isfinite(p) else 1.0
+
+
+def pixel_enrichment(
+    attributions: np.ndarray, type_masks: np.ndarray, planted: np.ndarray | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per tile and type: enrichment (N, K) and whether the tile is one the type is scored on (N, K).
+
+    enrichment = (mean a inside the mask - mean a over the tile) / sd of a over the tile. A tile counts for
+    type k when k is present and the tile's attribution is finite and not constant, and either k drives the
+    tile's target (at least half of k's pixels lie in ``planted``) or, if k drives the target of no tile,
+    the tile's target is driven by some type (``planted`` not empty). Without ``planted``: every tile
+    holding the type."""
     a = np.asarray(attributions, dtype=np.float64)
     n = a.shape[0]
     a = a.reshape(n, -1)
     m = np.asarray(type_masks, dtype=bool).reshape(n, type_masks.shape[1], -1)
-    abs_total = np.abs(a).sum(axis=1)
-    pos = np.clip(a, 0, None)
-    pos_total = pos.sum(axis=1)
-    usable = np.isfinite(a).all(axis=1) & (abs_total > 0) & np.isfinite(abs_total)
-    a = np.where(usable[:, None], a, 0.0)
-    pos = np.where(usable[:, None], pos, 0.0)
-    signed = np.einsum("nkp,np->nk", m, a) / np.where(usable, abs_total, 1.0)[:, None]
-    positive = np.einsum("nkp,np->nk", m, pos) / np.where(pos_total > 0, pos_total, 1.0)[:, None]
-    area = m.mean(axis=2)
-    present = m.any(axis=2) & usable[:, None]
-    count = present.sum(axis=0)
-
-    def avg(x: np.ndarray) -> np.ndarray:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(count > 0, (x * present).sum(axis=0) / count, np.nan)
-
-    return {"signed": avg(signed), "positive": avg(positive), "area": avg(area), "tiles": count}
-
-
-def pixel_flags(shares: dict[str, np.ndarray], factor: float) -> np.ndarray:
-    """Flag (K,) bool: mean positive-mass share > factor x mean area share (False where not assessable)."""
     with np.errstate(invalid="ignore"):
-        return np.nan_to_num(shares["positive"]) > factor * np.nan_to_num(shares["area"], nan=np.inf)
+        sd = a.std(axis=1)
+    usable = np.isfinite(a).all(axis=1) & np.isfinite(sd) & (sd > 0)
+    a = np.where(usable[:, None], a, 0.0)
+    area = m.sum(axis=2)
+    present = (area > 0) & usable[:, None]
+    inside = np.einsum("nkp,np->nk", m, a) / np.maximum(area, 1)
+    enrichment = (inside - a.mean(axis=1)[:, None]) / np.where(usable, sd, 1.0)[:, None]
+    if planted is None:
+        return enrichment, present
+    p = np.asarray(planted, dtype=bool).reshape(n, 1, -1)
+    drives = present & (np.einsum("nkp,nkp->nk", m, np.broadcast_to(p, m.shape)) >= 0.5 * np.maximum(area, 1))
+    positive_class = p.reshape(n, -1).any(axis=1)[:, None]
+    fallback = present & positive_class & ~drives.any(axis=0)[None, :]
+    return enrichment, drives | fallback
 
 
-def sign_agreement(a: np.ndarray, b: np.ndarray, tolerance: float = 0.0) -> float:
-    """Share of entries whose signs agree, values with |v| <= tolerance counting as 0."""
-    sa = np.where(np.abs(a) <= tolerance, 0, np.sign(a))
-    sb = np.where(np.abs(b) <= tolerance, 0, np.sign(b))
-    return float((sa == sb).mean())
+def pixel_evidence(
+    attributions: np.ndarray, type_masks: np.ndarray, names: list[str], planted: np.ndarray | None, alpha: float
+) -> tuple[dict[str, float], dict[str, bool]]:
+    """Importance (mean enrichment) and flag (the shared rule) per assessable type of a pixel method."""
+    enrichment, used = pixel_enrichment(attributions, type_masks, planted)
+    assessable = [k for k in range(len(names)) if used[:, k].any()]
+    importance, flagged = {}, {}
+    for k in assessable:
+        e = enrichment[used[:, k], k]
+        importance[names[k]] = float(e.mean())
+        flagged[names[k]] = bool(e.mean() > 0 and one_sample_p(e) * len(assessable) < alpha)
+    return importance, flagged
 
 
 # -- method importance and flags ----------------------------------------------------------------------------
-def _method_view(inputs: MetricInputs, factor: float) -> tuple[dict[str, float], dict[str, bool], str] | str:
+def _method_view(inputs: MetricInputs, alpha: float) -> tuple[dict[str, float], dict[str, bool], str] | str:
     """(importance per type, flag per type, kind) or a reason why the method cannot be assessed."""
     report = inputs.concept_report
     if report is not None and getattr(report, "type_importance", None) is not None:
@@ -92,13 +147,18 @@ def _method_view(inputs: MetricInputs, factor: float) -> tuple[dict[str, float],
         return imp, flagged, "concept"
     if inputs.type_masks is None or inputs.mask_names is None:
         return "needs a concept report (concept methods) or type masks (pixel methods)"
-    names = list(inputs.mask_names)
-    shares = pixel_type_shares(inputs.attributions, np.asarray(inputs.type_masks))
-    flags = pixel_flags(shares, factor)
-    assessable = shares["tiles"] > 0
-    imp = {t: float(shares["signed"][k]) for k, t in enumerate(names) if assessable[k]}
-    flagged = {t: bool(flags[k]) for k, t in enumerate(names) if assessable[k]}
+    imp, flagged = pixel_evidence(
+        inputs.attributions, np.asarray(inputs.type_masks), list(inputs.mask_names), inputs.planted, alpha
+    )
     return imp, flagged, "pixel"
+
+
+def _roles_of(inputs: MetricInputs) -> dict[str, str] | None:
+    if inputs.relied_types is None:
+        return None
+    types = list(inputs.mask_names or []) + list(inputs.relied_types)
+    types += list(inputs.lookalike_types or []) + list(inputs.unused_types or [])
+    return type_roles(types, list(inputs.relied_types), list(inputs.lookalike_types or []))
 
 
 def _one(key: str, truth: str, value: float, reason: str | None, settings: dict[str, Any]) -> MetricResult:
@@ -120,115 +180,104 @@ def _unusable_reason(inputs: MetricInputs) -> str | None:
 
 
 _CONCEPT = dict(family="concepts", per_tile=False)
-_FLAG_DOC = {"factor": "pixel methods flag a type when its mass share exceeds this multiple of its area share"}
+_ALPHA_DOC = {
+    "alpha": "pixel methods: level of the flagging rule (two-sided t-test of per-tile enrichment, Bonferroni "
+    "over types); concept methods flag with their own alpha setting"
+}
 
 
 @register_metric(
-    "concept-agreement",
-    definition="Spearman correlation (or sign agreement) across structure types between the method's "
-    "importance per type and the interventional importance",
-    citation="Interventional importance vs. method importance per type (concept scores after Kim et al., "
-    "ICML 2018; Ghorbani et al., NeurIPS 2019); rank agreement: common practice.",
-    value_range=(-1, 1),
+    "concept-recovery",
+    definition="AUROC (Mann-Whitney, ties 1/2) of the method's importance per structure type for telling the "
+    "types the model relies on (relied-on look-alikes included) from the unused types; importance on the class "
+    "the type drives (pixel methods: mean enrichment of the attribution in the type's mask; tcav: concept-run "
+    "minus random-run score; activation-clusters: probability drop of the matched cluster). Chance level 0.5 "
+    "(the mean over every assignment of the values to the types); 1 = every relied-on type ranked first",
+    citation="Interventional reliance from counterfactual twins vs. method importance per type (concept scores "
+    "after Kim et al., ICML 2018; Ghorbani et al., NeurIPS 2019); AUROC as the Mann-Whitney U / (n1 n2): "
+    "common practice.",
+    value_range=(0, 1),
     higher_is_better=True,
-    needs=("concepts", "interventional importance"),
-    defaults={"measure": "spearman", "tolerance": 0.0, "min_types": 3},
-    settings_doc={
-        "measure": "spearman (rank correlation) or sign (share of types whose signs agree)",
-        "tolerance": "for sign: values with |v| <= tolerance count as 0",
-        "min_types": "fewest types with both importances for a Spearman value",
-    },
+    needs=("concepts", "type roles"),
+    defaults={"alpha": 0.05},
+    settings_doc=_ALPHA_DOC,
     **_CONCEPT,
 )
-def _concept_agreement(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    key = "concept-agreement"
-    check_choice(key, "measure", settings["measure"], ("spearman", "sign"))
-    check_number(key, "tolerance", settings["tolerance"], 0, np.inf)
-    check_number(key, "min_types", settings["min_types"], 2, 10_000, integer=True)
-    if inputs.type_importance is None:
-        return _one(key, truth, np.nan, "needs the interventional importance per type (truth module)", settings)
+def _concept_recovery(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
+    key = "concept-recovery"
+    check_number(key, "alpha", settings["alpha"], 0, 1)
+    roles = _roles_of(inputs)
+    if roles is None:
+        return _one(key, truth, np.nan, "needs the type roles (relied-on types from the truth module)", settings)
     if (reason := _unusable_reason(inputs)) is not None:
         return _one(key, truth, np.nan, reason, settings)
-    view = _method_view(inputs, 2.0)
+    view = _method_view(inputs, float(settings["alpha"]))
     if isinstance(view, str):
         return _one(key, truth, np.nan, view, settings)
-    method, _, kind = view
-    types = [
-        t
-        for t in inputs.type_importance
-        if t in method and np.isfinite(method[t]) and np.isfinite(inputs.type_importance[t])
-    ]
-    x = np.array([method[t] for t in types])
-    y = np.array([float(inputs.type_importance[t]) for t in types])
-    if settings["measure"] == "sign":
-        if not types:
-            return _one(key, truth, np.nan, "no structure type has both importances", settings)
-        return _one(key, truth, sign_agreement(x, y, float(settings["tolerance"])), None, settings)
-    if len(types) < int(settings["min_types"]):
+    importance = {t: v for t, v in view[0].items() if np.isfinite(v)}
+    value = recovery_auroc(importance, roles)
+    if not np.isfinite(value):
+        groups = {
+            r: [t for t, q in roles.items() if (q == "unused") == (r == "unused") and t in importance]
+            for r in ("relied", "unused")
+        }
+        empty = [r for r, ts in groups.items() if not ts]
         return _one(
-            key,
-            truth,
-            np.nan,
-            f"only {len(types)} structure type(s) with both importances "
-            f"(need {settings['min_types']}) for a rank correlation",
-            settings,
+            key, truth, np.nan, f"no {' and no '.join(empty)} type assessed by the method: AUROC undefined", settings
         )
-    rho = spearman_rows(x[None, None, :], y[None, None, :])[0]
-    if not np.isfinite(rho):
-        which = "method's" if np.ptp(x) == 0 else "interventional"
-        return _one(
-            key, truth, np.nan, f"the {which} importance is equal for every type: rank correlation undefined", settings
-        )
-    return _one(key, truth, float(rho), None, settings)
+    return _one(key, truth, value, None, settings)
 
 
 def _flag_share(
-    key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any], types: list[str] | None, role: str
+    key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any], wanted: tuple[str, ...]
 ) -> MetricResult:
-    check_number(key, "factor", settings["factor"], 0, np.inf)
-    if types is None:
-        return _one(key, truth, np.nan, f"needs the {role} types (type roles)", settings)
+    check_number(key, "alpha", settings["alpha"], 0, 1)
+    roles = _roles_of(inputs)
+    what = " or ".join(wanted)
+    if roles is None:
+        return _one(key, truth, np.nan, f"needs the {what} types (type roles)", settings)
     if (reason := _unusable_reason(inputs)) is not None:
         return _one(key, truth, np.nan, reason, settings)
-    view = _method_view(inputs, float(settings["factor"]))
+    view = _method_view(inputs, float(settings["alpha"]))
     if isinstance(view, str):
         return _one(key, truth, np.nan, view, settings)
     _, flagged, kind = view
-    assessed = [t for t in dict.fromkeys(types) if t in flagged]
+    types = [t for t, r in roles.items() if r in wanted]
+    assessed = [t for t in types if t in flagged]
     if not assessed:
-        where = "present in any tile" if kind == "pixel" else "in the concept report"
-        return _one(key, truth, np.nan, f"none of the {role} types ({', '.join(types) or 'none'}) is {where}", settings)
+        where = "present in any scored tile" if kind == "pixel" else "in the concept report"
+        return _one(key, truth, np.nan, f"none of the {what} types ({', '.join(types) or 'none'}) is {where}", settings)
     return _one(key, truth, float(np.mean([flagged[t] for t in assessed])), None, settings)
 
 
 @register_metric(
     "concept-detection",
-    definition="share of the types the model relies on that the method flags",
+    definition="share of the types the model relies on (relied-on types and relied-on look-alikes) that the "
+    "method flags; flag = positive effect on the type's class, significant by a two-sided t-test over the "
+    "method's samples at alpha with Bonferroni over types (the same rule for every family)",
     citation="Common practice (detection rate against interventional reliance from counterfactual twins).",
     value_range=(0, 1),
     higher_is_better=True,
     needs=("concepts", "type roles"),
-    defaults={"factor": 2.0},
-    settings_doc=_FLAG_DOC,
+    defaults={"alpha": 0.05},
+    settings_doc=_ALPHA_DOC,
     **_CONCEPT,
 )
 def _concept_detection(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    return _flag_share("concept-detection", inputs, truth, settings, inputs.relied_types, "relied-on")
+    return _flag_share("concept-detection", inputs, truth, settings, ("relied-on", "relied-on look-alike"))
 
 
 @register_metric(
     "concept-false-alarm",
-    definition="share of the look-alike and unused types that the method flags",
-    citation="Common practice (false-alarm rate against look-alikes and unused types).",
+    definition="share of the unused types (look-alikes the model does not rely on included) that the method "
+    "flags; a relied-on look-alike is never a false alarm; flag rule as for concept-detection",
+    citation="Common practice (false-alarm rate against types the model does not use).",
     value_range=(0, 1),
     higher_is_better=False,
     needs=("concepts", "type roles"),
-    defaults={"factor": 2.0},
-    settings_doc=_FLAG_DOC,
+    defaults={"alpha": 0.05},
+    settings_doc=_ALPHA_DOC,
     **_CONCEPT,
 )
 def _concept_false_alarm(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    types = None
-    if inputs.lookalike_types is not None or inputs.unused_types is not None:
-        types = list(inputs.lookalike_types or []) + list(inputs.unused_types or [])
-    return _flag_share("concept-false-alarm", inputs, truth, settings, types, "look-alike or unused")
+    return _flag_share("concept-false-alarm", inputs, truth, settings, ("unused",))

@@ -47,7 +47,7 @@ TORCH_TRAIN_DEFAULTS: dict[str, Any] = {
     "batch_size": 64,
     "augment": True,
 }
-ARCH_KEYS = {"width", "dropout", "n_maps"}
+ARCH_KEYS = {"width", "dropout"}
 
 
 @dataclass

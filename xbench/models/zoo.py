@@ -10,8 +10,8 @@ the module after the last ReLU of the last conv block (its rectified output), wh
 - ``cnn``: plain conv stack (conv, batch-norm, ReLU), global average pooling and a linear head.
 - ``resnet``: a tiny residual network after He et al. (CVPR 2016): a stem, three basic blocks with identity
   or 1x1-projection shortcuts, a 1x1 mixing conv after the last addition, global pooling, linear head.
-- ``bottleneck``: a small U-shaped encoder-decoder after Ronneberger et al. (MICCAI 2015) that produces a
-  few evidence maps at input resolution, followed by a small classifier head on their mean and max.
+- ``separable``: a depthwise-separable network after Howard et al. (MobileNets, 2017): a stem conv, four
+  depthwise + pointwise blocks, global pooling, linear head.
 """
 
 from __future__ import annotations
@@ -23,6 +23,7 @@ import torch
 from torch import nn
 
 from xbench.errors import XbenchInputError
+from xbench.names import renamed_hint
 
 
 class BandNorm(nn.Module):
@@ -136,88 +137,61 @@ class TinyResNet(nn.Module):
         return self.head(self.dropout(self.flatten(self.gap(x))))
 
 
-class ConvUnit(nn.Module):
-    """One or two 3x3 conv + batch-norm + ReLU layers (the U-Net unit; one layer at full resolution to
-    keep CPU cost low)."""
+class SeparableBlock(nn.Module):
+    """A depthwise-separable convolution (Howard et al. 2017): a 3x3 depthwise conv (one filter per
+    channel, optional stride) and a 1x1 pointwise conv that mixes channels, each with batch-norm and ReLU."""
 
-    def __init__(self, c_in: int, c_out: int, double: bool = True):
+    def __init__(self, c_in: int, c_out: int, stride: int = 1):
         super().__init__()
-        self.conv1 = nn.Conv2d(c_in, c_out, 3, padding=1, bias=False)
-        self.bn1 = nn.BatchNorm2d(c_out)
-        self.relu1 = nn.ReLU()
-        self.double = double
-        if double:
-            self.conv2 = nn.Conv2d(c_out, c_out, 3, padding=1, bias=False)
-            self.bn2 = nn.BatchNorm2d(c_out)
-            self.relu2 = nn.ReLU()
+        self.depthwise = nn.Conv2d(c_in, c_in, 3, stride=stride, padding=1, groups=c_in, bias=False)
+        self.depthwise_bn = nn.BatchNorm2d(c_in)
+        self.depthwise_relu = nn.ReLU()
+        self.pointwise = nn.Conv2d(c_in, c_out, 1, bias=False)
+        self.pointwise_bn = nn.BatchNorm2d(c_out)
+        self.pointwise_relu = nn.ReLU()
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        x = self.relu1(self.bn1(self.conv1(x)))
-        if self.double:
-            x = self.relu2(self.bn2(self.conv2(x)))
-        return x
+        x = self.depthwise_relu(self.depthwise_bn(self.depthwise(x)))
+        return self.pointwise_relu(self.pointwise_bn(self.pointwise(x)))
 
 
-class EvidenceUNet(nn.Module):
-    """A two-level U-Net producing ``n_maps`` evidence maps at input resolution, then a small head.
+class SeparableNet(nn.Module):
+    """A small depthwise-separable network after Howard et al. (MobileNets, arXiv:1704.04861, 2017):
+    a full 3x3 stem conv, four separable blocks (the first two with stride 2), global average pooling
+    and a linear head. ``explain_layer`` is the ReLU after the last block's pointwise conv (the rectified
+    output of the last conv block)."""
 
-    Encoder: full resolution -> 1/2 -> 1/4 (bottom); decoder: nearest upsampling with skip
-    concatenations back to full resolution; a 1x1 conv makes the non-negative evidence maps. The head
-    reads each map's spatial mean and maximum (the maximum lets a thin road or a small clearing count as
-    much as a large one), so all class evidence passes through the maps.
-    """
-
-    def __init__(self, n_bands: int, n_classes: int, width: int = 8, n_maps: int = 4, dropout: float = 0.1):
+    def __init__(self, n_bands: int, n_classes: int, width: int = 16, dropout: float = 0.1):
         super().__init__()
         w = int(width)
         self.norm = BandNorm(n_bands)
-        self.enc1 = ConvUnit(n_bands, w, double=False)
-        self.down1 = nn.MaxPool2d(2)
-        self.enc2 = ConvUnit(w, 2 * w)
-        self.down2 = nn.MaxPool2d(2)
-        self.bottom = ConvUnit(2 * w, 4 * w)
-        self.up2 = nn.Upsample(scale_factor=2, mode="nearest")
-        self.dec2 = ConvUnit(4 * w + 2 * w, 2 * w, double=False)
-        self.up1 = nn.Upsample(scale_factor=2, mode="nearest")
-        self.dec1 = ConvUnit(2 * w + w, w, double=False)
-        self.evidence = nn.Conv2d(w, int(n_maps), 1)
-        self.evidence_relu = nn.ReLU()
+        self.stem = nn.Conv2d(n_bands, w, 3, padding=1, bias=False)
+        self.stem_bn = nn.BatchNorm2d(w)
+        self.stem_relu = nn.ReLU()
+        self.block1 = SeparableBlock(w, 2 * w, stride=2)
+        self.block2 = SeparableBlock(2 * w, 2 * w, stride=2)
+        self.block3 = SeparableBlock(2 * w, 4 * w)
+        self.block4 = SeparableBlock(4 * w, 4 * w)
+        self.gap = nn.AdaptiveAvgPool2d(1)
         self.flatten = nn.Flatten()
         self.dropout = nn.Dropout(dropout)
-        self.head = nn.Linear(2 * int(n_maps), n_classes)
-        self.explain_layer = "evidence_relu"  # rectified output of the last conv block
-
-    def evidence_maps(self, x: torch.Tensor) -> torch.Tensor:
-        """The non-negative evidence maps (N, n_maps, H, W) at input resolution."""
-        h, w = x.shape[-2:]
-        if h % 4 or w % 4:
-            raise XbenchInputError(
-                "bottleneck model input",
-                "tile size must be a multiple of 4",
-                expected="H, W divisible by 4",
-                found=(h, w),
-            )
-        e1 = self.enc1(self.norm(x))
-        e2 = self.enc2(self.down1(e1))
-        b = self.bottom(self.down2(e2))
-        d2 = self.dec2(torch.cat([self.up2(b), e2], dim=1))
-        d1 = self.dec1(torch.cat([self.up1(d2), e1], dim=1))
-        return self.evidence_relu(self.evidence(d1))
+        self.head = nn.Linear(4 * w, n_classes)
+        self.explain_layer = "block4.pointwise_relu"
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        maps = self.evidence_maps(x)
-        pooled = torch.cat([maps.mean(dim=(2, 3)), maps.amax(dim=(2, 3))], dim=1)
-        return self.head(self.dropout(self.flatten(pooled)))
+        x = self.stem_relu(self.stem_bn(self.stem(self.norm(x))))
+        x = self.block4(self.block3(self.block2(self.block1(x))))
+        return self.head(self.dropout(self.flatten(self.gap(x))))
 
 
-TORCH_KINDS = ("cnn", "resnet", "bottleneck")
+TORCH_KINDS = ("cnn", "resnet", "separable")
 ALL_KINDS = TORCH_KINDS + ("forest",)
 
 # Architecture hyper-parameters each kind accepts (training hyper-parameters live in train.py).
 ARCH_PARAMS: dict[str, dict[str, type | tuple[type, ...]]] = {
     "cnn": {"width": int, "dropout": (int, float)},
     "resnet": {"width": int, "dropout": (int, float)},
-    "bottleneck": {"width": int, "n_maps": int, "dropout": (int, float)},
+    "separable": {"width": int, "dropout": (int, float)},
 }
 
 
@@ -227,9 +201,11 @@ def build_torch_model(kind: str, n_bands: int, n_classes: int, **arch: Any) -> n
         return PlainCNN(n_bands, n_classes, **arch)
     if kind == "resnet":
         return TinyResNet(n_bands, n_classes, **arch)
-    if kind == "bottleneck":
-        return EvidenceUNet(n_bands, n_classes, **arch)
-    raise XbenchInputError("model kind", "unknown model kind", expected=" | ".join(ALL_KINDS), found=kind)
+    if kind == "separable":
+        return SeparableNet(n_bands, n_classes, **arch)
+    hint = renamed_hint("model", kind)
+    problem = "unknown model kind" + (f": {hint}" if hint else "")
+    raise XbenchInputError("model kind", problem, expected=" | ".join(ALL_KINDS), found=kind)
 
 
 def count_parameters(module: nn.Module) -> int:

@@ -534,6 +534,28 @@ CATALOGUE: dict[str, BibEntry] = {
             pages="770--778",
             doi="10.1109/CVPR.2016.90",
         ),
+        _paper(
+            "howard2017mobilenets",
+            "misc",
+            [
+                "Howard, Andrew G.",
+                "Zhu, Menglong",
+                "Chen, Bo",
+                "Kalenichenko, Dmitry",
+                "Wang, Weijun",
+                "Weyand, Tobias",
+                "Andreetto, Marco",
+                "Adam, Hartwig",
+            ],
+            "MobileNets: Efficient convolutional neural networks for mobile vision applications",
+            "howpublished",
+            "arXiv preprint arXiv:1704.04861",
+            "2017",
+            "howard",
+            eprint="1704.04861",
+            archiveprefix="arXiv",
+            doi="10.48550/arXiv.1704.04861",
+        ),
     ]
 }
 
@@ -543,7 +565,7 @@ STATISTICS_KEYS = {
     "holm": "holm1979simple",
     "friedman-nemenyi": "demsar2006statistical",
 }
-MODEL_KEYS = {"resnet": "he2016deep"}
+MODEL_KEYS = {"resnet": "he2016deep", "separable": "howard2017mobilenets"}
 
 
 def _fold(text: str) -> str:

@@ -24,6 +24,7 @@ import pandas as pd
 
 from xbench.errors import XbenchInputError
 from xbench.report import breakdown as B
+from xbench.report import concept_figures as CF
 from xbench.report import figures as F
 from xbench.report import page as P
 from xbench.report import recommend as R
@@ -166,9 +167,11 @@ CAPTIONS = {
         "(CD = {cd:.2f} at α = {alpha:g}, Demsar 2006): those are not significantly different."
     ),
     "clusters": (
-        "Top: tiles in natural colour and their activation-cluster maps (one colour per cluster). "
-        "Bottom: for each cluster, histograms over tiles of the change in each class's probability "
-        "when that cluster is occluded."
+        "Top: tiles in natural colour under their activation-cluster maps (one colour per cluster). "
+        "Bottom: mean drop of each class's probability (original minus replaced) when a cluster is "
+        "replaced inside the network, on the tiles of that class holding the cluster, with 95 % "
+        "t-intervals and n; positive = the cluster supports the class. Rows: the structure type each "
+        "cluster is labelled with and its IoU (no type below the explainer's minimum overlap)."
     ),
     "reliance": (
         "Mean drop in the target-class probability when all structures of a type (or the spurious "
@@ -264,7 +267,9 @@ def make_figures(
     for a in sorted(runs.clusters(), key=lambda a: (a.task, a.model, a.seed)):
         title = f"{a.task}, model {a.model}, seed {a.seed}"
         emit(
-            lambda a=a, title=title: F.clusters_figure(a.load(), title),
+            lambda a=a, title=title: CF.cluster_drop_figure(
+                a.load(), CF.rows_for(runs.concepts, a.task, a.model, a.seed), title
+            ),
             F.file_stem("clusters", a.task, a.model, a.seed),
             "clusters",
             f"Activation clusters: {title}",
