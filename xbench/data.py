@@ -32,6 +32,9 @@ class TilePack:
     clean_labels: optional int64 (N,), labels before label noise.
     cue: optional bool (N,), whether the spurious cue was applied to the tile.
     coverage: optional float32 (N, K, H, W) sub-pixel area fraction per structure type.
+    georef: optional float64 (N, 9) where each tile came from in a georeferenced raster: source index (into
+        ``meta["georef"]["sources"]``), pixel row and column of its top-left corner, and the tile's affine
+        transform a, b, c, d, e, f (``meta["georef"]["crs"]`` holds each source's CRS).
     meta: free JSON-serialisable information (recipe, seeds, label rule text...).
     """
 
@@ -46,6 +49,7 @@ class TilePack:
     cue: np.ndarray | None = None
     coverage: np.ndarray | None = None
     meta: dict[str, Any] = field(default_factory=dict)
+    georef: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.images.shape[0])
@@ -72,6 +76,7 @@ class TilePack:
             cue=pick(self.cue),
             coverage=pick(self.coverage),
             meta=dict(self.meta),
+            georef=pick(self.georef),
         )
 
     def type_mask(self, names: list[str] | tuple[str, ...]) -> np.ndarray:
@@ -106,8 +111,10 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
         bad = int(np.argwhere(~finite)[0][0])
         raise XbenchInputError(f"{source}: array 'images'", f"non-finite values (NaN or inf), first in tile {bad}")
     lo, hi = float(img.min()), float(img.max())
+    # a raster read with the out-of-range policy "keep" declares it; its values stay as measured
+    kept = pack.meta.get("out_of_range") == "keep"
     _check(
-        lo >= 0.0 and hi <= 1.0,
+        kept or (lo >= 0.0 and hi <= 1.0),
         f"{source}: array 'images'",
         "reflectance out of range",
         "values in [0, 1]",
@@ -161,6 +168,8 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
         _check(arr.shape == want, f"{source}: array '{name}'", "wrong shape", str(want), arr.shape)
         _check(arr.dtype == np.float32, f"{source}: array '{name}'", "wrong dtype", "float32", str(arr.dtype))
         _check(bool(np.isfinite(arr).all()), f"{source}: array '{name}'", "non-finite values", "finite", "NaN/inf")
+    if pack.georef is not None:
+        _check(pack.georef.shape == (n, 9), f"{source}: array 'georef'", "wrong shape", f"({n}, 9)", pack.georef.shape)
     for name, arr in (("clean_labels", pack.clean_labels), ("cue", pack.cue)):
         if arr is not None:
             _check(arr.shape == (n,), f"{source}: array '{name}'", "wrong shape", f"({n},)", arr.shape)
@@ -181,7 +190,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
         "mask_names": np.array(pack.mask_names),
         "meta_json": np.array(json.dumps(pack.meta, sort_keys=True)),
     }
-    for name in ("twins", "clean_labels", "cue", "coverage"):
+    for name in ("twins", "clean_labels", "cue", "coverage", "georef"):
         if getattr(pack, name) is not None:
             arrays[name] = getattr(pack, name)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -231,5 +240,6 @@ def load_pack(path: str | Path) -> TilePack:
             cue=data["cue"] if "cue" in data.files else None,
             coverage=data["coverage"] if "coverage" in data.files else None,
             meta=meta,
+            georef=data["georef"] if "georef" in data.files else None,
         )
     return validate_pack(pack, str(path))
