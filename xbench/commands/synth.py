@@ -46,6 +46,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="probability that a tile holds a structure type (repeatable), e.g. road=1",
     )
     parser.add_argument("--out", help="output folder")
+    parser.add_argument(
+        "--backgrounds",
+        nargs="+",
+        metavar="RASTER",
+        help="plant the structures into the tiles of these GeoTIFF files or folders ('@vellardine': a generated "
+        "scene); each tile's twin is its untouched background",
+    )
+    parser.add_argument(
+        "--out-of-range", default="clip", choices=("clip", "drop-tile"), help="backgrounds: values outside [0, 1]"
+    )
     parser.add_argument("--no-preview", action="store_true", help="skip preview.png")
     parser.add_argument("--list", action="store_true", help="list the shipped recipes and exit")
 
@@ -94,16 +104,37 @@ def run(args: argparse.Namespace) -> int:
         bar = tqdm(total=args.count, unit="tile", desc=f"synth {recipe.name}", file=sys.stderr)
         progress = bar.update
     try:
-        pack, scenes = synthesize(
-            recipe,
-            args.count,
-            args.seed,
-            size=args.size,
-            twins=args.twins,
-            presence=_presence(args.presence),
-            label_noise=args.label_noise,
-            progress=progress,
-        )
+        if args.backgrounds:
+            from xbench.imagery.raster import RasterOptions, TilingReport
+            from xbench.imagery.taskdata import transplant_from_rasters
+            from xbench.tasks import cache_root
+
+            pack, scenes = transplant_from_rasters(
+                recipe,
+                args.backgrounds,
+                args.count,
+                args.seed,
+                args.size,
+                cache_root(),
+                RasterOptions(out_of_range=args.out_of_range),
+                tiling_progress=True,
+                twins=args.twins,
+                presence=_presence(args.presence),
+                label_noise=args.label_noise,
+                progress=progress,
+            )
+            print(f"backgrounds: {TilingReport(**pack.meta['tiling']).summary()}")
+        else:
+            pack, scenes = synthesize(
+                recipe,
+                args.count,
+                args.seed,
+                size=args.size,
+                twins=args.twins,
+                presence=_presence(args.presence),
+                label_noise=args.label_noise,
+                progress=progress,
+            )
     finally:
         if bar is not None:
             bar.close()

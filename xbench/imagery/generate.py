@@ -82,3 +82,87 @@ def vellardine_background_path(cache: str | Path, size: int = 640, seed: int = 1
     if not path.is_file():
         write_vellardine_geotiff(path, size=size, seed=seed)
     return path
+
+
+def write_annotated_example(
+    folder: str | Path, tiles_per_side: int = 12, tile: int = 64, seed: int = 5, presence: dict | None = None
+) -> tuple[Path, Path]:
+    """A Vellardine scene with roads and clear-cuts, and their digitized outlines, as a user would hold them.
+
+    The raster is a mosaic of ``tiles_per_side``**2 synthetic tiles (``tile`` pixels each) written like
+    :func:`write_vellardine_geotiff` (uint16, scale 1e-4, nodata 0 in a corner). ``annotations.geojson``
+    (WGS 84, as GeoJSON requires) holds each planted road as a line (``kind = "road"``; its width is left to
+    the task's ``line_width``, as digitized centre lines are) and each clear-cut as a polygon
+    (``kind = "clearing"``). Returns (raster path, annotation path).
+    """
+    import json
+
+    import rasterio
+    from rasterio.transform import from_origin
+    from rasterio.warp import transform_geom
+
+    from xbench.scenes import BANDS, synthesize
+
+    presence = presence or {
+        "road": 0.35,
+        "clearing": 0.35,
+        "river": 0.2,
+        "building": 0.0,
+        "corridor": 0.0,
+        "natural-gap": 0.0,
+        "outcrop": 0.0,
+    }
+    n = tiles_per_side
+    pack, scenes = synthesize("conifer-upland", n * n, seed, size=tile, presence=presence)
+    side = n * tile
+    refl = pack.images.reshape(n, n, len(BANDS), tile, tile).transpose(2, 0, 3, 1, 4).reshape(len(BANDS), side, side)
+    dn = np.clip(np.rint(refl.astype(np.float64) / SCALE), 1, 65535).astype(np.uint16)
+    yy, xx = np.mgrid[0:side, 0:side]
+    dn[:, (yy + xx) < 0.1 * side] = NODATA
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    raster = folder / "scene.tif"
+    transform = from_origin(ORIGIN[0], ORIGIN[1], PIXEL, PIXEL)
+    profile = {
+        "driver": "GTiff",
+        "width": side,
+        "height": side,
+        "count": len(BANDS),
+        "dtype": "uint16",
+        "crs": CRS,
+        "transform": transform,
+        "nodata": NODATA,
+        "tiled": True,
+        "blockxsize": 128,
+        "blockysize": 128,
+        "compress": "deflate",
+    }
+    with rasterio.open(raster, "w", **profile) as dst:
+        dst.write(dn)
+        dst.scales = (SCALE,) * len(BANDS)
+        dst.offsets = (0.0,) * len(BANDS)
+        for i, name in enumerate(BANDS, start=1):
+            dst.set_band_description(i, name)
+
+    def world(points: list, r0: int, c0: int) -> list[list[float]]:
+        # pixel coordinates (x right, y down) of a tile at (r0, c0) -> map coordinates of the mosaic
+        return [[ORIGIN[0] + (c0 + x) * PIXEL, ORIGIN[1] - (r0 + y) * PIXEL] for x, y in points]
+
+    features = []
+    for t, scene in enumerate(scenes):
+        r0, c0 = (t // n) * tile, (t % n) * tile
+        for inst in scene.instances:
+            p = inst.params
+            if inst.kind == "road":
+                lines = [p["path"]] + [b["path"] for b in p["branches"]]
+                geom = {"type": "MultiLineString", "coordinates": [world(line, r0, c0) for line in lines]}
+            elif inst.kind == "clearing":
+                ring = world(p["vertices"], r0, c0)
+                geom = {"type": "Polygon", "coordinates": [ring + ring[:1]]}
+            else:
+                continue
+            geom = transform_geom(CRS, "EPSG:4326", geom, precision=9)
+            features.append({"type": "Feature", "properties": {"kind": inst.kind}, "geometry": geom})
+    annotations = folder / "annotations.geojson"
+    annotations.write_text(json.dumps({"type": "FeatureCollection", "features": features}))
+    return raster, annotations

@@ -247,7 +247,10 @@ def iter_raster_tiles(
         rows, cols = info.height // size, info.width // size
         if rows == 0 or cols == 0:
             raise XbenchInputError(
-                str(path), "raster smaller than one tile", expected=f">= {size} x {size}", found=(info.height, info.width)
+                str(path),
+                "raster smaller than one tile",
+                expected=f">= {size} x {size}",
+                found=(info.height, info.width),
             )
         report.files.append(str(path))
         report.grid_tiles += rows * cols

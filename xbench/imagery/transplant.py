@@ -167,4 +167,3 @@ def transplant(
         pack.georef = np.asarray(georef, dtype=np.float64)[which]
         pack.meta["georef"] = georef_meta or {}
     return pack, scenes
-
