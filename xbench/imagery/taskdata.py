@@ -167,9 +167,10 @@ def split_ranges(m: int, counts: dict[str, int]) -> dict[str, tuple[int, int]]:
     if m < 3:
         raise XbenchInputError("backgrounds", "too few background tiles for three splits", expected=">= 3", found=m)
     total = sum(counts.values())
-    edges = [0]
+    edges, cum = [0], 0
     for s in ("train", "val"):
-        edges.append(min(max(edges[-1] + 1, round(edges[-1] + m * counts[s] / total)), m - (3 - len(edges))))
+        cum += counts[s]
+        edges.append(min(max(edges[-1] + 1, round(m * cum / total)), m - (3 - len(edges))))
     edges.append(m)
     return {s: (edges[i], edges[i + 1]) for i, s in enumerate(("train", "val", "test"))}
 

@@ -98,7 +98,9 @@ def read_annotations(
                 geom = shapely.geometry.shape(transform_geom(src_crs, dst_crs, shapely.geometry.mapping(geom)))
             except Exception as exc:
                 raise XbenchInputError(
-                    f"{where}: feature {i}", f"cannot reproject to the raster's CRS ({exc})", found=meta["crs"]
+                    f"{where}: feature {i}",
+                    f"coordinates do not fit the file's CRS, cannot reproject to the raster's ({exc})",
+                    found=meta["crs"],
                 ) from None
         gtype = geom.geom_type
         if "Point" in gtype:
