@@ -544,7 +544,7 @@ def _load_raster_data(sec: dict[str, Any], f: str) -> tuple[DataSpec, Any]:
             raise XbenchInputError(f"{w}.{key}", "missing required key (data.rasters is set)")
     rule = scenes.parse_label_rule(_expect(sec["labels"], (dict,), f"{w}.labels", "a label-rule table"), f"{w}.labels")
     counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
-    path, raw = taskdata.annotated_pack_for_task(sec, f, rule, sum(counts.values()), cache_root())
+    path, raw = taskdata.annotated_pack_for_task(sec, f, rule, counts, cache_root())
     pack_sec = {"pack": str(path), "train": counts["train"], "val": counts["val"], "test": counts["test"]}
     pack_sec["drives"] = {c: list(rule.driving_types(i)) for i, c in enumerate(rule.classes)}
     if "lookalikes" in sec:

@@ -164,5 +164,85 @@ def write_annotated_example(
             geom = transform_geom(CRS, "EPSG:4326", geom, precision=9)
             features.append({"type": "Feature", "properties": {"kind": inst.kind}, "geometry": geom})
     annotations = folder / "annotations.geojson"
-    annotations.write_text(json.dumps({"type": "FeatureCollection", "features": features}))
+    tmp = folder / "annotations.geojson.tmp"
+    tmp.write_text(json.dumps({"type": "FeatureCollection", "features": features}))
+    tmp.replace(annotations)
     return raster, annotations
+
+
+EXAMPLE_TASK = """# Real-style data in: a GeoTIFF scene and the roads and clear-cuts digitized in a GeoJSON file.
+name = "my-geotiff"
+seeds = [0]
+
+[data]
+rasters = ["scene.tif"]
+annotations = "annotations.geojson"
+class_attribute = "kind"
+line_width = 12.0   # metres: digitized road centre lines are buffered by 6 m on each side
+size = 32
+train = 380
+val = 90
+test = 90
+
+[data.labels]
+classes = ["intact", "road", "clearing"]
+default = "intact"
+
+[[data.labels.rule]]
+class = "clearing"
+type = "clearing"
+stat = "coverage"
+above = 0.01
+
+[[data.labels.rule]]
+class = "road"
+type = "road"
+stat = "coverage"
+above = 0.008
+
+[[models]]
+name = "cnn"
+kind = "cnn"
+width = 16
+epochs = 10
+
+[explainers]
+keys = ["gradient", "integrated-gradients", "grad-cam", "occlusion", "random", "edges", "oracle"]
+
+[metrics]
+keys = ["mass-accuracy", "pointing-game", "mask-auroc", "deletion-auc", "insertion-auc", "gini", "seconds"]
+
+# real tiles have no twins: removal curves blur the removed pixels instead
+[metrics.settings.deletion-auc]
+baseline = "blur"
+
+[metrics.settings.insertion-auc]
+baseline = "blur"
+
+[run]
+explain_tiles = 32
+gallery_tiles = 4
+"""
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m xbench.imagery.generate FOLDER``: write the annotated example and a task file using it."""
+    import argparse
+
+    parser = argparse.ArgumentParser(description="write a GeoTIFF scene, its GeoJSON annotations and a task file")
+    parser.add_argument("folder")
+    parser.add_argument("--background-only", action="store_true", help="only the transplant background scene")
+    args = parser.parse_args(argv)
+    folder = Path(args.folder)
+    if args.background_only:
+        print(write_vellardine_geotiff(folder / "background.tif"))
+        return 0
+    raster, annotations = write_annotated_example(folder)
+    task = folder / "task.toml"
+    task.write_text(EXAMPLE_TASK)
+    print(f"wrote {raster}, {annotations} and {task}; try: xbench run {task}")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

@@ -83,7 +83,7 @@ class RasterInfo:
     path: str
     width: int
     height: int
-    crs: str  # WKT ('' when the file has none)
+    crs: str  # "EPSG:nnnn" or WKT ('' when the file has none)
     transform: tuple[float, ...]  # affine a, b, c, d, e, f
     band_names: list[str]
     band_index: list[int]  # 1-based file bands, in the order of band_names
@@ -169,7 +169,7 @@ def _info(src: Any, where: str, options: RasterOptions) -> RasterInfo:
         path=where,
         width=int(src.width),
         height=int(src.height),
-        crs=src.crs.to_wkt() if src.crs else "",
+        crs=src.crs.to_string() if src.crs else "",  # "EPSG:nnnn" when it has a code, else WKT
         transform=(t.a, t.b, t.c, t.d, t.e, t.f),
         band_names=names,
         band_index=index,

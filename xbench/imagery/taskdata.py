@@ -60,8 +60,9 @@ ANNOTATED_KEYS = RASTER_KEYS | {
     "labels",
     "lookalikes",
 }
-GENERATED = "@vellardine"
-PACK_VERSION = 1  # bump when the annotated pack's content changes for the same inputs
+GENERATED = "@vellardine"  # the generated background scene (transplant demo)
+GENERATED_ANNOTATED = "@vellardine-annotated"  # the generated scene with roads and clear-cuts, and their GeoJSON
+PACK_VERSION = 2  # bump when the annotated pack's content changes for the same inputs
 
 
 def _num(value: Any, where: str) -> float:
@@ -121,11 +122,25 @@ def resolve_rasters(ref: Any, where: str, task_file: str, cache: Path) -> list[P
 
             out.append(vellardine_background_path(cache))
             continue
+        if r == GENERATED_ANNOTATED:
+            out.append(annotated_example(cache)[0])
+            continue
         try:
             out.extend(raster_files(r, base=Path(task_file).parent))
         except XbenchInputError as exc:
             raise XbenchInputError(where, str(exc)) from None
     return out
+
+
+def annotated_example(cache: Path) -> tuple[Path, Path]:
+    """The generated annotated Vellardine example (raster, GeoJSON) under the cache, written on first use."""
+    from xbench.imagery.generate import write_annotated_example
+
+    folder = cache / "imagery" / "vellardine-annotated"
+    raster, annotations = folder / "scene.tif", folder / "annotations.geojson"
+    if not (raster.is_file() and annotations.is_file()):
+        write_annotated_example(folder)
+    return raster, annotations
 
 
 def split_backgrounds(sec: dict[str, Any], f: str, cache: Path) -> tuple[dict[str, Any], dict[str, Any]]:
@@ -204,7 +219,7 @@ def transplant_split(task: Any, split: str, seed: int) -> tuple[Any, list[Any]]:
 
 
 def annotated_pack_for_task(
-    sec: dict[str, Any], f: str, rule: Any, n_tiles: int, cache: Path
+    sec: dict[str, Any], f: str, rule: Any, split_counts: dict[str, int], cache: Path
 ) -> tuple[Path, dict[str, Any]]:
     """Build (or reuse from the cache) the annotated tile pack of a `[data] rasters = ...` section.
 
@@ -215,6 +230,7 @@ def annotated_pack_for_task(
     from xbench.imagery.annotate import annotated_pack
 
     w = f"{f}: data"
+    n_tiles = sum(split_counts.values())
     extra = sorted(set(sec) - ANNOTATED_KEYS)
     if extra:
         raise XbenchInputError(f"{w}.{extra[0]}", "unknown key", expected="one of " + ", ".join(sorted(ANNOTATED_KEYS)))
@@ -229,7 +245,10 @@ def annotated_pack_for_task(
     ann = sec["annotations"]
     if not isinstance(ann, str):
         raise XbenchInputError(f"{w}.annotations", "wrong type", expected="a path to a vector file", found=ann)
-    ann_path = Path(ann) if Path(ann).is_absolute() else Path(f).parent / ann
+    if ann == GENERATED_ANNOTATED:
+        ann_path = annotated_example(cache)[1]
+    else:
+        ann_path = Path(ann) if Path(ann).is_absolute() else Path(f).parent / ann
     if not ann_path.is_file():
         raise XbenchInputError(f"{w}.annotations", "annotation file not found", found=str(ann_path))
     attr = sec.get("class_attribute", "class")
@@ -241,7 +260,9 @@ def annotated_pack_for_task(
         "raster_sha256": [file_sha256(p) for p in files],
         "annotations_sha256": file_sha256(ann_path),
     }
-    key = hashlib.sha256(json.dumps([raw, n_tiles, __version__, PACK_VERSION], sort_keys=True).encode()).hexdigest()
+    key = hashlib.sha256(
+        json.dumps([raw, split_counts, __version__, PACK_VERSION], sort_keys=True).encode()
+    ).hexdigest()
     folder = cache / "imagery" / "packs" / key[:32]
     path = folder / "tiles.npz"
     if path.is_file():
@@ -273,20 +294,27 @@ def annotated_pack_for_task(
             f"{pack.meta['tiling']['dropped_out_of_range']} dropped out of range)",
         )
     save_pack(pack, path)
-    write_georef_csv(pack.georef, pack.meta["georef"], folder / "georef.csv")
+    write_georef_csv(pack.georef, pack.meta["georef"], folder / "georef.csv", split_counts)
     return path, raw
 
 
-def write_georef_csv(georef: np.ndarray, meta: dict[str, Any], path: Path) -> Path:
-    """A side table: tile, source, row, col, the six transform terms and the CRS of each tile."""
+def write_georef_csv(
+    georef: np.ndarray, meta: dict[str, Any], path: Path, split_counts: dict[str, int] | None = None
+) -> Path:
+    """A side table: pack tile, split and tile index within it (the ``tile`` of run records for the test
+    split), source raster, pixel row/col, the six transform terms and the CRS of each tile."""
     import csv
 
     rows = georef_rows(georef, meta["sources"], meta["crs"])
+    splits: list[tuple[str, int]] = []
+    for name, n in (split_counts or {"all": len(rows)}).items():
+        splits.extend((name, i) for i in range(n))
+    splits.extend(("unused", i) for i in range(len(rows) - len(splits)))
     with open(path, "w", newline="") as fh:
         out = csv.writer(fh)
-        out.writerow(["tile", "source", "row", "col", "a", "b", "c", "d", "e", "f", "crs"])
-        for r in rows:
-            out.writerow([r["tile"], r["source"], r["row"], r["col"], *r["transform"], r["crs"]])
+        out.writerow(["pack_tile", "split", "tile", "source", "row", "col", "a", "b", "c", "d", "e", "f", "crs"])
+        for r, (split, k) in zip(rows, splits, strict=False):
+            out.writerow([r["tile"], split, k, r["source"], r["row"], r["col"], *r["transform"], r["crs"]])
     return path
 
 
