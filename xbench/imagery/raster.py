@@ -1,8 +1,9 @@
 """Reading georeferenced rasters (GeoTIFF, Cloud-Optimized GeoTIFF; anything rasterio/GDAL opens) into tiles.
 
 A scene is cut into tiles of ``size`` x ``size`` pixels on a regular grid anchored at the top-left pixel;
-partial tiles at the right and bottom edges are left out. The scene is read one strip of ``size`` rows at a
-time (a rasterio window), so memory holds one strip, never the whole scene.
+partial tiles at the right and bottom edges are left out. The scene is read by windows of whole tile rows
+(as many as fit the file's block height, at most ``STRIP_BYTES``), with GDAL's block cache held to
+``GDAL_CACHE_MB``, so memory holds one strip, never the whole scene.
 
 Per tile: digital numbers become reflectance ``DN * scale + offset`` (scale and offset per band from the
 file's metadata, or the task); a pixel is nodata where any band equals that band's nodata value (or is NaN);
@@ -26,6 +27,8 @@ from xbench.errors import XbenchInputError
 
 RASTER_SUFFIXES = (".tif", ".tiff", ".vrt", ".jp2", ".img")
 OUT_OF_RANGE_POLICIES = ("clip", "drop-tile", "keep")
+STRIP_BYTES = 64 << 20  # at most this many bytes of digital numbers per read
+GDAL_CACHE_MB = 64  # GDAL's block cache while tiling (its default is 5% of the machine's memory)
 GEOREF_COLUMNS = ("source", "row", "col", "a", "b", "c", "d", "e", "f")
 
 
@@ -231,6 +234,7 @@ def iter_raster_tiles(
     Reads one strip of ``size`` rows by a window per grid row, so memory stays at one strip whatever the
     scene's size. ``report`` (updated in place) counts kept, skipped and clipped tiles and values.
     """
+    import rasterio
     from rasterio.windows import Window
 
     options = options or RasterOptions()
@@ -254,33 +258,51 @@ def iter_raster_tiles(
             )
         report.files.append(str(path))
         report.grid_tiles += rows * cols
+        # one read covers the file's block height (a compressed block is decoded once), within a memory cap
+        block_rows = max(1, int(src.block_shapes[0][0]) // size)
+        row_bytes = size * cols * size * len(info.band_index) * np.dtype(info.dtype).itemsize
+        per_read = max(1, min(block_rows, STRIP_BYTES // max(row_bytes, 1)))
         bar = None
         if progress:
             from tqdm import tqdm
 
-            bar = tqdm(total=rows, unit="strip", desc=f"tiling {Path(path).name}", leave=False)
+            bar = tqdm(total=rows, unit="tile row", desc=f"tiling {Path(path).name}", leave=False)
         try:
-            for i in range(rows):
-                strip = src.read(info.band_index, window=Window(0, i * size, cols * size, size))
-                for j in range(cols):
-                    report.visited += 1
-                    tile, counts, reason = to_reflectance(strip[:, :, j * size : (j + 1) * size], info, options)
-                    report.values_below_0 += counts["below"]
-                    report.values_above_1 += counts["above"]
-                    if tile is None:
-                        if reason == "nodata":
-                            report.skipped_nodata += 1
-                        else:
-                            report.dropped_out_of_range += 1
-                        continue
-                    report.nodata_pixels_filled += counts["filled"]
-                    report.kept += 1
-                    yield tile, (i * size, j * size, tile_transform(info.transform, i * size, j * size))
-                if bar is not None:
-                    bar.update(1)
+            for i0 in range(0, rows, per_read):
+                n_read = min(per_read, rows - i0)
+                window = Window(0, i0 * size, cols * size, n_read * size)
+                with rasterio.Env(GDAL_CACHEMAX=GDAL_CACHE_MB):
+                    strips = src.read(info.band_index, window=window)
+                for di in range(n_read):
+                    i = i0 + di
+                    yield from _strip_tiles(
+                        strips[:, di * size : (di + 1) * size], i, cols, size, info, options, report
+                    )
+                    if bar is not None:
+                        bar.update(1)
         finally:
             if bar is not None:
                 bar.close()
+
+
+def _strip_tiles(
+    strip: np.ndarray, i: int, cols: int, size: int, info: RasterInfo, options: RasterOptions, report: TilingReport
+) -> Iterator[tuple[np.ndarray, tuple[int, int, tuple[float, ...]]]]:
+    """The kept tiles of one tile row (counts go to ``report``)."""
+    for j in range(cols):
+        report.visited += 1
+        tile, counts, reason = to_reflectance(strip[:, :, j * size : (j + 1) * size], info, options)
+        report.values_below_0 += counts["below"]
+        report.values_above_1 += counts["above"]
+        if tile is None:
+            if reason == "nodata":
+                report.skipped_nodata += 1
+            else:
+                report.dropped_out_of_range += 1
+            continue
+        report.nodata_pixels_filled += counts["filled"]
+        report.kept += 1
+        yield tile, (i * size, j * size, tile_transform(info.transform, i * size, j * size))
 
 
 @dataclass
