@@ -61,7 +61,7 @@ def annotated_pack(
     classes: dict[str, str] | None = None,
     options: RasterOptions | None = None,
     limit: int | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
 ) -> TilePack:
     """Tiles of the rasters (grid order) with the annotations' coverage per type, labels from ``rule``."""
     options = options or RasterOptions()

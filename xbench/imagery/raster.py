@@ -28,6 +28,7 @@ from xbench.errors import XbenchInputError
 RASTER_SUFFIXES = (".tif", ".tiff", ".vrt", ".jp2", ".img")
 OUT_OF_RANGE_POLICIES = ("clip", "drop-tile", "keep")
 STRIP_BYTES = 64 << 20  # at most this many bytes of digital numbers per read
+PROGRESS_PIXELS = 4096 * 4096  # scenes larger than this show a progress bar by default
 GDAL_CACHE_MB = 64  # GDAL's block cache while tiling (its default is 5% of the machine's memory)
 GEOREF_COLUMNS = ("source", "row", "col", "a", "b", "c", "d", "e", "f")
 
@@ -227,12 +228,13 @@ def iter_raster_tiles(
     size: int,
     options: RasterOptions | None = None,
     report: TilingReport | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
 ) -> Iterator[tuple[np.ndarray, tuple[int, int, tuple[float, ...]]]]:
     """Yield the kept tiles of one raster in grid order (row strips, left to right) with (row, col, transform).
 
     Reads one strip of ``size`` rows by a window per grid row, so memory stays at one strip whatever the
     scene's size. ``report`` (updated in place) counts kept, skipped and clipped tiles and values.
+    ``progress``: a progress bar on stderr (None: only for scenes above ``PROGRESS_PIXELS``).
     """
     import rasterio
     from rasterio.windows import Window
@@ -263,7 +265,7 @@ def iter_raster_tiles(
         row_bytes = size * cols * size * len(info.band_index) * np.dtype(info.dtype).itemsize
         per_read = max(1, min(block_rows, STRIP_BYTES // max(row_bytes, 1)))
         bar = None
-        if progress:
+        if progress or (progress is None and info.width * info.height > PROGRESS_PIXELS):
             from tqdm import tqdm
 
             bar = tqdm(total=rows, unit="tile row", desc=f"tiling {Path(path).name}", leave=False)
@@ -325,7 +327,7 @@ def read_raster_tiles(
     size: int,
     options: RasterOptions | None = None,
     limit: int | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
     bands_as: tuple[str, ...] | list[str] | None = None,
 ) -> RasterTiles:
     """The kept tiles of several rasters, file after file, stopping after ``limit`` tiles.

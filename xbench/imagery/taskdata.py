@@ -201,7 +201,7 @@ def transplant_split(task: Any, split: str, seed: int) -> tuple[Any, list[Any]]:
     recipe = d.recipe
     if recipe.endswith(".toml") and not Path(recipe).is_absolute():
         recipe = str(Path(task.path).parent / recipe)
-    return transplant(
+    pack, scenes = transplant(
         recipe,
         tiles.images[lo:hi],
         d.counts[split],
@@ -216,6 +216,9 @@ def transplant_split(task: Any, split: str, seed: int) -> tuple[Any, list[Any]]:
         georef=tiles.georef[lo:hi],
         georef_meta=tiles.georef_meta(),
     )
+    pack.meta["tiling"] = tiles.report.to_dict()
+    pack.meta["background_tiles"] = [lo, hi]
+    return pack, scenes
 
 
 def annotated_pack_for_task(
