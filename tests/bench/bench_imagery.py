@@ -20,7 +20,15 @@ import numpy as np
 
 
 def peak_rss_mib() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux reports KiB
+    """This process's peak resident memory: VmHWM of /proc/self/status (reset by exec, unlike ru_maxrss,
+    which Linux carries over from the parent across fork and exec)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
 
 
 def write_scene(path: Path, side: int, bands: int = 6, strip: int = 512) -> None:
