@@ -173,3 +173,19 @@ def test_model_trained_on_transplanted_tiles_relies_on_the_planted_type(tmp_path
     rel = compute_reliance(trained.handle, data.test_scenes, data.test.labels, seed=0, n_boot=300)
     road = rel.type_table[rel.type_table["kind"] == "road"].iloc[0]
     assert road["ci_low"] > 0, rel.type_table
+
+
+def test_synth_with_backgrounds_writes_a_transplanted_pack(tmp_path, scene_file, capsys):
+    from xbench.cli import main
+    from xbench.data import load_pack
+
+    out = tmp_path / "tiles"
+    args = ["synth", "--recipe", "conifer-upland", "--backgrounds", str(scene_file), "--count", "6"]
+    assert main(args + ["--size", "32", "--twins", "--presence", "road=1", "--no-preview", "--out", str(out)]) == 0
+    assert "skipped for nodata" in capsys.readouterr().out
+    pack = load_pack(out / "tiles.npz")
+    assert pack.twins is not None and pack.georef is not None and pack.meta["source"] == "xbench.imagery.transplant"
+    road = pack.coverage[:, pack.mask_names.index("road")]
+    assert (road.sum(axis=(1, 2)) > 0).all()  # road=1 forces a road into every tile
+    changed = (pack.images != pack.twins).any(axis=1)
+    assert not (changed & ~(pack.coverage.sum(axis=1) > 0)).any()

@@ -298,6 +298,7 @@ def annotated_pack_for_task(
         )
     save_pack(pack, path)
     write_georef_csv(pack.georef, pack.meta["georef"], folder / "georef.csv", split_counts)
+    (folder / "tiling.json").write_text(json.dumps(pack.meta["tiling"], indent=1))
     return path, raw
 
 

@@ -105,19 +105,16 @@ def transplant_recipe(recipe: Recipe | str, palette: Palette) -> Recipe:
         if name in palette.spectra:
             s = copy.copy(out.spec(kind))
             s.params = dict(s.params) | {key: name}
-            out.structures[kind] = s if kind in base.structures else _absent(s)
+            if kind in base.structures:
+                out.structures[kind] = s
+            else:  # not in the catalogue (probability 0): its defaults, used when presence forces the type
+                out._defaults[kind] = s
     if "scene-vegetation" in palette.spectra:
         # the matrix class (largest share) is what a natural gap's remnant canopy shows
         matrix = max(range(len(out.landcover)), key=lambda i: out.landcover[i].share)
         out.landcover = list(out.landcover)
         out.landcover[matrix] = dataclasses.replace(out.landcover[matrix], material="scene-vegetation")
     return out
-
-
-def _absent(spec: Any) -> Any:
-    """A catalogue entry the recipe did not list keeps probability 0 (presence may still force it)."""
-    spec.probability = 0.0
-    return spec
 
 
 def transplant(
