@@ -93,6 +93,8 @@ def run(args: argparse.Namespace) -> int:
     if args.size < 8:
         raise XbenchInputError("--size", "tile size too small", expected=">= 8", found=args.size)
     recipe = load_recipe(args.recipe)
+    if args.backgrounds:  # transplant mode: the same call, drawing over the tiles of the given rasters
+        synthesize = _transplanting(args)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
 
@@ -104,37 +106,16 @@ def run(args: argparse.Namespace) -> int:
         bar = tqdm(total=args.count, unit="tile", desc=f"synth {recipe.name}", file=sys.stderr)
         progress = bar.update
     try:
-        if args.backgrounds:
-            from xbench.imagery.raster import RasterOptions, TilingReport
-            from xbench.imagery.taskdata import transplant_from_rasters
-            from xbench.tasks import cache_root
-
-            pack, scenes = transplant_from_rasters(
-                recipe,
-                args.backgrounds,
-                args.count,
-                args.seed,
-                args.size,
-                cache_root(),
-                RasterOptions(out_of_range=args.out_of_range),
-                tiling_progress=True,
-                twins=args.twins,
-                presence=_presence(args.presence),
-                label_noise=args.label_noise,
-                progress=progress,
-            )
-            print(f"backgrounds: {TilingReport(**pack.meta['tiling']).summary()}")
-        else:
-            pack, scenes = synthesize(
-                recipe,
-                args.count,
-                args.seed,
-                size=args.size,
-                twins=args.twins,
-                presence=_presence(args.presence),
-                label_noise=args.label_noise,
-                progress=progress,
-            )
+        pack, scenes = synthesize(
+            recipe,
+            args.count,
+            args.seed,
+            size=args.size,
+            twins=args.twins,
+            presence=_presence(args.presence),
+            label_noise=args.label_noise,
+            progress=progress,
+        )
     finally:
         if bar is not None:
             bar.close()
@@ -163,6 +144,23 @@ def run(args: argparse.Namespace) -> int:
         + f"  (rule: {pack.meta['label_rule']})"
     )
     return 0
+
+
+def _transplanting(args: argparse.Namespace):
+    """A stand-in for ``synthesize`` that plants into the tiles of ``--backgrounds`` and reports the tiling."""
+    from xbench.imagery.raster import RasterOptions, TilingReport
+    from xbench.imagery.taskdata import transplant_from_rasters
+    from xbench.tasks import cache_root
+
+    def make(recipe, count, seed, size, **kwargs):
+        options = RasterOptions(out_of_range=args.out_of_range)
+        pack, scenes = transplant_from_rasters(
+            recipe, args.backgrounds, count, seed, size, cache_root(), options, **kwargs
+        )
+        print(f"backgrounds: {TilingReport(**pack.meta['tiling']).summary()}")
+        return pack, scenes
+
+    return make
 
 
 def _write_json(path: Path, obj: object) -> None:

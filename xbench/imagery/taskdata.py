@@ -330,7 +330,7 @@ def transplant_from_rasters(
     size: int,
     cache: Path,
     options: RasterOptions | None = None,
-    tiling_progress: bool = False,
+    tiling_progress: bool | None = None,
     **kwargs: Any,
 ) -> tuple[Any, list[Any]]:
     """`xbench synth --backgrounds`: tiles of the named rasters (or "@vellardine") with structures planted.
