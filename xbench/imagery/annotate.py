@@ -7,6 +7,7 @@ Such a pack has no twins and no scenes: metrics that need them are skipped with 
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -51,7 +52,7 @@ def raster_bounds(info: Any) -> tuple[float, float, float, float]:
 
 
 def annotated_pack(
-    rasters: list[str | Path] | str | Path,
+    rasters: Sequence[str | Path] | str | Path,
     annotations: str | Path,
     size: int,
     rule: LabelRule,
@@ -65,7 +66,7 @@ def annotated_pack(
 ) -> TilePack:
     """Tiles of the rasters (grid order) with the annotations' coverage per type, labels from ``rule``."""
     options = options or RasterOptions()
-    files = raster_files(rasters if isinstance(rasters, list) else [rasters])
+    files = raster_files(rasters)
     infos = [raster_info(f, options) for f in files]
     crs = infos[0].crs
     if not crs:

@@ -16,7 +16,7 @@ pixels) follow the declared policy: ``clip`` to [0, 1], ``drop-tile`` (skip any 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -97,9 +97,9 @@ class RasterInfo:
     dtype: str
 
 
-def raster_files(ref: str | Path | list[str | Path], base: Path | None = None) -> list[Path]:
+def raster_files(ref: str | Path | Sequence[str | Path], base: Path | None = None) -> list[Path]:
     """Raster files named by a path, a folder (its raster files, sorted) or a list of them."""
-    refs = ref if isinstance(ref, list) else [ref]
+    refs = [ref] if isinstance(ref, (str, Path)) else list(ref)
     out: list[Path] = []
     for r in refs:
         p = Path(r)
@@ -323,7 +323,7 @@ class RasterTiles:
 
 
 def read_raster_tiles(
-    paths: list[str | Path] | str | Path,
+    paths: Sequence[str | Path] | str | Path,
     size: int,
     options: RasterOptions | None = None,
     limit: int | None = None,
@@ -336,7 +336,7 @@ def read_raster_tiles(
     must give the same band names.
     """
     options = options or RasterOptions()
-    files = raster_files(paths if isinstance(paths, list) else [paths])
+    files = raster_files(paths)
     report = TilingReport()
     images: list[np.ndarray] = []
     geo: list[list[float]] = []
@@ -354,7 +354,9 @@ def read_raster_tiles(
             order = [info.band_names.index(b) for b in bands_as]
         these = [info.band_names[k] for k in order]
         if names is not None and these != names:
-            raise XbenchInputError(str(path), "band names differ from the first raster", expected=names, found=these)
+            raise XbenchInputError(
+                str(path), "band names differ from the first raster", expected=", ".join(names), found=these
+            )
         names = these
         crs.append(info.crs)
         for tile, (row, col, t) in iter_raster_tiles(path, size, options, report, progress):

@@ -297,6 +297,7 @@ def annotated_pack_for_task(
             f"{pack.meta['tiling']['dropped_out_of_range']} dropped out of range)",
         )
     save_pack(pack, path)
+    assert pack.georef is not None  # annotated packs always carry it
     write_georef_csv(pack.georef, pack.meta["georef"], folder / "georef.csv", split_counts)
     (folder / "tiling.json").write_text(json.dumps(pack.meta["tiling"], indent=1))
     return path, raw

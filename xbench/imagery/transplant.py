@@ -72,7 +72,9 @@ def scene_palette(images: np.ndarray, band_names: list[str] | tuple[str, ...]) -
     spectrum's NDVI leaves the class's range.
     """
     if tuple(band_names) != tuple(BANDS):
-        raise XbenchInputError("backgrounds", "bands differ from the recipe's", expected=list(BANDS), found=band_names)
+        raise XbenchInputError(
+            "backgrounds", "bands differ from the recipe's", expected=", ".join(BANDS), found=band_names
+        )
     px = np.moveaxis(np.asarray(images, dtype=np.float32), 1, 0).reshape(len(BANDS), -1)  # (C, P)
     v = ndvi(px)
     clear = (px[0] < CLEAR_BLUE) & (px.max(axis=0) < 0.6)
