@@ -165,15 +165,17 @@ def split_backgrounds(sec: dict[str, Any], f: str, cache: Path) -> tuple[dict[st
 _BACKGROUNDS: dict[str, RasterTiles] = {}
 
 
-def background_tiles(backgrounds: dict[str, Any], size: int) -> RasterTiles:
-    """All kept tiles of the background rasters, with the recipe's bands (read once per process)."""
+def background_tiles(backgrounds: dict[str, Any], size: int, limit: int) -> RasterTiles:
+    """The first ``limit`` kept tiles of the background rasters (grid order, file after file), with the
+    recipe's bands; read once per process. A task never needs more backgrounds than tiles, so a scene much
+    larger than the task is read only as far as needed."""
     from xbench.scenes import BANDS
 
-    key = json.dumps([backgrounds["raw"], size], sort_keys=True, default=str)
+    key = json.dumps([backgrounds["raw"], size, limit], sort_keys=True, default=str)
     if key not in _BACKGROUNDS:
         opts = RasterOptions(**backgrounds["options"])
         _BACKGROUNDS.clear()  # one task's backgrounds at a time
-        _BACKGROUNDS[key] = read_raster_tiles(backgrounds["files"], size, opts, bands_as=BANDS)
+        _BACKGROUNDS[key] = read_raster_tiles(backgrounds["files"], size, opts, limit=limit, bands_as=BANDS)
     return _BACKGROUNDS[key]
 
 
@@ -196,7 +198,7 @@ def transplant_split(task: Any, split: str, seed: int) -> tuple[Any, list[Any]]:
     from xbench.scenes import BANDS
 
     d = task.data
-    tiles = background_tiles(d.backgrounds, d.size)
+    tiles = background_tiles(d.backgrounds, d.size, sum(d.counts.values()))
     lo, hi = split_ranges(len(tiles.images), d.counts)[split]
     recipe = d.recipe
     if recipe.endswith(".toml") and not Path(recipe).is_absolute():
@@ -345,7 +347,7 @@ def transplant_from_rasters(
     if options.out_of_range == "keep":
         raise XbenchInputError("--out-of-range", "transplant needs reflectance in [0, 1]", expected="clip | drop-tile")
     files = resolve_rasters(list(refs), "--backgrounds", str(Path.cwd() / "cli"), cache)
-    tiles = read_raster_tiles(files, size, options, progress=tiling_progress, bands_as=BANDS)
+    tiles = read_raster_tiles(files, size, options, limit=count, progress=tiling_progress, bands_as=BANDS)
     pack, scenes = transplant(
         recipe, tiles.images, count, seed, georef=tiles.georef, georef_meta=tiles.georef_meta(), **kwargs
     )
