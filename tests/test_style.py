@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
-STAGES = ["scenes", "tasks", "models", "explainers", "truth", "metrics", "runs", "report", "check"]
+STAGES = ["scenes", "imagery", "tasks", "models", "explainers", "truth", "metrics", "runs", "report", "check"]
 
 
 @pytest.mark.skipif(shutil.which("ruff") is None, reason="ruff not installed")

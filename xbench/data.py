@@ -34,6 +34,9 @@ class TilePack:
     clean_labels: optional int64 (N,), labels before label noise.
     cue: optional bool (N,), whether the spurious cue was applied to the tile.
     coverage: optional float32 (N, K, H, W) sub-pixel area fraction per structure type.
+    georef: optional float64 (N, 9) where each tile came from in a georeferenced raster: source index (into
+        ``meta["georef"]["sources"]``), pixel row and column of its top-left corner, and the tile's affine
+        transform a, b, c, d, e, f (``meta["georef"]["crs"]`` holds each source's CRS).
     meta: free JSON-serialisable information (recipe, seeds, label rule text...).
     """
 
@@ -48,6 +51,7 @@ class TilePack:
     cue: np.ndarray | None = None
     coverage: np.ndarray | None = None
     meta: dict[str, Any] = field(default_factory=dict)
+    georef: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.images.shape[0])
@@ -74,6 +78,7 @@ class TilePack:
             cue=pick(self.cue),
             coverage=pick(self.coverage),
             meta=dict(self.meta),
+            georef=pick(self.georef),
         )
 
     def type_mask(self, names: list[str] | tuple[str, ...]) -> np.ndarray:
@@ -108,8 +113,10 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
         bad = int(np.argwhere(~finite)[0][0])
         raise XbenchInputError(f"{source}: array 'images'", f"non-finite values (NaN or inf), first in tile {bad}")
     lo, hi = float(img.min()), float(img.max())
+    # a raster read with the out-of-range policy "keep" declares it; its values stay as measured
+    kept = pack.meta.get("out_of_range") == "keep"
     _check(
-        lo >= 0.0 and hi <= 1.0,
+        kept or (lo >= 0.0 and hi <= 1.0),
         f"{source}: array 'images'",
         "reflectance out of range",
         "values in [0, 1]",
@@ -166,6 +173,8 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
         if name == "coverage":
             lo, hi = float(arr.min(initial=0.0)), float(arr.max(initial=0.0))
             _check(lo >= 0.0 and hi <= 1.0, f"{source}: array 'coverage'", "out of range", "[0, 1]", f"{lo}..{hi}")
+    if pack.georef is not None:
+        _check(pack.georef.shape == (n, 9), f"{source}: array 'georef'", "wrong shape", f"({n}, 9)", pack.georef.shape)
     for name, arr in (("clean_labels", pack.clean_labels), ("cue", pack.cue)):
         if arr is not None:
             _check(arr.shape == (n,), f"{source}: array '{name}'", "wrong shape", f"({n},)", arr.shape)
@@ -186,7 +195,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
         "mask_names": np.array(pack.mask_names),
         "meta_json": np.array(json.dumps(pack.meta, sort_keys=True)),
     }
-    for name in ("twins", "clean_labels", "cue", "coverage"):
+    for name in ("twins", "clean_labels", "cue", "coverage", "georef"):
         if getattr(pack, name) is not None:
             arrays[name] = getattr(pack, name)
 
@@ -267,6 +276,7 @@ def _read_pack(data: Any, path: Path) -> TilePack:
             cue=data["cue"] if "cue" in data.files else None,
             coverage=data["coverage"] if "coverage" in data.files else None,
             meta=meta,
+            georef=data["georef"] if "georef" in data.files else None,
         )
     return pack
 

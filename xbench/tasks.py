@@ -17,6 +17,7 @@ to the train split only; only the test split carries twins, and its scenes are k
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import os
@@ -116,6 +117,7 @@ class DataSpec:
     pack_classes: list[str] | None = None
     pack_drives: dict[int, list[str]] | None = None
     possible_types: list[str] = field(default_factory=list)  # types that may appear in the tiles
+    backgrounds: dict[str, Any] | None = None  # real background rasters (transplant mode), see _load_raster_data
 
     @property
     def hash(self) -> str:
@@ -321,6 +323,8 @@ def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
 
     if isinstance(doc["data"], dict) and "pack" in doc["data"]:
         data, rule = _load_pack_data(doc["data"], f), None
+    elif isinstance(doc["data"], dict) and ("rasters" in doc["data"] or "backgrounds" in doc["data"]):
+        data, rule = _load_raster_data(doc["data"], f)
     else:
         data, rule = _load_data(doc["data"], f)
     models = _load_models(doc["models"], f)
@@ -644,6 +648,37 @@ def _recipe_sha256(path: str) -> str:
     return hashlib.sha256(json.dumps(load_toml(path), sort_keys=True, default=str).encode()).hexdigest()
 
 
+def _load_raster_data(sec: dict[str, Any], f: str) -> tuple[DataSpec, Any]:
+    """`[data]` naming georeferenced rasters (see ``xbench.imagery.taskdata`` for the keys).
+
+    ``rasters`` + ``annotations``: real tiles with vector annotations become a tile pack (cached), used like
+    `[data] pack`: planted truth from the annotations, no twins. ``backgrounds`` + ``recipe``: the recipe's
+    structures are transplanted into the rasters' tiles, with twins and scenes (the whole benchmark).
+    """
+    from xbench.imagery import taskdata
+
+    if "backgrounds" in sec:
+        rest, backgrounds = taskdata.split_backgrounds(sec, f, cache_root())
+        spec, rule = _load_data(rest, f)
+        raw = spec.raw | {"backgrounds": backgrounds["raw"]}
+        return dataclasses.replace(spec, raw=raw, backgrounds=backgrounds), rule
+    from xbench import scenes
+
+    w = f"{f}: data"
+    for key in ("labels", "train", "val", "test"):
+        if key not in sec:
+            raise XbenchInputError(f"{w}.{key}", "missing required key (data.rasters is set)")
+    rule = scenes.parse_label_rule(_expect(sec["labels"], (dict,), f"{w}.labels", "a label-rule table"), f"{w}.labels")
+    counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
+    path, raw = taskdata.annotated_pack_for_task(sec, f, rule, counts, cache_root())
+    pack_sec = {"pack": str(path), "train": counts["train"], "val": counts["val"], "test": counts["test"]}
+    pack_sec["drives"] = {c: list(rule.driving_types(i)) for i, c in enumerate(rule.classes)}
+    if "lookalikes" in sec:
+        pack_sec["lookalikes"] = sec["lookalikes"]
+    spec = _load_pack_data(pack_sec, f)
+    return dataclasses.replace(spec, raw=raw | {"pack_sha256": spec.raw["pack_sha256"]}), None
+
+
 def _recipe_ref(recipe: str, task_file: str) -> str:
     """A recipe given as a relative path is read relative to the task file."""
     if recipe.endswith(".toml") and not Path(recipe).is_absolute():
@@ -754,6 +789,10 @@ def _synthesize_split(task: Task, split: str) -> tuple[TilePack, list[Any]]:
     from xbench import scenes
 
     d = task.data
+    if d.backgrounds is not None:
+        from xbench.imagery.taskdata import transplant_split
+
+        return transplant_split(task, split, split_seed(d.seed, split))
     return scenes.synthesize(
         _recipe_ref(d.recipe, str(task.path)),
         d.counts[split],

@@ -36,6 +36,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="probability that a tile holds a structure type (repeatable), e.g. road=1",
     )
     parser.add_argument("--out", help="output folder")
+    parser.add_argument(
+        "--backgrounds",
+        nargs="+",
+        metavar="RASTER",
+        help="plant the structures into the tiles of these GeoTIFF files or folders ('@vellardine': a generated "
+        "scene); each tile's twin is its untouched background",
+    )
+    parser.add_argument(
+        "--out-of-range", default="clip", choices=("clip", "drop-tile"), help="backgrounds: values outside [0, 1]"
+    )
     parser.add_argument("--no-preview", action="store_true", help="skip preview.png")
     parser.add_argument("--list", action="store_true", help="list the shipped recipes and exit")
 
@@ -80,6 +90,8 @@ def run(args: argparse.Namespace) -> int:
     if not 0.0 <= args.label_noise <= 0.5:
         raise XbenchInputError("--label-noise", "out of range", expected="0 to 0.5", found=args.label_noise)
     recipe = load_recipe(args.recipe)
+    if args.backgrounds:  # transplant mode: the same call, drawing over the tiles of the given rasters
+        synthesize = _transplanting(args)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
 
@@ -129,6 +141,23 @@ def run(args: argparse.Namespace) -> int:
         + f"  (rule: {pack.meta['label_rule']})"
     )
     return 0
+
+
+def _transplanting(args: argparse.Namespace):
+    """A stand-in for ``synthesize`` that plants into the tiles of ``--backgrounds`` and reports the tiling."""
+    from xbench.imagery.raster import RasterOptions, TilingReport
+    from xbench.imagery.taskdata import transplant_from_rasters
+    from xbench.tasks import cache_root
+
+    def make(recipe, count, seed, size, **kwargs):
+        options = RasterOptions(out_of_range=args.out_of_range)
+        pack, scenes = transplant_from_rasters(
+            recipe, args.backgrounds, count, seed, size, cache_root(), options, **kwargs
+        )
+        print(f"backgrounds: {TilingReport(**pack.meta['tiling']).summary()}")
+        return pack, scenes
+
+    return make
 
 
 def _write_json(path: Path, obj: object) -> None:

@@ -107,12 +107,16 @@ class Scene:
     presence: dict[str, float] | None = None
     _recipe: Recipe | None = field(default=None, repr=False)
     _fields: dict[str, np.ndarray] | None = field(default=None, repr=False)
+    background: np.ndarray | None = field(default=None, repr=False)  # a given (real) tile, else synthesized
 
     # -- landscape fields (cached) ------------------------------------------------------------------
     def fields(self) -> dict[str, np.ndarray]:
         if self._fields is None:
             assert self._recipe is not None
-            self._fields = build_fields(self._recipe, self.size, self.seed)
+            if self.background is not None:
+                self._fields = background_fields(self._recipe, self.background, self.seed)
+            else:
+                self._fields = build_fields(self._recipe, self.size, self.seed)
         return self._fields
 
     def release(self) -> None:
@@ -265,6 +269,27 @@ def build_fields_batch(recipe: Recipe, size: int, seeds: list[int]) -> list[dict
                 "presence_draws": d[2:],
             }
         )
+    return out
+
+
+def background_fields(recipe: Recipe, background: np.ndarray, seed: int) -> dict[str, np.ndarray]:
+    """Fields of a scene drawn over a given tile ``background`` (C, H, W) in [0, 1], bands as the recipe's.
+
+    The given tile replaces the synthesized reflectance and already holds its own atmosphere and sensor
+    noise, so haze and noise are zero: rendering with every instance omitted returns the tile bit for bit.
+    ``land`` (where clearings may lie and roads avoid) is read from the tile's NDVI (water is below 0,
+    Rouse et al. 1974); textures, the elevation used for placement, the cue centre and the presence draws
+    come from the synthetic fields of the same seed, so the random streams are those of a synthetic tile.
+    """
+    bg = np.ascontiguousarray(background, dtype=np.float32)
+    size = int(bg.shape[-1])
+    out = dict(build_fields(recipe, size, seed))
+    red, nir = bg[BAND_INDEX["red"]], bg[BAND_INDEX["nir"]]
+    ndvi = (nir - red) / np.maximum(nir + red, np.float32(1e-6))
+    out["land"] = np.clip(ndvi * np.float32(10.0) + np.float32(0.5), 0.0, 1.0).astype(np.float32)
+    out["background"] = bg
+    out["haze"] = np.zeros((size, size), dtype=np.float32)
+    out["noise"] = np.zeros_like(bg)
     return out
 
 

@@ -31,6 +31,7 @@ from xbench.scenes.render import (
     STREAM_TYPES,
     Instance,
     Scene,
+    background_fields,
     build_fields,
     build_fields_batch,
     render,
@@ -168,6 +169,7 @@ def synthesize(
     cue: Cue | dict | None = None,
     cue_rate: float = 0.5,
     progress: Callable[[int], None] | None = None,
+    backgrounds: np.ndarray | None = None,
 ) -> tuple[TilePack, list[Scene]]:
     """Synthesise ``count`` tiles: a validated :class:`TilePack` and the scenes (fields released).
 
@@ -176,6 +178,9 @@ def synthesize(
     ``label_noise`` (seeded). With a ``cue``, it is switched on with probability ``cue_rate`` in tiles
     of non-default (clean) classes and ``1 - cue_rate`` in default-class tiles. ``twins`` renders every
     tile again with all instances removed and the cue off. ``progress(n)`` is called after each tile.
+    ``backgrounds``: float32 (M, C, S, S) given tiles in [0, 1] with the recipe's bands; tile ``i`` is drawn
+    over background ``i % M`` instead of synthesized terrain (transplant mode; ``size`` becomes S) and its
+    twin is that background, bit for bit.
     """
     recipe = load_recipe(recipe)
     count, size = int(count), int(size)
@@ -186,6 +191,9 @@ def synthesize(
     if not 0 <= cue_rate <= 1:
         raise XbenchInputError("cue_rate", "not a probability", expected="a number in [0, 1]", found=cue_rate)
     presence = check_presence(presence)
+    if backgrounds is not None:
+        backgrounds = _check_backgrounds(backgrounds, len(recipe.bands))
+        size = int(backgrounds.shape[-1])
     if label_rule is None:
         rule = recipe.labels or default_label_rule(structure_names(recipe, presence))
     else:
@@ -205,9 +213,14 @@ def synthesize(
     scenes: list[Scene] = []
     batch: list[dict[str, np.ndarray]] = []
     for i in range(count):
-        if i % FIELD_BATCH == 0:  # landscape fields of many tiles at once (fewer, larger array operations)
-            batch = build_fields_batch(recipe, size, seeds[i : i + FIELD_BATCH])
-        scene = _sample(recipe, size, seeds[i], presence, cue_spec, batch[i % FIELD_BATCH])
+        if backgrounds is not None:
+            bg = backgrounds[i % len(backgrounds)]
+            scene = _sample(recipe, size, seeds[i], presence, cue_spec, background_fields(recipe, bg, seeds[i]))
+            scene.background = bg
+        else:
+            if i % FIELD_BATCH == 0:  # landscape fields of many tiles at once (fewer, larger array operations)
+                batch = build_fields_batch(recipe, size, seeds[i : i + FIELD_BATCH])
+            scene = _sample(recipe, size, seeds[i], presence, cue_spec, batch[i % FIELD_BATCH])
         clean[i] = rule.apply(scene)
         u = cue_rng.random()
         if cue_spec is not None:
@@ -259,6 +272,18 @@ def synthesize(
         meta=meta,
     )
     return pack, scenes
+
+
+def _check_backgrounds(backgrounds: np.ndarray, n_bands: int) -> np.ndarray:
+    bg = np.asarray(backgrounds)
+    if bg.ndim != 4 or bg.shape[1] != n_bands or bg.shape[2] != bg.shape[3] or len(bg) == 0:
+        raise XbenchInputError(
+            "backgrounds", "wrong shape", expected=f"(M, {n_bands}, S, S) tiles with the recipe's bands", found=bg.shape
+        )
+    bg = np.ascontiguousarray(bg, dtype=np.float32)
+    if not np.isfinite(bg).all() or bg.min() < 0 or bg.max() > 1:
+        raise XbenchInputError("backgrounds", "reflectance out of range", expected="finite values in [0, 1]")
+    return bg
 
 
 def _recipe_source(recipe: Recipe) -> str | None:
