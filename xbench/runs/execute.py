@@ -121,8 +121,6 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
         if need_concepts and prep.concept_sets is None:
             prep.concept_sets = concept_sets_for(task, prep.mask_names)
         return prep
-    torch.set_num_threads(CELL_THREADS)
-    trained = train_or_load(task_path, model_name, seed)
     test = data.test
     index = choose_explain_tiles(task, test.labels, int(task.run["explain_tiles"]))
     if len(index) == 0:
@@ -133,6 +131,8 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
             expected="tiles of " + (", ".join(positive) or "a class with driving structure types"),
             found="test labels " + str(np.bincount(test.labels, minlength=len(task.class_names)).tolist()),
         )
+    torch.set_num_threads(CELL_THREADS)
+    trained = train_or_load(task_path, model_name, seed)  # after the data checks: bad input stops before work
     targets = test.labels[index].astype(np.int64)
     sub = test.subset(index)
     scenes = [data.test_scenes[i] for i in index] if data.test_scenes else []
