@@ -16,13 +16,14 @@ from scipy import stats
 from sklearn.metrics import roc_auc_score
 
 from xbench.metrics import MetricInputs, compute_metric
-from xbench.metrics.concepts import pixel_enrichment, recovery_auroc, type_roles
+from xbench.metrics.concepts import pixel_enrichment, recovery_auroc
+from xbench.truth import type_roles
 
 TYPES = ["road", "clearing", "river", "outcrop", "natural-gap", "building"]
 
 
 def roles_of(n_relied: int) -> dict[str, str]:
-    return type_roles(TYPES, TYPES[:n_relied], ["river", "outcrop", "natural-gap"])
+    return type_roles(TYPES[:n_relied], ["river", "outcrop", "natural-gap"], TYPES)
 
 
 @settings(max_examples=40, deadline=None)
@@ -36,7 +37,7 @@ def test_recovery_chance_level_is_exact_over_every_assignment(values, n_relied):
     # often and ties count 1/2, so the mean AUROC is exactly 0.5.
     types = TYPES[: len(values)]
     n_relied = min(n_relied, len(values) - 1)
-    roles = type_roles(types, types[:n_relied], [])
+    roles = type_roles(types[:n_relied], [], types)
     scores = [recovery_auroc(dict(zip(types, perm, strict=True)), roles) for perm in itertools.permutations(values)]
     assert np.mean(scores) == pytest.approx(0.5, abs=1e-12)
     # the oracle's ordering (relied-on types first) reaches the maximum 1, and nothing exceeds it
@@ -69,7 +70,7 @@ def test_recovery_matches_sklearn_and_random_control_sits_at_chance():
 
 
 def test_roles():
-    roles = type_roles(["road", "river", "outcrop", "field"], ["road", "river"], ["river", "outcrop"])
+    roles = type_roles(["road", "river"], ["river", "outcrop"], ["road", "river", "outcrop", "field"])
     assert roles == {"road": "relied-on", "river": "relied-on look-alike", "outcrop": "unused", "field": "unused"}
 
 

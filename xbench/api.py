@@ -86,6 +86,21 @@ class TrainingResult:
     reliance: dict[tuple[str, int], pd.DataFrame] = field(default_factory=dict)
     relied_on: dict[tuple[str, int], list[str]] = field(default_factory=dict)
     models: dict[tuple[str, int], ModelHandle] = field(default_factory=dict)
+    reliance_tiles: int = 0
+    note: str = ""  # why the reliance table is left out (a task on a user's tile pack), else empty
+
+
+def reliance_role(task: Task, kind: str) -> str:
+    """What a structure type is to a task: label-driving, look-alike, human but not driving, or the cue."""
+    from xbench.names import LOOKALIKE_TYPES
+
+    if kind == "cue":
+        return "spurious cue"
+    if any(kind in types for types in task.class_driving_types.values()):
+        return "label-driving"
+    if kind in task.lookalike_types or kind in LOOKALIKE_TYPES:
+        return "look-alike"
+    return "human, not driving"
 
 
 def train(
@@ -97,33 +112,44 @@ def train(
     reliance: bool = True,
     reliance_tiles: int | None = None,
     on_model: Callable[[dict[str, Any]], None] | None = None,
+    on_reliance: Callable[[str, int, pd.DataFrame, list[str]], None] | None = None,
 ) -> TrainingResult:
     """Train (or load from the cache) the task's models for each seed, with accuracy and reliance.
 
-    ``on_model`` is called with each accuracy row as soon as a model is ready (the CLI prints it).
-    Reliance needs the task's synthetic scenes (counterfactual twins); for a task on a user's tile pack it
-    is left out and said so in the result (an empty reliance table).
+    ``on_model`` is called with each accuracy row as soon as a model is ready, ``on_reliance`` with
+    (model, seed, reliance table, relied-on types) (the CLI prints them). Reliance needs the task's
+    synthetic scenes (counterfactual twins); for a task on a user's tile pack it is left out and
+    ``result.note`` says so.
     """
     import pandas as pd
 
+    from xbench.errors import XbenchInputError
     from xbench.models.train import train_model
-    from xbench.names import LOOKALIKE_TYPES
     from xbench.tasks import build_task_data
     from xbench.truth import compute_reliance
 
     task_obj = load(task)
     specs = [task_obj.model_spec(m) for m in models] if models else list(task_obj.models)
     seed_list = list(seeds) if seeds is not None else list(task_obj.seeds)
+    for s in seed_list:
+        if s < 0:
+            raise XbenchInputError("seeds", "seeds are non-negative integers", found=s)
     data = build_task_data(task_obj)
-    has_scenes = bool(getattr(data, "test_scenes", None))
+    result = TrainingResult(accuracy=pd.DataFrame())
+    if reliance and not data.test_scenes:
+        reliance = False
+        result.note = (
+            f"task {task_obj.name} uses a tile pack ({task_obj.data.pack}): models are trained or loaded and "
+            "their accuracy reported; the reliance table needs synthetic scenes and is left out"
+        )
     n_rel = 0
-    if has_scenes:
+    if reliance:
         n_rel = len(data.test_scenes) if reliance_tiles is None else min(reliance_tiles, len(data.test_scenes))
+    result.reliance_tiles = n_rel
     test = data.test
     targets = (test.clean_labels if test.clean_labels is not None else test.labels)[:n_rel]
+    # the cue is switched on in tiles of the classes with driving types (the non-default classes)
     cue_classes = [c for c, types in task_obj.class_driving_types.items() if types]
-    driving = {t for types in task_obj.class_driving_types.values() for t in types}
-    result = TrainingResult(accuracy=pd.DataFrame())
     rows = []
     for spec in specs:
         for seed in seed_list:
@@ -133,7 +159,12 @@ def train(
                 "model": spec.name,
                 "kind": spec.kind,
                 "seed": seed,
-                **{k: acc[k] for k in sorted(acc) if k.endswith("accuracy")},
+                "train_acc": acc["train_accuracy"],
+                "val_acc": acc["val_accuracy"],
+                "test_acc": acc["test_accuracy"],
+                "train_bacc": acc["train_balanced_accuracy"],
+                "val_bacc": acc["val_balanced_accuracy"],
+                "test_bacc": acc["test_balanced_accuracy"],
                 "seconds": round(tm.seconds, 1),
                 "status": "cached" if tm.cached else "trained",
             }
@@ -141,7 +172,7 @@ def train(
             result.models[(spec.name, seed)] = tm.handle
             if on_model is not None:
                 on_model(row)
-            if not (reliance and has_scenes and n_rel):
+            if not n_rel:
                 continue
             rel = compute_reliance(
                 tm.handle,
@@ -152,18 +183,11 @@ def train(
                 cue_classes=cue_classes,
             )
             table = rel.type_table.copy()
-            table["role"] = [
-                "drives the label"
-                if k in driving
-                else "look-alike"
-                if k in LOOKALIKE_TYPES
-                else "cue"
-                if k == "cue"
-                else "human, not driving"
-                for k in table["kind"]
-            ]
+            table["role"] = [reliance_role(task_obj, k) for k in table["kind"]]
             result.reliance[(spec.name, seed)] = table
             result.relied_on[(spec.name, seed)] = list(rel.relied_types())
+            if on_reliance is not None:
+                on_reliance(spec.name, seed, table, result.relied_on[(spec.name, seed)])
     result.accuracy = pd.DataFrame(rows)
     return result
 

@@ -15,8 +15,6 @@ from pathlib import Path
 
 import pandas as pd
 
-from xbench.errors import XbenchInputError
-
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("task", help="a shipped task name (see tasks/) or a task file path")
@@ -49,86 +47,45 @@ def _fmt(df: pd.DataFrame) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    from xbench.models.train import train_model
+    from xbench.api import train
     from xbench.runs.grid import check_safe_name
-    from xbench.tasks import build_task_data, load_task
-    from xbench.truth import compute_reliance
+    from xbench.tasks import load_task
 
     task = load_task(args.task)
     check_safe_name(task.name, f"{task.path}: name")  # it becomes part of the output file names
-    specs = task.models
-    if args.model:
-        specs = [task.model_spec(m) for m in args.model]
-    seeds = args.seed if args.seed is not None else task.seeds
-    for s in seeds:
-        if s < 0:
-            raise XbenchInputError("--seed", "seeds are non-negative integers", found=s)
-    t0 = time.perf_counter()
-    print(f"task {task.name}: building tiles ...", file=sys.stderr, flush=True)
-    data = build_task_data(task)
-    print(
-        f"task {task.name}: {len(data.train)}/{len(data.val)}/{len(data.test)} tiles "
-        f"({time.perf_counter() - t0:.1f} s)",
-        file=sys.stderr,
-        flush=True,
-    )
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    if not data.test_scenes and not args.no_reliance:
-        # a user's tile pack has masks but no scenes: nothing to remove instance by instance
+    t0 = time.perf_counter()
+    print(f"task {task.name}: building tiles and training ...", file=sys.stderr, flush=True)
+    rel_rows: list[dict] = []
+
+    def show_model(row: dict) -> None:
+        print(_fmt(pd.DataFrame([row])), flush=True)
+
+    def show_reliance(model: str, seed: int, table: pd.DataFrame, relied: list[str]) -> None:
         print(
-            f"task {task.name} uses a tile pack ({task.data.pack}): models are trained or loaded and their "
-            "accuracy reported; the reliance table needs synthetic scenes and is left out",
-            flush=True,
+            f"\nreliance of {model} (seed {seed}): mean drop of the target-class probability when the type is "
+            "removed, over the test tiles that hold it (n; 95% bootstrap CI)"
         )
-        args.no_reliance = True
-    n_rel = len(data.test_scenes) if args.reliance_tiles is None else min(args.reliance_tiles, len(data.test_scenes))
-    targets = (data.test.clean_labels if data.test.clean_labels is not None else data.test.labels)[:n_rel]
-    # the cue is switched on in tiles of the classes with driving types (the non-default classes)
-    cue_classes = [c for c, types in task.class_driving_types.items() if types]
-    rows, rel_rows = [], []
-    for spec in specs:
-        for seed in seeds:
-            tm = train_model(task, data, spec, seed, use_cache=not args.no_cache, batch_size=task.run["batch_size"] * 2)
-            acc = tm.accuracy
-            rows.append(
-                {
-                    "model": spec.name,
-                    "kind": spec.kind,
-                    "seed": seed,
-                    "train_acc": acc["train_accuracy"],
-                    "val_acc": acc["val_accuracy"],
-                    "test_acc": acc["test_accuracy"],
-                    "train_bacc": acc["train_balanced_accuracy"],
-                    "val_bacc": acc["val_balanced_accuracy"],
-                    "test_bacc": acc["test_balanced_accuracy"],
-                    "seconds": round(tm.seconds, 1),
-                    "status": "cached" if tm.cached else "trained",
-                }
-            )
-            print(_fmt(pd.DataFrame([rows[-1]])), flush=True)
-            if args.no_reliance:
-                continue
-            rel = compute_reliance(
-                tm.handle,
-                data.test_scenes[:n_rel],
-                targets,
-                seed=seed,
-                batch_size=task.run["batch_size"] * 2,
-                cue_classes=cue_classes,
-            )
-            table = rel.type_table.copy()
-            table["role"] = [_role(task, k) for k in table["kind"]]
-            print(
-                f"\nreliance of {spec.name} (seed {seed}) on {n_rel} test tiles: mean drop of the "
-                "target-class probability when the type is removed (95% bootstrap CI)"
-            )
-            print(_fmt(table[["kind", "role", "mean_drop", "ci_low", "ci_high", "n"]]))
-            print("relied on:", ", ".join(rel.relied_types()) or "(nothing)", "\n", flush=True)
-            for rec in table.to_dict("records"):
-                rel_rows.append({"task": task.name, "model": spec.name, "seed": seed, **rec})
-    acc_df = pd.DataFrame(rows)
-    print(f"\naccuracy of the models of task {task.name}")
+        print(_fmt(table[["kind", "role", "mean_drop", "ci_low", "ci_high", "n"]]))
+        print("relied on:", ", ".join(relied) or "(nothing)", "\n", flush=True)
+        for rec in table.to_dict("records"):
+            rel_rows.append({"task": task.name, "model": model, "seed": seed, **rec})
+
+    result = train(
+        task,
+        models=args.model,
+        seeds=args.seed,
+        use_cache=not args.no_cache,
+        reliance=not args.no_reliance,
+        reliance_tiles=args.reliance_tiles,
+        on_model=show_model,
+        on_reliance=show_reliance,
+    )
+    if result.note:
+        print(result.note, flush=True)
+    acc_df = result.accuracy
+    print(f"\naccuracy of the models of task {task.name} ({time.perf_counter() - t0:.1f} s)")
     print(_fmt(acc_df))
     acc_df.to_csv(out / f"{task.name}__train.csv", index=False)
     (out / f"{task.name}__train.md").write_text(
@@ -138,18 +95,6 @@ def run(args: argparse.Namespace) -> int:
         pd.DataFrame(rel_rows).to_csv(out / f"{task.name}__reliance.csv", index=False)
     print(f"\nwrote {out}/{task.name}__train.csv" + (f" and {task.name}__reliance.csv" if rel_rows else ""))
     return 0
-
-
-def _role(task, kind: str) -> str:
-    if kind == "cue":
-        return "spurious cue"
-    if any(kind in types for types in task.class_driving_types.values()):
-        return "label-driving"
-    if kind in task.lookalike_types:
-        return "look-alike"
-    from xbench.names import LOOKALIKE_TYPES
-
-    return "look-alike" if kind in LOOKALIKE_TYPES else "human, not driving"
 
 
 def _has_tabulate() -> bool:

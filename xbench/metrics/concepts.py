@@ -54,21 +54,12 @@ from xbench.metrics.base import (
     check_number,
     register_metric,
 )
+from xbench.truth import type_roles
 
 ROLES = ("relied-on", "relied-on look-alike", "unused")
 
 
 # -- pure cores -------------------------------------------------------------------------------------------
-def type_roles(types: list[str], relied: list[str], lookalikes: list[str]) -> dict[str, str]:
-    """Role of each type: ``relied-on``, ``relied-on look-alike`` or ``unused`` (not relied on, look-alikes
-    included)."""
-    relied_set, look = set(relied), set(lookalikes)
-    return {
-        t: ("relied-on look-alike" if t in look else "relied-on") if t in relied_set else "unused"
-        for t in dict.fromkeys(types)
-    }
-
-
 def recovery_auroc(importance: dict[str, float], roles: dict[str, str]) -> float:
     """AUROC of ``importance`` for relied-on (either relied role) against unused types; ties count 1/2.
     NaN when a group is empty. Chance level 0.5."""
@@ -158,7 +149,7 @@ def _roles_of(inputs: MetricInputs) -> dict[str, str] | None:
         return None
     types = list(inputs.mask_names or []) + list(inputs.relied_types)
     types += list(inputs.lookalike_types or []) + list(inputs.unused_types or [])
-    return type_roles(types, list(inputs.relied_types), list(inputs.lookalike_types or []))
+    return type_roles(list(inputs.relied_types), list(inputs.lookalike_types or []), list(dict.fromkeys(types)))
 
 
 def _one(key: str, truth: str, value: float, reason: str | None, settings: dict[str, Any]) -> MetricResult:
