@@ -53,6 +53,11 @@ def run(args: argparse.Namespace) -> int:
 
     task = load_task(args.task)
     check_safe_name(task.name, f"{task.path}: name")  # it becomes part of the output file names
+    for name in args.model or []:
+        task.model_spec(name)  # an unknown model is one error line before any work
+    for s in args.seed or []:
+        if s < 0:
+            raise XbenchInputError("--seed", "seeds are non-negative integers", found=s)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
