@@ -15,6 +15,8 @@ from pathlib import Path
 
 import pandas as pd
 
+from xbench.errors import XbenchInputError
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("task", help="a shipped task name (see tasks/) or a task file path")
