@@ -151,6 +151,7 @@ class ModelHandle:
         module: nn.Module | None = None,
         predict_fn: Callable[[np.ndarray], np.ndarray] | None = None,
         batch_size: int = 256,
+        channels_last: bool = True,
     ):
         if (module is None) == (predict_fn is None):
             raise XbenchInputError(f"model '{name}'", "give exactly one of a torch module or a callable")
@@ -167,7 +168,8 @@ class ModelHandle:
                 warnings.warn(f"model '{name}' was in training mode; switched to eval()", stacklevel=2)
             module.eval()
             self._install_counters(module)
-            self._use_channels_last(module)
+            if channels_last:
+                self._use_channels_last(module)
 
     # -- pickling (process pools and dask workers receive handles) -------------------------------------
     def __getstate__(self) -> dict[str, Any]:
