@@ -1,0 +1,64 @@
+"""Parallel efficiency of the executors on the demo grid: one local process, ``--jobs 2`` (a local process
+pool) and ``--executor dask`` on a 2-worker local cluster.
+
+    python tests/bench/bench_executors.py [--task demo] [--explainers a,b,...] [--repeat 1]
+
+Each run goes into a fresh temporary folder with the model already in the training cache (the first run
+trains it if needed; that run is not timed). Prints wall seconds (median of ``--repeat``), the speedup over
+one local process, the efficiency (speedup / workers) and whether the records equal those of the local
+run (every value but wall-clock ``seconds``). Targets: dask >= 1.6x one process and >= ``--jobs 2``.
+The machine's load average is printed beside each figure.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from xbench.runs import load_records, run_task
+
+KEY = ["model", "seed", "explainer", "metric", "truth", "tile"]
+
+
+def comparable(out: Path):
+    r = load_records(out)
+    return r[r["metric"] != "seconds"].drop(columns=["run_id"]).sort_values(KEY).reset_index(drop=True)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--task", default="demo")
+    parser.add_argument("--explainers", default=None, help="comma-separated subset (default: the task's)")
+    parser.add_argument("--repeat", type=int, default=1)
+    args = parser.parse_args()
+    explainers = args.explainers.split(",") if args.explainers else None
+    root = Path(tempfile.mkdtemp(prefix="xbench-bench-exec-"))
+    run_task(args.task, root / "warm", explainers=explainers or ["random"])  # trains / loads the model once
+    setups = [("local, 1 process", "local", 1), ("local, --jobs 2", "local", 2), ("dask, 2 local workers", "dask", 2)]
+    results = {}
+    for label, executor, jobs in setups:
+        walls, loads = [], []
+        for i in range(args.repeat):
+            out = root / f"{executor}-{jobs}-{i}"
+            t = time.perf_counter()
+            summary = run_task(args.task, out, executor=executor, jobs=jobs, explainers=explainers)
+            walls.append(time.perf_counter() - t)
+            loads.append(os.getloadavg()[0])
+            assert summary.ok, summary.failures
+        results[label] = (float(np.median(walls)), jobs, out, float(np.mean(loads)))
+    base_wall, _, base_out, _ = results["local, 1 process"]
+    reference = comparable(base_out)
+    print(f"{'executor':<24}{'wall s':>8}{'speedup':>9}{'efficiency':>12}{'records equal':>15}{'load':>7}")
+    for label, (wall, workers, out, load) in results.items():
+        speedup = base_wall / wall
+        same = comparable(out).equals(reference)
+        print(f"{label:<24}{wall:>8.1f}{speedup:>9.2f}{speedup / workers:>12.2f}{str(same):>15}{load:>7.1f}")
+
+
+if __name__ == "__main__":
+    main()
