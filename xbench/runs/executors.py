@@ -20,6 +20,7 @@ What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``
 from __future__ import annotations
 
 import hashlib
+import logging
 import multiprocessing
 import pickle
 from collections.abc import Callable, Iterator
@@ -164,7 +165,13 @@ def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int =
     else:
         with dask.config.set(worker_environment()):
             cluster = LocalCluster(
-                n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
+                n_workers=n_workers,
+                threads_per_worker=1,
+                processes=True,
+                host="127.0.0.1",
+                dashboard_address=None,
+                scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
+                silence_logs=logging.ERROR,
             )
         client = Client(cluster)
     try:
