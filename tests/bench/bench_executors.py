@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import resource
 import tempfile
 import time
 from pathlib import Path
@@ -30,6 +31,12 @@ def comparable(out: Path):
     return r[r["metric"] != "seconds"].drop(columns=["run_id"]).sort_values(KEY).reset_index(drop=True)
 
 
+def cpu_seconds() -> float:
+    own = resource.getrusage(resource.RUSAGE_SELF)
+    children = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime + children.ru_utime + children.ru_stime
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--task", default="demo")
@@ -42,22 +49,34 @@ def main() -> None:
     setups = [("local, 1 process", "local", 1), ("local, --jobs 2", "local", 2), ("dask, 2 local workers", "dask", 2)]
     results = {}
     for label, executor, jobs in setups:
-        walls, loads = [], []
+        walls, cpus, loads = [], [], []
         for i in range(args.repeat):
             out = root / f"{executor}-{jobs}-{i}"
+            c0 = cpu_seconds()
             t = time.perf_counter()
             summary = run_task(args.task, out, executor=executor, jobs=jobs, explainers=explainers)
             walls.append(time.perf_counter() - t)
+            cpus.append(cpu_seconds() - c0)
             loads.append(os.getloadavg()[0])
             assert summary.ok, summary.failures
-        results[label] = (float(np.median(walls)), jobs, out, float(np.mean(loads)))
-    base_wall, _, base_out, _ = results["local, 1 process"]
+        results[label] = (float(np.median(walls)), jobs, out, float(np.mean(loads)), float(np.median(cpus)))
+    base_wall, _, base_out, _, base_cpu = results["local, 1 process"]
     reference = comparable(base_out)
-    print(f"{'executor':<24}{'wall s':>8}{'speedup':>9}{'efficiency':>12}{'records equal':>15}{'load':>7}")
-    for label, (wall, workers, out, load) in results.items():
+    print(
+        f"{'executor':<24}{'wall s':>8}{'speedup':>9}{'efficiency':>12}{'CPU s':>8}{'CPU vs 1':>10}"
+        f"{'records equal':>15}{'load':>7}"
+    )
+    for label, (wall, workers, out, load, cpu) in results.items():
         speedup = base_wall / wall
         same = comparable(out).equals(reference)
-        print(f"{label:<24}{wall:>8.1f}{speedup:>9.2f}{speedup / workers:>12.2f}{str(same):>15}{load:>7.1f}")
+        print(
+            f"{label:<24}{wall:>8.1f}{speedup:>9.2f}{speedup / workers:>12.2f}{cpu:>8.1f}{cpu / base_cpu:>10.2f}"
+            f"{str(same):>15}{load:>7.1f}"
+        )
+    print(
+        "CPU s: user + system seconds of this process and its (waited-for) child processes; on a loaded "
+        "machine the CPU ratio is the load-independent cost of parallelism"
+    )
 
 
 if __name__ == "__main__":

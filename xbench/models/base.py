@@ -226,11 +226,15 @@ class ModelHandle:
                 hook.remove()
                 self._hooks.remove(hook)
             self.layout = "checking"
+            problem: str | None = "the layout check did not finish"
             try:
                 # outside inference mode (converted parameters would become inference tensors), on a copy
                 # without hooks (the caller's hooks, e.g. an explainer's, must see one forward pass)
                 with torch.inference_mode(False), torch.no_grad():
-                    problem = _channels_last_problem(module, x[:2].detach().clone())
+                    try:
+                        problem = _channels_last_problem(module, x[:2].detach().clone())
+                    except Exception as exc:  # noqa: BLE001 - e.g. a module that cannot be deep-copied
+                        problem = f"{type(exc).__name__}: {exc}"
                     if problem is not None:
                         module.to(memory_format=torch.contiguous_format)
             finally:
