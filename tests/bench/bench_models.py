@@ -12,7 +12,8 @@
    (forward-only images at the forward rate, images with a backward pass at the forward+backward rate).
    ``at limit`` = model-limited seconds / actual seconds: 1.0 means the harness adds nothing; the rest is
    harness overhead (numpy work, captum glue, Python). Metrics that do not call the model are listed with
-   their seconds only.
+   their seconds only. ``calls/tile, all`` and ``s/tile, all`` are each explainer's real per-tile cost in a
+   benchmark run: its own calls plus those of every metric (re-runs included), and the cell's seconds.
 
 The load of the machine (``os.getloadavg``) is printed beside the figures: on a shared machine both sides
 of each ratio slow down, but not equally.
@@ -92,7 +93,7 @@ def model_seconds(forward: int, backward: int, limit: dict[str, float]) -> float
 def achieved(run: Path, limit: dict[str, float]) -> None:
     manifest = json.loads((run / "manifest.json").read_text())
     print(f"\nwhat the run achieved ({run}):")
-    print(f"{'':<28}{'model calls':>12}{'seconds':>9}{'at limit':>10}")
+    print(f"{'':<28}{'model calls':>12}{'seconds':>9}{'at limit':>10}{'calls/tile, all':>17}{'s/tile, all':>13}")
     per_metric: dict[str, list[float]] = defaultdict(lambda: [0, 0, 0.0])
     total_model = total_seconds = 0.0
     for cell in manifest["cells"]:
@@ -101,7 +102,13 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
         m = model_seconds(f, b, limit)
         total_model += m
         ratio = f"{m / s:.2f}" if f and s > 0 else "-"
-        print(f"explainer {cell['explainer']:<18}{f + b:>12}{s:>9.2f}{ratio:>10}")
+        # the real per-tile cost: the explainer's own calls plus every metric's (re-runs included)
+        tiles = max(int(cost.get("tiles", 1)), 1)
+        every = f + b + sum(mf + mb for mf, mb in (cost.get("metric_calls") or {}).values())
+        print(
+            f"explainer {cell['explainer']:<18}{f + b:>12}{s:>9.2f}{ratio:>10}{every / tiles:>17.0f}"
+            f"{(cell.get('seconds') or 0.0) / tiles:>13.3f}"
+        )
         for key, (mf, mb) in (cost.get("metric_calls") or {}).items():
             acc = per_metric[key]
             acc[0] += mf
