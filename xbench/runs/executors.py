@@ -23,6 +23,7 @@ import hashlib
 import logging
 import multiprocessing
 import pickle
+import threading
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from pathlib import Path
@@ -149,59 +150,107 @@ def worker_environment() -> dict[str, Any]:
     }
 
 
-def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int = 2) -> Iterator[tuple[Cell, dict]]:
-    """Run cells on a dask.distributed cluster (an address, or a local cluster when none is given)."""
-    try:
+def _warm_imports() -> None:
+    """Import what cells need (torch, captum, the explainers and metrics), so a worker that starts while the
+    client prepares the models is ready when the first cell arrives."""
+    import xbench.explainers  # noqa: F401
+    import xbench.metrics  # noqa: F401
+    from xbench.explainers.registry import load_plugins
+
+    load_plugins()
+    _init_worker()
+
+
+class DaskCluster:
+    """A dask client (to ``scheduler``, or to a local cluster of ``n_workers`` one-thread workers) that starts
+    in a background thread as soon as it is made, so workers boot and import while the client prepares the
+    data, models and truth; calling it with the jobs waits for it, then runs the cells."""
+
+    def __init__(self, scheduler: str | None = None, n_workers: int = 2):
+        try:
+            import dask  # noqa: F401
+            import dask.distributed  # noqa: F401
+        except ImportError:
+            raise XbenchInputError(
+                "--executor dask", "dask.distributed is not installed", expected="pip install 'xbench[cluster]'"
+            ) from None
+        self.scheduler = scheduler
+        self.n_workers = n_workers
+        self.client: Any = None
+        self.cluster: Any = None
+        self.error: BaseException | None = None
+        self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
+        self._thread.start()
+
+    def _start(self) -> None:
         import dask
         from dask.distributed import Client, LocalCluster
+
+        try:
+            if self.scheduler:
+                self.client = Client(self.scheduler)
+            else:
+                with dask.config.set(worker_environment()):
+                    self.cluster = LocalCluster(
+                        n_workers=self.n_workers,
+                        threads_per_worker=1,
+                        processes=True,
+                        host="127.0.0.1",
+                        dashboard_address=None,
+                        scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
+                        silence_logs=logging.ERROR,
+                    )
+                self.client = Client(self.cluster)
+            self.client.run(_warm_imports)
+        except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
+            self.error = exc
+
+    def close(self) -> None:
+        self._thread.join()
+        if self.client is not None:
+            self.client.close()
+        if self.cluster is not None:
+            self.cluster.close()
+
+    def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict]]:
         from dask.distributed import as_completed as dask_completed
-    except ImportError:
-        raise XbenchInputError(
-            "--executor dask", "dask.distributed is not installed", expected="pip install 'xbench[cluster]'"
-        ) from None
-    cluster = None
-    if scheduler:
-        client = Client(scheduler)
-    else:
-        with dask.config.set(worker_environment()):
-            cluster = LocalCluster(
-                n_workers=n_workers,
-                threads_per_worker=1,
-                processes=True,
-                host="127.0.0.1",
-                dashboard_address=None,
-                scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
-                silence_logs=logging.ERROR,
-            )
-        client = Client(cluster)
-    try:
-        client.run(_init_worker)
-        ordered = longest_first(jobs)
-        # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
-        state = client.scatter(packed_state(jobs), broadcast=True, hash=True)
-        futures = [
-            client.submit(
-                compute_cell_with,
-                state,
-                *job,
-                key=f"xbench-cell-{job[1].cell_id}",
-                pure=False,
-                priority=len(ordered) - rank,  # dask runs higher priorities first
-            )
-            for rank, job in enumerate(ordered)
-        ]
-        by_key = {f.key: job[1] for f, job in zip(futures, ordered, strict=True)}
-        for future in dask_completed(futures):
-            yield by_key[future.key], future.result()
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+
+        self._thread.join()
+        try:
+            if self.error is not None:
+                raise self.error
+            client = self.client
+            ordered = longest_first(jobs)
+            if not ordered:
+                return
+            # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
+            state = client.scatter(packed_state(jobs), broadcast=True, hash=True)
+            futures = [
+                client.submit(
+                    compute_cell_with,
+                    state,
+                    *job,
+                    key=f"xbench-cell-{job[1].cell_id}",
+                    pure=False,
+                    priority=len(ordered) - rank,  # dask runs higher priorities first
+                )
+                for rank, job in enumerate(ordered)
+            ]
+            by_key = {f.key: job[1] for f, job in zip(futures, ordered, strict=True)}
+            for future in dask_completed(futures):
+                yield by_key[future.key], future.result()
+        finally:
+            self.close()
+
+
+def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int = 2) -> Iterator[tuple[Cell, dict]]:
+    """Run cells on a dask.distributed cluster (an address, or a local cluster when none is given)."""
+    yield from DaskCluster(scheduler, n_workers)(jobs)
 
 
 def executor_for(name: str, n_jobs: int, scheduler: str | None) -> Callable[[list[CellJob]], Iterator]:
     if name == "local":
         return lambda jobs: run_local(jobs, n_jobs)
     if name == "dask":
-        return lambda jobs: run_dask(jobs, scheduler, max(n_jobs, 1))
+        return DaskCluster(scheduler, max(n_jobs, 1))  # starts now, while the client prepares
     raise XbenchInputError("--executor", "unknown executor", expected="local or dask", found=name)
