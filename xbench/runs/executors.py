@@ -141,12 +141,15 @@ def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict
 
 def worker_environment() -> dict[str, Any]:
     """dask configuration for the workers a local cluster spawns: glibc's own trim threshold (unset the
-    nanny's ``MALLOC_TRIM_THRESHOLD_``), one thread for every numeric library."""
+    nanny's ``MALLOC_TRIM_THRESHOLD_``), one thread for every numeric library, no statistical profiler."""
     return {
         "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
         "distributed.nanny.pre-spawn-environ.OMP_NUM_THREADS": 1,
         "distributed.nanny.pre-spawn-environ.MKL_NUM_THREADS": 1,
         "distributed.nanny.pre-spawn-environ.OPENBLAS_NUM_THREADS": 1,
+        # the workers' statistical profiler samples every thread's stack each 10 ms: GIL and CPU time that
+        # the Python-heavy parts of a cell (captum glue, metrics) pay for
+        "distributed.worker.profile.enabled": False,
     }
 
 
