@@ -196,15 +196,15 @@ def test_cascading_randomization(trained):
         _input_gradient(handle, images, targets), images, targets, model=handle, rerun_explainer=_input_gradient, seed=2
     )
     with handle.counting() as calls:
-        (sp,) = compute_metric("randomization-spearman", inputs)
-        (ss,) = compute_metric("randomization-ssim", inputs)
+        (sp,) = compute_metric("randomization-spearman", inputs, cascade_steps="all")
+        (ss,) = compute_metric("randomization-ssim", inputs, cascade_steps="all")
     example = torch.from_numpy(images[:1])
     layers = parametrised_layers(handle.module, example)
     assert layers == ["conv1", "conv2", "head"]
     assert sp.curve_labels["randomization-spearman"] == ["head", "conv2", "conv1"]  # top layer first
     assert sp.curves["randomization-spearman"].shape == (6, 3)
-    np.testing.assert_array_equal(sp.values, sp.curves["randomization-spearman"][:, -1])
-    assert np.all((sp.values >= -1) & (sp.values <= 1)) and np.all((ss.values >= -1) & (ss.values <= 1))
+    np.testing.assert_array_equal(sp.values, np.abs(sp.curves["randomization-spearman"][:, -1]))  # |rho|
+    assert np.all((sp.values >= 0) & (sp.values <= 1)) and np.all((ss.values >= 0) & (ss.values <= 1))
     # gradients depend on the weights (Adebayo et al. 2018): after the full cascade they no longer match
     assert np.nanmean(sp.values) < 0.6
     # the original model is untouched and its call counter did not see the copies
@@ -218,11 +218,11 @@ def test_cascading_randomization(trained):
         return np.hypot(ndimage.sobel(g, axis=1), ndimage.sobel(g, axis=2))
 
     inputs = MetricInputs(edges(None, images, None), images, targets, model=handle, rerun_explainer=edges)
-    (sp,) = compute_metric("randomization-spearman", inputs)
+    (sp,) = compute_metric("randomization-spearman", inputs, cascade_steps="all")
     (ss,) = compute_metric("randomization-ssim", inputs)
     np.testing.assert_allclose(sp.curves["randomization-spearman"], 1.0)
     np.testing.assert_allclose(ss.values, 1.0)
-    (top,) = compute_metric("randomization-spearman", inputs, max_layers=1)
+    (top,) = compute_metric("randomization-spearman", inputs, max_layers=1, cascade_steps="all")
     assert top.curve_labels["randomization-spearman"] == ["head"]
 
 

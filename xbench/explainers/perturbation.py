@@ -39,6 +39,7 @@ CITE_KERNEL_SHAP = (
     "(KernelSHAP); SLIC superpixels: Achanta et al. IEEE TPAMI 2012."
 )
 PERTURB_BASELINES = ("zero", "mean", "blur")
+RISE_GROUP = 256  # perturbed copies built at once (the model sees them in its preferred batches)
 
 
 @register_explainer(
@@ -113,18 +114,20 @@ def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_si
     p = check_float(key, "p", p, 0.0, 1.0, inclusive_min=False)
     check_choice(key, "baseline", baseline, PERTURB_BASELINES)
     blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
-    forward = score_function(key, model, score)
+    score_function(key, model, score)  # validates the score for this model (black boxes have no logits)
     n, c, h, w = images.shape
     masks = rise_masks(n_masks, grid, p, (h, w), context.rng(stream=1))
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     out = np.zeros((n, h, w), dtype=np.float64)
+    # The handle's own batched scoring path (preferred batch size, channels-last, inference mode); masks go
+    # in groups of RISE_GROUP so that the perturbed copies of one tile stay small in memory.
     for i in range(n):
         x = images[i][None]
         b = base[i][None]
-        for ms in batches(n_masks, context.batch_size):
+        for ms in batches(n_masks, RISE_GROUP):
             m = masks[ms][:, None]
-            perturbed = x * m + b * (1.0 - m)
-            scores = forward(as_tensor(perturbed))[:, targets[i]].double().numpy()
+            perturbed = (x * m + b * (1.0 - m)).astype(np.float32)
+            scores = model.scores(perturbed, score)[:, targets[i]]
             out[i] += np.tensordot(scores, masks[ms], axes=(0, 0))
     return (out / (n_masks * p)).astype(np.float32)
 

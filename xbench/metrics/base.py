@@ -23,7 +23,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import torch
 
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
@@ -354,47 +353,17 @@ def compute_metric(key: str, inputs: MetricInputs, **settings: Any) -> list[Metr
 
 
 # -- helpers shared by the families ---------------------------------------------------------------------
-SCORE_CHUNK = 128
-
-
-def model_scorer(model: ModelHandle, chunk: int = SCORE_CHUNK) -> Callable[[np.ndarray], np.ndarray]:
+def model_scorer(model: ModelHandle, chunk: int | None = None) -> Callable[[np.ndarray], np.ndarray]:
     """``images (M, C, H, W) -> class probabilities (M, K)`` for the perturbation metrics.
 
-    Black boxes (and handles whose ``probabilities`` is overridden) go through ``model.probabilities``.
-    Plain torch handles take a faster route with the same numbers: inference mode, chunks of ``chunk``
-    images (the sweet spot for small CPU models; larger batches spill the caches) in channels-last
-    memory format (about 1.5x faster convolutions on CPU), falling back to the ordinary layout if the
-    module rejects it. Calls still pass through the module, so the handle's call counter sees them, and
-    the output is checked as ``probabilities`` checks it.
+    The handle's own batched path (:meth:`ModelHandle.probabilities`: inference mode, even chunks of the
+    preferred batch size, channels-last modules), so metrics and explainers score alike; handles whose
+    ``probabilities`` is overridden keep their override. ``chunk`` caps the images per call further. Calls
+    pass through the module, so the handle's call counter sees them, and the output is checked.
     """
-    if model.module is None or type(model).probabilities is not ModelHandle.probabilities:
+    if chunk is None or model.module is None or type(model).probabilities is not ModelHandle.probabilities:
         return model.probabilities
-    module = model.module
-    state = {"channels_last": True}
-
-    def forward(x: torch.Tensor) -> torch.Tensor:
-        if state["channels_last"]:
-            try:
-                return module(x.contiguous(memory_format=torch.channels_last))
-            except RuntimeError:  # e.g. a .view() on a spatial tensor inside the module
-                state["channels_last"] = False
-        return module(x)
-
-    def score(images: np.ndarray) -> np.ndarray:
-        images = np.asarray(images, dtype=np.float32)
-        m = images.shape[0]
-        out = np.empty((m, model.n_classes))
-        size = -(-m // max(1, -(-m // chunk))) if m else 1  # even chunks of at most `chunk` images
-        with torch.inference_mode():
-            for start in range(0, m, size):
-                part = images[start : start + size]
-                logits = forward(torch.from_numpy(np.ascontiguousarray(part)))
-                probs = torch.softmax(logits.double(), dim=1).numpy()
-                model._check_output(probs, part.shape[0])
-                out[start : start + part.shape[0]] = probs
-        return out
-
-    return score
+    return lambda images: model.scores(images, "probability", max_batch=chunk)
 
 
 def bad_attribution_tiles(attributions: np.ndarray) -> np.ndarray:

@@ -14,10 +14,21 @@ Normalisation: by default (``absolute = True``) both maps are compared as ``|a| 
 [0, 1], SSIM data range 1), as Adebayo et al. did for their absolute-value comparisons; with
 ``absolute = False`` as ``a / max |a|`` (in [-1, 1], data range 2). Spearman is unaffected by the scaling.
 
-Per-tile value: the similarity **after the full cascade** (every parametrised layer re-initialised, or the
-top ``max_layers`` when set): a faithful explanation should no longer resemble its original, so lower is
-better. The per-step similarities go into ``curves`` (N, L) with the cumulative layer names in
-``curve_labels``, for the figures.
+Per-tile value: how similar the map stays **after the full cascade** (every parametrised layer
+re-initialised, or the top ``max_layers`` when set): ``|rho|`` for ``randomization-spearman`` and ``|SSIM|``
+for ``randomization-ssim``. A faithful explanation should no longer resemble its original, so the best value
+is 0 and lower is better; the absolute value ranks a map that became anti-correlated with its original
+(rho = -0.6: still determined by it) behind one that became unrelated (rho = 0), as Adebayo et al. report
+absolute rank correlations. The signed similarities go into ``curves`` (N, S) with the cumulative layer
+names in ``curve_labels``, for the figures.
+
+Cost: the value needs only the final, fully randomized model, and every layer is re-initialised from its
+own seed (``seed * 1000 + step``), so re-initialising all layers at once gives **exactly** the model (and
+maps) that the end of the cascade gives. By default (``cascade_steps = 1``) the explainer is re-run once, on
+that model; ``cascade_steps = k`` re-runs it after k evenly spaced steps of the cascade (the last one is
+the full cascade) for the per-layer figure, and ``cascade_steps = "all"`` after every step (Adebayo et al.'s
+full curve; L re-runs for L layers). The values are identical (tests/test_speed_cascade.py checks equality
+to 1e-12) whatever ``cascade_steps``; only the curve's resolution and the cost change.
 """
 
 from __future__ import annotations
@@ -43,6 +54,7 @@ from xbench.metrics.base import (
     tile_result,
 )
 from xbench.models.base import ModelHandle
+from xbench.schema import Field, Where
 
 SSIM_WINDOW = 7
 
@@ -156,6 +168,17 @@ def _detached_copy(module: nn.Module) -> nn.Module:
     return clone.eval()
 
 
+def cascade_step_indices(n_layers: int, cascade_steps: int | str) -> list[int]:
+    """Steps (0-based, in cascade order) after which the explainer is re-run: ``"all"`` -> every step;
+    k -> k evenly spaced steps ending with the last (the fully randomized model)."""
+    if n_layers <= 0:
+        return []
+    if cascade_steps == "all":
+        return list(range(n_layers))
+    k = min(int(cascade_steps), n_layers)
+    return [-(-(i + 1) * n_layers // k) - 1 for i in range(k)]  # ceil((i + 1) L / k) - 1
+
+
 def cascading_randomization(
     model: ModelHandle,
     rerun_explainer: Callable,
@@ -163,9 +186,12 @@ def cascading_randomization(
     targets: np.ndarray,
     seed: int,
     max_layers: int | None = None,
+    cascade_steps: int | str = "all",
 ) -> tuple[list[str], list[np.ndarray]]:
-    """Re-initialise the parametrised layers top first on a deep copy; after each, re-run the explainer.
-    Returns the layer names (in cascade order) and the attributions (N, H, W) after each step."""
+    """Re-initialise the parametrised layers top first on a deep copy; re-run the explainer after the steps
+    chosen by ``cascade_steps`` (see :func:`cascade_step_indices`; the last step is always among them).
+    Returns the cumulative layer names of those steps (the layer re-initialised last) and the attributions
+    (N, H, W) after each."""
     assert model.module is not None
     clone = _detached_copy(model.module)
     example = torch.from_numpy(np.ascontiguousarray(np.asarray(images[:1], dtype=np.float32)))
@@ -174,18 +200,24 @@ def cascading_randomization(
         layers = layers[: int(max_layers)]
     modules = dict(clone.named_modules())
     handle = ModelHandle(f"{model.name}~randomized", model.n_classes, module=clone, batch_size=model.batch_size)
-    maps = []
+    chosen = set(cascade_step_indices(len(layers), cascade_steps))
+    names, maps = [], []
     for step, name in enumerate(layers):
         _reinitialise(modules[name], int(seed) * 1000 + step)
+        if step not in chosen:
+            continue
         out = np.asarray(rerun_explainer(handle, images, targets), dtype=np.float64)
         if out.shape != np.shape(images)[:1] + np.shape(images)[2:]:
             raise RuntimeError(f"rerun_explainer returned {out.shape}, expected (N, H, W)")
+        names.append(name)
         maps.append(out)
-    return layers, maps
+    return names, maps
 
 
-def _cascade(inputs: MetricInputs, max_layers: int | None) -> tuple[list[str], list[np.ndarray]]:
-    key = inputs.cache_key("randomization", max_layers)
+def _cascade(
+    inputs: MetricInputs, max_layers: int | None, cascade_steps: int | str
+) -> tuple[list[str], list[np.ndarray]]:
+    key = inputs.cache_key("randomization", max_layers, cascade_steps)
     if key not in inputs._cache:
         assert inputs.model is not None and inputs.rerun_explainer is not None
         inputs._cache[key] = cascading_randomization(
@@ -195,6 +227,7 @@ def _cascade(inputs: MetricInputs, max_layers: int | None) -> tuple[list[str], l
             np.asarray(inputs.targets),
             inputs.seed,
             max_layers,
+            cascade_steps,
         )
     return inputs._cache[key]
 
@@ -206,6 +239,10 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
     max_layers = settings["max_layers"]
     if max_layers is not None:
         check_number(key, "max_layers", max_layers, 1, 100_000, integer=True)
+    steps = settings["cascade_steps"]
+    if steps != "all":
+        check_number(key, "cascade_steps", steps, 1, 100_000, integer=True)
+        steps = int(steps)
     n = inputs.n_tiles
     if key == "randomization-ssim" and min(np.shape(inputs.attributions)[1:]) < SSIM_WINDOW:
         return tile_result(
@@ -216,7 +253,7 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
             settings,
         )
     bad = bad_attribution_tiles(inputs.attributions)
-    layers, maps = _cascade(inputs, max_layers)
+    layers, maps = _cascade(inputs, max_layers, steps)
     original = normalise_maps(inputs.attributions, absolute)
     curve = np.full((n, len(layers)), np.nan)
     for j, m in enumerate(maps):
@@ -230,7 +267,7 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
         values = np.full(n, np.nan)
         reasons[-1] = "the model has no parametrised layer to randomize"
         return tile_result(key, truth, values, reasons, settings)
-    values = curve[:, -1].copy()
+    values = np.abs(curve[:, -1])  # the similarity's size: 0 = the map moved completely
     last = maps[-1].reshape(n, -1)
     orig = np.asarray(inputs.attributions, dtype=np.float64).reshape(n, -1)
     for i in np.flatnonzero(~np.isfinite(values)):
@@ -249,14 +286,33 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
 
 
 _ADEBAYO = "Adebayo, Gilmer, Muelly, Goodfellow, Hardt, Kim. Sanity checks for saliency maps. NeurIPS 2018."
+
+
+def _cascade_steps(value: Any, where: Where) -> int | str:
+    if value == "all" or (isinstance(value, int) and not isinstance(value, bool) and value >= 1):
+        return value
+    raise where.error("not an allowed value", expected="a positive integer or 'all'", found=value)
+
+
 _SANITY = dict(
     family="model-dependence",
     needs=("torch model", "explainer re-runs"),
     per_tile=True,
-    defaults={"absolute": True, "max_layers": None},
+    defaults={"absolute": True, "max_layers": None, "cascade_steps": 1},
+    settings={
+        "cascade_steps": Field(
+            "any",
+            1,
+            check=_cascade_steps,
+            doc="re-run the explainer after 1 (the fully randomized model), k evenly spaced or 'all' steps",
+        )
+    },
     settings_doc={
         "absolute": "compare |a| / max|a| (true) or a / max|a| (false)",
         "max_layers": "randomize only the top this many parametrised layers (none = all)",
+        "cascade_steps": "re-run the explainer after this many evenly spaced cascade steps (1 = only the fully "
+        "randomized model, the value's only need; 'all' = every step, for the per-layer figure); values "
+        "are identical, only the curve and the cost change",
     },
     higher_is_better=False,
 )
@@ -264,10 +320,10 @@ _SANITY = dict(
 
 @register_metric(
     "randomization-spearman",
-    definition="Spearman correlation between the original maps and those of the fully "
-    "randomized model (layers re-initialised top first)",
+    definition="|Spearman correlation| between the original maps and those of the fully "
+    "randomized model (layers re-initialised top first); 0 = the map moved completely",
     citation=_ADEBAYO,
-    value_range=(-1, 1),
+    value_range=(0, 1),
     **_SANITY,
 )
 def _randomization_spearman(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
@@ -276,10 +332,10 @@ def _randomization_spearman(inputs: MetricInputs, truth: str, settings: dict[str
 
 @register_metric(
     "randomization-ssim",
-    definition="SSIM between the original maps and those of the fully randomized model "
-    "(layers re-initialised top first)",
+    definition="|SSIM| between the original maps and those of the fully randomized model "
+    "(layers re-initialised top first); 0 = the map moved completely",
     citation=_ADEBAYO + " SSIM: Wang, Bovik, Sheikh, Simoncelli. IEEE TIP 2004.",
-    value_range=(-1, 1),
+    value_range=(0, 1),
     **_SANITY,
 )
 def _randomization_ssim(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:

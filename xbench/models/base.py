@@ -9,15 +9,31 @@ Conventions (documented in DEVELOPERS.md):
 - :meth:`ModelHandle.probabilities` gives class probabilities for both kinds (softmax of logits for torch,
   the callable's output for black boxes); truth and perturbation metrics score with it.
 - Every image that passes through the model is counted (forward / backward), so explainers and metrics
-  can report their cost in model calls per tile.
+  can report their cost in model calls per tile; :data:`PROCESS_CALLS` totals the calls of every handle in
+  the process (metrics that build their own handle, e.g. a randomized copy, are counted there too).
+
+Speed (measured by ``tests/bench/bench_models.py``; see PROFILE notes in notes/speed.md):
+- Torch modules run in **channels-last** memory format: the handle converts the module's 4-D parameters
+  once, so every convolution and pooling layer after the first works on channels-last activations whatever
+  layout the caller passes (NCHW max-pooling runs ~10x slower than channels-last on CPU). The first call
+  checks the module against its NCHW result; a module that rejects the layout (e.g. ``.view`` on a spatial
+  tensor) or disagrees beyond :data:`LAYOUT_TOLERANCE` goes back to NCHW, with a warning.
+- No-gradient scoring (:meth:`ModelHandle.scores`, :meth:`ModelHandle.probabilities`) runs in inference
+  mode in even chunks of at most :func:`preferred_batch` images (the rule: about :data:`CALL_PIXELS`
+  pixels per call, a power of two, which is 32 tiles of 48x48 px; larger batches spill the CPU caches).
+- One torch thread per process (set by the runner); thread pools of BLAS are limited once per process by
+  :func:`single_thread_pools`.
 """
 
 from __future__ import annotations
 
+import copy
+import math
 import warnings
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import torch
@@ -26,12 +42,107 @@ from torch import nn
 from xbench.errors import XbenchInputError
 
 
+def _without_hooks(module: nn.Module) -> nn.Module:
+    """A deep copy of ``module`` with every hook removed (in eval mode)."""
+    clone = copy.deepcopy(module)
+    for m in clone.modules():
+        for attr in ("_forward_hooks", "_backward_hooks", "_forward_pre_hooks", "_backward_pre_hooks"):
+            hooks = getattr(m, attr, None)
+            if hooks is not None:
+                hooks.clear()
+        if hasattr(m, "_is_full_backward_hook"):
+            m._is_full_backward_hook = None
+    return clone.eval()
+
+
+def _channels_last_problem(module: nn.Module, sample: torch.Tensor) -> str | None:
+    """Why ``module`` (converted to channels-last) cannot run channels-last on ``sample``, or None."""
+    clone = _without_hooks(module)
+    try:
+        fast = clone(sample)
+    except RuntimeError as exc:
+        return f"{type(exc).__name__}: {exc}"
+    reference = clone.to(memory_format=torch.contiguous_format)(sample.contiguous())
+    if not isinstance(fast, torch.Tensor) or not isinstance(reference, torch.Tensor) or fast.shape != reference.shape:
+        return "outputs differ in shape"
+    fast, reference = fast.double(), reference.double()
+    if not torch.equal(torch.isfinite(fast), torch.isfinite(reference)):
+        return "non-finite logits differ"
+    finite = torch.isfinite(reference)  # a model that gives NaN gives it in both layouts (reported later)
+    gap = float((fast[finite] - reference[finite]).abs().max()) if finite.any() else 0.0
+    return None if gap <= LAYOUT_TOLERANCE else f"logits differ by {gap:.2g}"
+
+
 @dataclass
 class CallCount:
     """Images passed forward and backward through a model (a batch of 8 counts 8)."""
 
     forward: int = 0
     backward: int = 0
+
+
+# Every handle's calls in this process, including handles that metrics build on the fly (randomized copies).
+PROCESS_CALLS = CallCount()
+
+
+class _TrackedCount(CallCount):
+    """A handle's counter: increments also go to :data:`PROCESS_CALLS` (resets to 0 do not subtract)."""
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name in ("forward", "backward"):
+            delta = int(value) - int(getattr(self, name, 0))
+            if delta > 0:
+                object.__setattr__(PROCESS_CALLS, name, getattr(PROCESS_CALLS, name) + delta)
+        object.__setattr__(self, name, value)
+
+
+@contextmanager
+def counting_all() -> Iterator[CallCount]:
+    """Count the calls of every handle in this process made inside the block."""
+    before = CallCount(PROCESS_CALLS.forward, PROCESS_CALLS.backward)
+    result = CallCount()
+    try:
+        yield result
+    finally:
+        result.forward = PROCESS_CALLS.forward - before.forward
+        result.backward = PROCESS_CALLS.backward - before.backward
+
+
+# -- the batch-size rule ----------------------------------------------------------------------------------
+# Pixels per model call at which the zoo models reach their best throughput on a CPU core: 32 tiles of
+# 48x48 px (bench_models.py: forward 2.2-2.6k tiles/s at 16-64 tiles, falling at 128 and beyond as the
+# activations leave the caches). Rounded to a power of two tiles per call.
+CALL_PIXELS = 32 * 48 * 48
+MIN_BATCH, MAX_BATCH = 4, 256
+
+
+def preferred_batch(height: int, width: int, limit: int | None = None) -> int:
+    """Images per model call for tiles of ``height`` x ``width``: the power of two nearest to
+    ``CALL_PIXELS / (height * width)``, within [4, 256] and at most ``limit``."""
+    pixels = max(int(height) * int(width), 1)
+    size = 2 ** round(math.log2(max(CALL_PIXELS / pixels, 1.0)))
+    size = min(max(size, MIN_BATCH), MAX_BATCH)
+    return max(1, min(size, int(limit))) if limit else size
+
+
+_THREAD_POOLS: dict[str, Any] = {}
+
+
+def single_thread_pools() -> None:
+    """Limit BLAS / OpenMP thread pools (numpy, scikit-learn) to one thread, once per process.
+
+    ``threadpoolctl.threadpool_limits`` rescans the loaded libraries each time it is entered (~2 ms); the
+    runner calls this once per process instead of entering it around every small fit.
+    """
+    if "limits" in _THREAD_POOLS:
+        return
+    from threadpoolctl import threadpool_limits
+
+    _THREAD_POOLS["limits"] = threadpool_limits(1)  # kept: the limit holds for the life of the process
+
+
+# Largest |difference| of logits between channels-last and NCHW runs accepted on the first call.
+LAYOUT_TOLERANCE = 1e-3
 
 
 class ModelHandle:
@@ -44,6 +155,7 @@ class ModelHandle:
         module: nn.Module | None = None,
         predict_fn: Callable[[np.ndarray], np.ndarray] | None = None,
         batch_size: int = 256,
+        channels_last: bool = True,
     ):
         if (module is None) == (predict_fn is None):
             raise XbenchInputError(f"model '{name}'", "give exactly one of a torch module or a callable")
@@ -52,12 +164,91 @@ class ModelHandle:
         self.module = module
         self.predict_fn = predict_fn
         self.batch_size = batch_size
-        self.calls = CallCount()
+        self.calls: CallCount = _TrackedCount()
+        self.layout = "nchw"
+        self._hooks: list[Any] = []
         if module is not None:
             if module.training:
                 warnings.warn(f"model '{name}' was in training mode; switched to eval()", stacklevel=2)
             module.eval()
             self._install_counters(module)
+            if channels_last:
+                self._use_channels_last(module)
+
+    # -- pickling (process pools and dask workers receive handles) -------------------------------------
+    def __getstate__(self) -> dict[str, Any]:
+        state = self.__dict__.copy()
+        if self.module is not None:
+            for hook in self._hooks:
+                hook.remove()
+            try:
+                state["module"] = copy.deepcopy(self.module)
+            finally:
+                self._hooks = []
+                self._install_counters(self.module)
+                if self.layout == "probe":
+                    self._install_probe(self.module)
+        state["_hooks"] = []
+        state["calls"] = (self.calls.forward, self.calls.backward)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        forward, backward = state.pop("calls")
+        self.__dict__.update(state)
+        self.calls = self._tracked(forward, backward)  # not added to this process's total again
+        if self.module is not None:
+            self._install_counters(self.module)
+            if self.layout == "probe":
+                self._install_probe(self.module)
+
+    @staticmethod
+    def _tracked(forward: int, backward: int) -> CallCount:
+        count = _TrackedCount()
+        object.__setattr__(count, "forward", int(forward))
+        object.__setattr__(count, "backward", int(backward))
+        return count
+
+    # -- memory format -----------------------------------------------------------------------------
+    def _use_channels_last(self, module: nn.Module) -> None:
+        """Convert the module's 4-D parameters to channels-last; the first call checks the result."""
+        if not any(p.ndim == 4 for p in module.parameters()):
+            return
+        module.to(memory_format=torch.channels_last)
+        self.layout = "probe"
+        self._install_probe(module)
+
+    def _install_probe(self, module: nn.Module) -> None:
+        def probe(_mod, args):
+            x = args[0] if args else None
+            if self.layout != "probe" or not isinstance(x, torch.Tensor) or x.ndim != 4:
+                return None
+            for hook in [h for h in self._hooks if getattr(h, "_xbench_probe", False)]:
+                hook.remove()
+                self._hooks.remove(hook)
+            self.layout = "checking"
+            problem: str | None = "the layout check did not finish"
+            try:
+                # outside inference mode (converted parameters would become inference tensors), on a copy
+                # without hooks (the caller's hooks, e.g. an explainer's, must see one forward pass)
+                with torch.inference_mode(False), torch.no_grad():
+                    try:
+                        problem = _channels_last_problem(module, x[:2].detach().clone())
+                    except Exception as exc:  # noqa: BLE001 - e.g. a module that cannot be deep-copied
+                        problem = f"{type(exc).__name__}: {exc}"
+                    if problem is not None:
+                        module.to(memory_format=torch.contiguous_format)
+            finally:
+                self.layout = "channels_last" if problem is None else "nchw"
+            if problem is not None:
+                warnings.warn(
+                    f"model '{self.name}' runs in NCHW layout (slower): channels-last failed ({problem})",
+                    stacklevel=2,
+                )
+            return None
+
+        hook = module.register_forward_pre_hook(probe)
+        hook._xbench_probe = True  # type: ignore[attr-defined]
+        self._hooks.append(hook)
 
     # -- kind -------------------------------------------------------------------------------------
     @property
@@ -80,9 +271,9 @@ class ModelHandle:
             if isinstance(g, torch.Tensor):
                 self.calls.backward += int(g.shape[0])
 
-        module.register_forward_hook(on_forward)
+        self._hooks.append(module.register_forward_hook(on_forward))
         # A full backward hook fires once per backward pass through the whole module.
-        module.register_full_backward_hook(on_backward)
+        self._hooks.append(module.register_full_backward_hook(on_backward))
 
     @contextmanager
     def counting(self) -> Iterator[CallCount]:
@@ -102,26 +293,53 @@ class ModelHandle:
             raise XbenchInputError(f"model '{self.name}'", "is a black box: it has no gradients or layers")
         return self.module(x)
 
-    def probabilities(self, images: np.ndarray) -> np.ndarray:
-        """Class probabilities (N, n_classes) float64 in batches; validates the model's output."""
+    def call_batch(self, height: int, width: int) -> int:
+        """Images per model call for tiles of this size (:func:`preferred_batch`, at most ``batch_size``)."""
+        return preferred_batch(height, width, self.batch_size)
+
+    def scores(self, images: np.ndarray, kind: str = "probability", max_batch: int | None = None) -> np.ndarray:
+        """Class scores (N, n_classes) float64 without gradients: ``probability`` (softmax of the logits;
+        a black box's own output) or ``logit`` (torch modules only). The one place where scoring is
+        batched: inference mode, even chunks of at most :meth:`call_batch` images (and ``max_batch``);
+        output validated."""
         images = np.asarray(images, dtype=np.float32)
         if images.ndim != 4:
             raise XbenchInputError(
                 f"model '{self.name}' input", "wrong shape", expected="(N, C, H, W)", found=images.shape
             )
-        out = []
-        for start in range(0, images.shape[0], self.batch_size):
-            chunk = images[start : start + self.batch_size]
+        if kind not in ("probability", "logit"):
+            raise XbenchInputError(
+                f"model '{self.name}' scores", "unknown kind", expected="probability | logit", found=kind
+            )
+        if kind == "logit" and self.module is None:
+            raise XbenchInputError(f"model '{self.name}'", "is a black box: it has no logits")
+        m = images.shape[0]
+        out = np.empty((m, self.n_classes), dtype=np.float64)
+        if m == 0:
+            return out
+        limit = self.call_batch(*images.shape[2:]) if self.module is not None else max(int(self.batch_size or 256), 1)
+        if max_batch:
+            limit = max(1, min(limit, int(max_batch)))
+        size = -(-m // -(-m // limit))  # even chunks of at most `limit` images
+        for start in range(0, m, size):
+            chunk = images[start : start + size]
             if self.module is not None:
-                with torch.no_grad():
+                with torch.inference_mode():
                     logits = self.module(torch.from_numpy(np.ascontiguousarray(chunk)))
-                    probs = torch.softmax(logits.double(), dim=1).numpy()
+                    if kind == "probability":
+                        probs = torch.softmax(logits.double(), dim=1).numpy()
+                    else:
+                        probs = logits.double().numpy()
             else:
                 probs = np.asarray(self.predict_fn(chunk), dtype=np.float64)
                 self.calls.forward += chunk.shape[0]
             self._check_output(probs, chunk.shape[0])
-            out.append(probs)
-        return np.concatenate(out, axis=0) if out else np.zeros((0, self.n_classes))
+            out[start : start + chunk.shape[0]] = probs
+        return out
+
+    def probabilities(self, images: np.ndarray) -> np.ndarray:
+        """Class probabilities (N, n_classes) float64 in batches; validates the model's output."""
+        return self.scores(images, "probability")
 
     def _check_output(self, scores: np.ndarray, n: int) -> None:
         if scores.shape != (n, self.n_classes):

@@ -301,8 +301,10 @@ def _compute_cell(
 ) -> dict[str, Any]:
     from xbench.explainers import explain, get_explainer
     from xbench.metrics import MetricInputs, compute_metric
+    from xbench.models.base import counting_all, single_thread_pools
 
     torch.set_num_threads(CELL_THREADS)
+    single_thread_pools()  # once per process: entering threadpool_limits rescans the libraries each time
     needs = set(get_explainer(cell.explainer).needs)
     prep = prepare(task_path, cell.model, cell.seed, need_concepts="concept-sets" in needs)
     handle = prep.trained.handle
@@ -353,6 +355,7 @@ def _compute_cell(
 
         notes["verified truth"] = unverified_summary(prep.reliance)
     metric_seconds: dict[str, float] = {}
+    metric_calls: dict[str, list[int]] = {}  # images forward / backward through any model, per metric
     tiles = prep.explain_index.astype(np.int64)
     # Self-checks the explainer recorded (integrated gradients' and DeepLIFT's completeness gap) are
     # recorded for every such cell, listed in the task or not.
@@ -361,7 +364,10 @@ def _compute_cell(
         t0 = time.perf_counter()
         settings = dict(metric_settings.get(key, {}))
         size = min(int(settings.pop(TILE_SUBSET_SETTING, len(tiles))), len(tiles))
-        for result in compute_metric(key, inputs_for(size), **settings):
+        with counting_all() as calls:
+            results = compute_metric(key, inputs_for(size), **settings)
+        metric_calls[key] = [int(calls.forward), int(calls.backward)]
+        for result in results:
             tag = f"{key}/{result.truth}"
             ident = (run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth)
             if result.skipped:
@@ -422,6 +428,9 @@ def _compute_cell(
                 "backward_calls": int(explanation.cost.backward_calls),
                 "seconds": float(explanation.cost.seconds),
                 "tiles": int(len(tiles)),
+                # what the metrics cost on top (explainer re-runs included): {metric: [forward, backward]}
+                "metric_calls": metric_calls,
+                "metric_seconds": {k: round(v, 4) for k, v in metric_seconds.items()},
             },
         },
     }

@@ -2,28 +2,128 @@
 
 Whatever the executor, the client (this process) receives each finished cell and commits it to the store;
 workers never write the store.
+
+What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``):
+- **Setup ships once per worker.** The client has already built the task's tile packs, loaded the models
+  and computed the model-verified truth (``runs.execute.prepare``). That state goes to each worker once
+  (a process pool's initializer; on dask a broadcast ``scatter``, keyed by the task file's content hash),
+  so workers neither synthesize the tiles again nor recompute the truth, and no cell carries it.
+- **Longest cells first.** Cells are dispatched in decreasing expected cost (model calls per tile of the
+  explainer, :data:`EXPECTED_COST`), so the costliest cell (``rise``) does not start last and leave the other
+  workers idle at the end (longest-processing-time-first scheduling). Records do not depend on the order.
+- **glibc's allocator left alone on dask workers.** dask's nanny sets ``MALLOC_TRIM_THRESHOLD_=65536`` in
+  each worker by default, which makes every freed activation buffer go back to the kernel and be
+  page-faulted in again (tens of millions of page faults and ~1.6x the wall time on these small models);
+  the local cluster is started without it (``distributed.nanny.pre-spawn-environ``).
 """
 
 from __future__ import annotations
 
+import hashlib
+import logging
 import multiprocessing
+import pickle
+import threading
 import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from concurrent.futures.process import BrokenProcessPool
+from pathlib import Path
 from typing import Any
 
 from xbench.errors import XbenchInputError
+from xbench.runs import execute
 from xbench.runs.execute import CELL_THREADS, compute_cell, failed_result
 from xbench.runs.grid import Cell
 
 CellJob = tuple[str, Cell, list[str], dict[str, dict], str]  # task path, cell, metric keys, settings, run id
 
+# Expected model calls per explained tile of each built-in explainer at its demo settings (README cost
+# table); only the order matters. Unknown (plugin) explainers are assumed to be mid-range.
+EXPECTED_COST = {
+    "rise": 300,
+    "occlusion": 122,
+    "kernel-shap": 120,
+    "integrated-gradients": 64,
+    "smoothgrad": 32,
+    "tcav": 18,
+    "activation-clusters": 13,
+    "deeplift": 4,
+    "gradient": 2,
+    "input-x-gradient": 2,
+    "guided-backprop": 2,
+    "grad-cam": 2,
+    "grad-cam-pp": 2,
+    "random": 0,
+    "edges": 0,
+    "oracle": 0,
+}
+UNKNOWN_COST = 30
 
-def _init_worker() -> None:
+
+def longest_first(jobs: list[CellJob]) -> list[CellJob]:
+    """The jobs in decreasing expected cost (stable: equal costs keep the grid's order)."""
+    return sorted(jobs, key=lambda job: -EXPECTED_COST.get(job[1].explainer, UNKNOWN_COST))
+
+
+# -- the shared state that ships once per worker ----------------------------------------------------------
+def shared_state(jobs: list[CellJob]) -> dict[str, Any]:
+    """What this process has already prepared for the jobs' tasks, models and seeds (task data, models,
+    truth, concept sets), to install in a worker before it runs cells."""
+    # a job's task is the parsed task (or, from older callers, a task file's path)
+    paths = {str(Path(getattr(job[0], "path", job[0])).resolve()) for job in jobs}
+    task_keys = {key for key, (task, _) in execute._TASK_CACHE.items() if str(Path(task.path).resolve()) in paths}
+    return {
+        "tasks": {k: execute._TASK_CACHE[k] for k in task_keys},
+        # a prepared model's key starts with its task's key (then the model's fingerprint)
+        "preps": {k: v for k, v in execute._PREP_CACHE.items() if k[0].rsplit(":", 1)[0] in task_keys},
+        "concepts": {k: v for k, v in execute._CONCEPT_CACHE.items() if k in task_keys},
+    }
+
+
+def packed_state(jobs: list[CellJob]) -> tuple[str, bytes]:
+    """The shared state as (content hash, plain pickle bytes). Plain bytes: multiprocessing would otherwise
+    send torch tensors as shared-memory file descriptors, and a worker unpickles the bytes once (keyed by
+    the hash), not once per cell."""
+    blob = pickle.dumps(shared_state(jobs), protocol=pickle.HIGHEST_PROTOCOL)
+    return hashlib.blake2b(blob, digest_size=16).hexdigest(), blob
+
+
+_INSTALLED: set[str] = set()
+
+
+def install_state(state: dict[str, Any] | tuple[str, bytes] | None) -> None:
+    """Put shipped state into this process's caches (entries already present are kept); packed state is
+    unpickled once per process."""
+    if not state:
+        return
+    if isinstance(state, tuple):
+        key, blob = state
+        if key in _INSTALLED:
+            return
+        _INSTALLED.add(key)
+        state = pickle.loads(blob)
+    for name, cache in (("tasks", execute._TASK_CACHE), ("preps", execute._PREP_CACHE)):
+        for key, value in state.get(name, {}).items():
+            cache.setdefault(key, value)
+    for key, value in state.get("concepts", {}).items():
+        execute._CONCEPT_CACHE.setdefault(key, value)
+
+
+def _init_worker(state: tuple[str, bytes] | None = None) -> None:
     import torch
 
+    from xbench.models.base import single_thread_pools
+
     torch.set_num_threads(CELL_THREADS)
+    single_thread_pools()
+    install_state(state)
+
+
+def compute_cell_with(state: Any, *job: Any) -> dict[str, Any]:
+    """A dask task: install the (scattered, once per worker) shared state, then compute the cell."""
+    install_state(state)
+    return compute_cell(*job)
 
 
 def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict[str, Any]]]:
@@ -33,8 +133,12 @@ def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict
             yield job[1], compute_cell(*job)
         return
     ctx = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=n_jobs, mp_context=ctx, initializer=_init_worker) as pool:
-        futures = {pool.submit(compute_cell, *job): job[1] for job in jobs}
+    ordered = longest_first(jobs)
+    workers = min(n_jobs, max(len(ordered), 1))
+    with ProcessPoolExecutor(
+        max_workers=workers, mp_context=ctx, initializer=_init_worker, initargs=(packed_state(jobs),)
+    ) as pool:
+        futures = {pool.submit(compute_cell, *job): job[1] for job in ordered}
         for future in as_completed(futures):
             try:
                 result = future.result()
@@ -43,38 +147,121 @@ def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict
             yield futures[future], result
 
 
+def worker_environment() -> dict[str, Any]:
+    """dask configuration for the workers a local cluster spawns: glibc's own trim threshold (unset the
+    nanny's ``MALLOC_TRIM_THRESHOLD_``), one thread for every numeric library, no statistical profiler."""
+    return {
+        "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
+        "distributed.nanny.pre-spawn-environ.OMP_NUM_THREADS": 1,
+        "distributed.nanny.pre-spawn-environ.MKL_NUM_THREADS": 1,
+        "distributed.nanny.pre-spawn-environ.OPENBLAS_NUM_THREADS": 1,
+        # the workers' statistical profiler samples every thread's stack each 10 ms: GIL and CPU time that
+        # the Python-heavy parts of a cell (captum glue, metrics) pay for
+        "distributed.worker.profile.enabled": False,
+    }
+
+
+def _warm_imports() -> None:
+    """Import what cells need (torch, captum, the explainers and metrics), so a worker that starts while the
+    client prepares the models is ready when the first cell arrives."""
+    import xbench.explainers  # noqa: F401
+    import xbench.metrics  # noqa: F401
+    from xbench.explainers.registry import load_plugins
+
+    load_plugins()
+    _init_worker()
+
+
+class DaskCluster:
+    """A dask client (to ``scheduler``, or to a local cluster of ``n_workers`` one-thread workers) that starts
+    in a background thread as soon as it is made, so workers boot and import while the client prepares the
+    data, models and truth; calling it with the jobs waits for it, then runs the cells."""
+
+    def __init__(self, scheduler: str | None = None, n_workers: int = 2):
+        try:
+            import dask  # noqa: F401
+            import dask.distributed  # noqa: F401
+        except ImportError:
+            raise XbenchInputError(
+                "--executor dask", "dask.distributed is not installed", expected="pip install 'xbench[cluster]'"
+            ) from None
+        self.scheduler = scheduler
+        self.n_workers = n_workers
+        self.client: Any = None
+        self.cluster: Any = None
+        self.error: BaseException | None = None
+        self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
+        self._thread.start()
+
+    def _start(self) -> None:
+        import dask
+        from dask.distributed import Client, LocalCluster
+
+        try:
+            if self.scheduler:
+                self.client = Client(self.scheduler)
+            else:
+                with dask.config.set(worker_environment()):
+                    self.cluster = LocalCluster(
+                        n_workers=self.n_workers,
+                        threads_per_worker=1,
+                        processes=True,
+                        host="127.0.0.1",
+                        dashboard_address=None,
+                        scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
+                        silence_logs=logging.ERROR,
+                    )
+                self.client = Client(self.cluster)
+            self.client.run(_warm_imports)
+        except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
+            self.error = exc
+
+    def close(self) -> None:
+        self._thread.join()
+        if self.client is not None:
+            self.client.close()
+        if self.cluster is not None:
+            self.cluster.close()
+
+    def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict]]:
+        from dask.distributed import as_completed as dask_completed
+
+        self._thread.join()
+        try:
+            if self.error is not None:
+                raise self.error
+            client = self.client
+            ordered = longest_first(jobs)
+            if not ordered:
+                return
+            # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
+            state = client.scatter(packed_state(jobs), broadcast=True, hash=True)
+            futures = [
+                client.submit(
+                    compute_cell_with,
+                    state,
+                    *job,
+                    key=f"xbench-cell-{job[1].cell_id}",
+                    pure=False,
+                    priority=len(ordered) - rank,  # dask runs higher priorities first
+                )
+                for rank, job in enumerate(ordered)
+            ]
+            by_key = {f.key: job[1] for f, job in zip(futures, ordered, strict=True)}
+            for future in dask_completed(futures):
+                yield by_key[future.key], future.result()
+        finally:
+            self.close()
+
+
 def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int = 2) -> Iterator[tuple[Cell, dict]]:
     """Run cells on a dask.distributed cluster (an address, or a local cluster when none is given)."""
-    try:
-        from dask.distributed import Client, LocalCluster
-        from dask.distributed import as_completed as dask_completed
-    except ImportError:
-        raise XbenchInputError(
-            "--executor dask", "dask.distributed is not installed", expected="pip install 'xbench[cluster]'"
-        ) from None
-    cluster = None
-    if scheduler:
-        client = Client(scheduler)
-    else:
-        cluster = LocalCluster(
-            n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
-        )
-        client = Client(cluster)
-    try:
-        client.run(_init_worker)
-        futures = [client.submit(compute_cell, *job, key=f"xbench-cell-{job[1].cell_id}", pure=False) for job in jobs]
-        by_key = {f.key: job[1] for f, job in zip(futures, jobs, strict=True)}
-        for future in dask_completed(futures):
-            yield by_key[future.key], future.result()
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+    yield from DaskCluster(scheduler, n_workers)(jobs)
 
 
 def executor_for(name: str, n_jobs: int, scheduler: str | None) -> Callable[[list[CellJob]], Iterator]:
     if name == "local":
         return lambda jobs: run_local(jobs, n_jobs)
     if name == "dask":
-        return lambda jobs: run_dask(jobs, scheduler, max(n_jobs, 1))
+        return DaskCluster(scheduler, max(n_jobs, 1))  # starts now, while the client prepares
     raise XbenchInputError("--executor", "unknown executor", expected="local or dask", found=name)

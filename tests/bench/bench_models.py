@@ -1,0 +1,147 @@
+"""Model-limited throughput beside what every explainer and metric achieves (the harness overhead).
+
+    python tests/bench/bench_models.py [--run RUN_DIR] [--size 48] [--repeat 5]
+
+1. The model's own limit: images per second of the demo model (the zoo's ``cnn``, 6 bands, 48x48 tiles,
+   one torch thread) forward and forward+backward, in NCHW and channels-last layout, at batch 1, 8, 16,
+   32, 64, 128 and 256 (median of ``--repeat`` rounds), and the batch the handle's rule picks
+   (``xbench.models.base.preferred_batch``).
+2. What the benchmark achieves: from a run folder's manifest (``--run``; by default the demo task is run
+   into a temporary folder first), each explainer's own model calls and seconds, and each metric's (the
+   re-runs of the explainer included), turned into the seconds the model alone would need at its limit
+   (forward-only images at the forward rate, images with a backward pass at the forward+backward rate).
+   ``at limit`` = model-limited seconds / actual seconds: 1.0 means the harness adds nothing; the rest is
+   harness overhead (numpy work, captum glue, Python). Metrics that do not call the model are listed with
+   their seconds only. ``calls/tile, all`` and ``s/tile, all`` are each explainer's real per-tile cost in a
+   benchmark run: its own calls plus those of every metric (re-runs included), and the cell's seconds.
+
+The load of the machine (``os.getloadavg``) is printed beside the figures: on a shared machine both sides
+of each ratio slow down, but not equally.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from collections import defaultdict
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from xbench.models.base import ModelHandle, preferred_batch
+from xbench.models.zoo import build_torch_model
+
+BATCHES = (1, 8, 16, 32, 64, 128, 256)
+
+
+def throughput(module: torch.nn.Module, batch: int, size: int, backward: bool, repeat: int) -> float:
+    """Images per second (median of `repeat` rounds of >= 256 images)."""
+    x = torch.rand(batch, 6, size, size)
+    rounds = max(1, 256 // batch)
+
+    def once() -> None:
+        if backward:
+            xi = x.clone().requires_grad_(True)
+            module(xi)[:, 0].sum().backward()
+        else:
+            with torch.inference_mode():
+                module(x)
+
+    once()
+    rates = []
+    for _ in range(repeat):
+        t = time.perf_counter()
+        for _ in range(rounds):
+            once()
+        rates.append(batch * rounds / (time.perf_counter() - t))
+    return float(np.median(rates))
+
+
+def model_limit(size: int, repeat: int) -> dict[str, float]:
+    torch.set_num_threads(1)
+    torch.manual_seed(0)
+    nchw = build_torch_model("cnn", 6, 3).eval()
+    fast = ModelHandle("cnn", 3, module=build_torch_model("cnn", 6, 3).eval())  # the handle's layout
+    fast.probabilities(np.random.default_rng(0).random((2, 6, size, size), dtype=np.float32))
+    print(f"model limit: demo cnn, {size}x{size}x6 tiles, one torch thread; load {os.getloadavg()[0]:.1f}")
+    print(f"{'images/s':<28}" + "".join(f"{b:>8}" for b in BATCHES))
+    rows = {}
+    for backward in (False, True):
+        for name, module in (("NCHW", nchw), (f"handle ({fast.layout})", fast.module)):
+            label = ("forward+backward, " if backward else "forward, ") + name
+            rates = [throughput(module, b, size, backward, repeat) for b in BATCHES]
+            rows[label] = rates
+            print(f"{label:<28}" + "".join(f"{r:>8.0f}" for r in rates))
+    best = preferred_batch(size, size)
+    i = BATCHES.index(best) if best in BATCHES else 3
+    fwd = rows[f"forward, handle ({fast.layout})"][i]
+    bwd = rows[f"forward+backward, handle ({fast.layout})"][i]
+    print(f"the handle's batch rule picks {best} images per call: {fwd:.0f} forward/s, {bwd:.0f} fwd+bwd/s")
+    return {"forward": fwd, "backward": bwd}
+
+
+def model_seconds(forward: int, backward: int, limit: dict[str, float]) -> float:
+    return max(forward - backward, 0) / limit["forward"] + backward / limit["backward"]
+
+
+def achieved(run: Path, limit: dict[str, float]) -> None:
+    manifest = json.loads((run / "manifest.json").read_text())
+    print(f"\nwhat the run achieved ({run}):")
+    print(f"{'':<28}{'model calls':>12}{'seconds':>9}{'at limit':>10}{'calls/tile, all':>17}{'s/tile, all':>13}")
+    per_metric: dict[str, list[float]] = defaultdict(lambda: [0, 0, 0.0])
+    total_model = total_seconds = 0.0
+    for cell in manifest["cells"]:
+        cost = cell.get("cost") or {}
+        f, b, s = cost.get("forward_calls", 0), cost.get("backward_calls", 0), cost.get("seconds", 0.0)
+        m = model_seconds(f, b, limit)
+        total_model += m
+        ratio = f"{m / s:.2f}" if f and s > 0 else "-"
+        # the real per-tile cost: the explainer's own calls plus every metric's (re-runs included)
+        tiles = max(int(cost.get("tiles", 1)), 1)
+        every = f + b + sum(mf + mb for mf, mb in (cost.get("metric_calls") or {}).values())
+        print(
+            f"explainer {cell['explainer']:<18}{f + b:>12}{s:>9.2f}{ratio:>10}{every / tiles:>17.0f}"
+            f"{(cell.get('seconds') or 0.0) / tiles:>13.3f}"
+        )
+        for key, (mf, mb) in (cost.get("metric_calls") or {}).items():
+            acc = per_metric[key]
+            acc[0] += mf
+            acc[1] += mb
+            acc[2] += (cost.get("metric_seconds") or {}).get(key, 0.0)
+        total_seconds += cell.get("seconds") or 0.0
+    for key, (mf, mb, s) in sorted(per_metric.items(), key=lambda kv: -kv[1][2]):
+        m = model_seconds(int(mf), int(mb), limit)
+        total_model += m
+        ratio = f"{m / s:.2f}" if mf and s > 0 else "-"
+        print(f"metric {key:<21}{int(mf + mb):>12}{s:>9.2f}{ratio:>10}")
+    share = total_model / total_seconds if total_seconds else float("nan")
+    print(
+        f"\ncells: {total_seconds:.1f} s, of which the model at its limit would need {total_model:.1f} s "
+        f"({100 * share:.0f}%); harness overhead {100 * (1 - share):.0f}% of the cells' wall time; "
+        f"load {os.getloadavg()[0]:.1f}"
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--run", type=Path, default=None, help="a run folder of the demo task (default: run it)")
+    parser.add_argument("--size", type=int, default=48)
+    parser.add_argument("--repeat", type=int, default=5)
+    args = parser.parse_args()
+    limit = model_limit(args.size, args.repeat)
+    run = args.run
+    if run is None:
+        run = Path(tempfile.mkdtemp(prefix="xbench-bench-")) / "demo"
+        print(f"\nrunning the demo task into {run} ...", flush=True)
+        subprocess.run([sys.executable, "-m", "xbench.cli", "run", "demo", "--out", str(run)], check=True)
+    achieved(run, limit)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,91 @@
+"""Parallel executors give the local executor's records, and ship the prepared state once per worker."""
+
+from __future__ import annotations
+
+import json
+import os
+import pickle
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from xbench.runs import execute, load_records, run_task
+from xbench.runs.executors import install_state, longest_first, shared_state
+
+TINY = Path(__file__).parent / "data" / "tiny_task.toml"
+KEY = ["model", "seed", "explainer", "metric", "truth", "tile"]
+EXPLAINERS = ["gradient", "occlusion", "oracle"]
+
+
+@pytest.fixture(scope="module")
+def local_run(tmp_path_factory):
+    cache = tmp_path_factory.mktemp("xbench-cache")
+    old = os.environ.get("XBENCH_CACHE")
+    os.environ["XBENCH_CACHE"] = str(cache)
+    out = tmp_path_factory.mktemp("local")
+    summary = run_task(TINY, out, explainers=EXPLAINERS)
+    assert summary.ok, summary.failures
+    yield out
+    if old is None:
+        os.environ.pop("XBENCH_CACHE", None)
+    else:
+        os.environ["XBENCH_CACHE"] = old
+
+
+def comparable(out: Path) -> pd.DataFrame:
+    records = load_records(out)
+    kept = records[records["metric"] != "seconds"].drop(columns=["run_id"])  # wall-clock values differ
+    return kept.sort_values(KEY).reset_index(drop=True)
+
+
+@pytest.mark.parametrize("executor", ["local", "dask"])
+def test_two_workers_give_the_local_records(local_run, tmp_path, executor):
+    if executor == "dask":
+        pytest.importorskip("dask.distributed")
+    summary = run_task(TINY, tmp_path / executor, executor=executor, jobs=2, explainers=EXPLAINERS)
+    assert summary.ok, summary.failures
+    pd.testing.assert_frame_equal(comparable(tmp_path / executor), comparable(local_run))
+
+
+def test_metric_calls_and_seconds_are_recorded_per_metric(local_run):
+    cells = {c["explainer"]: c for c in json.loads((local_run / "manifest.json").read_text())["cells"]}
+    cost = cells["occlusion"]["cost"]
+    # the randomization check re-runs occlusion once on the randomized model: 16 windows + 1 per tile
+    # (32 px tiles, window = stride = 8), 12 tiles
+    assert cost["metric_calls"]["randomization-spearman"] == [12 * 17, 0]
+    assert cost["metric_calls"]["mass-accuracy"] == [0, 0]  # the map alone
+    assert cells["oracle"]["cost"]["metric_calls"]["randomization-spearman"] == [0, 0]  # no model call
+    assert set(cost["metric_seconds"]) == set(cost["metric_calls"])
+    assert all(v >= 0 for v in cost["metric_seconds"].values())
+
+
+def test_shared_state_makes_a_fresh_worker_skip_its_setup(local_run, monkeypatch):
+    task_path = str(TINY.resolve())
+    cell = type("C", (), {"explainer": "gradient"})()
+    state = pickle.loads(pickle.dumps(shared_state([(task_path, cell, [], {}, "r")])))  # as a worker gets it
+    assert state["preps"] and state["tasks"]
+    saved = (dict(execute._TASK_CACHE), dict(execute._PREP_CACHE))
+    execute._TASK_CACHE.clear()
+    execute._PREP_CACHE.clear()
+    try:
+
+        def forbidden(*_a, **_k):
+            raise AssertionError("a worker with shipped state must not rebuild the data or the truth")
+
+        monkeypatch.setattr("xbench.tasks.build_task_data", forbidden)
+        monkeypatch.setattr("xbench.truth.compute_reliance", forbidden)
+        install_state(state)
+        prep = execute.prepare(task_path, "cnn", 0)
+        assert prep.images.shape[0] == 12 and prep.trained.handle.layout == "channels_last"
+    finally:
+        execute._TASK_CACHE.clear()
+        execute._PREP_CACHE.clear()
+        execute._TASK_CACHE.update(saved[0])
+        execute._PREP_CACHE.update(saved[1])
+
+
+def test_costliest_cells_are_dispatched_first():
+    cells = [type("C", (), {"explainer": k})() for k in ("oracle", "gradient", "rise", "my-plugin", "occlusion")]
+    order = [job[1].explainer for job in longest_first([("t", c, [], {}, "r") for c in cells])]
+    assert order == ["rise", "occlusion", "my-plugin", "gradient", "oracle"]
