@@ -15,6 +15,8 @@ cd "$(dirname "$0")/.."
 export XBENCH_CACHE="${XBENCH_CACHE:-$(mktemp -d)}"
 JOBS="${JOBS:-2}"
 SECONDS=0
+# from scratch: a run folder keeps what earlier runs put there, so stale folders would mix in old values
+rm -rf results/demo results/roads results/clearings results/demo-transplant results/geotiff-roads results/report
 xbench run demo --out results/demo --quiet --jobs "$JOBS"
 xbench run roads --out results/roads --seeds 0,1,2 --quiet --jobs "$JOBS"
 xbench run clearings --out results/clearings --seeds 0,1,2 --quiet --jobs "$JOBS"
