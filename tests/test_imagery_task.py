@@ -98,3 +98,11 @@ def test_geotiff_plus_geojson_task_runs_from_the_cli(tmp_path, capsys, one_torch
     notes = [n for c in manifest["cells"] for n in c["notes"].values()]
     assert any("verified" in n or "twins" in n for n in notes)  # no twins: skipped, with the reason
     assert manifest["data"]["pack"] == task.data.pack
+    # the run folder says where each explained test tile lies: the records' tile -> raster, row/col, CRS
+    run_georef = pd.read_csv(out / "georef.csv")
+    assert run_georef.tile.tolist() == list(range(12)) and set(run_georef.split) == {"test"}
+    pd.testing.assert_frame_equal(
+        run_georef[["tile", "row", "col", "a", "c", "f"]].reset_index(drop=True),
+        test_rows[["tile", "row", "col", "a", "c", "f"]].reset_index(drop=True),
+        check_dtype=False,
+    )

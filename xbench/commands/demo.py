@@ -14,23 +14,32 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", type=Path, default=Path("xbench-demo"), help="demo folder (default: ./xbench-demo)")
     parser.add_argument("--jobs", type=int, default=1, help="cells run at once")
     parser.add_argument("--quiet", action="store_true", help="no progress bars")
+    parser.add_argument(
+        "--transplant",
+        action="store_true",
+        help="the transplanted variant: the demo's structures planted into a generated Vellardine GeoTIFF scene",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
     from xbench.report import write_report
+    from xbench.report.recommend import console_lines
 
     started = time.perf_counter()
     run_dir = args.out / "run"
     report_dir = args.out / "report"
-    print("xbench demo: Vellardine forest district (synthetic), task 'demo'")
-    summary = run_task("demo", run_dir, jobs=args.jobs, progress=not args.quiet)
+    task = "demo-transplant" if args.transplant else "demo"
+    where = "a generated GeoTIFF scene with transplanted structures" if args.transplant else "synthetic"
+    print(f"xbench demo: Vellardine forest district ({where}), task '{task}'")
+    summary = run_task(task, run_dir, jobs=args.jobs, progress=not args.quiet)
     print_summary(summary)
     report = write_report([run_dir], report_dir)
-    print(f"report: {report_dir}/ ({len(report.paths)} files written)")
-    for warning in report.warnings[:3]:
-        print(f"  note: {warning}")
-    if len(report.warnings) > 3:
-        print(f"  ... {len(report.warnings) - 3} more notes in {report_dir / 'report.log'}")
+    print(f"report: {report_dir}/ ({len(report.paths)} files written; {len(report.warnings)} notes in report.log)")
+    lines = console_lines(report.recommendations)
+    if lines:
+        print("which explainer to use (cannot be told apart from the best; cost per tile; recommendations.md):")
+        for line in lines:
+            print(f"  {line}")
     print("look at:")
     print(f"  {report_dir / 'report.html'}   tables and figures in one page")
     print(f"  {report_dir / 'methods.md'}    methods text (with {report_dir / 'refs.bib'})")

@@ -294,6 +294,20 @@ def _kept_table(store: CellStore, order: list[str], contributes: dict, first: se
     return pd.concat(frames, ignore_index=True)[columns]
 
 
+def write_georeference(out: Path, task: Any) -> None:
+    """``georef.csv`` in the run folder when the test tiles were read from georeferenced rasters: for each
+    test tile (the ``tile`` of the records) its source raster, pixel row/col, transform and CRS, so a user
+    can find it again."""
+    from xbench.data import atomic_write
+    from xbench.imagery.taskdata import write_georef_csv
+
+    test = task_and_data(task)[1].test
+    meta = test.meta.get("georef") if isinstance(test.meta, dict) else None
+    if getattr(test, "georef", None) is None or not meta:
+        return
+    atomic_write(out / "georef.csv", lambda tmp: write_georef_csv(test.georef, meta, Path(tmp), {"test": len(test)}))
+
+
 def assemble(
     out: Path,
     task: Any,
@@ -338,6 +352,8 @@ def assemble(
         target = summary.skipped_metrics if skipped else summary.undefined
         if line not in target:
             target.append(line)
+
+    write_georeference(out, task)
 
     reliance_rows = []
     for (name, seed), prep in preps.items():
