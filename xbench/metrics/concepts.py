@@ -179,7 +179,7 @@ def _unusable_reason(inputs: MetricInputs) -> str | None:
     return None
 
 
-_CONCEPT = dict(family="concepts", per_tile=False)
+_CONCEPT: dict[str, Any] = dict(family="concepts", per_tile=False)
 _ALPHA_DOC = {
     "alpha": "pixel methods: level of the flagging rule (two-sided t-test of per-tile enrichment, Bonferroni "
     "over types); concept methods flag with their own alpha setting"

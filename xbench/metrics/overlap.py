@@ -330,7 +330,7 @@ def _run(
     return tile_result(key, truth, values, reasons, settings)
 
 
-_LOC = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
+_LOC: dict[str, Any] = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
 
 
 def _defaults(own: dict[str, Any] | None = None, weights: bool = False) -> dict[str, Any]:

@@ -35,7 +35,7 @@ from xbench.data import TilePack, atomic_write
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
 from xbench.models.forest import ForestPredictor, fit_forest, forest_hash, tile_features
-from xbench.models.zoo import TORCH_KINDS, build_torch_model, count_parameters
+from xbench.models.zoo import TORCH_KINDS, BandNorm, build_torch_model, count_parameters
 from xbench.tasks import cache_root
 
 TRAIN_CODE_VERSION = "1"
@@ -149,9 +149,10 @@ def evaluate(handle: ModelHandle, packs: dict[str, TilePack]) -> dict[str, float
 def _augment(batch: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Random dihedral transform per tile (8 rotations/flips): labels of top-down tiles are invariant."""
     out = np.empty_like(batch)
-    ks = rng.integers(0, 4, size=batch.shape[0])
-    flips = rng.random(batch.shape[0]) < 0.5
-    for i in range(batch.shape[0]):
+    n_tiles = len(batch)
+    ks = rng.integers(0, 4, size=n_tiles)
+    flips = rng.random(n_tiles) < 0.5
+    for i in range(n_tiles):
         t = np.rot90(batch[i], k=int(ks[i]), axes=(1, 2))
         out[i] = t[:, :, ::-1] if flips[i] else t
     return out
@@ -248,7 +249,10 @@ def train_model(
         arch, params = _split_params(spec)
         with deterministic_torch(seed):
             module = build_torch_model(spec.kind, n_bands, n_classes, **arch)
-            module.norm.set_statistics(data.train.images)
+            norm = module.norm
+            if not isinstance(norm, BandNorm):  # every zoo model standardises its input first
+                raise TypeError(f"zoo model '{spec.kind}' has no BandNorm input layer")
+            norm.set_statistics(data.train.images)
             history, best_epoch = _fit_torch(module, data.train, data.val, params, seed, n_classes)
         seconds, cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
         state = module.state_dict()
@@ -274,7 +278,7 @@ def train_model(
 
             def write_arrays(tmp: str) -> None:
                 with open(tmp, "wb") as fh:
-                    np.savez(fh, **arrays)
+                    np.savez(fh, allow_pickle=True, **arrays)  # numpy's default, stated for mypy
 
             atomic_write(entry / weights_file, write_arrays)
     else:
@@ -332,8 +336,10 @@ def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size:
             probe=probe,
             batch_size=batch_size,
         )
-        state = handle.module.state_dict()
-        weights_hash, n_params = state_dict_hash(state), count_parameters(handle.module)
+        module = handle.module
+        assert module is not None  # load_user_torch_model always returns a handle with its torch module
+        state = module.state_dict()
+        weights_hash, n_params = state_dict_hash(state), count_parameters(module)
     else:
         fn = call_factory(spec.params["factory"])
         if not callable(fn):

@@ -119,12 +119,12 @@ def validate_task_keys(task: Any) -> None:
         spec.check_settings(task.explainer_settings.get(key, {}), where)
     for i, key in enumerate(task.metrics):
         try:
-            spec = get_metric(key)
+            metric_spec = get_metric(key)
         except XbenchInputError as exc:
             raise top.child("metrics").child("keys").child(i).error(exc.problem, exc.expected, key) from None
         where = top.child("metrics").child("settings").child(key)
         settings = task.metric_settings.get(key, {})
-        spec.check_settings(settings, where)
+        metric_spec.check_settings(settings, where)
         tiles = settings.get("tiles", 1)
         if isinstance(tiles, bool) or not isinstance(tiles, int) or tiles < 1:  # `tiles`: see runs.execute
             raise where.child("tiles").error("bad value", expected="a positive integer", found=tiles)
