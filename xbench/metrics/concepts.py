@@ -118,7 +118,7 @@ def pixel_enrichment(
         return enrichment, present
     p = np.asarray(planted, dtype=bool).reshape(n, 1, -1)
     drives = present & (np.einsum("nkp,nkp->nk", m, np.broadcast_to(p, m.shape)) >= 0.5 * np.maximum(area, 1))
-    positive_class = p.reshape(n, -1).any(axis=1)[:, None]
+    positive_class = np.asarray(p.reshape(n, -1).any(axis=1))[:, None]  # asarray: numpy's stubs say "or scalar"
     fallback = present & positive_class & ~drives.any(axis=0)[None, :]
     return enrichment, drives | fallback
 

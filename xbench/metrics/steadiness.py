@@ -32,6 +32,7 @@ in reflectance units, the same in every band.
 from __future__ import annotations
 
 import inspect
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -156,6 +157,7 @@ def call_rerun_explainer(
     rerun_explainer: Any, model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray
 ) -> np.ndarray:
     """Call ``rerun_explainer`` with the row-to-tile index when it accepts one (the runner's does)."""
+    params: Mapping[str, inspect.Parameter]
     try:
         params = inspect.signature(rerun_explainer).parameters
     except (TypeError, ValueError):
