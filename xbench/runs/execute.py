@@ -24,7 +24,12 @@ from xbench.runs.grid import Cell, content_hash, model_fingerprint
 from xbench.runs.store import CONCEPT_COLUMNS, CURVE_COLUMNS, REASON_COLUMNS, RECORD_COLUMNS
 
 if TYPE_CHECKING:  # annotations only: the modules below are imported where used, when a cell first needs them
+    from collections.abc import Callable
+
     from xbench.data import TilePack
+    from xbench.explainers import ExplainContext
+    from xbench.metrics.base import MetricInputs, MetricResult
+    from xbench.models.base import ModelHandle
     from xbench.models.train import TrainedModel
     from xbench.tasks import ModelSpec, Task, TaskData
     from xbench.truth import Reliance
@@ -197,7 +202,7 @@ def _union_coverage(pack: TilePack, row: int, types: list[str]) -> np.ndarray:
     return out
 
 
-def explain_context(prep: Prepared, cell: Cell) -> Any:
+def explain_context(prep: Prepared, cell: Cell) -> ExplainContext:
     from xbench.explainers import ExplainContext
 
     task = prep.task
@@ -351,9 +356,9 @@ def _compute_cell(
     )
     # Metrics that re-run the explainer many times (sanity, stability) may be scored on the first K explained
     # tiles only (metric setting `tiles`); metrics on the same K share one inputs object and its cache.
-    inputs_by_size: dict[int, Any] = {len(prep.targets): full}
+    inputs_by_size: dict[int, MetricInputs] = {len(prep.targets): full}
 
-    def inputs_for(size: int) -> Any:
+    def inputs_for(size: int) -> MetricInputs:
         if size not in inputs_by_size:
             inputs_by_size[size] = subset_inputs(full, size, make_rerun_explainer(cell, context, size))
         return inputs_by_size[size]
@@ -448,7 +453,7 @@ def _compute_cell(
     return cell_result
 
 
-def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
+def make_rerun_explainer(cell: Cell, context: ExplainContext, size: int) -> Callable[..., np.ndarray]:
     """The cell's explainer with its settings, for metrics that re-run it (on another model or on perturbed
     copies of the first `size` tiles). Per-tile context (twins, masks) goes along when the row count matches
     those tiles; otherwise it is left out."""
@@ -460,7 +465,7 @@ def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
         return None if array is None else array[tiles]
 
     def rerun_explainer(
-        model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
+        model: ModelHandle, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
     ) -> np.ndarray:
         # `tiles`: for each row of `images`, the index of the explained tile it is a copy of.
         if tiles is None and images.shape[0] == size:
@@ -476,7 +481,7 @@ def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
     return rerun_explainer
 
 
-def subset_inputs(full: Any, size: int, rerun_explainer: Any) -> Any:
+def subset_inputs(full: MetricInputs, size: int, rerun_explainer: Callable[..., np.ndarray]) -> MetricInputs:
     """The metric inputs of the first `size` tiles."""
     from dataclasses import fields
 
@@ -492,7 +497,7 @@ def subset_inputs(full: Any, size: int, rerun_explainer: Any) -> Any:
     return type(full)(**values)
 
 
-def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:
+def curve_rows(cell: Cell, key: str, result: MetricResult) -> list[dict[str, Any]]:
     """Mean curves (with sd and n) for the figures: removal curves with x = fraction removed, the
     randomization cascade with x = layer step."""
     out: list[dict[str, Any]] = []

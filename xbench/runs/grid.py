@@ -17,12 +17,15 @@ import json
 import re
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from xbench import __version__
 from xbench.data import file_sha256
 from xbench.errors import XbenchInputError
 from xbench.schema import Where
+
+if TYPE_CHECKING:
+    from xbench.tasks import Task
 
 # Run settings that do not change any value (only whether a cell finishes in time): left out of cell keys.
 NON_VALUE_RUN_SETTINGS = ("cell_timeout",)
@@ -89,7 +92,7 @@ def check_safe_name(name: str, where: str) -> str:
     return name
 
 
-def validate_task_keys(task: Any) -> None:
+def validate_task_keys(task: Task) -> None:
     """Explainer and metric keys of a task must exist in the registries, their settings must be known and
     of the right kind, and there must be something to measure (checked before any work)."""
     from xbench.explainers import get_explainer
@@ -154,7 +157,7 @@ def model_fingerprint(spec: Any) -> dict[str, Any]:
     return out
 
 
-def data_fingerprint(task: Any) -> dict[str, Any]:
+def data_fingerprint(task: Task) -> dict[str, Any]:
     """What every cell of a task depends on besides its model, seed and explainer."""
     return {
         "task": task.name,
@@ -167,7 +170,7 @@ def data_fingerprint(task: Any) -> dict[str, Any]:
 
 
 def expand_grid(
-    task: Any,
+    task: Task,
     *,
     explainers: list[str] | None = None,
     models: list[str] | None = None,
