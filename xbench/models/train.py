@@ -36,7 +36,7 @@ from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
 from xbench.models.forest import ForestPredictor, fit_forest, forest_hash, tile_features
 from xbench.models.zoo import TORCH_KINDS, BandNorm, build_torch_model, count_parameters
-from xbench.tasks import cache_root
+from xbench.tasks import ModelSpec, Task, TaskData, cache_root
 
 TRAIN_CODE_VERSION = "1"
 TORCH_TRAIN_DEFAULTS: dict[str, Any] = {
@@ -55,7 +55,7 @@ class TrainedModel:
     """A trained (or cache-loaded) model and how well it does."""
 
     handle: ModelHandle
-    spec: Any
+    spec: ModelSpec
     seed: int
     accuracy: dict[str, float]
     seconds: float
@@ -76,7 +76,7 @@ class TrainedModel:
 # cache
 
 
-def cache_key(task: Any, spec: Any, seed: int) -> str:
+def cache_key(task: Task, spec: ModelSpec, seed: int) -> str:
     payload = {
         "data": task.data.raw,
         "model": spec.as_dict(),
@@ -220,14 +220,14 @@ def _fit_torch(
     return history, best_epoch
 
 
-def _split_params(spec: Any) -> tuple[dict[str, Any], dict[str, Any]]:
+def _split_params(spec: ModelSpec) -> tuple[dict[str, Any], dict[str, Any]]:
     arch = {k: v for k, v in spec.params.items() if k in ARCH_KEYS}
     train = {**TORCH_TRAIN_DEFAULTS, **{k: v for k, v in spec.params.items() if k not in ARCH_KEYS}}
     return arch, train
 
 
 def train_model(
-    task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: bool = True, batch_size: int = 256
+    task: Task, data: TaskData, model_spec: ModelSpec, seed: int, *, use_cache: bool = True, batch_size: int = 256
 ) -> TrainedModel:
     """Train one model of a task with one seed, or load it from the cache."""
     spec = model_spec
@@ -321,7 +321,7 @@ def train_model(
     )
 
 
-def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
+def load_user_model(spec: ModelSpec, data: TaskData, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
     """A user's model named in a task file: imported and loaded, never trained; checked on two test tiles."""
     from xbench.models.adapters import call_factory, load_user_torch_model, wrap_callable
 
@@ -374,7 +374,7 @@ def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size:
 
 
 def _load_cached(
-    entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int, band_names: list[str], batch_size: int
+    entry: Path, spec: ModelSpec, seed: int, n_bands: int, n_classes: int, band_names: list[str], batch_size: int
 ) -> TrainedModel | None:
     meta_path = entry / "meta.json"
     if not meta_path.is_file():

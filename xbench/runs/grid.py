@@ -25,7 +25,7 @@ from xbench.errors import XbenchInputError
 from xbench.schema import Where
 
 if TYPE_CHECKING:
-    from xbench.tasks import Task
+    from xbench.tasks import ModelSpec, Task
 
 # Run settings that do not change any value (only whether a cell finishes in time): left out of cell keys.
 NON_VALUE_RUN_SETTINGS = ("cell_timeout",)
@@ -144,7 +144,7 @@ def _source_sha256(factory: str) -> str | None:
     return file_sha256(origin) if origin and Path(origin).is_file() else None
 
 
-def model_fingerprint(spec: Any) -> dict[str, Any]:
+def model_fingerprint(spec: ModelSpec) -> dict[str, Any]:
     """What a model's values depend on: its configuration and, for user models, the checksums of the
     weights file and of the factory's source file (a retrained model or edited code recomputes)."""
     out: dict[str, Any] = {"name": spec.name, "kind": spec.kind, "params": spec.params}
