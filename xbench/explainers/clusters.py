@@ -314,6 +314,7 @@ def activation_clusters(
     else:  # no masks: no type to compare with (an empty type axis, so nothing below is matched)
         iou = purity = np.zeros((k, 0))
         names = []
+    has_overlap = context.fit_masks is not None or context.masks is not None
 
     class_names = (
         list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
@@ -393,8 +394,8 @@ def activation_clusters(
             "type_samples": samples,
             "type_class": type_class,
             "fit_cluster_maps": fit_maps.astype(np.int64),
-            "iou": iou,
-            "purity": purity,
+            "iou": iou if has_overlap else None,
+            "purity": purity if has_overlap else None,
             "mask_names": names,
             "class_names": class_names,
             "n_clusters": k,
