@@ -197,7 +197,7 @@ def run(task: str | Path | dict[str, Any] | Task, out_dir: str | Path, **options
     ``executor``, ``explainers``, ``models``, ``seeds``, ``metrics``...). Finished cells are reused."""
     from xbench.runs import run_task
 
-    return run_task(load(task), out_dir, **options)  # type: ignore[arg-type]  # run_task parses tasks too
+    return run_task(load(task), out_dir, **options)
 
 
 def report(run_dirs: str | Path | Sequence[str | Path], out_dir: str | Path, **options: Any) -> Any:

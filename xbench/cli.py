@@ -93,7 +93,8 @@ def _run_verb(args: argparse.Namespace, verb: str) -> int:
     except MemoryError:
         return _fail(verb, "out of memory: the sizes asked for are too large for this machine (lower them)")
     except UnicodeError as exc:
-        return _fail(verb, f"a file is not UTF-8 text ({exc.reason})")
+        # the decode/encode/translate subclasses carry `reason`; a bare UnicodeError has only its message
+        return _fail(verb, f"a file is not UTF-8 text ({getattr(exc, 'reason', exc)})")
     except OSError as exc:  # read-only or full destinations, missing folders, permissions
         return _fail(verb, _describe_os_error(exc))
     except SystemExit as exc:  # user code (a model factory, a plugin) calling sys.exit

@@ -201,7 +201,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
 
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
+            np.savez_compressed(fh, allow_pickle=True, **arrays)  # numpy's default, stated for mypy
 
     atomic_write(path, write)
     return path

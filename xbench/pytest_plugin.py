@@ -58,7 +58,7 @@ def _ini_path(config: pytest.Config, name: str) -> str | None:
     return str(path)
 
 
-def _keys(value: str | Iterable[Any] | None, cast: Callable = str) -> list | None:
+def _keys(value: str | int | Iterable[Any] | None, cast: Callable = str) -> list | None:
     if value is None:
         return None
     items = [value] if isinstance(value, str | int) else list(value)

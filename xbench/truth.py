@@ -37,7 +37,7 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from itertools import permutations
 from math import factorial
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
@@ -45,6 +45,9 @@ import pandas as pd
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
 from xbench.stats import bootstrap_ci as bootstrap_interval
+
+if TYPE_CHECKING:
+    from xbench.scenes.render import Scene
 
 VERIFIED_MIN_DROP = 0.02
 VERIFIED_REL_DROP = 0.10
@@ -203,12 +206,12 @@ def _plan(
     return plan, orders_of
 
 
-def scene_has_cue(scene: Any) -> bool:
+def scene_has_cue(scene: Scene) -> bool:
     """Whether a scene is rendered with a spurious cue switched on."""
     return bool(getattr(scene, "cue_on", False)) and getattr(scene, "cue", None) is not None
 
 
-def _batches(plan: list[_Render], scenes: Sequence[Any], batch_size: int) -> Iterator[np.ndarray]:
+def _batches(plan: list[_Render], scenes: Sequence[Scene], batch_size: int) -> Iterator[np.ndarray]:
     from xbench.scenes import render  # earlier stage
 
     for start in range(0, len(plan), batch_size):
@@ -240,7 +243,7 @@ def _unverified_reason(n: int, total: float, largest: float) -> str:
 
 def compute_reliance(
     model: ModelHandle,
-    scenes: list[Any],
+    scenes: list[Scene],
     targets: np.ndarray,
     *,
     seed: int = 0,

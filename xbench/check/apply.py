@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, TypedDict, TypeGuard
 
 import numpy as np
 import pandas as pd
@@ -24,6 +24,15 @@ from xbench.check.manifests import ManifestChange, manifest_changes, read_manife
 from xbench.check.records import _as_records
 from xbench.errors import XbenchInputError
 from xbench.stats import holm, wilcoxon_paired
+
+
+class _Figures(TypedDict):
+    """The numbers every gate outcome of one group reports (keyword arguments of GateOutcome)."""
+
+    limit: float | None
+    baseline: float | None
+    current: float | None
+    difference: float | None
 
 
 @dataclass
@@ -133,8 +142,10 @@ def _group_mean(values: pd.DataFrame) -> tuple[float, int]:
     return float(per_seed.mean()), int(len(finite))
 
 
-def _is_on(value: Any) -> bool:
-    """A rule value that asks for a check: a threshold (0 included) or true; not None or false."""
+def _is_on(value: Any) -> TypeGuard[float]:
+    """A rule value that asks for a check: a threshold (0 included) or true; not None or false.
+
+    Narrows to ``float`` for the type checker: a threshold is a number and ``true`` is an int (bool)."""
     return value is not None and value is not False
 
 
@@ -284,7 +295,7 @@ def compare(
                     expected=f"a value in [{vrange[0]}, {vrange[1]}]",
                     found=limit,
                 )
-            kw = dict(limit=limit, current=c_mean, baseline=b_mean if has_base else None, difference=diff)
+            kw: _Figures = dict(limit=limit, current=c_mean, baseline=b_mean if has_base else None, difference=diff)
             if c_n == 0:
                 row(check, "fail", "no finite value in the current run", **kw)
             elif (c_mean >= limit - tol) if check == "at-least" else (c_mean <= limit + tol):
@@ -314,7 +325,7 @@ def compare(
             limit = rule.get(key_name)
             if not _is_on(limit):
                 continue
-            kw = dict(limit=limit, baseline=b_mean, current=c_mean, difference=diff)
+            kw = _Figures(limit=limit, baseline=b_mean, current=c_mean, difference=diff)
             if both_undefined:
                 row(check, "skip", "undefined (NaN) in both runs", **kw)
             elif c_n == 0:
@@ -322,6 +333,7 @@ def compare(
             elif not np.isfinite(b_mean):
                 row(check, "skip", "undefined (NaN) in the baseline", **kw)
             else:
+                assert diff is not None  # has_base holds here (checked above), so the difference exists
                 worse = _worsening(diff, hib)
                 if check == "max-drop":
                     amount = worse
@@ -341,7 +353,7 @@ def compare(
 
         if rule.get("paired_test"):
             alpha = rule.get("alpha", settings.alpha)
-            kw = dict(limit=alpha, baseline=b_mean, current=c_mean, difference=diff)
+            kw = _Figures(limit=alpha, baseline=b_mean, current=c_mean, difference=diff)
             margin = 0.0
             if _is_on(rule.get("max_drop")):
                 margin = float(rule["max_drop"])
@@ -380,6 +392,7 @@ def compare(
             o.p_value = p
             o.message += ", Holm-adjusted"
     for o, alpha, hib in tests:
+        assert o.p_value is not None  # only outcomes with a p-value are in `tests`
         if o.p_value < alpha:
             way = "lower" if hib else ("higher" if hib is False else "different")
             if "margin" in o.message:

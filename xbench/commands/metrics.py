@@ -12,9 +12,12 @@ import argparse
 import json
 import shutil
 import textwrap
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from xbench.errors import XbenchInputError
+
+if TYPE_CHECKING:
+    from xbench.metrics.base import MetricSpec
 
 FAMILY_NOTES = {
     "overlap": "scored separately against the planted masks and the model-verified evidence",
@@ -39,11 +42,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
 
 
-def _needs(spec: Any) -> str:
+def _needs(spec: MetricSpec) -> str:
     return ", ".join(spec.needs) if spec.needs else "attributions only"
 
 
-def _as_dict(spec: Any) -> dict[str, Any]:
+def _as_dict(spec: MetricSpec) -> dict[str, Any]:
     lo, hi = spec.value_range
     return {
         "key": spec.key,
@@ -101,8 +104,7 @@ def _needs_text() -> dict[str, str]:
     return NEEDS_TEXT
 
 
-def _text_detail(spec: Any, width: int) -> str:
-    wrap = dict(width=max(40, width), subsequent_indent=" " * 16)
+def _text_detail(spec: MetricSpec, width: int) -> str:
     truths = "planted and verified (one result each)" if spec.truths != ("none",) else "none"
     rows = [
         ("definition", spec.definition),
@@ -115,7 +117,7 @@ def _text_detail(spec: Any, width: int) -> str:
         ("needs", "; ".join(f"{n} ({_needs_text()[n]})" for n in spec.needs) or "attributions only"),
     ]
     lines = [spec.key]
-    lines += [textwrap.fill(f"  {k:<12}  {v}", **wrap) for k, v in rows]
+    lines += [textwrap.fill(f"  {k:<12}  {v}", width=max(40, width), subsequent_indent=" " * 16) for k, v in rows]
     if spec.defaults:
         lines.append("  settings")
         for name, default in spec.defaults.items():

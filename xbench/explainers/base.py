@@ -14,7 +14,7 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -23,6 +23,10 @@ from scipy import ndimage
 
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
+
+if TYPE_CHECKING:
+    from torch import nn
+    from torch.utils.hooks import RemovableHandle
 
 # ---------------------------------------------------------------------------------------------------
 # Protocol types
@@ -316,6 +320,14 @@ def make_baseline(
 SCORES = ("probability", "logit")
 
 
+def torch_module(model: ModelHandle) -> nn.Module:
+    """The handle's torch module. Gradient and layer explainers run on white boxes only (the registry
+    refuses a black box before they run); a black box reaching here is an input error, not a crash."""
+    if model.module is None:
+        raise XbenchInputError(f"model '{model.name}'", "is a black box: it has no torch module")
+    return model.module
+
+
 def score_function(key: str, model: ModelHandle, score: str) -> Callable[[torch.Tensor], torch.Tensor]:
     """A forward function ``x (B, C, H, W) tensor -> class scores (B, n_classes) float32 tensor``.
 
@@ -338,7 +350,7 @@ def score_function(key: str, model: ModelHandle, score: str) -> Callable[[torch.
 
         return black_box
 
-    module = model.module
+    module = torch_module(model)
 
     def white_box(x: torch.Tensor) -> torch.Tensor:
         with torch.no_grad():
@@ -428,8 +440,8 @@ class LayerTap:
         self.replace = replace
         self.activation: torch.Tensor | None = None
         self.calls = 0
-        self._handle = None
-        self.module = model.module
+        self._handle: RemovableHandle | None = None
+        self.module = torch_module(model)
 
     def _hook(self, _module, _args, out):
         self.calls += 1
@@ -458,6 +470,13 @@ class LayerTap:
             self._handle.remove()
             self._handle = None
 
+    @property
+    def recorded(self) -> torch.Tensor:
+        """The layer's activation from the last :meth:`forward` (which raises when the layer did not run)."""
+        if self.activation is None:
+            raise XbenchInputError(f"explainer '{self.key}': layer '{self.layer_name}'", "no forward pass yet")
+        return self.activation
+
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         """Run the whole model once with the tap installed; returns the logits."""
         self.calls = 0
@@ -477,7 +496,7 @@ def layer_activations(key: str, model: ModelHandle, layer_name: str, images: np.
     with LayerTap(key, model, layer_name) as t, torch.no_grad():
         for sl in batches(images.shape[0], batch_size):
             t.forward(as_tensor(images[sl]))
-            out.append(as_numpy(t.activation))
+            out.append(as_numpy(t.recorded))
     if not out:
         raise XbenchInputError(f"explainer '{key}'", "no images to compute activations from")
     return np.concatenate(out, axis=0)

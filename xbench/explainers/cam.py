@@ -101,8 +101,8 @@ def grad_cam_pp(model, images, targets, context, *, layer, upsample):
             with torch.enable_grad(), backward_counted(model, x.shape[0]):
                 logits = t.forward(x)
                 score = logits.gather(1, idx[:, None]).sum()
-                (g,) = torch.autograd.grad(score, t.activation)
-            a = t.activation.detach().double()
+                (g,) = torch.autograd.grad(score, t.recorded)
+            a = t.recorded.detach().double()
             g = g.double()
             g2, g3 = g**2, g**3
             denom = 2.0 * g2 + a.sum(dim=(2, 3), keepdim=True) * g3

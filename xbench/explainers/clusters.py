@@ -93,6 +93,7 @@ def _positions(acts: np.ndarray) -> np.ndarray:
 def _fit_mixture(
     x: np.ndarray, n_clusters, cluster_range, covariance: str, seed: int
 ) -> tuple[GaussianMixture, dict[int, float]]:
+    candidates: range | list[int]
     if n_clusters == "bic":
         lo, hi = cluster_range
         candidates = range(lo, hi + 1)
@@ -129,7 +130,7 @@ def _overlap(cluster_maps: np.ndarray, masks: np.ndarray, n_clusters: int) -> tu
         # at the layer's resolution: a cell belongs to a type when the type covers any of its pixels
         # (a cluster cannot be thinner than one cell, so a thin road is compared with the cells it crosses)
         full = cluster_maps
-        masks = masks.reshape(n, k_types, ch, h // ch, cw, w // cw).any(axis=(3, 5))
+        masks = np.asarray(masks.reshape(n, k_types, ch, h // ch, cw, w // cw).any(axis=(3, 5)))
     else:
         full = nearest_index_upsample(cluster_maps, (h, w))
     m = masks.transpose(1, 0, 2, 3).reshape(k_types, -1)
@@ -292,9 +293,11 @@ def activation_clusters(
                 present = (cluster_maps[sl] == c).reshape(x.shape[0], -1).any(axis=1)
                 if not present.any():
                     continue
-                rows = np.flatnonzero(present)
-                current["mask"] = maps[rows] == c
-                drops[c, np.arange(sl.start, sl.stop)[rows]] = s0[rows] - scores(t.forward(x[rows]))
+                present_rows = np.flatnonzero(present)
+                current["mask"] = maps[present_rows] == c
+                drops[c, np.arange(sl.start, sl.stop)[present_rows]] = s0[present_rows] - scores(
+                    t.forward(x[present_rows])
+                )
             current["mask"] = None
 
     # attribution: each position carries its cluster's target-score drop
@@ -308,9 +311,10 @@ def activation_clusters(
         iou, purity = _overlap(fit_maps, np.asarray(context.fit_masks, bool), k)
     elif context.masks is not None:
         iou, purity = _overlap(cluster_maps, np.asarray(context.masks, bool), k)
-    else:
-        iou = purity = None
+    else:  # no masks: no type to compare with (an empty type axis, so nothing below is matched)
+        iou = purity = np.zeros((k, 0))
         names = []
+    has_overlap = context.fit_masks is not None or context.masks is not None
 
     class_names = (
         list(context.class_names) if context.class_names is not None else [str(i) for i in range(model.n_classes)]
@@ -321,7 +325,7 @@ def activation_clusters(
     for j in np.unique(targets):
         sel = present_all & (targets == j)[None, :]
         class_drops[:, :, j] = np.where(sel, drops[:, :, j], np.nan)
-    best_type = np.argmax(iou, axis=1) if iou is not None and iou.shape[1] else None
+    best_type = np.argmax(iou, axis=1) if iou.shape[1] else None
     matched: list[str | None] = [
         names[int(best_type[c])] if best_type is not None and iou[c, best_type[c]] >= max(min_iou, 1e-12) else None
         for c in range(k)
@@ -373,6 +377,7 @@ def activation_clusters(
             hit = bool(p is not None and p * max(len(names), 1) < alpha and mean >= max(min_drop, 1e-12))
             if best is None or (hit, mean) > (best[1], best[0]):
                 best = (mean, hit, d, q)
+        assert best is not None  # candidates is not empty, so the loop chose one
         importance[name], flagged[name], samples[name] = best[0], best[1], best[2]
         type_class[name] = class_names[best[3]] if best[3] < len(class_names) else str(best[3])
 
@@ -389,8 +394,8 @@ def activation_clusters(
             "type_samples": samples,
             "type_class": type_class,
             "fit_cluster_maps": fit_maps.astype(np.int64),
-            "iou": iou,
-            "purity": purity,
+            "iou": iou if has_overlap else None,
+            "purity": purity if has_overlap else None,
             "mask_names": names,
             "class_names": class_names,
             "n_clusters": k,

@@ -52,6 +52,7 @@ from xbench.explainers.base import (
     reduce_channels,
     reduce_is_signed,
     signed_maps,
+    torch_module,
 )
 from xbench.explainers.registry import register_explainer
 from xbench.models.base import ModelHandle
@@ -135,8 +136,8 @@ def _record_completeness(
             deltas[sl] = as_numpy(
                 method.compute_convergence_delta(as_tensor(raw[sl]), start_point=b, end_point=x, target=t)
             ).reshape(-1)
-            fx = model.module(x).double().gather(1, t[:, None])[:, 0]
-            fb = model.module(b).double().gather(1, t[:, None])[:, 0]
+            fx = torch_module(model)(x).double().gather(1, t[:, None])[:, 0]
+            fb = torch_module(model)(b).double().gather(1, t[:, None])[:, 0]
             change[sl] = (fx - fb).numpy()
     model.calls.forward, model.calls.backward = before
     context.self_checks[COMPLETENESS_KEY] = completeness_gap(deltas, change)
@@ -145,7 +146,7 @@ def _record_completeness(
 def _require_modules(key: str, model: ModelHandle, types: tuple[type, ...], what: str) -> None:
     """captum's modified backpropagation works through hooks on activation *modules*; a network whose
     non-linearities are all functional calls would silently get plain gradients instead."""
-    if not any(isinstance(m, types) for m in model.module.modules()):
+    if not any(isinstance(m, types) for m in torch_module(model).modules()):
         raise XbenchInputError(
             f"explainer '{key}'",
             f"model '{model.name}' has no {what} modules (functional activations such as torch.relu cannot be hooked)",

@@ -83,6 +83,7 @@ from xbench.explainers.base import (
     check_int,
     layer_activations,
     signed_maps,
+    torch_module,
     upsample,
 )
 from xbench.explainers.concept_sets import classes_of_type
@@ -109,7 +110,7 @@ def tcav_default_layer(model: ModelHandle) -> str:
     (the rectified map feeding the last conv block); the explain layer itself when none precedes it."""
     explain_layer = model.default_layer()
     previous = None
-    for name, module in model.module.named_modules():
+    for name, module in torch_module(model).named_modules():
         if name == explain_layer:
             break
         if isinstance(module, nn.ReLU):
@@ -180,9 +181,9 @@ def _run_layer(
             idx = torch.from_numpy(targets[sl])
             with torch.enable_grad(), backward_counted(model, x.shape[0]):
                 logits = t.forward(x)
-                (g,) = torch.autograd.grad(logits.gather(1, idx[:, None]).sum(), t.activation)
+                (g,) = torch.autograd.grad(logits.gather(1, idx[:, None]).sum(), t.recorded)
             grads.append(as_numpy(g))
-            acts.append(as_numpy(t.activation))
+            acts.append(as_numpy(t.recorded))
     grads_a, acts_a = np.concatenate(grads), np.concatenate(acts)
     gfeat = grads_a.sum(axis=(2, 3)) if pool == "mean" else grads_a.reshape(n, -1)
     gfeat = gfeat.astype(np.float64)

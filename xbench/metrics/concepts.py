@@ -109,7 +109,7 @@ def pixel_enrichment(
         return enrichment, present
     p = np.asarray(planted, dtype=bool).reshape(n, 1, -1)
     drives = present & (np.einsum("nkp,nkp->nk", m, np.broadcast_to(p, m.shape)) >= 0.5 * np.maximum(area, 1))
-    positive_class = p.reshape(n, -1).any(axis=1)[:, None]
+    positive_class = np.asarray(p.reshape(n, -1).any(axis=1))[:, None]  # asarray: numpy's stubs say "or scalar"
     fallback = present & positive_class & ~drives.any(axis=0)[None, :]
     return enrichment, drives | fallback
 
@@ -170,7 +170,7 @@ def _unusable_reason(inputs: MetricInputs) -> str | None:
     return None
 
 
-_CONCEPT = dict(family="concepts", per_tile=False)
+_CONCEPT: dict[str, Any] = dict(family="concepts", per_tile=False)
 _ALPHA_DOC = {
     "alpha": "pixel methods: level of the flagging rule (two-sided t-test of per-tile enrichment, Bonferroni "
     "over types); concept methods flag with their own alpha setting"

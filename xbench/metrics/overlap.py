@@ -325,12 +325,13 @@ def _run(
             values = pointing_game_scored(a, positives, valid, **extra)
         else:
             values = scored_pixels(core, a, positives, valid, **extra)
-        fringe_only = None if coverage is None else (~positives.any(axis=(1, 2)) & mask.any(axis=(1, 2)))
+        # np.asarray (no copy): numpy's stubs type a reduction with an axis as "scalar or array"
+        fringe_only = None if coverage is None else np.asarray(~positives.any(axis=(1, 2)) & mask.any(axis=(1, 2)))
     reasons = localization_reasons(inputs.attributions, positives, values, fringe_only=fringe_only, **flags)
     return tile_result(key, truth, values, reasons, settings)
 
 
-_LOC = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
+_LOC: dict[str, Any] = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
 
 
 def _defaults(own: dict[str, Any] | None = None, weights: bool = False) -> dict[str, Any]:

@@ -330,7 +330,7 @@ def _faith_runner(
     return run
 
 
-_FAITH = dict(
+_FAITH: dict[str, Any] = dict(
     family="response", needs=("model", "twins"), per_tile=True, defaults=_FAITH_DEFAULTS, settings_doc=_FAITH_DOC
 )
 

@@ -32,7 +32,8 @@ in reflectance units, the same in every band.
 from __future__ import annotations
 
 import inspect
-from typing import Any
+from collections.abc import Callable, Mapping
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -50,6 +51,9 @@ from xbench.metrics.base import (
     register_metric,
     tile_result,
 )
+
+if TYPE_CHECKING:
+    from xbench.models.base import ModelHandle
 
 _YEH = "Yeh, Hsieh, Suggala, Inouye, Ravikumar. On the (in)fidelity and sensitivity of explanations. NeurIPS 2019."
 
@@ -153,9 +157,14 @@ def infidelity(
 
 # -- runners ----------------------------------------------------------------------------------------------
 def call_rerun_explainer(
-    rerun_explainer: Any, model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray
+    rerun_explainer: Callable[..., np.ndarray],
+    model: ModelHandle | None,
+    images: np.ndarray,
+    targets: np.ndarray,
+    tiles: np.ndarray,
 ) -> np.ndarray:
     """Call ``rerun_explainer`` with the row-to-tile index when it accepts one (the runner's does)."""
+    params: Mapping[str, inspect.Parameter]
     try:
         params = inspect.signature(rerun_explainer).parameters
     except (TypeError, ValueError):
@@ -255,7 +264,13 @@ def _max_sensitivity(inputs: MetricInputs, truth: str, settings: dict[str, Any])
 
 
 def _calibrate_sensitivity(
-    model: Any, images: np.ndarray, good: np.ndarray, seed: int, samples: int, spread: np.ndarray, settings: dict
+    model: ModelHandle,
+    images: np.ndarray,
+    good: np.ndarray,
+    seed: int,
+    samples: int,
+    spread: np.ndarray,
+    settings: dict,
 ) -> float:
     """The largest fraction START_FRACTION / 2^k of the band spread whose uniform noise flips at most
     ``max_flips`` of the copies' predictions; records the choice in ``settings['calibrated']``."""

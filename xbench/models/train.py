@@ -35,8 +35,8 @@ from xbench.data import TilePack, atomic_write
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
 from xbench.models.forest import ForestPredictor, fit_forest, forest_hash, tile_features
-from xbench.models.zoo import TORCH_KINDS, build_torch_model, count_parameters
-from xbench.tasks import cache_root
+from xbench.models.zoo import TORCH_KINDS, BandNorm, build_torch_model, count_parameters
+from xbench.tasks import ModelSpec, Task, TaskData, cache_root
 
 TRAIN_CODE_VERSION = "1"
 TORCH_TRAIN_DEFAULTS: dict[str, Any] = {
@@ -55,7 +55,7 @@ class TrainedModel:
     """A trained (or cache-loaded) model and how well it does."""
 
     handle: ModelHandle
-    spec: Any
+    spec: ModelSpec
     seed: int
     accuracy: dict[str, float]
     seconds: float
@@ -76,7 +76,7 @@ class TrainedModel:
 # cache
 
 
-def cache_key(task: Any, spec: Any, seed: int) -> str:
+def cache_key(task: Task, spec: ModelSpec, seed: int) -> str:
     payload = {
         "data": task.data.raw,
         "model": spec.as_dict(),
@@ -149,9 +149,10 @@ def evaluate(handle: ModelHandle, packs: dict[str, TilePack]) -> dict[str, float
 def _augment(batch: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Random dihedral transform per tile (8 rotations/flips): labels of top-down tiles are invariant."""
     out = np.empty_like(batch)
-    ks = rng.integers(0, 4, size=batch.shape[0])
-    flips = rng.random(batch.shape[0]) < 0.5
-    for i in range(batch.shape[0]):
+    n_tiles = len(batch)
+    ks = rng.integers(0, 4, size=n_tiles)
+    flips = rng.random(n_tiles) < 0.5
+    for i in range(n_tiles):
         t = np.rot90(batch[i], k=int(ks[i]), axes=(1, 2))
         out[i] = t[:, :, ::-1] if flips[i] else t
     return out
@@ -219,14 +220,14 @@ def _fit_torch(
     return history, best_epoch
 
 
-def _split_params(spec: Any) -> tuple[dict[str, Any], dict[str, Any]]:
+def _split_params(spec: ModelSpec) -> tuple[dict[str, Any], dict[str, Any]]:
     arch = {k: v for k, v in spec.params.items() if k in ARCH_KEYS}
     train = {**TORCH_TRAIN_DEFAULTS, **{k: v for k, v in spec.params.items() if k not in ARCH_KEYS}}
     return arch, train
 
 
 def train_model(
-    task: Any, data: Any, model_spec: Any, seed: int, *, use_cache: bool = True, batch_size: int = 256
+    task: Task, data: TaskData, model_spec: ModelSpec, seed: int, *, use_cache: bool = True, batch_size: int = 256
 ) -> TrainedModel:
     """Train one model of a task with one seed, or load it from the cache."""
     spec = model_spec
@@ -248,7 +249,10 @@ def train_model(
         arch, params = _split_params(spec)
         with deterministic_torch(seed):
             module = build_torch_model(spec.kind, n_bands, n_classes, **arch)
-            module.norm.set_statistics(data.train.images)
+            norm = module.norm
+            if not isinstance(norm, BandNorm):  # every zoo model standardises its input first
+                raise TypeError(f"zoo model '{spec.kind}' has no BandNorm input layer")
+            norm.set_statistics(data.train.images)
             history, best_epoch = _fit_torch(module, data.train, data.val, params, seed, n_classes)
         seconds, cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
         state = module.state_dict()
@@ -274,7 +278,7 @@ def train_model(
 
             def write_arrays(tmp: str) -> None:
                 with open(tmp, "wb") as fh:
-                    np.savez(fh, **arrays)
+                    np.savez(fh, allow_pickle=True, **arrays)  # numpy's default, stated for mypy
 
             atomic_write(entry / weights_file, write_arrays)
     else:
@@ -317,7 +321,7 @@ def train_model(
     )
 
 
-def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
+def load_user_model(spec: ModelSpec, data: TaskData, n_classes: int, seed: int, batch_size: int = 256) -> TrainedModel:
     """A user's model named in a task file: imported and loaded, never trained; checked on two test tiles."""
     from xbench.models.adapters import call_factory, load_user_torch_model, wrap_callable
 
@@ -332,8 +336,10 @@ def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size:
             probe=probe,
             batch_size=batch_size,
         )
-        state = handle.module.state_dict()
-        weights_hash, n_params = state_dict_hash(state), count_parameters(handle.module)
+        module = handle.module
+        assert module is not None  # load_user_torch_model always returns a handle with its torch module
+        state = module.state_dict()
+        weights_hash, n_params = state_dict_hash(state), count_parameters(module)
     else:
         fn = call_factory(spec.params["factory"])
         if not callable(fn):
@@ -368,7 +374,7 @@ def load_user_model(spec: Any, data: Any, n_classes: int, seed: int, batch_size:
 
 
 def _load_cached(
-    entry: Path, spec: Any, seed: int, n_bands: int, n_classes: int, band_names: list[str], batch_size: int
+    entry: Path, spec: ModelSpec, seed: int, n_bands: int, n_classes: int, band_names: list[str], batch_size: int
 ) -> TrainedModel | None:
     meta_path = entry / "meta.json"
     if not meta_path.is_file():

@@ -29,6 +29,9 @@ from xbench.names import renamed_hint
 class BandNorm(nn.Module):
     """Per-band standardisation with statistics stored as buffers (part of the state_dict)."""
 
+    mean: torch.Tensor
+    std: torch.Tensor
+
     def __init__(self, n_bands: int):
         super().__init__()
         self.register_buffer("mean", torch.zeros(1, n_bands, 1, 1))

@@ -10,7 +10,7 @@ by tile are left out with a note; the side-by-side tables need only the summary 
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
@@ -18,12 +18,15 @@ import pandas as pd
 from xbench.report import tables as T
 from xbench.report.recommend import ASPECTS, CONTROLS, _choose_column
 
+if TYPE_CHECKING:
+    from xbench.data import TilePack
+
 TILE_COLUMNS = ["task", "tile", "class_name", "main_type", "coverage"]
 COVERAGE_BINS = (0.0, 0.01, 0.05, 1.0)  # share of the tile covered by its main planted structure type
 COVERAGE_LABELS = ("< 1 %", "1-5 %", ">= 5 %")
 
 
-def tiles_from_pack(task: str, pack: Any, human_types: list[str] | None = None) -> pd.DataFrame:
+def tiles_from_pack(task: str, pack: TilePack, human_types: list[str] | None = None) -> pd.DataFrame:
     """One row per test tile: class name, the planted type with the largest coverage and its share."""
     names = [str(n) for n in pack.mask_names]
     keep = [i for i, n in enumerate(names) if human_types is None or n in human_types]

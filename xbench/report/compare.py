@@ -180,7 +180,8 @@ def compare_column(
     ``against`` (declared before the run): the k - 1 comparisons with that method form the family.
     """
     block = wide[methods].to_numpy(dtype=np.float64) if methods else np.empty((0, 0))
-    defined = np.isfinite(block).any(axis=0) if block.size else np.zeros(len(methods), dtype=bool)
+    # np.asarray (no copy): numpy's stubs type a reduction with an axis as "scalar or array"
+    defined = np.asarray(np.isfinite(block).any(axis=0)) if block.size else np.zeros(len(methods), dtype=bool)
     with warnings.catch_warnings():  # an all-NaN column: "mean of empty slice"; it is left out just below
         warnings.simplefilter("ignore", RuntimeWarning)
         col_means = np.nanmean(np.where(np.isfinite(block), block, np.nan), axis=0) if block.size else []

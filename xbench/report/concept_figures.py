@@ -18,7 +18,7 @@ import matplotlib
 import numpy as np
 import pandas as pd
 from matplotlib.colors import BoundaryNorm, ListedColormap, TwoSlopeNorm
-from matplotlib.figure import Figure
+from matplotlib.figure import Figure, SubFigure
 from scipy import stats
 
 from xbench.report.figures import OKABE_ITO, RC, _blank, band_index, new_figure, stretch
@@ -84,12 +84,16 @@ def cluster_drop_figure(
     g = min(len(images), len(maps), max_tiles)
     with matplotlib.rc_context(RC):
         fig = new_figure(max(2.0 + 1.5 * n_classes, 1.4 * g) + 2.2, 1.2 + 0.45 * k + (1.6 if g else 0))
-        parts = fig.subfigures(2, 1, height_ratios=[1.6, 0.45 * k + 1.0]) if g else [None, fig]
+        # with gallery tiles: the cluster maps on top, the drop table below; without: the table alone
+        top: SubFigure | None = None
+        table: Figure | SubFigure = fig
         if g:
+            top, table = fig.subfigures(2, 1, squeeze=False, height_ratios=[1.6, 0.45 * k + 1.0])[:, 0]
+        if top is not None:
             band_names = data.get("band_names", np.array(["blue", "green", "red"]))
             idx, _ = band_index(band_names, ("red", "green", "blue"))
             rgb = stretch(images[:g], idx)
-            axes = parts[0].subplots(1, g, squeeze=False)[0]
+            axes = top.subplots(1, g, squeeze=False)[0]
             h, w = images.shape[-2:]
             norm = BoundaryNorm(np.arange(-0.5, max(k, 1) + 0.5), cmap_clusters.N)
             for i, ax in enumerate(axes):
@@ -104,8 +108,8 @@ def cluster_drop_figure(
                 )
                 _blank(ax)
                 ax.set_title(f"tile {i + 1}", fontsize=7)
-            parts[0].suptitle(f"{title}: cluster maps over natural colour", fontsize=8)
-        ax = parts[1].subplots()
+            top.suptitle(f"{title}: cluster maps over natural colour", fontsize=8)
+        ax = table.subplots()
         finite = np.abs(mean[np.isfinite(mean)])
         vmax = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
         im = ax.imshow(
@@ -132,9 +136,9 @@ def cluster_drop_figure(
         ax.set_xlabel("class whose probability is measured (on tiles of that class)")
         ax.set_ylabel("replaced cluster: labelled type (overlap)")
         ax.spines[:].set_visible(False)
-        bar = parts[1].colorbar(im, ax=ax, shrink=0.9)
+        bar = table.colorbar(im, ax=ax, shrink=0.9)
         bar.set_label("mean probability drop (original - replaced)")
-        parts[1].suptitle(f"{title}: class-probability drop when a cluster is replaced, 95% t-intervals", fontsize=8)
+        table.suptitle(f"{title}: class-probability drop when a cluster is replaced, 95% t-intervals", fontsize=8)
     return fig
 
 

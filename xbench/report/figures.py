@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, Literal
 
 import matplotlib
 import numpy as np
@@ -24,6 +24,9 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
+if TYPE_CHECKING:
+    from matplotlib.typing import RcKeyType
+
 OKABE_ITO = ["#0072B2", "#D55E00", "#009E73", "#E69F00", "#CC79A7", "#56B4E9", "#000000", "#F0E442"]
 LINE_COLOURS = OKABE_ITO[:7]  # yellow is too pale for thin lines on white
 LINESTYLES = ["-", "--", ":", "-."]
@@ -31,7 +34,7 @@ MARKERS = ["o", "s", "^", "D", "v", "P", "X", "*"]
 STRETCH_PERCENTILES = (2.0, 98.0)
 DPI = 150
 
-RC = {
+RC: dict[RcKeyType, Any] = {
     "font.size": 8,
     "axes.titlesize": 9,
     "axes.labelsize": 8,
@@ -56,7 +59,9 @@ class FigureFile:
     pdf: Path
 
 
-def new_figure(width: float, height: float, layout: str | None = "constrained") -> Figure:
+def new_figure(
+    width: float, height: float, layout: Literal["constrained", "compressed", "tight"] | None = "constrained"
+) -> Figure:
     """A figure on the Agg canvas, whatever pyplot's backend is."""
     fig = Figure(figsize=(width, height), layout=layout)
     FigureCanvasAgg(fig)
@@ -656,8 +661,8 @@ def tile_figure(
         if coverage is not None:
             if coverage.ndim == 3:  # one plane per structure type: the largest coverage per pixel
                 coverage = coverage.max(axis=0)
-            label = np.where(coverage >= CORE_COVERAGE, 2, np.where(coverage > 0, 1, 0))
-            truth_panels.append(("planted truth\n(core and fringe)", "truth", label))
+            core_fringe = np.where(coverage >= CORE_COVERAGE, 2, np.where(coverage > 0, 1, 0))
+            truth_panels.append(("planted truth\n(core and fringe)", "truth", core_fringe))
         else:
             truth_panels.append(("planted structures", "truth", planted.astype(int) * 2))
     if evidence is not None:

@@ -7,6 +7,7 @@ else is optional: a missing or malformed optional file is logged and that part o
 from __future__ import annotations
 
 import re
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -147,7 +148,7 @@ def _concat(frames: list[pd.DataFrame | None]) -> pd.DataFrame | None:
     return pd.concat(frames, ignore_index=True) if frames else None
 
 
-def load_runs(run_dirs: Any) -> RunSet:
+def load_runs(run_dirs: str | Path | Iterable[str | Path]) -> RunSet:
     """Read one or more run folders. Later folders win where two hold the same value (logged)."""
     if isinstance(run_dirs, (str, Path)):
         run_dirs = [run_dirs]

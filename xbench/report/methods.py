@@ -67,7 +67,7 @@ def _settings(settings: Any, defaults: dict[str, Any] | None = None) -> str:
     return ", ".join(f"{k} = {v}" for k, v in merged.items())
 
 
-def _mean_sd(values: list[float]) -> str:
+def _mean_sd(values: list[float | None]) -> str:
     v = np.asarray([x for x in values if x is not None and np.isfinite(x)], dtype=float)
     if v.size == 0:
         return "n/a"
@@ -362,6 +362,7 @@ def statistics_paragraph(summary: Summary, headline: Column | None, cites: Citat
     )
     rts = summary.rank_tests_for(*headline.key) if headline is not None else []
     for rt in rts:
+        assert headline is not None  # rts is empty without a headline
         k, n = len(rt.explainers), len(rt.blocks)
         fr = rt.friedman
         ftext = (

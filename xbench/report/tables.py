@@ -69,7 +69,7 @@ def fmt(value: float, decimals: int | None) -> str:
     return "0" if re.fullmatch(r"-0\.?0*", text) else text
 
 
-def fmt_p(p: float) -> str:
+def fmt_p(p: float | np.floating | None) -> str:
     if p is None or not np.isfinite(p):
         return "n/a"
     return "p < 0.001" if p < 0.001 else f"p = {p:.3f}"
@@ -351,7 +351,7 @@ def rank_tables(summary: Summary) -> list[TableSpec]:
 def variant_tables(sensitivity: pd.DataFrame) -> list[TableSpec]:
     """Protocol sensitivity: Kendall's tau between the run's ranking of the real methods and each variant's,
     one table per task, rows variant / model, columns the metrics the variants re-scored."""
-    out = []
+    out: list[TableSpec] = []
     if sensitivity is None or sensitivity.empty:
         return out
     for task, g in sensitivity.groupby("task", sort=False):

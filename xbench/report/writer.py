@@ -15,9 +15,9 @@ from __future__ import annotations
 import html
 import logging
 import warnings
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -55,7 +55,7 @@ class ReportSummary:
         )
 
 
-def _formats(formats: Any) -> list[str]:
+def _formats(formats: str | Iterable[str]) -> list[str]:
     if isinstance(formats, str):
         formats = [f for f in formats.split(",") if f.strip()]
     out = [str(f).strip().lower() for f in formats]
@@ -343,9 +343,9 @@ def summary_records(runs: RunSet, models: list[str] | None) -> pd.DataFrame:
 
 
 def write_report(
-    run_dirs: Any,
+    run_dirs: str | Path | Iterable[str | Path],
     out_dir: str | Path | None = None,
-    formats: Any = FORMATS,
+    formats: str | Iterable[str] = FORMATS,
     *,
     headline_metric: str = "mass-accuracy",
     headline_truth: str = "planted",

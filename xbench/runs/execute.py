@@ -12,7 +12,8 @@ import threading
 import time
 import traceback
 from dataclasses import dataclass
-from typing import Any
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
@@ -21,6 +22,17 @@ import torch
 from xbench.errors import XbenchInputError
 from xbench.runs.grid import Cell, content_hash, model_fingerprint
 from xbench.runs.store import CONCEPT_COLUMNS, CURVE_COLUMNS, REASON_COLUMNS, RECORD_COLUMNS
+
+if TYPE_CHECKING:  # annotations only: the modules below are imported where used, when a cell first needs them
+    from collections.abc import Callable
+
+    from xbench.data import TilePack
+    from xbench.explainers import ExplainContext
+    from xbench.metrics.base import MetricInputs, MetricResult
+    from xbench.models.base import ModelHandle
+    from xbench.models.train import TrainedModel
+    from xbench.tasks import ModelSpec, Task, TaskData
+    from xbench.truth import Reliance
 
 # One thread everywhere inside cells: results must not depend on how many threads a worker has.
 CELL_THREADS = 1
@@ -32,9 +44,9 @@ TILE_SUBSET_SETTING = "tiles"
 class Prepared:
     """What every cell of one (model, seed) shares."""
 
-    task: Any
-    data: Any
-    trained: Any
+    task: Task
+    data: TaskData
+    trained: TrainedModel
     seed: int
     explain_index: np.ndarray  # indices into the test split
     images: np.ndarray
@@ -43,7 +55,7 @@ class Prepared:
     masks: np.ndarray
     mask_names: list[str]
     planted: np.ndarray
-    reliance: Any  # None for a user's tile pack (no scenes to intervene on)
+    reliance: Reliance | None  # None for a user's tile pack (no scenes to intervene on)
     fit_images: np.ndarray
     fit_labels: np.ndarray
     fit_masks: np.ndarray
@@ -52,12 +64,12 @@ class Prepared:
     band_spread: np.ndarray | None = None  # (C,) per-band standard deviation of the training split
 
 
-_TASK_CACHE: dict[str, tuple[Any, Any]] = {}
+_TASK_CACHE: dict[str, tuple[Task, TaskData]] = {}
 _PREP_CACHE: dict[tuple[str, str, int], Prepared] = {}
 _CONCEPT_CACHE: dict[str, dict[str, np.ndarray]] = {}
 
 
-def task_and_data(task_path: str) -> tuple[Any, Any]:
+def task_and_data(task_path: str | Path | Task) -> tuple[Task, TaskData]:
     """The task and its tile packs, built once per process (deterministic from the task's data seed)."""
     from xbench.tasks import build_task_data, load_task
 
@@ -68,31 +80,31 @@ def task_and_data(task_path: str) -> tuple[Any, Any]:
     return _TASK_CACHE[key]
 
 
-def _task_key(task: Any) -> str:
+def _task_key(task: Task) -> str:
     # the parsed task and its data (recipe content, pack checksum): an edit between two runs in one process
     # never reuses tiles or models prepared for the old content
     return f"{task.path}:{task.file_hash}:{task.data.hash}"
 
 
-def model_spec(task: Any, name: str) -> Any:
+def model_spec(task: Task, name: str) -> ModelSpec:
     return next(m for m in task.models if m.name == name)
 
 
-def train_or_load(task_path: str, model_name: str, seed: int) -> Any:
+def train_or_load(task_path: str | Path | Task, model_name: str, seed: int) -> TrainedModel:
     from xbench.models import train_model
 
     task, data = task_and_data(task_path)
     return train_model(task, data, model_spec(task, model_name), seed)
 
 
-def choose_explain_tiles(task: Any, labels: np.ndarray, count: int) -> np.ndarray:
+def choose_explain_tiles(task: Task, labels: np.ndarray, count: int) -> np.ndarray:
     """The first `count` test tiles whose class is made by planted structures (so localization is defined)."""
     positive = [c for c, types in task.class_driving_types.items() if types]
     index = np.flatnonzero(np.isin(labels, positive))
     return index[:count]
 
 
-def concept_sets_for(task: Any, types: list[str]) -> dict[str, np.ndarray]:
+def concept_sets_for(task: Task, types: list[str]) -> dict[str, np.ndarray]:
     """TCAV example sets for the structure types the task's recipe can plant (made once per process)."""
     from xbench.explainers.concept_sets import make_concept_sets
 
@@ -110,7 +122,7 @@ def concept_sets_for(task: Any, types: list[str]) -> dict[str, np.ndarray]:
     return _CONCEPT_CACHE[key]
 
 
-def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = False) -> Prepared:
+def prepare(task_path: str | Path | Task, model_name: str, seed: int, need_concepts: bool = False) -> Prepared:
     from xbench.truth import compute_reliance
 
     task, data = task_and_data(task_path)
@@ -173,7 +185,7 @@ def prepare(task_path: str, model_name: str, seed: int, need_concepts: bool = Fa
     return prep
 
 
-def _union(pack: Any, row: int, types: list[str]) -> np.ndarray:
+def _union(pack: TilePack, row: int, types: list[str]) -> np.ndarray:
     out = np.zeros(pack.masks.shape[2:], dtype=bool)
     for name in types:
         if name in pack.mask_names:
@@ -181,7 +193,8 @@ def _union(pack: Any, row: int, types: list[str]) -> np.ndarray:
     return out
 
 
-def _union_coverage(pack: Any, row: int, types: list[str]) -> np.ndarray:
+def _union_coverage(pack: TilePack, row: int, types: list[str]) -> np.ndarray:
+    assert pack.coverage is not None  # prepare() asks only for packs that carry fractional coverage
     out = np.zeros(pack.coverage.shape[2:], dtype=np.float32)
     for name in types:
         if name in pack.mask_names:
@@ -189,7 +202,7 @@ def _union_coverage(pack: Any, row: int, types: list[str]) -> np.ndarray:
     return out
 
 
-def explain_context(prep: Prepared, cell: Cell) -> Any:
+def explain_context(prep: Prepared, cell: Cell) -> ExplainContext:
     from xbench.explainers import ExplainContext
 
     task = prep.task
@@ -250,7 +263,7 @@ def failed_result(cell: Cell, error: str, started: float, trace: str = "") -> di
 
 
 def compute_cell(
-    task_path: str,
+    task_path: str | Path | Task,
     cell: Cell,
     metric_keys: list[str],
     metric_settings: dict[str, dict],
@@ -279,6 +292,7 @@ def compute_cell(
                 raise CellTimeout(f"stopped after its time limit of {timeout:g} s ([run] cell_timeout)")
 
             previous = signal.signal(signal.SIGALRM, on_alarm)
+            assert timeout is not None  # use_alarm implies a time limit was set
             signal.setitimer(signal.ITIMER_REAL, float(timeout))
         try:
             return _compute_cell(task_path, cell, metric_keys, metric_settings, run_id, started)
@@ -297,7 +311,12 @@ def compute_cell(
 
 
 def _compute_cell(
-    task_path: str, cell: Cell, metric_keys: list[str], metric_settings: dict[str, dict], run_id: str, started: float
+    task_path: str | Path | Task,
+    cell: Cell,
+    metric_keys: list[str],
+    metric_settings: dict[str, dict],
+    run_id: str,
+    started: float,
 ) -> dict[str, Any]:
     from xbench.explainers import explain, get_explainer
     from xbench.metrics import MetricInputs, compute_metric
@@ -339,9 +358,9 @@ def _compute_cell(
     )
     # Metrics that re-run the explainer many times (sanity, stability) may be scored on the first K explained
     # tiles only (metric setting `tiles`); metrics on the same K share one inputs object and its cache.
-    inputs_by_size: dict[int, Any] = {len(prep.targets): full}
+    inputs_by_size: dict[int, MetricInputs] = {len(prep.targets): full}
 
-    def inputs_for(size: int) -> Any:
+    def inputs_for(size: int) -> MetricInputs:
         if size not in inputs_by_size:
             inputs_by_size[size] = subset_inputs(full, size, make_rerun_explainer(cell, context, size))
         return inputs_by_size[size]
@@ -405,7 +424,7 @@ def _compute_cell(
     records = pd.DataFrame(rows, columns=RECORD_COLUMNS)
     concepts = concept_rows(cell, explanation.concepts)
     gallery_n = min(int(prep.task.run["gallery_tiles"]), len(tiles))
-    result: dict[str, Any] = {
+    cell_result: dict[str, Any] = {
         "status": "ok",
         "records": records,
         "curves": pd.DataFrame(curves, columns=CURVE_COLUMNS),
@@ -436,14 +455,14 @@ def _compute_cell(
     }
     report = explanation.concepts
     if report is not None and getattr(report, "cluster_maps", None) is not None:
-        result["clusters"] = {
+        cell_result["clusters"] = {
             "cluster_maps": np.asarray(report.cluster_maps)[:gallery_n].astype(np.int64),
             "score_changes": np.asarray(report.score_changes, dtype=np.float64),
         }
-    return result
+    return cell_result
 
 
-def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
+def make_rerun_explainer(cell: Cell, context: ExplainContext, size: int) -> Callable[..., np.ndarray]:
     """The cell's explainer with its settings, for metrics that re-run it (on another model or on perturbed
     copies of the first `size` tiles). Per-tile context (twins, masks) goes along when the row count matches
     those tiles; otherwise it is left out."""
@@ -455,7 +474,7 @@ def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
         return None if array is None else array[tiles]
 
     def rerun_explainer(
-        model: Any, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
+        model: ModelHandle, images: np.ndarray, targets: np.ndarray, tiles: np.ndarray | None = None
     ) -> np.ndarray:
         # `tiles`: for each row of `images`, the index of the explained tile it is a copy of.
         if tiles is None and images.shape[0] == size:
@@ -471,7 +490,7 @@ def make_rerun_explainer(cell: Cell, context: Any, size: int) -> Any:
     return rerun_explainer
 
 
-def subset_inputs(full: Any, size: int, rerun_explainer: Any) -> Any:
+def subset_inputs(full: MetricInputs, size: int, rerun_explainer: Callable[..., np.ndarray]) -> MetricInputs:
     """The metric inputs of the first `size` tiles."""
     from dataclasses import fields
 
@@ -487,7 +506,7 @@ def subset_inputs(full: Any, size: int, rerun_explainer: Any) -> Any:
     return type(full)(**values)
 
 
-def curve_rows(cell: Cell, key: str, result: Any) -> list[dict[str, Any]]:
+def curve_rows(cell: Cell, key: str, result: MetricResult) -> list[dict[str, Any]]:
     """Mean curves (with sd and n) for the figures: removal curves with x = fraction removed, the
     randomization cascade with x = layer step."""
     out: list[dict[str, Any]] = []

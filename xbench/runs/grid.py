@@ -17,12 +17,15 @@ import json
 import re
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from xbench import __version__
 from xbench.data import file_sha256
 from xbench.errors import XbenchInputError
 from xbench.schema import Where
+
+if TYPE_CHECKING:
+    from xbench.tasks import ModelSpec, Task
 
 # Run settings that do not change any value (only whether a cell finishes in time): left out of cell keys.
 NON_VALUE_RUN_SETTINGS = ("cell_timeout",)
@@ -89,7 +92,7 @@ def check_safe_name(name: str, where: str) -> str:
     return name
 
 
-def validate_task_keys(task: Any) -> None:
+def validate_task_keys(task: Task) -> None:
     """Explainer and metric keys of a task must exist in the registries, their settings must be known and
     of the right kind, and there must be something to measure (checked before any work)."""
     from xbench.explainers import get_explainer
@@ -119,12 +122,12 @@ def validate_task_keys(task: Any) -> None:
         spec.check_settings(task.explainer_settings.get(key, {}), where)
     for i, key in enumerate(task.metrics):
         try:
-            spec = get_metric(key)
+            metric_spec = get_metric(key)
         except XbenchInputError as exc:
             raise top.child("metrics").child("keys").child(i).error(exc.problem, exc.expected, key) from None
         where = top.child("metrics").child("settings").child(key)
         settings = task.metric_settings.get(key, {})
-        spec.check_settings(settings, where)
+        metric_spec.check_settings(settings, where)
         tiles = settings.get("tiles", 1)
         if isinstance(tiles, bool) or not isinstance(tiles, int) or tiles < 1:  # `tiles`: see runs.execute
             raise where.child("tiles").error("bad value", expected="a positive integer", found=tiles)
@@ -141,7 +144,7 @@ def _source_sha256(factory: str) -> str | None:
     return file_sha256(origin) if origin and Path(origin).is_file() else None
 
 
-def model_fingerprint(spec: Any) -> dict[str, Any]:
+def model_fingerprint(spec: ModelSpec) -> dict[str, Any]:
     """What a model's values depend on: its configuration and, for user models, the checksums of the
     weights file and of the factory's source file (a retrained model or edited code recomputes)."""
     out: dict[str, Any] = {"name": spec.name, "kind": spec.kind, "params": spec.params}
@@ -154,7 +157,7 @@ def model_fingerprint(spec: Any) -> dict[str, Any]:
     return out
 
 
-def data_fingerprint(task: Any) -> dict[str, Any]:
+def data_fingerprint(task: Task) -> dict[str, Any]:
     """What every cell of a task depends on besides its model, seed and explainer."""
     return {
         "task": task.name,
@@ -167,7 +170,7 @@ def data_fingerprint(task: Any) -> dict[str, Any]:
 
 
 def expand_grid(
-    task: Any,
+    task: Task,
     *,
     explainers: list[str] | None = None,
     models: list[str] | None = None,

@@ -8,14 +8,14 @@ import subprocess
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
 from xbench import __version__
-from xbench.runs.execute import prepare, task_and_data
+from xbench.runs.execute import Prepared, prepare, task_and_data
 from xbench.runs.executors import executor_for
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
@@ -31,6 +31,9 @@ from xbench.runs.store import (
     write_npz,
     write_table,
 )
+
+if TYPE_CHECKING:
+    from xbench.tasks import DataSpec, Task, Variant
 
 # A model whose balanced test accuracy is within this margin of chance is flagged in the run summary.
 CHANCE_MARGIN = 0.1
@@ -104,7 +107,7 @@ def _git_state() -> dict[str, Any]:
 
 
 def run_task(
-    task: str | Path,
+    task: str | Path | dict[str, Any] | Task,
     out_dir: str | Path,
     *,
     jobs: int = 1,
@@ -206,12 +209,12 @@ def _narrow(chosen: list[str] | None, subset: list[str] | None) -> list[str] | N
     return list(subset) if chosen is None else [c for c in chosen if c in subset]
 
 
-def run_variants(task: Any, variants: list, out: Path, **options: Any) -> dict[str, RunSummary]:
+def run_variants(task: Task, variants: list[Variant], out: Path, **options: Any) -> dict[str, RunSummary]:
     """Run each protocol variant of a task into ``out/variants/NAME`` (same models, cached; new cells)."""
     return {v.name: run_task(task, out / "variants" / v.name, variant=v.name, **options) for v in variants}
 
 
-def model_warnings(task: Any, model_rows: list[dict[str, Any]]) -> list[str]:
+def model_warnings(task: Task, model_rows: list[dict[str, Any]]) -> list[str]:
     """Models whose balanced test accuracy is near chance (1 / number of classes)."""
     chance = 1.0 / max(len(task.class_names), 1)
     out = []
@@ -310,10 +313,10 @@ def write_georeference(out: Path, task: Any) -> None:
 
 def assemble(
     out: Path,
-    task: Any,
+    task: Task,
     grid: Grid,
     store: CellStore,
-    preps: dict,
+    preps: dict[tuple[str, int], Prepared],
     model_rows: list[dict],
     run_id: str,
     summary: RunSummary | None = None,
@@ -522,7 +525,7 @@ def describe_label_rule(labels: dict[str, Any]) -> str:
     )
 
 
-def describe_cue(data: Any) -> str | None:
+def describe_cue(data: DataSpec) -> str | None:
     if not data.cue:
         return None
     cue = ", ".join(f"{k}={v}" for k, v in sorted(data.cue.items()))

@@ -95,7 +95,7 @@ def write_table(path: Path, frame: pd.DataFrame) -> None:
 def write_npz(path: Path, arrays: dict[str, np.ndarray]) -> None:
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
+            np.savez_compressed(fh, allow_pickle=True, **arrays)  # numpy's default, stated for mypy
 
     atomic_write(Path(path), write)
 
@@ -191,7 +191,7 @@ class CellStore:
 
     def committed(self) -> dict[str, dict[str, Any]]:
         """Every cell of the folder whose marker says ``ok`` and whose files check out: id -> marker."""
-        out = {}
+        out: dict[str, dict[str, Any]] = {}
         if not self.cell_dir.is_dir():
             return out
         for marker in sorted(self.cell_dir.glob("*.json")):

@@ -300,7 +300,7 @@ def _structure(kind: str, table: Any, where: str | Where, materials: dict[str, M
     return StructureSpec(
         kind,
         values.pop("probability"),
-        tuple(values.pop("count")),  # type: ignore[arg-type]
+        tuple(values.pop("count")),
         values.pop("jitter"),
         values,
     )
