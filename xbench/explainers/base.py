@@ -280,6 +280,9 @@ def reduce_field(default: str) -> Field:
     return Field("str", default, choices=REDUCTIONS, doc="how the bands' attributions become one map")
 
 
+LAYER_FIELD = Field("str", None, nullable=True, doc="the layer to read (default: the model's explain layer)")
+
+
 def baseline_fields(blur_default: float = 4.0) -> dict[str, Field]:
     """The declared ``baseline`` and ``blur_sigma`` settings of baseline-based explainers."""
     return {
