@@ -483,7 +483,7 @@ def parse_variants(
             if bad:
                 raise w.child(key).error("not in the task", expected=", ".join(allowed), found=bad[0])
             subsets[key] = chosen
-        settings = {}
+        settings: dict[str, dict[str, dict[str, Any]]] = {}
         for key, allowed in (("explainer_settings", explainers), ("metric_settings", metrics)):
             settings[key] = {}
             for k, t in v[key].items():
