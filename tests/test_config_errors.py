@@ -359,3 +359,21 @@ def test_cli_prints_a_settings_error_before_any_work(tmp_path: Path, capsys: pyt
     path = _write(tmp_path, "task.toml", text)
     err = _cli_error(["run", str(path), "--out", str(tmp_path / "out"), "--quiet"], capsys)
     _assert_one_format(err.removeprefix("xbench run: error: "), path, line, key, problem)
+
+
+RASTER_CASES = [
+    ("raster data unknown", "size = 32", "size = 32\nsise = 32", "sise = 32", "data.sise", "unknown key"),
+    ("raster data out of range", "size = 32", "size = 30", "size = 30", "data.size", "bad tile size"),
+]
+
+
+@pytest.mark.parametrize("case, old, new, at, key, problem", RASTER_CASES, ids=[c[0] for c in RASTER_CASES])
+def test_raster_data_errors(tmp_path: Path, case: str, old: str, new: str, at: str, key: str, problem: str) -> None:
+    """The raster `[data]` form keeps its own checks (xbench.imagery.taskdata) but speaks the same format."""
+    shipped = (Path(__file__).parents[1] / "tasks" / "geotiff-roads.toml").read_text()
+    text, line = _mutate(shipped, old, new, at)
+    path = _write(tmp_path, "task.toml", text)
+    with pytest.raises(XbenchInputError) as err:
+        load_task(path)
+    message = str(err.value)
+    assert message.startswith(f"{path} line {line}, key {key}: {problem}"), message
