@@ -551,20 +551,20 @@ MALFORMED = [
     (
         "unknown key",
         "[default]\nmax_drop = 0.1\nmax_dorp = 0.2\n",
-        ["line 3", "[default] key 'max_dorp'", "unknown key"],
+        ["line 3", "key default.max_dorp", "unknown key"],
     ),
     (
         "unknown key in a gate",
         '[[gate]]\nmetric = "x"\nmax_drop = 0.1\n\n[[gate]]\nmetric = "y"\nat_leest = 1\n',
-        ["line 7", "[[gate]] 2 key 'at_leest'", "unknown key"],
+        ["line 7", "key gate[1].at_leest", "unknown key"],
     ),
-    ("wrong type", '[default]\nmax_drop = "0.1"\n', ["line 2", "key 'max_drop'", "a number >= 0"]),
-    ("negative drop", "[default]\nmax_relative_drop = -1\n", ["key 'max_relative_drop'"]),
-    ("bad alpha", "[settings]\nalpha = 5\n", ["[settings] key 'alpha'", "(0, 1)"]),
-    ("bad correction", '[settings]\ncorrection = "bonferoni"\n', ["key 'correction'", "'holm'"]),
-    ("unknown section", "[defaults]\nmax_drop = 0.1\n", ["line 1", "key 'defaults'", "unknown key"]),
+    ("wrong type", '[default]\nmax_drop = "0.1"\n', ["line 2", "key default.max_drop", "a number >= 0"]),
+    ("negative drop", "[default]\nmax_relative_drop = -1\n", ["key default.max_relative_drop", "out of range"]),
+    ("bad alpha", "[settings]\nalpha = 5\n", ["key settings.alpha", "(0, 1)"]),
+    ("bad correction", '[settings]\ncorrection = "bonferoni"\n', ["key settings.correction", "'holm'"]),
+    ("unknown section", "[defaults]\nmax_drop = 0.1\n", ["line 1", "key defaults", "unknown key"]),
     ("gate not an array", '[gate]\nmetric = "x"\nmax_drop = 1\n', ["[[gate]] tables"]),
-    ("selector type", "[[gate]]\nmetric = 3\nmax_drop = 1\n", ["line 2", "key 'metric'", "a name"]),
+    ("selector type", "[[gate]]\nmetric = 3\nmax_drop = 1\n", ["line 2", "key gate[0].metric", "a name"]),
     ("empty rule", '[[gate]]\nmetric = "x"\n', ["line 1", "sets no gate"]),
     ("syntax", "[default]\nmax_drop = = 0.1\n", ["TOML syntax error", "line 2"]),
     ("empty file", "# nothing here\n", ["sets no gate"]),
@@ -572,7 +572,7 @@ MALFORMED = [
     (
         "misspelled metric",
         '[default]\nmax_drop = 0.1\n[[gate]]\nmetric = "mass-acuracy"\nat_least = 0.1\n',
-        ["[[gate]] 1 key 'metric'", "unknown metric 'mass-acuracy'", "mass-accuracy"],
+        ["key gate[0].metric", "unknown metric 'mass-acuracy'", "mass-accuracy"],
     ),
 ]
 

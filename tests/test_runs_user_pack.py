@@ -122,5 +122,5 @@ def test_drives_must_name_the_packs_classes_and_masks(user_pack, tmp_path):
     save_pack(user_pack, tmp_path / "mine.npz")
     task = write_task(tmp_path)
     task.write_text(task.read_text().replace('road = ["road"]', 'road = ["highway"]'))
-    with pytest.raises(XbenchInputError, match=r"data.drives.road.*not a mask of the pack.*highway"):
+    with pytest.raises(XbenchInputError, match=r"data.drives.road\[0\].*not an allowed value.*highway"):
         run_task(task, tmp_path / "never")

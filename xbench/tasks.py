@@ -17,11 +17,13 @@ to the train split only; only the test split carries twins, and its scenes are k
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import json
 import os
 import warnings
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -31,7 +33,7 @@ import numpy as np
 from xbench.data import TilePack, load_pack, save_pack
 from xbench.errors import XbenchInputError, load_toml, repo_root
 from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, RENAMED, renamed_hint
-from xbench.schema import Where
+from xbench.schema import Field, Where, as_where, check_table, check_value, load_config
 
 MODEL_KINDS = ("cnn", "resnet", "separable", "forest", "user-torch", "user-callable")
 # Bring your own model: `factory` is an import path `package.module:function`. For `user-torch` it returns a
@@ -39,23 +41,6 @@ MODEL_KINDS = ("cnn", "resnet", "separable", "forest", "user-torch", "user-calla
 # is loaded with torch.load(weights_only=True); for `user-callable` it returns f(images) -> class scores.
 USER_KINDS = ("user-torch", "user-callable")
 
-TOP_KEYS = {"name", "description", "seeds", "data", "models", "explainers", "metrics", "run", "variants"}
-DATA_KEYS = {
-    "recipe",
-    "size",
-    "train",
-    "val",
-    "test",
-    "seed",
-    "presence",
-    "labels",
-    "label_noise",
-    "lookalikes",
-    "cue",
-    "cue_rate_train",
-    "cue_rate_val",
-    "cue_rate_test",
-}
 RUN_DEFAULTS: dict[str, int] = {
     "explain_tiles": 64,  # test tiles explained and scored per (model, seed)
     "gallery_tiles": 8,  # tiles kept with every explainer's map for figures
@@ -66,23 +51,6 @@ RUN_DEFAULTS: dict[str, int] = {
     "cell_timeout": 1800,  # seconds one cell (explain + score) may take before it is stopped and recorded failed
 }
 MAX_SPLIT_TILES = 100_000  # tiles per split: a stated maximum instead of running out of memory
-# Hyper-parameters per model kind: architecture (see models/zoo.py) and training (see models/train.py).
-TORCH_TRAIN_PARAMS: dict[str, tuple[type, ...]] = {
-    "epochs": (int,),
-    "patience": (int,),
-    "lr": (int, float),
-    "weight_decay": (int, float),
-    "batch_size": (int,),
-    "augment": (bool,),
-}
-MODEL_PARAMS: dict[str, dict[str, tuple[type, ...]]] = {
-    "cnn": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
-    "resnet": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
-    "separable": {"width": (int,), "dropout": (int, float), **TORCH_TRAIN_PARAMS},
-    "forest": {"n_trees": (int,), "max_depth": (int,), "min_samples_leaf": (int,), "max_features": (int, float, str)},
-    "user-torch": {"factory": (str,), "weights": (str,)},
-    "user-callable": {"factory": (str,), "output": (str,)},
-}
 SPLITS = ("train", "val", "test")
 
 
@@ -172,69 +140,189 @@ class TaskData:
 
 
 # ---------------------------------------------------------------------------------------------------
-# validation helpers
+# the task file's schema (declared once; checked by xbench.schema, errors name file, line and key)
 
 
-def _type_name(value: Any) -> str:
-    return type(value).__name__
-
-
-def _expect(value: Any, types: tuple[type, ...], where: str, what: str) -> Any:
-    # bool is an int subclass in Python; accept it only where bool is asked for.
-    ok = isinstance(value, types) and not (isinstance(value, bool) and bool not in types)
-    if not ok:
-        raise XbenchInputError(where, "wrong type", expected=what, found=f"{_type_name(value)} {value!r}")
+def _no_duplicates(value: list[Any], where: Where) -> list[Any]:
+    dup = [v for i, v in enumerate(value) if v in value[:i]]
+    if dup:
+        raise where.error("duplicate entry", expected="each entry once", found=dup[0])
     return value
 
 
-def _unknown(table: dict[str, Any], allowed: set[str], where: str) -> None:
-    extra = sorted(set(table) - allowed)
-    if extra:
-        at = f"{where} {extra[0]}" if where.endswith(":") else f"{where}.{extra[0]}"
-        raise XbenchInputError(at, "unknown key", expected="one of " + ", ".join(sorted(allowed)), found=extra[0])
+def _names(doc: str, default: Any = None, *, min_len: int = 0, choices: tuple[str, ...] | None = None) -> Field:
+    """A list of distinct strings (optionally from ``choices``)."""
+    return Field("list", default, doc=doc, item=Field("str", choices=choices), min_len=min_len, check=_no_duplicates)
 
 
-def _int_in(value: Any, where: str, lo: int, hi: int | None = None) -> int:
-    _expect(value, (int,), where, "an integer")
-    if value < lo or (hi is not None and value > hi):
-        rng = f">= {lo}" if hi is None else f"in [{lo}, {hi}]"
-        raise XbenchInputError(where, "value out of range", expected=rng, found=value)
-    return int(value)
+def _multiple_of_4(value: int, where: Where) -> int:
+    if value % 4:
+        raise where.error("tile size must be a multiple of 4", expected="a multiple of 4", found=value)
+    return value
 
 
-def _float_in(value: Any, where: str, lo: float, hi: float) -> float:
-    _expect(value, (int, float), where, "a number")
-    if not (lo <= float(value) <= hi):
-        raise XbenchInputError(where, "value out of range", expected=f"in [{lo}, {hi}]", found=value)
-    return float(value)
+def _model_name(value: str, where: Where) -> str:
+    if not value or any(c in value for c in "/\\ "):
+        raise where.error(
+            "model names must be non-empty, without spaces or slashes", expected="a name like 'cnn-small'", found=value
+        )
+    return value
 
 
-def _str_list(value: Any, where: str, *, allow_empty: bool = False) -> list[str]:
-    _expect(value, (list,), where, "a list of strings")
-    for i, item in enumerate(value):
-        _expect(item, (str,), f"{where}[{i}]", "a string")
-    if not value and not allow_empty:
-        raise XbenchInputError(where, "empty list", expected="at least one entry", found=[])
-    dup = sorted({v for v in value if value.count(v) > 1})
-    if dup:
-        raise XbenchInputError(where, "duplicate entry", found=dup[0])
-    return list(value)
+def _model_kind(value: str, where: Where) -> str:
+    if value not in MODEL_KINDS:
+        hint = renamed_hint("model", value)
+        raise where.error(
+            "unknown model kind" + (f": {hint}" if hint else ""), expected=" | ".join(MODEL_KINDS), found=value
+        )
+    return value
 
 
-def _settings(section: dict[str, Any], keys: list[str], where: str) -> dict[str, dict[str, Any]]:
-    raw = section.get("settings", {})
-    _expect(raw, (dict,), f"{where}.settings", "a table of tables")
+def _variant_name(value: str, where: Where) -> str:
+    if not value or not all(c.isalnum() or c in "-_" for c in value):
+        raise where.error("bad variant name", expected="letters, digits, '-' or '_'", found=value)
+    return value
+
+
+def _import_path(value: str, where: Where) -> str:
+    if value.count(":") != 1 or not all(value.split(":")):
+        raise where.error("bad import path", expected="'package.module:function'", found=value)
+    return value
+
+
+def _max_features(value: Any, where: Where) -> Any:
+    """Forest ``max_features``: 'sqrt', 'log2', a count (integer) or a fraction in (0, 1]."""
+    expected = "'sqrt' | 'log2' | an integer >= 1 | a fraction in (0, 1]"
+    if isinstance(value, str):
+        if value not in ("sqrt", "log2"):
+            raise where.error("not an allowed value", expected=expected, found=value)
+    elif isinstance(value, bool) or not isinstance(value, int | float):
+        raise where.error("wrong type", expected=expected, found=value)
+    elif isinstance(value, int) and value < 1 or isinstance(value, float) and not 0 < value <= 1:
+        raise where.error("out of range", expected=expected, found=value)
+    return value
+
+
+_SPLIT_COUNT = "tiles in the {} split"
+TASK_SCHEMA: dict[str, Field] = {
+    "name": Field("str", doc="the task's name (runs and reports show it)"),
+    "description": Field("str", "", doc="one paragraph for the report"),
+    "seeds": Field("list", [0], doc="model training seeds", item=Field("int", low=0), min_len=1, check=_no_duplicates),
+    "data": Field("table", doc="the tiles: a recipe, a tile pack or rasters"),
+    "models": Field("list", doc="[[models]] tables", item=Field("table"), min_len=1),
+    "explainers": Field("table", {}, doc="keys and [explainers.settings.KEY] tables"),
+    "metrics": Field("table", {}, doc="keys and [metrics.settings.KEY] tables"),
+    "run": Field("table", {}, doc="run settings (see RUN_SCHEMA)"),
+    "variants": Field("list", [], doc="[[variants]] tables", item=Field("table")),
+}
+DATA_SCHEMA: dict[str, Field] = {
+    "recipe": Field("str", doc="a shipped recipe's name or a recipe file (relative to the task file)"),
+    "size": Field("int", low=16, high=512, check=_multiple_of_4, doc="tile side in pixels, a multiple of 4"),
+    **{s: Field("int", low=2, high=MAX_SPLIT_TILES, doc=_SPLIT_COUNT.format(s)) for s in SPLITS},
+    "seed": Field("int", 0, low=0, doc="synthesis seed (each split derives its own)"),
+    "presence": Field("table", None, doc="structure type -> probability that it appears in a tile"),
+    "labels": Field("table", doc="the label rule (see xbench.scenes.labels)"),
+    "label_noise": Field("number", 0.0, low=0.0, high=0.5, doc="share of train labels flipped"),
+    "lookalikes": _names("natural look-alike types (default: those that drive no class)", choices=LOOKALIKE_TYPES),
+    "cue": Field("table", None, doc="a spurious cue (the synthesizer's cue table)"),
+    **{
+        f"cue_rate_{s}": Field("number", None, low=0.0, high=1.0, doc=f"cue rate in the {s} split (with [data.cue])")
+        for s in SPLITS
+    },
+}
+PRESENCE_SCHEMA: dict[str, Field] = {
+    kind: Field("number", None, low=0.0, high=1.0, doc=f"probability that a tile holds a {kind}")
+    for kind in HUMAN_TYPES + LOOKALIKE_TYPES
+}
+PACK_DATA_SCHEMA: dict[str, Field] = {
+    "pack": Field("str", doc="a .npz tile pack (relative to the task file)"),
+    **{s: Field("int", low=2, doc=_SPLIT_COUNT.format(s)) for s in SPLITS},
+    "drives": Field("table", doc="class name -> the structure types (mask names) that make it"),
+    "lookalikes": _names("mask names that are look-alikes (default: natural types that drive no class)"),
+}
+RUN_DOCS = {
+    "explain_tiles": "test tiles explained and scored per (model, seed)",
+    "gallery_tiles": "tiles kept with every explainer's map for figures",
+    "batch_size": "images per model call in explainers and metrics",
+    "concept_set_size": "example tiles per concept set (tcav)",
+    "fit_tiles": "training tiles used to fit concept explainers (activation-clusters)",
+    "random_sets": "random example sets for concept significance tests (tcav)",
+    "cell_timeout": "seconds one cell (explain + score) may take before it is stopped and recorded failed",
+}
+RUN_SCHEMA: dict[str, Field] = {
+    key: Field("int", value, low=1, doc=RUN_DOCS[key]) for key, value in RUN_DEFAULTS.items()
+}
+KEYS_SCHEMA: dict[str, Field] = {
+    "keys": _names("registered keys to run", []),
+    "settings": Field("table", {}, doc="KEY -> a table of that key's settings"),
+}
+# Hyper-parameters per model kind: architecture (see models/zoo.py) and training (see models/train.py). A key
+# left out takes the trainer's default, so no default is filled in here (None).
+TORCH_TRAIN_SCHEMA: dict[str, Field] = {
+    "epochs": Field("int", None, low=1, doc="training epochs at most"),
+    "patience": Field("int", None, low=1, doc="epochs without validation gain before stopping"),
+    "lr": Field("number", None, low=1e-6, high=1.0, doc="learning rate"),
+    "weight_decay": Field("number", None, low=0.0, high=1.0, doc="weight decay"),
+    "batch_size": Field("int", None, low=1, doc="tiles per training step"),
+    "augment": Field("bool", None, doc="flips and 90-degree turns in training"),
+}
+_NET_SCHEMA: dict[str, Field] = {
+    "width": Field("int", None, low=1, doc="channels of the first layer"),
+    "dropout": Field("number", None, low=0.0, high=0.9, doc="dropout before the classifier"),
+    **TORCH_TRAIN_SCHEMA,
+}
+MODEL_PARAM_SCHEMAS: dict[str, dict[str, Field]] = {
+    "cnn": _NET_SCHEMA,
+    "resnet": _NET_SCHEMA,
+    "separable": _NET_SCHEMA,
+    "forest": {
+        "n_trees": Field("int", None, low=1, doc="trees in the forest"),
+        "max_depth": Field("int", None, low=1, doc="depth of each tree at most"),
+        "min_samples_leaf": Field("int", None, low=1, doc="tiles per leaf at least"),
+        "max_features": Field("any", None, check=_max_features, doc="'sqrt', 'log2', a count or a fraction"),
+    },
+    "user-torch": {
+        "factory": Field("str", check=_import_path, doc="'package.module:function' returning a torch module"),
+        "weights": Field("str", None, doc="a state_dict file (relative to the task file)"),
+    },
+    "user-callable": {
+        "factory": Field("str", check=_import_path, doc="'package.module:function' returning f(images) -> scores"),
+        "output": Field("str", None, choices=("probabilities", "logits"), doc="what the callable returns"),
+    },
+}
+MODEL_SCHEMA: dict[str, Field] = {
+    "name": Field("str", check=_model_name, doc="a unique name without spaces or slashes"),
+    "kind": Field("str", check=_model_kind, doc=" | ".join(MODEL_KINDS)),
+}
+VARIANT_SCHEMA: dict[str, Field] = {
+    "name": Field("str", check=_variant_name, doc="letters, digits, '-' and '_'"),
+    "description": Field("str", "", doc="what the variant changes"),
+    "models": _names("a subset of the task's models", min_len=1),
+    "explainers": _names("a subset of the task's explainers", min_len=1),
+    "metrics": _names("a subset of the task's metrics", min_len=1),
+    "explainer_settings": Field("table", {}, doc="KEY -> explainer settings overriding the task's"),
+    "metric_settings": Field("table", {}, doc="KEY -> metric settings overriding the task's"),
+}
+# kept for code that lists the keys
+TOP_KEYS = set(TASK_SCHEMA)
+DATA_KEYS = set(DATA_SCHEMA)
+PACK_DATA_KEYS = set(PACK_DATA_SCHEMA)
+VARIANT_KEYS = set(VARIANT_SCHEMA)
+MODEL_PARAMS = {kind: set(schema) for kind, schema in MODEL_PARAM_SCHEMAS.items()}
+
+
+def _settings(section: dict[str, Any], keys: list[str], where: Where) -> dict[str, dict[str, Any]]:
+    """``[SECTION.settings.KEY]`` tables, each for a listed key."""
     out: dict[str, dict[str, Any]] = {}
-    for key, table in raw.items():
+    for key, table in section["settings"].items():
+        w = where.child("settings").child(key)
         if key not in keys:
-            raise XbenchInputError(
-                f"{where}.settings.{key}",
+            raise w.error(
                 "settings for a key that is not listed",
-                expected=f"one of {where}.keys: " + ", ".join(keys),
+                expected=f"one of {where.key}.keys: " + (", ".join(keys) or "(none listed)"),
                 found=key,
             )
-        _expect(table, (dict,), f"{where}.settings.{key}", "a table")
-        out[key] = dict(table)
+        out[key] = dict(check_value(table, Field("table"), w))
     return out
 
 
@@ -280,81 +368,43 @@ def load_task(task: str | Path | dict[str, Any] | Task) -> Task:
         return task
     if isinstance(task, dict):
         path = Path.cwd() / "task-from-python.toml"
-        doc, text = task, None
-    else:
-        path = resolve_task_path(task)
-        doc = load_toml(path)
-        text = Where.of_file(path).text
-    try:
-        return _parse_task(path, doc)
-    except XbenchInputError as exc:
-        raise _in_one_format(exc, str(path), text) from None
+        return _parse_task(path, task, Where(str(path)))
+    path = resolve_task_path(task)
+    doc, where = load_config(path)
+    return _parse_task(path, doc, where)
 
 
-def _in_one_format(exc: XbenchInputError, source: str, text: str | None) -> XbenchInputError:
-    """Restate an error raised as ``"FILE: key.path"`` in the schema's format (adds the line)."""
-    where = exc.where
-    if not where.startswith(source):
-        return exc
-    rest = where[len(source) :].lstrip(":").strip()
-    if rest.startswith("line "):
-        return exc  # already in the one format
-    rest = rest.replace(", key ", ".")
-    return Where(source, rest, text).error(exc.problem, exc.expected, exc.found)
-
-
-def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
+def _parse_task(path: Path, doc: dict[str, Any], where: Where) -> Task:
     # The content of the parsed task, not the file's bytes: a comment or a reordered table changes nothing.
     file_hash = hashlib.sha256(json.dumps(doc, sort_keys=True, default=str).encode()).hexdigest()
+    top = check_table(doc, TASK_SCHEMA, where)
     f = str(path)
-    _unknown(doc, TOP_KEYS, f"{f}:")
-    for key in ("name", "data", "models"):
-        if key not in doc:
-            raise XbenchInputError(f"{f}: {key}", "missing required key")
-    name = _expect(doc["name"], (str,), f"{f}: name", "a string")
-    description = _expect(doc.get("description", ""), (str,), f"{f}: description", "a string")
-    seeds_raw = doc.get("seeds", [0])
-    _expect(seeds_raw, (list,), f"{f}: seeds", "a list of integers")
-    if not seeds_raw:
-        raise XbenchInputError(f"{f}: seeds", "empty list", expected="at least one seed", found=[])
-    seeds = [_int_in(s, f"{f}: seeds[{i}]", 0) for i, s in enumerate(seeds_raw)]
-    if len(set(seeds)) != len(seeds):
-        raise XbenchInputError(f"{f}: seeds", "duplicate seed", found=seeds)
-
-    if isinstance(doc["data"], dict) and "pack" in doc["data"]:
-        data, rule = _load_pack_data(doc["data"], f), None
-    elif isinstance(doc["data"], dict) and ("rasters" in doc["data"] or "backgrounds" in doc["data"]):
-        data, rule = _load_raster_data(doc["data"], f)
+    data_sec, w_data = top["data"], where.child("data")
+    if "pack" in data_sec:
+        data, rule = _load_pack_data(data_sec, f, w_data), None
+    elif "rasters" in data_sec or "backgrounds" in data_sec:
+        data, rule = _load_raster_data(data_sec, f, w_data)
     else:
-        data, rule = _load_data(doc["data"], f)
-    models = _load_models(doc["models"], f)
+        data, rule = _load_data(data_sec, f, w_data)
+    models = _load_models(top["models"], f, where.child("models"))
 
-    explainers_sec = _expect(doc.get("explainers", {}), (dict,), f"{f}: explainers", "a table")
-    _unknown(explainers_sec, {"keys", "settings"}, f"{f}: explainers")
-    explainers = _str_list(explainers_sec.get("keys", []), f"{f}: explainers.keys", allow_empty=True)
-    explainer_settings = _settings(explainers_sec, explainers, f"{f}: explainers")
-    metrics_sec = _expect(doc.get("metrics", {}), (dict,), f"{f}: metrics", "a table")
-    _unknown(metrics_sec, {"keys", "settings"}, f"{f}: metrics")
-    metrics = _str_list(metrics_sec.get("keys", []), f"{f}: metrics.keys", allow_empty=True)
-    metric_settings = _settings(metrics_sec, metrics, f"{f}: metrics")
+    explainers_sec = check_table(top["explainers"], KEYS_SCHEMA, where.child("explainers"))
+    explainers = explainers_sec["keys"]
+    explainer_settings = _settings(explainers_sec, explainers, where.child("explainers"))
+    metrics_sec = check_table(top["metrics"], KEYS_SCHEMA, where.child("metrics"))
+    metrics = metrics_sec["keys"]
+    metric_settings = _settings(metrics_sec, metrics, where.child("metrics"))
 
-    run_sec = _expect(doc.get("run", {}), (dict,), f"{f}: run", "a table")
-    _unknown(run_sec, set(RUN_DEFAULTS), f"{f}: run")
-    run = dict(RUN_DEFAULTS)
-    for key, value in run_sec.items():
-        run[key] = _int_in(value, f"{f}: run.{key}", 1)
+    w_run = where.child("run")
+    run = check_table(top["run"], RUN_SCHEMA, w_run)
     test_count = data.counts["test"]
     for key in ("explain_tiles", "gallery_tiles"):
         if run[key] > test_count:
-            raise XbenchInputError(
-                f"{f}: run.{key}",
-                "more tiles than the test split holds",
-                expected=f"<= data.test ({test_count})",
-                found=run[key],
+            raise w_run.child(key).error(
+                "more tiles than the test split holds", expected=f"<= data.test ({test_count})", found=run[key]
             )
     if run["gallery_tiles"] > run["explain_tiles"]:
-        raise XbenchInputError(
-            f"{f}: run.gallery_tiles",
+        raise w_run.child("gallery_tiles").error(
             "gallery tiles must be among the explained tiles",
             expected=f"<= run.explain_tiles ({run['explain_tiles']})",
             found=run["gallery_tiles"],
@@ -371,13 +421,13 @@ def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
         lookalikes = _default_lookalikes(data, driving)
 
     return Task(
-        name=name,
+        name=top["name"],
         path=path,
         file_hash=file_hash,
-        description=description,
+        description=top["description"],
         data=data,
         models=models,
-        seeds=seeds,
+        seeds=top["seeds"],
         explainers=explainers,
         explainer_settings=explainer_settings,
         metrics=metrics,
@@ -387,7 +437,9 @@ def _parse_task(path: Path, doc: dict[str, Any]) -> Task:
         class_driving_types=driving,
         lookalike_types=lookalikes,
         label_rule=rule,
-        variants=parse_variants(doc.get("variants", []), explainers, metrics, [m.name for m in models], f),
+        variants=parse_variants(
+            top["variants"], explainers, metrics, [m.name for m in models], where.child("variants")
+        ),
     )
 
 
@@ -409,46 +461,39 @@ class Variant:
     metrics: list[str] | None = None
 
 
-VARIANT_KEYS = {"name", "description", "models", "explainers", "metrics", "explainer_settings", "metric_settings"}
-
-
-def parse_variants(raw: Any, explainers: list[str], metrics: list[str], models: list[str], f: str) -> list[Variant]:
+def parse_variants(
+    raw: Any, explainers: list[str], metrics: list[str], models: list[str], where: str | Where
+) -> list[Variant]:
     """``[[variants]]`` tables: ``name`` (letters, digits, '-' and '_'), optional ``description``, optional
     subsets ``models`` / ``explainers`` / ``metrics`` of the task's lists, and ``[variants.explainer_settings.KEY]``
     / ``[variants.metric_settings.KEY]`` tables that override the task's settings for that variant."""
-    _expect(raw, (list,), f"{f}: variants", "an array of tables ([[variants]])")
+    w_all = as_where(where)
+    raw = check_value(raw, TASK_SCHEMA["variants"], w_all)
     out: list[Variant] = []
     for i, table in enumerate(raw):
-        w = f"{f}: variants[{i}]"
-        _expect(table, (dict,), w, "a table")
-        _unknown(table, VARIANT_KEYS, w)
-        if "name" not in table:
-            raise XbenchInputError(f"{w}.name", "missing required key")
-        name = _expect(table["name"], (str,), f"{w}.name", "a string")
-        if not name or not all(c.isalnum() or c in "-_" for c in name):
-            raise XbenchInputError(f"{w}.name", "bad variant name", expected="letters, digits, '-' or '_'", found=name)
-        if name in {v.name for v in out}:
-            raise XbenchInputError(f"{w}.name", "duplicate variant name", found=name)
+        w = w_all.child(i)
+        v = check_table(table, VARIANT_SCHEMA, w)
+        name = v["name"]
+        if name in {o.name for o in out}:
+            raise w.child("name").error("duplicate variant name", expected="a name not used before", found=name)
         subsets: dict[str, list[str] | None] = {}
         for key, allowed in (("models", models), ("explainers", explainers), ("metrics", metrics)):
-            if key not in table:
-                subsets[key] = None
-                continue
-            chosen = _str_list(table[key], f"{w}.{key}")
-            bad = [c for c in chosen if c not in allowed]
+            chosen = v[key]
+            bad = [c for c in chosen or [] if c not in allowed]
             if bad:
-                raise XbenchInputError(f"{w}.{key}", "not in the task", expected=", ".join(allowed), found=bad[0])
+                raise w.child(key).error("not in the task", expected=", ".join(allowed), found=bad[0])
             subsets[key] = chosen
-        settings = {}
+        settings: dict[str, dict[str, dict[str, Any]]] = {}
         for key, allowed in (("explainer_settings", explainers), ("metric_settings", metrics)):
-            sec = _expect(table.get(key, {}), (dict,), f"{w}.{key}", "a table of tables")
             settings[key] = {}
-            for k, t in sec.items():
+            for k, t in v[key].items():
+                wk = w.child(key).child(k)
                 if k not in allowed:
-                    raise XbenchInputError(f"{w}.{key}.{k}", "not in the task", expected=", ".join(allowed), found=k)
-                settings[key][k] = dict(_expect(t, (dict,), f"{w}.{key}.{k}", "a table"))
-        description = _expect(table.get("description", ""), (str,), f"{w}.description", "a string")
-        out.append(Variant(name, description, settings["explainer_settings"], settings["metric_settings"], **subsets))
+                    raise wk.error("not in the task", expected=", ".join(allowed), found=k)
+                settings[key][k] = dict(check_value(t, Field("table"), wk))
+        out.append(
+            Variant(name, v["description"], settings["explainer_settings"], settings["metric_settings"], **subsets)
+        )
     return out
 
 
@@ -482,65 +527,35 @@ def _default_lookalikes(data: DataSpec, driving: dict[int, list[str]]) -> list[s
     return [t for t in LOOKALIKE_TYPES if t in data.possible_types and t not in driving_all]
 
 
-def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
+def _load_data(sec: dict[str, Any], f: str, w: Where) -> tuple[DataSpec, Any]:
     from xbench import scenes  # the synthesizer validates recipes and label rules
 
-    w = f"{f}: data"
-    _expect(sec, (dict,), w, "a table")
-    _unknown(sec, DATA_KEYS, w)
-    for key in ("recipe", "size", "train", "val", "test", "labels"):
-        if key not in sec:
-            raise XbenchInputError(f"{w}.{key}", "missing required key")
-    recipe = _expect(sec["recipe"], (str,), f"{w}.recipe", "a recipe name or path")
+    d = check_table(sec, DATA_SCHEMA, w)
+    recipe = d["recipe"]
     try:
         recipe_obj = scenes.load_recipe(_recipe_ref(recipe, f))
     except XbenchInputError as exc:
-        raise XbenchInputError(f"{w}.recipe", f"cannot load recipe ({exc})", found=recipe) from None
-    size = _int_in(sec["size"], f"{w}.size", 16, 512)
-    if size % 4:
-        raise XbenchInputError(f"{w}.size", "tile size must be a multiple of 4", found=size)
-    counts = {s: _int_in(sec[s], f"{w}.{s}", 2, MAX_SPLIT_TILES) for s in SPLITS}
-    seed = _int_in(sec.get("seed", 0), f"{w}.seed", 0)
+        raise w.child("recipe").error(
+            f"cannot load recipe ({exc})", expected="a recipe name or path", found=recipe
+        ) from None
     presence = None
-    if "presence" in sec:
-        _expect(sec["presence"], (dict,), f"{w}.presence", "a table of structure type -> probability")
-        presence = {}
-        for kind, p in sec["presence"].items():
-            if kind not in HUMAN_TYPES + LOOKALIKE_TYPES:
-                raise XbenchInputError(
-                    f"{w}.presence.{kind}",
-                    "unknown structure type",
-                    expected=", ".join(HUMAN_TYPES + LOOKALIKE_TYPES),
-                    found=kind,
-                )
-            presence[kind] = _float_in(p, f"{w}.presence.{kind}", 0.0, 1.0)
-    labels = _expect(sec["labels"], (dict,), f"{w}.labels", "a label-rule table")
-    rule = scenes.parse_label_rule(labels, f"{w}.labels")
-    label_noise = _float_in(sec.get("label_noise", 0.0), f"{w}.label_noise", 0.0, 0.5)
-    lookalikes = None
-    if "lookalikes" in sec:
-        lookalikes = _str_list(sec["lookalikes"], f"{w}.lookalikes", allow_empty=True)
-        for i, kind in enumerate(lookalikes):
-            if kind not in LOOKALIKE_TYPES:
-                raise XbenchInputError(
-                    f"{w}.lookalikes[{i}]",
-                    "not a natural look-alike type",
-                    expected=", ".join(LOOKALIKE_TYPES),
-                    found=kind,
-                )
+    if d["presence"] is not None:
+        checked = check_table(d["presence"], PRESENCE_SCHEMA, w.child("presence"))
+        presence = {kind: float(checked[kind]) for kind in d["presence"]}
+    rule = scenes.parse_label_rule(d["labels"], w.child("labels"))
     cue = None
     rates = {s: 0.5 for s in SPLITS}
     cue_keys = [k for k in sec if k.startswith("cue_")]
-    if "cue" in sec:
-        cue = dict(_expect(sec["cue"], (dict,), f"{w}.cue", "a table describing the cue"))
-        scenes.parse_cue(cue, f"{w}.cue")
+    if d["cue"] is not None:
+        cue = dict(d["cue"])
+        scenes.parse_cue(cue, w.child("cue"))
         for s in SPLITS:
             key = f"cue_rate_{s}"
-            if key not in sec:
-                raise XbenchInputError(f"{w}.{key}", "missing required key (data.cue is set)")
-            rates[s] = _float_in(sec[key], f"{w}.{key}", 0.0, 1.0)
+            if d[key] is None:
+                raise w.child(key).error("missing required key (data.cue is set)", expected=DATA_SCHEMA[key].expected())
+            rates[s] = float(d[key])
     elif cue_keys:
-        raise XbenchInputError(f"{w}.{cue_keys[0]}", "cue settings without a [data.cue] table")
+        raise w.child(cue_keys[0]).error("cue settings without a [data.cue] table", expected="a [data.cue] table")
     possible = []
     for kind in HUMAN_TYPES + LOOKALIKE_TYPES:
         if presence is not None and kind in presence:
@@ -551,15 +566,15 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
             possible.append(kind)
     spec = DataSpec(
         recipe=recipe,
-        size=size,
-        counts=counts,
-        seed=seed,
+        size=d["size"],
+        counts={s: d[s] for s in SPLITS},
+        seed=d["seed"],
         presence=presence,
-        labels=labels,
-        label_noise=label_noise,
+        labels=d["labels"],
+        label_noise=float(d["label_noise"]),
         cue=cue,
         cue_rates=rates,
-        lookalikes=lookalikes,
+        lookalikes=d["lookalikes"],
         # the recipe's parsed content keys the data and model caches: an edited recipe recomputes
         raw=json.loads(json.dumps(sec, default=str)) | {"recipe_sha256": _recipe_sha256(recipe_obj.path)},
         possible_types=possible,
@@ -567,10 +582,7 @@ def _load_data(sec: Any, f: str) -> tuple[DataSpec, Any]:
     return spec, rule
 
 
-PACK_DATA_KEYS = {"pack", "train", "val", "test", "drives", "lookalikes"}
-
-
-def _load_pack_data(sec: dict[str, Any], f: str) -> DataSpec:
+def _load_pack_data(sec: dict[str, Any], f: str, w: Where) -> DataSpec:
     """`[data]` naming a user's tile pack: its tiles, in order, fill the train, val and test splits.
 
     ``drives`` maps a class name to the structure types (mask names) that make it: they are the planted
@@ -579,48 +591,30 @@ def _load_pack_data(sec: dict[str, Any], f: str) -> DataSpec:
     """
     from xbench.data import load_pack
 
-    w = f"{f}: data"
-    _unknown(sec, PACK_DATA_KEYS, w)
-    for key in ("train", "val", "test", "drives"):
-        if key not in sec:
-            raise XbenchInputError(f"{w}.{key}", "missing required key (data.pack is set)")
-    ref = Path(_expect(sec["pack"], (str,), f"{w}.pack", "a path to a .npz tile pack"))
+    d = check_table(sec, PACK_DATA_SCHEMA, w)
+    ref = Path(d["pack"])
     path = ref if ref.is_absolute() else Path(f).parent / ref
     try:
         pack = load_pack(path)  # every array validated; errors name the file and the array
     except XbenchInputError as exc:
-        raise XbenchInputError(f"{w}.pack", str(exc)) from None
-    counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
+        raise w.child("pack").error(str(exc), expected="a readable .npz tile pack", found=str(path)) from None
+    counts = {s: d[s] for s in SPLITS}
     if sum(counts.values()) > len(pack):
-        raise XbenchInputError(
-            f"{w}.train/val/test",
-            "more tiles than the pack holds",
+        raise w.child("test").error(
+            "more tiles than the pack holds (train + val + test)",
             expected=f"a sum <= {len(pack)}",
             found=sum(counts.values()),
         )
-    drives = _expect(sec["drives"], (dict,), f"{w}.drives", "a table: class name -> structure types")
     classes = list(pack.class_names)
+    masks = tuple(pack.mask_names)
     driving: dict[int, list[str]] = {i: [] for i in range(len(classes))}
-    for name, types in drives.items():
-        if name not in classes:
-            raise XbenchInputError(
-                f"{w}.drives.{name}", "not a class of the pack", expected=", ".join(classes), found=name
-            )
-        types = _str_list(types, f"{w}.drives.{name}", allow_empty=True)
-        for t in types:
-            if t not in pack.mask_names:
-                raise XbenchInputError(
-                    f"{w}.drives.{name}", "not a mask of the pack", expected=", ".join(pack.mask_names), found=t
-                )
-        driving[classes.index(name)] = types
+    drives_schema = {c: _names(f"structure types that make class {c}", [], choices=masks) for c in classes}
+    drives = check_table(d["drives"], drives_schema, w.child("drives"))
+    for name in d["drives"]:
+        driving[classes.index(name)] = drives[name]
     used = {t for types in driving.values() for t in types}
-    if "lookalikes" in sec:
-        lookalikes = _str_list(sec["lookalikes"], f"{w}.lookalikes", allow_empty=True)
-        for t in lookalikes:
-            if t not in pack.mask_names:
-                raise XbenchInputError(
-                    f"{w}.lookalikes", "not a mask of the pack", expected=", ".join(pack.mask_names), found=t
-                )
+    if d["lookalikes"] is not None:
+        lookalikes = check_value(d["lookalikes"], _names("mask names", choices=masks), w.child("lookalikes"))
     else:
         lookalikes = [t for t in pack.mask_names if t in LOOKALIKE_TYPES and t not in used]
     raw = json.loads(json.dumps(sec, default=str)) | {"pack_sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
@@ -648,7 +642,21 @@ def _recipe_sha256(path: str) -> str:
     return hashlib.sha256(json.dumps(load_toml(path), sort_keys=True, default=str).encode()).hexdigest()
 
 
-def _load_raster_data(sec: dict[str, Any], f: str) -> tuple[DataSpec, Any]:
+@contextlib.contextmanager
+def _raster_errors(f: str, w: Where) -> Iterator[None]:
+    """The raster forms' checks (xbench.imagery.taskdata) name ``FILE: data.KEY``; restated here in the one
+    format (with the line)."""
+    try:
+        yield
+    except XbenchInputError as exc:
+        prefix = f"{f}: "
+        if not exc.where.startswith(prefix):
+            raise
+        key = exc.where[len(prefix) :].strip()
+        raise Where(w.source, key, w.text).error(exc.problem, exc.expected, exc.found) from None
+
+
+def _load_raster_data(sec: dict[str, Any], f: str, w: Where) -> tuple[DataSpec, Any]:
     """`[data]` naming georeferenced rasters (see ``xbench.imagery.taskdata`` for the keys).
 
     ``rasters`` + ``annotations``: real tiles with vector annotations become a tile pack (cached), used like
@@ -658,24 +666,27 @@ def _load_raster_data(sec: dict[str, Any], f: str) -> tuple[DataSpec, Any]:
     from xbench.imagery import taskdata
 
     if "backgrounds" in sec:
-        rest, backgrounds = taskdata.split_backgrounds(sec, f, cache_root())
-        spec, rule = _load_data(rest, f)
+        with _raster_errors(f, w):
+            rest, backgrounds = taskdata.split_backgrounds(sec, f, cache_root())
+        spec, rule = _load_data(rest, f, w)
         raw = spec.raw | {"backgrounds": backgrounds["raw"]}
         return dataclasses.replace(spec, raw=raw, backgrounds=backgrounds), rule
     from xbench import scenes
 
-    w = f"{f}: data"
     for key in ("labels", "train", "val", "test"):
         if key not in sec:
-            raise XbenchInputError(f"{w}.{key}", "missing required key (data.rasters is set)")
-    rule = scenes.parse_label_rule(_expect(sec["labels"], (dict,), f"{w}.labels", "a label-rule table"), f"{w}.labels")
-    counts = {s: _int_in(sec[s], f"{w}.{s}", 2) for s in SPLITS}
-    path, raw = taskdata.annotated_pack_for_task(sec, f, rule, counts, cache_root())
+            raise w.child(key).error("missing required key (data.rasters is set)", expected=DATA_SCHEMA[key].expected())
+    rule = scenes.parse_label_rule(
+        check_value(sec["labels"], DATA_SCHEMA["labels"], w.child("labels")), w.child("labels")
+    )
+    counts = {s: check_value(sec[s], PACK_DATA_SCHEMA[s], w.child(s)) for s in SPLITS}
+    with _raster_errors(f, w):
+        path, raw = taskdata.annotated_pack_for_task(sec, f, rule, counts, cache_root())
     pack_sec = {"pack": str(path), "train": counts["train"], "val": counts["val"], "test": counts["test"]}
     pack_sec["drives"] = {c: list(rule.driving_types(i)) for i, c in enumerate(rule.classes)}
     if "lookalikes" in sec:
         pack_sec["lookalikes"] = sec["lookalikes"]
-    spec = _load_pack_data(pack_sec, f)
+    spec = _load_pack_data(pack_sec, f, w)
     return dataclasses.replace(spec, raw=raw | {"pack_sha256": spec.raw["pack_sha256"]}), None
 
 
@@ -686,89 +697,30 @@ def _recipe_ref(recipe: str, task_file: str) -> str:
     return recipe
 
 
-def _load_models(raw: Any, f: str) -> list[ModelSpec]:
-    _expect(raw, (list,), f"{f}: models", "an array of [[models]] tables")
-    if not raw:
-        raise XbenchInputError(f"{f}: models", "no models", expected="at least one [[models]] table")
+def _load_models(raw: list[Any], f: str, where: Where) -> list[ModelSpec]:
     out: list[ModelSpec] = []
     for i, entry in enumerate(raw):
-        w = f"{f}: models[{i}]"
-        _expect(entry, (dict,), w, "a table")
-        for key in ("name", "kind"):
-            if key not in entry:
-                raise XbenchInputError(f"{w}.{key}", "missing required key")
-        name = _expect(entry["name"], (str,), f"{w}.name", "a string")
-        if not name or any(c in name for c in "/\\ "):
-            raise XbenchInputError(f"{w}.name", "model names must be non-empty, without spaces or slashes", found=name)
-        kind = _expect(entry["kind"], (str,), f"{w}.kind", "a string")
-        if kind not in MODEL_KINDS:
-            hint = renamed_hint("model", kind)
-            problem = "unknown model kind" + (f": {hint}" if hint else "")
-            raise XbenchInputError(f"{w}.kind", problem, expected=" | ".join(MODEL_KINDS), found=kind)
-        allowed = MODEL_PARAMS[kind]
-        params: dict[str, Any] = {}
-        for key, value in entry.items():
-            if key in ("name", "kind"):
-                continue
-            if key not in allowed:
-                raise XbenchInputError(
-                    f"{w}.{key}",
-                    f"unknown hyper-parameter for kind '{kind}'",
-                    expected="one of " + ", ".join(sorted(allowed)),
-                    found=key,
+        w = where.child(i)
+        if not isinstance(entry, dict):
+            raise w.error("must be a table", expected="a [[models]] table", found=entry)
+        head = check_table({k: entry[k] for k in MODEL_SCHEMA if k in entry}, MODEL_SCHEMA, w)
+        name, kind = head["name"], head["kind"]
+        schema = MODEL_PARAM_SCHEMAS[kind]
+        checked = check_table({k: v for k, v in entry.items() if k not in MODEL_SCHEMA}, schema, w)
+        params = {k: checked[k] for k in entry if k not in MODEL_SCHEMA}
+        if "weights" in params:
+            weights = Path(params["weights"])
+            if not weights.is_absolute():
+                weights = Path(f).parent / weights
+            if not weights.is_file():
+                raise w.child("weights").error(
+                    "weights file not found", expected="a state_dict file", found=str(weights)
                 )
-            _expect(value, allowed[key], f"{w}.{key}", " or ".join(t.__name__ for t in allowed[key]))
-            params[key] = value
-        _check_model_values(params, w)
-        if kind in USER_KINDS:
-            _check_user_model(params, kind, w, Path(f))
+            params["weights"] = str(weights.resolve())
         if any(m.name == name for m in out):
-            raise XbenchInputError(f"{w}.name", "duplicate model name", found=name)
+            raise w.child("name").error("duplicate model name", expected="a name not used before", found=name)
         out.append(ModelSpec(name=name, kind=kind, params=params))
     return out
-
-
-def _check_user_model(params: dict[str, Any], kind: str, w: str, task_file: Path) -> None:
-    """A user model's keys are checked before any work: import path form and the weights file."""
-    factory = params.get("factory")
-    if factory is None:
-        raise XbenchInputError(
-            f"{w}.factory", f"missing required key for kind '{kind}'", expected="'package.module:function'"
-        )
-    if factory.count(":") != 1 or not all(factory.split(":")):
-        raise XbenchInputError(f"{w}.factory", "bad import path", expected="'package.module:function'", found=factory)
-    if "weights" in params:
-        weights = Path(params["weights"])
-        if not weights.is_absolute():
-            weights = task_file.parent / weights
-        if not weights.is_file():
-            raise XbenchInputError(f"{w}.weights", "weights file not found", found=str(weights))
-        params["weights"] = str(weights.resolve())
-    if params.get("output", "probabilities") not in ("probabilities", "logits"):
-        raise XbenchInputError(f"{w}.output", "bad value", expected="probabilities | logits", found=params["output"])
-
-
-def _check_model_values(params: dict[str, Any], w: str) -> None:
-    positive_ints = ("epochs", "batch_size", "width", "n_trees", "max_depth", "min_samples_leaf")
-    for key in positive_ints:
-        if key in params:
-            _int_in(params[key], f"{w}.{key}", 1)
-    if "patience" in params:
-        _int_in(params["patience"], f"{w}.patience", 1)
-    if "lr" in params:
-        _float_in(params["lr"], f"{w}.lr", 1e-6, 1.0)
-        if params["lr"] <= 0:
-            raise XbenchInputError(f"{w}.lr", "value out of range", expected="> 0", found=params["lr"])
-    if "weight_decay" in params:
-        _float_in(params["weight_decay"], f"{w}.weight_decay", 0.0, 1.0)
-    if "dropout" in params:
-        _float_in(params["dropout"], f"{w}.dropout", 0.0, 0.9)
-    if "max_features" in params:
-        mf = params["max_features"]
-        if isinstance(mf, str) and mf not in ("sqrt", "log2"):
-            raise XbenchInputError(f"{w}.max_features", "bad value", expected="sqrt | log2 | a number", found=mf)
-        if isinstance(mf, float) and not 0 < mf <= 1:
-            raise XbenchInputError(f"{w}.max_features", "value out of range", expected="in (0, 1]", found=mf)
 
 
 # ---------------------------------------------------------------------------------------------------

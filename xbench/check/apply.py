@@ -433,8 +433,7 @@ def _check_metric_selectors(spec: GateSpec, in_records: set[str]) -> None:
                 continue
             _, _, known = _metric_info(name)
             if not known:
-                raise XbenchInputError(
-                    f"{spec.source}, {rule.label} key 'metric'",
+                raise rule.where.child("metric").error(
                     f"unknown metric {name!r}",
                     expected="a metric of the registry or of the records: " + ", ".join(sorted(in_records)),
                     found=name,

@@ -3,21 +3,18 @@
 from __future__ import annotations
 
 import math
-import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from xbench.errors import XbenchInputError
+from xbench.schema import Field, Where, check_table
 
 GROUP_KEYS = ("task", "model", "explainer", "metric", "truth")
 PAIR_KEYS = ("seed", "tile")  # within a group, the model is fixed: pairs are by (model, seed, tile)
 
 SELECTOR_KEYS = GROUP_KEYS
-SETTING_KEYS = {"alpha", "correction", "min_pairs", "tolerance"}
 THRESHOLD_KEYS = ("at_least", "at_most", "max_drop", "max_relative_drop")
-RULE_KEYS = {*THRESHOLD_KEYS, "paired_test", "alpha", "higher_is_better", "allow_missing", "skip"}
-TOP_KEYS = {"settings", "default", "gate"}
 
 # The gates used when no gate file is given: any worsening beyond 5 % of the baseline or a significant
 # per-tile drop fails; wall-clock seconds differ between machines and are not gated.
@@ -54,6 +51,7 @@ class Rule:
     values: dict[str, Any]
     index: int  # position in the file (0 = [default])
     label: str  # e.g. "[[gate]] 3" for messages
+    where: Where = field(default=Where("<gates>"), compare=False)  # the table in the file, for errors
 
     def matches(self, group: dict[str, str]) -> bool:
         return all(group[k] in allowed for k, allowed in self.selectors.items())
@@ -78,161 +76,103 @@ class GateSpec:
         return {k: v for k, v in merged.items() if not (k in THRESHOLD_KEYS and v is False)}
 
 
-def _line_of(text: str | None, key: str, occurrence_after: int = 0) -> int | None:
-    """Best-effort line number of ``key = ...`` in a TOML text (first one at or after a line)."""
-    if not text:
-        return None
-    k = re.escape(key)
-    name = rf"(\"{k}\"|'{k}'|{k})"
-    pattern = re.compile(rf"^\s*({name}\s*=|\[\[?\s*{name}\s*[\].])")  # key = ... or a [key] header
-    for number, line in enumerate(text.splitlines(), start=1):
-        if number >= occurrence_after and pattern.match(line):
-            return number
-    return None
+def _number_or_false(*, non_negative: bool) -> Any:
+    expected = "a number >= 0 or false" if non_negative else "a finite number or false"
 
-
-def _table_line(text: str | None, header: str, nth: int = 1) -> int:
-    """Line of the ``nth`` occurrence of a table header such as ``[[gate]]`` (0 when unknown)."""
-    if not text:
-        return 0
-    seen = 0
-    pattern = re.compile(rf"^\s*{re.escape(header)}\s*(#.*)?$")
-    for number, line in enumerate(text.splitlines(), start=1):
-        if pattern.match(line):
-            seen += 1
-            if seen == nth:
-                return number
-    return 0
-
-
-class _Where:
-    """Builds ``file line N, [table] key 'k'`` strings for error messages."""
-
-    def __init__(self, source: str, text: str | None):
-        self.source = source
-        self.text = text
-
-    def __call__(self, table: str, key: str | None = None, header: str | None = None, nth: int = 1) -> str:
-        start = _table_line(self.text, header, nth) if header else 0
-        line = _line_of(self.text, key, start) if key else (start or None)
-        at = f"{self.source} line {line}" if line else self.source
-        if key is None:
-            return f"{at}, {table}"
-        return f"{at}, {table} key '{key}'"
-
-
-def _is_number(v: Any) -> bool:
-    return isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
-
-
-def _check_rule_value(where: str, key: str, v: Any) -> Any:
-    if key in ("at_least", "at_most"):
+    def check(v: Any, where: Where) -> Any:
         if v is False:
             return False
-        if not _is_number(v):
-            raise XbenchInputError(where, "wrong type", expected="a finite number or false", found=v)
+        if isinstance(v, bool) or not isinstance(v, int | float):
+            raise where.error("wrong type", expected=expected, found=v)
+        if not math.isfinite(v) or (non_negative and v < 0):
+            raise where.error("out of range", expected=expected, found=v)
         return float(v)
-    if key in ("max_drop", "max_relative_drop"):
-        if v is False:
-            return False
-        if not _is_number(v) or v < 0:
-            raise XbenchInputError(where, "wrong type or value", expected="a number >= 0 or false", found=v)
-        return float(v)
-    if key == "alpha":
-        if not _is_number(v) or not 0 < v < 1:
-            raise XbenchInputError(where, "wrong type or value", expected="a number in (0, 1)", found=v)
-        return float(v)
-    # paired_test, higher_is_better, allow_missing, skip
-    if not isinstance(v, bool):
-        raise XbenchInputError(where, "wrong type", expected="true or false", found=v)
-    return v
+
+    return check
+
+
+def _selector(v: Any, where: Where) -> tuple[str, ...]:
+    items = [v] if isinstance(v, str) else v
+    if not (isinstance(items, list) and items and all(isinstance(s, str) and s for s in items)):
+        raise where.error("wrong type", expected="a name or a list of names", found=v)
+    return tuple(items)
+
+
+# The gate file's schema, declared once: [settings], [default] and [[gate]] tables.
+SETTINGS_SCHEMA: dict[str, Field] = {
+    "alpha": Field("number", 0.05, low=0.0, high=1.0, low_open=True, high_open=True, doc="paired tests' level"),
+    "correction": Field("str", "none", choices=("none", "holm"), doc="multiple-testing correction of paired tests"),
+    "min_pairs": Field("int", 8, low=1, doc="pairs a paired test needs at least"),
+    "tolerance": Field("number", 1e-9, low=0.0, doc="differences this small count as equal"),
+}
+RULE_SCHEMA: dict[str, Field] = {
+    "at_least": Field("any", None, check=_number_or_false(non_negative=False), doc="lowest allowed value, or false"),
+    "at_most": Field("any", None, check=_number_or_false(non_negative=False), doc="highest allowed value, or false"),
+    "max_drop": Field("any", None, check=_number_or_false(non_negative=True), doc="largest worsening, or false"),
+    "max_relative_drop": Field(
+        "any", None, check=_number_or_false(non_negative=True), doc="largest worsening as a share of the baseline"
+    ),
+    "paired_test": Field("bool", None, doc="a significant per-tile worsening fails"),
+    "alpha": Field("number", None, low=0.0, high=1.0, low_open=True, high_open=True, doc="this rule's test level"),
+    "higher_is_better": Field("bool", None, doc="the direction of a metric the registry does not know"),
+    "allow_missing": Field("bool", None, doc="a group missing from the current run passes"),
+    "skip": Field("bool", None, doc="the matched groups are not gated"),
+}
+SELECTOR_SCHEMA: dict[str, Field] = {
+    key: Field("any", None, check=_selector, doc=f"a {key} name or a list of names") for key in SELECTOR_KEYS
+}
+GATE_SCHEMA: dict[str, Field] = {**SELECTOR_SCHEMA, **RULE_SCHEMA}
+GATE_FILE_SCHEMA: dict[str, Field] = {
+    "settings": Field("table", {}, doc="settings of the whole check"),
+    "default": Field("table", {}, doc="rule values for every group"),
+    "gate": Field("any", [], doc="[[gate]] tables: selectors and rule values"),
+}
+SETTING_KEYS = set(SETTINGS_SCHEMA)
+RULE_KEYS = set(RULE_SCHEMA)
+TOP_KEYS = set(GATE_FILE_SCHEMA)
+
+
+def _given(table: dict[str, Any], checked: dict[str, Any], keys: Any) -> dict[str, Any]:
+    """The checked values of the keys the table sets (no defaults), in the file's order."""
+    return {k: checked[k] for k in table if k in keys}
 
 
 def parse_gates(data: dict[str, Any], source: str = "<gates>", text: str | None = None) -> GateSpec:
     """Validate gate data (as read from TOML) into a :class:`GateSpec`; errors name file, line and key."""
-    where = _Where(source, text)
-    if not isinstance(data, dict):
-        raise XbenchInputError(source, "a gate file is a table", found=type(data).__name__)
-    for key in data:
-        if key not in TOP_KEYS:
-            raise XbenchInputError(
-                where("top level", key), "unknown key", expected="one of " + ", ".join(sorted(TOP_KEYS))
-            )
+    where = Where(source, "", text)
+    top = check_table(data, GATE_FILE_SCHEMA, where)
+    settings = check_table(top["settings"], SETTINGS_SCHEMA, where.child("settings"))
 
-    raw_settings = data.get("settings", {})
-    if not isinstance(raw_settings, dict):
-        raise XbenchInputError(where("[settings]"), "must be a table", found=raw_settings)
-    settings: dict[str, Any] = {}
-    for key, v in raw_settings.items():
-        w = where("[settings]", key, "[settings]")
-        if key not in SETTING_KEYS:
-            raise XbenchInputError(w, "unknown key", expected="one of " + ", ".join(sorted(SETTING_KEYS)))
-        if key == "alpha":
-            settings[key] = _check_rule_value(w, "alpha", v)
-        elif key == "correction":
-            if v not in ("none", "holm"):
-                raise XbenchInputError(w, "wrong value", expected="'none' or 'holm'", found=v)
-            settings[key] = v
-        elif key == "min_pairs":
-            if not isinstance(v, int) or isinstance(v, bool) or v < 1:
-                raise XbenchInputError(w, "wrong type or value", expected="an integer >= 1", found=v)
-            settings[key] = v
-        elif key == "tolerance":
-            if not _is_number(v) or v < 0:
-                raise XbenchInputError(w, "wrong type or value", expected="a number >= 0", found=v)
-            settings[key] = float(v)
-
-    rules: list[Rule] = []
-    default = data.get("default", {})
-    if not isinstance(default, dict):
-        raise XbenchInputError(where("[default]"), "must be a table", found=default)
-    values = {}
-    for key, v in default.items():
-        w = where("[default]", key, "[default]")
+    w_default = where.child("default")
+    for key in top["default"]:
         if key in SELECTOR_KEYS:
-            raise XbenchInputError(w, "selectors belong in a [[gate]] table, not in [default]")
-        if key not in RULE_KEYS:
-            raise XbenchInputError(w, "unknown key", expected="one of " + ", ".join(sorted(RULE_KEYS)))
-        values[key] = _check_rule_value(w, key, v)
-    rules.append(Rule(selectors={}, values=values, index=0, label="[default]"))
-
-    gates = data.get("gate", [])
-    if isinstance(gates, dict) or not isinstance(gates, list):
-        raise XbenchInputError(where("'gate'"), "write gate rules as [[gate]] tables (an array of tables)")
-    for i, table in enumerate(gates, start=1):
-        label = f"[[gate]] {i}"
-        if not isinstance(table, dict):
-            raise XbenchInputError(where(label), "must be a table", found=table)
-        selectors: dict[str, tuple[str, ...]] = {}
-        values = {}
-        for key, v in table.items():
-            w = where(label, key, "[[gate]]", i)
-            if key in SELECTOR_KEYS:
-                items = [v] if isinstance(v, str) else v
-                names_ok = isinstance(items, list) and items and all(isinstance(s, str) and s for s in items)
-                if not names_ok:
-                    raise XbenchInputError(w, "wrong type", expected="a name or a list of names", found=v)
-                selectors[key] = tuple(items)
-            elif key in RULE_KEYS:
-                values[key] = _check_rule_value(w, key, v)
-            else:
-                raise XbenchInputError(
-                    w, "unknown key", expected="one of " + ", ".join(sorted(RULE_KEYS | set(SELECTOR_KEYS)))
-                )
-        if not values:
-            raise XbenchInputError(
-                where(label, None, "[[gate]]", i),
-                "a gate rule sets no gate",
-                expected="at least one of " + ", ".join(sorted(RULE_KEYS)),
+            raise w_default.child(key).error(
+                "selectors belong in a [[gate]] table, not in [default]", expected="one of " + ", ".join(RULE_SCHEMA)
             )
-        rules.append(Rule(selectors=selectors, values=values, index=i, label=label))
+    values = _given(top["default"], check_table(top["default"], RULE_SCHEMA, w_default), RULE_SCHEMA)
+    rules = [Rule(selectors={}, values=values, index=0, label="[default]", where=w_default)]
+
+    gates = top["gate"]
+    if not isinstance(gates, list):
+        raise where.child("gate").error(
+            "write gate rules as [[gate]] tables (an array of tables)", expected="[[gate]] tables", found="[gate]"
+        )
+    for i, table in enumerate(gates, start=1):
+        label, w = f"[[gate]] {i}", where.child("gate").child(i - 1)
+        checked = check_table(table, GATE_SCHEMA, w)
+        selectors = _given(table, checked, SELECTOR_SCHEMA)
+        values = _given(table, checked, RULE_SCHEMA)
+        if not values:
+            raise w.error("a gate rule sets no gate", expected="at least one of " + ", ".join(RULE_SCHEMA), found=label)
+        rules.append(Rule(selectors=selectors, values=values, index=i, label=label, where=w))
     if not any(r.values for r in rules):
         raise XbenchInputError(
             source,
             "the gate file sets no gate (an empty check would pass whatever the run holds)",
             expected="rules in [default] or at least one [[gate]] table",
         )
-    return GateSpec(settings=Settings(**settings), rules=tuple(rules), source=source)
+    numbers = {k: float(v) for k, v in settings.items() if k in ("alpha", "tolerance")}
+    return GateSpec(settings=Settings(**(settings | numbers)), rules=tuple(rules), source=source)
 
 
 def load_gates(gates: str | Path | dict | GateSpec | None) -> GateSpec:

@@ -15,6 +15,7 @@ from typing import Any
 
 from xbench.explainers import get_explainer, list_explainers, load_plugins
 from xbench.explainers.registry import NEEDS, ExplainerSpec
+from xbench.schema import describe
 
 KIND_TITLES = {
     "pixel": "Pixel explainers",
@@ -68,6 +69,7 @@ def as_dict(spec: ExplainerSpec) -> dict[str, Any]:
         "needs": sorted(spec.needs),
         "black_box_ok": spec.black_box_ok,
         "defaults": spec.defaults,
+        "settings": {name: accepts for name, _, accepts in describe(spec.schema)},
         "description": spec.description,
     }
 
@@ -110,10 +112,15 @@ def render_one(spec: ExplainerSpec, width: int = 100) -> str:
     lines += wrap("description", spec.description or "-")
     lines += wrap("citation", spec.citation)
     lines += wrap("needs", needs_text(spec))
-    lines.append("defaults")
-    if spec.defaults:
-        kw = max(len(k) for k in spec.defaults) + 2
-        lines += [f"  {k:<{kw}}{_value(v)}" for k, v in spec.defaults.items()]
+    lines.append("settings (name = default: accepted values; meaning)")
+    if spec.schema:
+        for name, _, accepts in describe(spec.schema):
+            lines += textwrap.wrap(
+                f"{name} = {_value(spec.defaults[name])}: {accepts}",
+                width,
+                initial_indent="  ",
+                subsequent_indent=" " * 6,
+            )
     else:
         lines.append("  (no settings)")
     return "\n".join(lines)

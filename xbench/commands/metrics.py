@@ -15,6 +15,7 @@ import textwrap
 from typing import TYPE_CHECKING, Any
 
 from xbench.errors import XbenchInputError
+from xbench.schema import describe
 
 if TYPE_CHECKING:
     from xbench.metrics.base import MetricSpec
@@ -60,6 +61,7 @@ def _as_dict(spec: MetricSpec) -> dict[str, Any]:
         "truths": list(spec.truths),
         "settings": dict(spec.defaults),
         "settings_doc": dict(spec.settings_doc),
+        "settings_accepted": {name: text for name, _, text in describe(spec.schema)},
     }
 
 
@@ -121,9 +123,13 @@ def _text_detail(spec: MetricSpec, width: int) -> str:
     if spec.defaults:
         lines.append("  settings")
         for name, default in spec.defaults.items():
-            doc = spec.settings_doc.get(name, "")
+            field = spec.schema[name]
+            doc = spec.settings_doc.get(name) or field.doc
+            accepts = field.expected()
             lines.append(
-                textwrap.fill(f"    {name} = {default!r}: {doc}", width=max(40, width), subsequent_indent=" " * 8)
+                textwrap.fill(
+                    f"    {name} = {default!r} ({accepts}): {doc}", width=max(40, width), subsequent_indent=" " * 8
+                )
             )
     else:
         lines.append("  settings      none")

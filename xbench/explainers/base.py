@@ -23,6 +23,7 @@ from scipy import ndimage
 
 from xbench.errors import XbenchInputError
 from xbench.models.base import ModelHandle
+from xbench.schema import Field
 
 if TYPE_CHECKING:
     from torch import nn
@@ -276,6 +277,22 @@ def nearest_index_upsample(maps: np.ndarray, size: tuple[int, int]) -> np.ndarra
 # ---------------------------------------------------------------------------------------------------
 
 BASELINES = ("zero", "mean", "blur", "twin")
+
+
+def reduce_field(default: str) -> Field:
+    """The declared ``reduce`` setting: how bands are reduced to one map."""
+    return Field("str", default, choices=REDUCTIONS, doc="how the bands' attributions become one map")
+
+
+LAYER_FIELD = Field("str", None, nullable=True, doc="the layer to read (default: the model's explain layer)")
+
+
+def baseline_fields(blur_default: float = 4.0) -> dict[str, Field]:
+    """The declared ``baseline`` and ``blur_sigma`` settings of baseline-based explainers."""
+    return {
+        "baseline": Field("str", "zero", choices=BASELINES, doc="reference input ('twin' needs the twins)"),
+        "blur_sigma": Field("number", blur_default, low=0.0, doc="Gaussian sigma in pixels of the 'blur' baseline"),
+    }
 
 
 BLUR_SIGMA = 4.0  # pixels; the one default of every blurred baseline (explainers and response metrics)

@@ -18,18 +18,19 @@ from captum.attr import LayerAttribution, LayerGradCam
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
+    LAYER_FIELD,
     LayerTap,
     as_numpy,
     as_tensor,
     backward_counted,
     batches,
-    check_choice,
     signed_maps,
 )
 from xbench.explainers.base import (
     upsample as resize_maps,
 )
 from xbench.explainers.registry import register_explainer
+from xbench.schema import Field
 
 CITE_GRADCAM = (
     "Selvaraju, Cogswell, Das, Vedantam, Parikh, Batra. Grad-CAM: visual explanations from deep "
@@ -40,20 +41,25 @@ CITE_GRADCAMPP = (
     "visual explanations for deep convolutional networks. WACV 2018."
 )
 UPSAMPLE = ("bilinear", "nearest")
+UPSAMPLE_FIELD = Field("str", "bilinear", choices=UPSAMPLE, doc="how the layer map is resized to the tile")
 
 
 @register_explainer(
     "grad-cam",
     citation=CITE_GRADCAM,
     needs={"gradients", "layer"},
-    defaults={"layer": None, "relu": True, "upsample": "bilinear"},
+    settings={
+        "layer": LAYER_FIELD,
+        "relu": Field("bool", True, doc="keep only positive evidence (Grad-CAM's ReLU)"),
+        "upsample": UPSAMPLE_FIELD,
+    },
     description="layer feature maps weighted by their spatially averaged gradients, ReLU, "
     "upsampled (captum LayerGradCam + LayerAttribution.interpolate)",
 )
 @signed_maps(lambda settings: not settings["relu"])
 def grad_cam(model, images, targets, context, *, layer, relu, upsample):
     key = "grad-cam"
-    mode = check_choice(key, "upsample", upsample, UPSAMPLE)
+    mode = upsample
     module = model.get_layer(layer)
     method = LayerGradCam(model.module, module)
     h, w = images.shape[2:]
@@ -78,7 +84,7 @@ def grad_cam(model, images, targets, context, *, layer, relu, upsample):
     "grad-cam-pp",
     citation=CITE_GRADCAMPP,
     needs={"gradients", "layer"},
-    defaults={"layer": None, "upsample": "bilinear"},
+    settings={"layer": LAYER_FIELD, "upsample": UPSAMPLE_FIELD},
     description="Grad-CAM++: feature maps weighted by positive gradients with per-position "
     "weights from higher-order terms (exponential score), ReLU, upsampled",
 )
@@ -91,7 +97,7 @@ def grad_cam_pp(model, images, targets, context, *, layer, upsample):
     map = relu(sum_k w_k A_k). (The factor exp(S) of dY/dA is a positive scale per tile and is dropped.)
     """
     key = "grad-cam-pp"
-    mode = check_choice(key, "upsample", upsample, UPSAMPLE)
+    mode = upsample
     h, w = images.shape[2:]
     out = np.empty((images.shape[0], h, w), dtype=np.float32)
     with LayerTap(key, model, layer, mode="grad") as t:

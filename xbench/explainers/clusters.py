@@ -52,6 +52,7 @@ Outputs
 from __future__ import annotations
 
 import warnings
+from typing import Any
 
 import numpy as np
 import torch
@@ -62,13 +63,11 @@ from threadpoolctl import threadpool_limits
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
+    LAYER_FIELD,
     ConceptReport,
     LayerTap,
     as_tensor,
     batches,
-    check_choice,
-    check_float,
-    check_int,
     layer_activations,
     nearest_index_upsample,
     signed_maps,
@@ -76,6 +75,7 @@ from xbench.explainers.base import (
 )
 from xbench.explainers.concept_sets import classes_of_type
 from xbench.explainers.registry import register_explainer
+from xbench.schema import Field, Where
 
 CITE_CLUSTERS = (
     "Ghorbani, Wexler, Zou, Kim. Towards automatic concept-based explanations. NeurIPS 2019; "
@@ -162,23 +162,45 @@ def _ttest(d: np.ndarray) -> float | None:
     return p if np.isfinite(p) else 1.0
 
 
+def _n_clusters(value: Any, where: Where) -> Any:
+    if value == "bic":
+        return value
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise where.error("not an allowed value", expected="'bic' or an integer >= 1", found=value)
+    return value
+
+
+def _ordered(value: list[int], where: Where) -> list[int]:
+    if value[0] > value[1]:
+        raise where.error("low above high", expected="[k_min, k_max] with k_min <= k_max", found=value)
+    return value
+
+
 @register_explainer(
     KEY,
     citation=CITE_CLUSTERS,
     needs={"layer", "fit-set"},
     kind="concept",
-    defaults={
-        "layer": None,
-        "n_clusters": "bic",
-        "cluster_range": [2, 8],
-        "pca_components": 8,
-        "covariance": "full",
-        "max_positions": 4000,
-        "baseline": "fit-mean",
-        "score": "probability",
-        "alpha": 0.05,
-        "min_drop": 0.02,
-        "min_iou": 0.2,
+    settings={
+        "layer": LAYER_FIELD,
+        "n_clusters": Field("any", "bic", check=_n_clusters, doc="'bic' (chosen in cluster_range) or a count"),
+        "cluster_range": Field(
+            "list",
+            [2, 8],
+            item=Field("int", low=1),
+            min_len=2,
+            max_len=2,
+            check=_ordered,
+            doc="[k_min, k_max]",
+        ),
+        "pca_components": Field("int", 8, low=1, doc="PCA components of the activation vectors"),
+        "covariance": Field("str", "full", choices=("full", "diag", "tied", "spherical"), doc="mixture covariance"),
+        "max_positions": Field("int", 4000, low=2, doc="activation vectors sampled for the fit at most"),
+        "baseline": Field("str", "fit-mean", choices=("fit-mean", "zero"), doc="what replaces a cluster's vectors"),
+        "score": Field("str", "probability", choices=("probability", "logit"), doc="the score whose drop counts"),
+        "alpha": Field("number", 0.05, low=0.0, high=1.0, low_open=True, doc="level of the per-cluster drop test"),
+        "min_drop": Field("number", 0.02, low=0.0, doc="smallest mean score drop that makes a cluster matter"),
+        "min_iou": Field("number", 0.2, low=0.0, high=1.0, doc="IoU with a structure type for a cluster's label"),
     },
     description="Gaussian-mixture clusters of a layer's activation vectors (fitting set), "
     "each replaced by a baseline inside the network; attribution = cluster "
@@ -203,28 +225,6 @@ def activation_clusters(
     min_drop,
     min_iou,
 ):
-    if n_clusters != "bic":
-        n_clusters = check_int(KEY, "n_clusters", n_clusters, 1)
-    if (
-        not isinstance(cluster_range, (list, tuple))
-        or len(cluster_range) != 2
-        or not all(isinstance(v, (int, np.integer)) for v in cluster_range)
-        or not 1 <= cluster_range[0] <= cluster_range[1]
-    ):
-        raise XbenchInputError(
-            f"explainer '{KEY}': setting 'cluster_range'",
-            "bad value",
-            expected="[k_min, k_max] integers with 1 <= k_min <= k_max",
-            found=cluster_range,
-        )
-    pca_components = check_int(KEY, "pca_components", pca_components, 1)
-    covariance = check_choice(KEY, "covariance", covariance, ("full", "diag", "tied", "spherical"))
-    max_positions = check_int(KEY, "max_positions", max_positions, 2)
-    baseline = check_choice(KEY, "baseline", baseline, ("fit-mean", "zero"))
-    score = check_choice(KEY, "score", score, ("probability", "logit"))
-    alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
-    min_drop = check_float(KEY, "min_drop", min_drop, 0.0)
-    min_iou = check_float(KEY, "min_iou", min_iou, 0.0, 1.0)
     seed = int(context.seed)
     bs = context.batch_size
 

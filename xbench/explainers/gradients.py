@@ -39,23 +39,21 @@ from captum.attr import (
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
-    BASELINES,
-    REDUCTIONS,
     ExplainContext,
     as_numpy,
     as_tensor,
+    baseline_fields,
     batches,
-    check_choice,
-    check_float,
-    check_int,
     make_baseline,
     reduce_channels,
+    reduce_field,
     reduce_is_signed,
     signed_maps,
     torch_module,
 )
 from xbench.explainers.registry import register_explainer
 from xbench.models.base import ModelHandle
+from xbench.schema import Field
 
 CITE_GRADIENT = "Simonyan, Vedaldi, Zisserman. Deep inside convolutional networks. ICLR Workshop 2014."
 CITE_IXG = "Shrikumar, Greenside, Shcherbina, Kundaje. Not just a black box. arXiv:1605.01713, 2016."
@@ -99,6 +97,8 @@ def _per_batch(
 
 
 COMPLETENESS_KEY = "completeness-gap"
+SMOOTHGRAD_NOISE_FRACTION = 0.15
+IG_METHODS = ("gausslegendre", "riemann_trapezoid", "riemann_left", "riemann_right", "riemann_middle")
 MIN_SCORE_CHANGE = 1e-6
 
 
@@ -167,12 +167,11 @@ def _modified_backprop_error(key: str, model: ModelHandle, exc: Exception) -> Xb
     "gradient",
     citation=CITE_GRADIENT,
     needs={"gradients"},
-    defaults={"reduce": "max-abs"},
+    settings={"reduce": reduce_field("max-abs")},
     description="gradient of the target logit w.r.t. the input (captum Saliency); bands reduced by max |gradient|",
 )
 @signed_maps(reduce_is_signed)
 def gradient(model, images, targets, context, *, reduce):
-    reduce = check_choice("gradient", "reduce", reduce, REDUCTIONS)
     method = Saliency(model.module)
     raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(x, target=t, abs=False))
     return reduce_channels(raw, reduce)
@@ -182,12 +181,11 @@ def gradient(model, images, targets, context, *, reduce):
     "input-x-gradient",
     citation=CITE_IXG,
     needs={"gradients"},
-    defaults={"reduce": "sum"},
+    settings={"reduce": reduce_field("sum")},
     description="input times gradient of the target logit (captum InputXGradient); bands summed",
 )
 @signed_maps(reduce_is_signed)
 def input_x_gradient(model, images, targets, context, *, reduce):
-    reduce = check_choice("input-x-gradient", "reduce", reduce, REDUCTIONS)
     method = InputXGradient(model.module)
     raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(x, target=t))
     return reduce_channels(raw, reduce)
@@ -197,7 +195,12 @@ def input_x_gradient(model, images, targets, context, *, reduce):
     "integrated-gradients",
     citation=CITE_IG,
     needs={"gradients"},
-    defaults={"baseline": "zero", "n_steps": 64, "method": "gausslegendre", "blur_sigma": 4.0, "reduce": "sum"},
+    settings={
+        **baseline_fields(),
+        "n_steps": Field("int", 64, low=2, doc="points on the path from the baseline to the tile"),
+        "method": Field("str", "gausslegendre", choices=IG_METHODS, doc="captum's integration rule"),
+        "reduce": reduce_field("sum"),
+    },
     description="path integral of gradients from a baseline (zero, mean, blur or the "
     "tile's structure-free twin) to the tile (captum IntegratedGradients); "
     "bands summed; baseline 'twin' needs the twins",
@@ -205,13 +208,6 @@ def input_x_gradient(model, images, targets, context, *, reduce):
 @signed_maps(reduce_is_signed)
 def integrated_gradients(model, images, targets, context, *, baseline, n_steps, method, blur_sigma, reduce):
     key = "integrated-gradients"
-    check_choice(key, "baseline", baseline, BASELINES)
-    n_steps = check_int(key, "n_steps", n_steps, 2)
-    method = check_choice(
-        key, "method", method, ("gausslegendre", "riemann_trapezoid", "riemann_left", "riemann_right", "riemann_middle")
-    )
-    blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
-    reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     ig = IntegratedGradients(model.module)
     raw = _per_batch(
@@ -230,9 +226,6 @@ def integrated_gradients(model, images, targets, context, *, baseline, n_steps, 
     )
     _record_completeness(context, model, ig, raw, images, base, targets)
     return reduce_channels(raw, reduce)
-
-
-SMOOTHGRAD_NOISE_FRACTION = 0.15
 
 
 def band_spread(images: np.ndarray, context: ExplainContext) -> np.ndarray:
@@ -255,7 +248,14 @@ def band_spread(images: np.ndarray, context: ExplainContext) -> np.ndarray:
     "smoothgrad",
     citation=CITE_SMOOTHGRAD,
     needs={"gradients"},
-    defaults={"n_samples": 25, "noise_fraction": SMOOTHGRAD_NOISE_FRACTION, "stdev": None, "reduce": "max-abs"},
+    settings={
+        "n_samples": Field("int", 25, low=1, doc="noisy copies per tile"),
+        "noise_fraction": Field(
+            "number", SMOOTHGRAD_NOISE_FRACTION, low=0.0, doc="noise sd as a share of each band's spread"
+        ),
+        "stdev": Field("number", None, low=0.0, nullable=True, doc="noise sd in reflectance (overrides the share)"),
+        "reduce": reduce_field("max-abs"),
+    },
     description="gradients averaged over noisy copies of the tile (captum Saliency); noise sd per band = "
     "noise_fraction x the band's spread on the training split (or 'stdev' reflectance); bands by max |.|",
 )
@@ -264,13 +264,10 @@ def smoothgrad(model, images, targets, context, *, n_samples, noise_fraction, st
     """SmoothGrad (Smilkov et al. 2017): the mean gradient over ``n_samples`` copies x + e, with e Gaussian
     of sd ``noise_fraction`` x the band's spread in each band (or ``stdev`` in every band). Each tile's noise
     comes from ``[seed, tile, 11]``, so it does not depend on the batch."""
-    key = "smoothgrad"
-    n_samples = check_int(key, "n_samples", n_samples, 1)
-    reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
     if stdev is None:
-        sigma = check_float(key, "noise_fraction", noise_fraction, 0.0) * band_spread(images, context)
+        sigma = float(noise_fraction) * band_spread(images, context)
     else:
-        sigma = np.full(images.shape[1], check_float(key, "stdev", stdev, 0.0))
+        sigma = np.full(images.shape[1], float(stdev))
     saliency = Saliency(model.module)
     n, c, h, w = images.shape
     out = np.zeros(images.shape, dtype=np.float64)
@@ -299,14 +296,13 @@ def smoothgrad(model, images, targets, context, *, n_samples, noise_fraction, st
     "guided-backprop",
     citation=CITE_GUIDED,
     needs={"gradients"},
-    defaults={"reduce": "max-abs"},
+    settings={"reduce": reduce_field("max-abs")},
     description="gradient with negative signals zeroed at every ReLU (captum "
     "GuidedBackprop; needs nn.ReLU modules); bands by max |.|",
 )
 @signed_maps(reduce_is_signed)
 def guided_backprop(model, images, targets, context, *, reduce):
     key = "guided-backprop"
-    reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
     _require_modules(key, model, (torch.nn.ReLU,), "nn.ReLU")
     method = GuidedBackprop(model.module)
     try:
@@ -320,16 +316,13 @@ def guided_backprop(model, images, targets, context, *, reduce):
     "deeplift",
     citation=CITE_DEEPLIFT,
     needs={"gradients"},
-    defaults={"baseline": "zero", "blur_sigma": 4.0, "reduce": "sum"},
+    settings={**baseline_fields(), "reduce": reduce_field("sum")},
     description="DeepLIFT rescale rule against a baseline (zero, mean, blur or twin) "
     "(captum DeepLift; needs nn.ReLU modules, none reused); bands summed",
 )
 @signed_maps(reduce_is_signed)
 def deeplift(model, images, targets, context, *, baseline, blur_sigma, reduce):
     key = "deeplift"
-    check_choice(key, "baseline", baseline, BASELINES)
-    blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
-    reduce = check_choice(key, "reduce", reduce, REDUCTIONS)
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     _require_modules(key, model, DEEPLIFT_MODULES, "nn.ReLU (or other DeepLIFT-supported activation)")
     method = DeepLift(model.module)

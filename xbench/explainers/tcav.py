@@ -72,15 +72,13 @@ from torch import nn
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
+    LAYER_FIELD,
     ConceptReport,
     LayerTap,
     as_numpy,
     as_tensor,
     backward_counted,
     batches,
-    check_choice,
-    check_float,
-    check_int,
     layer_activations,
     signed_maps,
     torch_module,
@@ -89,6 +87,7 @@ from xbench.explainers.base import (
 from xbench.explainers.concept_sets import classes_of_type
 from xbench.explainers.registry import register_explainer
 from xbench.models.base import ModelHandle
+from xbench.schema import Field
 
 CITE_TCAV = (
     "Kim, Wattenberg, Gilmer, Cai, Wexler, Viegas, Sayres. Interpretability beyond feature "
@@ -281,16 +280,16 @@ def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], corr
     citation=CITE_TCAV,
     needs={"gradients", "layer", "concept-sets"},
     kind="concept",
-    defaults={
-        "layer": None,
-        "layers": [],
-        "pool": "mean",
-        "regularization": 1.0,
-        "resample": True,
-        "test": "runs",
-        "correction": "bonferroni",
-        "alpha": 0.05,
-        "min_random": 10,
+    settings={
+        "layer": LAYER_FIELD,
+        "layers": Field("list", [], item=Field("str"), doc="more layers to test besides 'layer'"),
+        "pool": Field("str", "mean", choices=("mean", "none"), doc="spatial pooling of the activations"),
+        "regularization": Field("number", 1.0, low=0.0, low_open=True, doc="inverse strength C of the CAV's fit"),
+        "resample": Field("bool", True, doc="each run draws its own concept examples"),
+        "test": Field("str", "runs", choices=("runs", "set"), doc="significance over runs (Kim et al.) or one set"),
+        "correction": Field("str", "bonferroni", choices=("bonferroni", "none"), doc="over concepts"),
+        "alpha": Field("number", 0.05, low=0.0, high=1.0, low_open=True, doc="significance level"),
+        "min_random": Field("int", 10, low=2, doc="random example sets needed at least"),
     },
     description="concept activation vectors from example sets (logistic regression at a layer); TCAV "
     "score per (concept, class) on that class's tiles; two-sided t-test of concept runs against "
@@ -313,20 +312,6 @@ def tcav(
     alpha,
     min_random,
 ):
-    pool = check_choice(KEY, "pool", pool, ("mean", "none"))
-    correction = check_choice(KEY, "correction", correction, ("bonferroni", "none"))
-    test = check_choice(KEY, "test", test, ("runs", "set"))
-    regularization = check_float(KEY, "regularization", regularization, 0.0, inclusive_min=False)
-    alpha = check_float(KEY, "alpha", alpha, 0.0, 1.0, inclusive_min=False)
-    min_random = check_int(KEY, "min_random", min_random, 2)
-    if not isinstance(resample, bool):
-        raise XbenchInputError(
-            f"explainer '{KEY}': setting 'resample'", "bad value", expected="true or false", found=resample
-        )
-    if not isinstance(layers, (list, tuple)) or not all(isinstance(v, str) for v in layers):
-        raise XbenchInputError(
-            f"explainer '{KEY}': setting 'layers'", "bad value", expected="a list of layer names", found=layers
-        )
     for name in layers:
         model.get_layer(name)  # raises, listing the model's layers
     sets = context.concept_sets

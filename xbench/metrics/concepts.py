@@ -51,9 +51,9 @@ from xbench.metrics.base import (
     MetricInputs,
     MetricResult,
     bad_attribution_tiles,
-    check_number,
     register_metric,
 )
+from xbench.schema import Field
 from xbench.truth import type_roles
 
 ROLES = ("relied-on", "relied-on look-alike", "unused")
@@ -177,6 +177,9 @@ _ALPHA_DOC = {
 }
 
 
+_ALPHA_FIELD = Field("number", 0.05, low=0.0, high=1.0, doc="significance level of the flagging rule")
+
+
 @register_metric(
     "concept-recovery",
     definition="AUROC (Mann-Whitney, ties 1/2) of the method's importance per structure type for telling the "
@@ -190,13 +193,12 @@ _ALPHA_DOC = {
     value_range=(0, 1),
     higher_is_better=True,
     needs=("concepts", "type roles"),
-    defaults={"alpha": 0.05},
+    settings={"alpha": _ALPHA_FIELD},
     settings_doc=_ALPHA_DOC,
     **_CONCEPT,
 )
 def _concept_recovery(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     key = "concept-recovery"
-    check_number(key, "alpha", settings["alpha"], 0, 1)
     roles = _roles_of(inputs)
     if roles is None:
         return _one(key, truth, np.nan, "needs the type roles (relied-on types from the truth module)", settings)
@@ -222,7 +224,6 @@ def _concept_recovery(inputs: MetricInputs, truth: str, settings: dict[str, Any]
 def _flag_share(
     key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any], wanted: tuple[str, ...]
 ) -> MetricResult:
-    check_number(key, "alpha", settings["alpha"], 0, 1)
     roles = _roles_of(inputs)
     what = " or ".join(wanted)
     if roles is None:
@@ -250,7 +251,7 @@ def _flag_share(
     value_range=(0, 1),
     higher_is_better=True,
     needs=("concepts", "type roles"),
-    defaults={"alpha": 0.05},
+    settings={"alpha": _ALPHA_FIELD},
     settings_doc=_ALPHA_DOC,
     **_CONCEPT,
 )
@@ -266,7 +267,7 @@ def _concept_detection(inputs: MetricInputs, truth: str, settings: dict[str, Any
     value_range=(0, 1),
     higher_is_better=False,
     needs=("concepts", "type roles"),
-    defaults={"alpha": 0.05},
+    settings={"alpha": _ALPHA_FIELD},
     settings_doc=_ALPHA_DOC,
     **_CONCEPT,
 )

@@ -37,11 +37,10 @@ from xbench.metrics.base import (
     NONFINITE_REASON,
     MetricInputs,
     MetricResult,
-    check_choice,
-    check_number,
     register_metric,
     tile_result,
 )
+from xbench.schema import Field
 
 
 def _flat(attributions: np.ndarray, masks: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -295,16 +294,19 @@ COMMON_DOC = {
     "core_threshold": "coverage at or above which a pixel is the structure's core",
     "signed": "signed maps as evidence: positive-part (negative = no evidence) or magnitude",
 }
+COMMON_FIELDS = {
+    "fringe": Field("str", "void", choices=FRINGE_POLICIES, doc=COMMON_DOC["fringe"]),
+    "core_threshold": Field("number", 0.5, low=0.0, high=1.0, low_open=True, doc=COMMON_DOC["core_threshold"]),
+    "signed": Field("str", "positive-part", choices=SIGNED_CONVENTIONS, doc=COMMON_DOC["signed"]),
+}
 WEIGHT_DEFAULTS = {"weighting": "none"}
 WEIGHT_DOC = {"weighting": "none, or coverage (pixels weighted by coverage as positive, 1 - coverage as negative)"}
+WEIGHT_FIELDS = {"weighting": Field("str", "none", choices=WEIGHTINGS, doc=WEIGHT_DOC["weighting"])}
 
 
 def _run(
     key: str, core: Callable[..., np.ndarray], inputs: MetricInputs, truth: str, settings: dict[str, Any], **flags: bool
 ) -> MetricResult:
-    check_choice(key, "fringe", settings["fringe"], FRINGE_POLICIES)
-    check_number(key, "core_threshold", settings["core_threshold"], 1e-9, 1)
-    check_choice(key, "signed", settings["signed"], SIGNED_CONVENTIONS)
     extra = {k: v for k, v in settings.items() if k not in COMMON_DEFAULTS and k not in WEIGHT_DEFAULTS}
     mask = np.asarray(inputs.truth_mask(truth), dtype=bool)
     coverage = inputs.truth_coverage(truth)
@@ -334,8 +336,9 @@ def _run(
 _LOC: dict[str, Any] = dict(family="overlap", needs=("truth mask",), per_tile=True, truths=("planted", "verified"))
 
 
-def _defaults(own: dict[str, Any] | None = None, weights: bool = False) -> dict[str, Any]:
-    return {**(own or {}), **COMMON_DEFAULTS, **(WEIGHT_DEFAULTS if weights else {})}
+def _fields(own: dict[str, Field] | None = None, weights: bool = False) -> dict[str, Field]:
+    """The declared settings of an overlap metric: its own, the common ones, the weighting."""
+    return {**(own or {}), **COMMON_FIELDS, **(WEIGHT_FIELDS if weights else {})}
 
 
 def _docs(own: dict[str, str] | None = None, weights: bool = False) -> dict[str, str]:
@@ -351,7 +354,7 @@ _ARRAS = "Arras, Osman, Samek. Ground-truth evaluation of neural network explana
     citation=_ARRAS,
     value_range=(0, 1),
     higher_is_better=True,
-    defaults=_defaults(),
+    settings=_fields(),
     settings_doc=_docs(),
     **_LOC,
 )
@@ -365,7 +368,7 @@ def _mass_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -
     citation=_ARRAS,
     value_range=(0, 1),
     higher_is_better=True,
-    defaults=_defaults(),
+    settings=_fields(),
     settings_doc=_docs(),
     **_LOC,
 )
@@ -380,12 +383,11 @@ def _rank_accuracy(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -
     "excitation backprop. ECCV 2016 / IJCV 2018.",
     value_range=(0, 1),
     higher_is_better=True,
-    defaults=_defaults({"tolerance": 1.0}),
+    settings=_fields({"tolerance": Field("number", 1.0, low=0.0, high=1e6, doc="hit radius in pixels")}),
     settings_doc=_docs({"tolerance": "hit radius in pixels around the mask (Euclidean; 0 = inside)"}),
     **_LOC,
 )
 def _pointing_game(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    check_number("pointing-game", "tolerance", settings["tolerance"], 0, 1e6)
     return _run("pointing-game", pointing_game, inputs, truth, settings)
 
 
@@ -395,12 +397,11 @@ def _pointing_game(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -
     citation="Common practice (ROC AUC as in sklearn.metrics.roc_auc_score).",
     value_range=(0, 1),
     higher_is_better=True,
-    defaults=_defaults(weights=True),
+    settings=_fields(weights=True),
     settings_doc=_docs(weights=True),
     **_LOC,
 )
 def _mask_auroc(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    check_choice("mask-auroc", "weighting", settings["weighting"], WEIGHTINGS)
     return _run("mask-auroc", mask_auroc, inputs, truth, settings, need_background=True)
 
 
@@ -410,12 +411,11 @@ def _mask_auroc(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
     citation="Common practice (average precision as in sklearn.metrics.average_precision_score).",
     value_range=(0, 1),
     higher_is_better=True,
-    defaults=_defaults(weights=True),
+    settings=_fields(weights=True),
     settings_doc=_docs(weights=True),
     **_LOC,
 )
 def _mask_ap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    check_choice("mask-ap", "weighting", settings["weighting"], WEIGHTINGS)
     return _run("mask-ap", mask_ap, inputs, truth, settings)
 
 
@@ -425,10 +425,9 @@ def _mask_ap(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> Metr
     citation="Common practice (thresholded saliency vs. mask intersection over union).",
     value_range=(0, 1),
     higher_is_better=True,
-    defaults=_defaults({"fraction": 0.1}),
+    settings=_fields({"fraction": Field("number", 0.1, low=0.0, high=1.0, low_open=True, doc="top share")}),
     settings_doc=_docs({"fraction": "share of the tile's pixels kept as the top-k set (of the scored pixels)"}),
     **_LOC,
 )
 def _topk_iou(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    check_number("topk-iou", "fraction", settings["fraction"], 1e-9, 1)
     return _run("topk-iou", topk_iou, inputs, truth, settings)

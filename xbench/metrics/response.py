@@ -41,14 +41,13 @@ from xbench.metrics.base import (
     MetricInputs,
     MetricResult,
     bad_attribution_tiles,
-    check_choice,
-    check_number,
     get_metric,
     model_scorer,
     nan_result,
     register_metric,
     tile_result,
 )
+from xbench.schema import Field
 
 BASELINES = ("twin", "zero", "mean", "blur")
 CHUNK_BYTES = 8 * 2**20  # a few tiles x all their steps per stack (cache-friendly)
@@ -255,25 +254,22 @@ def subset_drop_correlation_scores(
 
 
 # -- runners --------------------------------------------------------------------------------------------
-_FAITH_DEFAULTS = {"baseline": "twin", "steps": 20, "blur_sigma": BLUR_SIGMA}
 _FAITH_DOC = {
     "baseline": "replacement for perturbed pixels: twin (structure-free twin), zero, mean (the tile's "
     "band means), blur (Gaussian-blurred tile)",
     "steps": "number of perturbation steps (the curve has steps+1 points)",
     "blur_sigma": "Gaussian sigma in pixels for the blur baseline",
 }
+_FAITH_FIELDS = {
+    "baseline": Field("str", "twin", choices=BASELINES, doc=_FAITH_DOC["baseline"]),
+    "steps": Field("int", 20, low=1, high=10_000, doc=_FAITH_DOC["steps"]),
+    "blur_sigma": Field("number", BLUR_SIGMA, low=0.0, high=1e4, doc=_FAITH_DOC["blur_sigma"]),
+}
 _PETSIUK = "Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. BMVC 2018."
 _SAMEK = (
     "Samek, Binder, Montavon, Lapuschkin, Mueller. Evaluating the visualization of what a deep neural "
     "network has learned. IEEE TNNLS 2017."
 )
-
-
-def _check_faith_settings(key: str, settings: dict[str, Any]) -> None:
-    check_choice(key, "baseline", settings["baseline"], BASELINES)
-    if "steps" in settings:
-        check_number(key, "steps", settings["steps"], 1, 10_000, integer=True)
-    check_number(key, "blur_sigma", settings["blur_sigma"], 0, 1e4)
 
 
 def _twin_missing(inputs: MetricInputs, settings: dict[str, Any]) -> str | None:
@@ -316,7 +312,6 @@ def _faith_runner(
     key: str, mode: str, morf: bool, summary: Callable[[np.ndarray], np.ndarray], curve_name: str
 ) -> Callable[..., MetricResult]:
     def run(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-        _check_faith_settings(key, settings)
         missing = _twin_missing(inputs, settings)
         if missing:
             return nan_result(get_metric(key), inputs, truth, missing, settings)
@@ -331,7 +326,7 @@ def _faith_runner(
 
 
 _FAITH: dict[str, Any] = dict(
-    family="response", needs=("model", "twins"), per_tile=True, defaults=_FAITH_DEFAULTS, settings_doc=_FAITH_DOC
+    family="response", needs=("model", "twins"), per_tile=True, settings=_FAITH_FIELDS, settings_doc=_FAITH_DOC
 )
 
 register_metric(
@@ -378,7 +373,12 @@ register_metric(
     family="response",
     needs=("model", "twins"),
     per_tile=True,
-    defaults={"baseline": "twin", "fraction": 0.1, "runs": 32, "blur_sigma": BLUR_SIGMA},
+    settings={
+        "baseline": _FAITH_FIELDS["baseline"],
+        "fraction": Field("number", 0.1, low=0.0, high=1.0, low_open=True, doc="share of the pixels per subset"),
+        "runs": Field("int", 32, low=2, high=100_000, doc="random subsets per tile"),
+        "blur_sigma": _FAITH_FIELDS["blur_sigma"],
+    },
     settings_doc={
         "baseline": _FAITH_DOC["baseline"],
         "fraction": "share of the tile's pixels in each subset",
@@ -388,9 +388,6 @@ register_metric(
 )
 def _subset_drop_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     key = "subset-drop-corr"
-    _check_faith_settings(key, settings)
-    check_number(key, "fraction", settings["fraction"], 1e-9, 1)
-    check_number(key, "runs", settings["runs"], 2, 100_000, integer=True)
     missing = _twin_missing(inputs, settings)
     if missing:
         return nan_result(get_metric(key), inputs, truth, missing, settings)

@@ -43,14 +43,13 @@ from xbench.metrics.base import (
     MetricInputs,
     MetricResult,
     bad_attribution_tiles,
-    check_choice,
-    check_number,
     get_metric,
     model_scorer,
     nan_result,
     register_metric,
     tile_result,
 )
+from xbench.schema import Field, Where
 
 if TYPE_CHECKING:
     from xbench.models.base import ModelHandle
@@ -98,9 +97,21 @@ def calibration_text(fraction: float, spread: np.ndarray, flips: float, limit: f
     )
 
 
-def _check_level(key: str, name: str, value: Any) -> None:
-    if value != AUTO:
-        check_number(key, name, value, 0, 1e3)
+def _level(value: Any, where: Where) -> Any:
+    """A perturbation size: 'auto' or reflectance units in [0, 1000]."""
+    if value == AUTO:
+        return value
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0 <= value <= 1e3:
+        raise where.error("not an allowed value", expected=f"'{AUTO}' or a number in [0, 1000]", found=value)
+    return value
+
+
+def _samples(default: int) -> Field:
+    return Field("int", default, low=1, high=100_000, doc="perturbations per tile")
+
+
+def _max_flips(default: float) -> Field:
+    return Field("number", default, low=0.0, high=1.0, doc="largest share of perturbed copies that may flip class")
 
 
 # -- perturbations ----------------------------------------------------------------------------------------
@@ -188,7 +199,11 @@ def _chunks(n_items: int, per_item: int, limit: int) -> range:
     family="steadiness",
     needs=("explainer re-runs",),
     per_tile=True,
-    defaults={"radius": AUTO, "samples": 10, "max_flips": 0.1},
+    settings={
+        "radius": Field("any", AUTO, check=_level, doc="'auto' or the noise radius in reflectance"),
+        "samples": _samples(10),
+        "max_flips": _max_flips(0.1),
+    },
     settings_doc={
         "radius": "L-infinity radius of the uniform input noise: 'auto' (a fraction of each band's spread, "
         "calibrated to max_flips) or reflectance units",
@@ -198,9 +213,6 @@ def _chunks(n_items: int, per_item: int, limit: int) -> range:
 )
 def _max_sensitivity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     key = "max-sensitivity"
-    _check_level(key, "radius", settings["radius"])
-    check_number(key, "samples", settings["samples"], 1, 100_000, integer=True)
-    check_number(key, "max_flips", settings["max_flips"], 0, 1)
     samples = int(settings["samples"])
     assert inputs.rerun_explainer is not None
     images = np.asarray(inputs.images, dtype=np.float32)
@@ -304,7 +316,13 @@ def _calibrate_sensitivity(
     family="steadiness",
     needs=("model",),
     per_tile=True,
-    defaults={"noise": AUTO, "samples": 16, "normalize": True, "max_flips": 0.01, "score": "probability"},
+    settings={
+        "noise": Field("any", AUTO, check=_level, doc="'auto' or the noise sd in reflectance"),
+        "samples": _samples(16),
+        "normalize": Field("bool", True, doc="rescale the attribution by the optimal beta first"),
+        "max_flips": _max_flips(0.01),
+        "score": Field("str", "probability", choices=SCORES, doc="the target score f"),
+    },
     settings_doc={
         "noise": "standard deviation of the per-pixel Gaussian perturbation: 'auto' (a fraction of each band's "
         "spread, calibrated to max_flips) or reflectance units",
@@ -316,13 +334,6 @@ def _calibrate_sensitivity(
 )
 def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
     key = "infidelity"
-    _check_level(key, "noise", settings["noise"])
-    check_number(key, "samples", settings["samples"], 1, 100_000, integer=True)
-    check_number(key, "max_flips", settings["max_flips"], 0, 1)
-    if not isinstance(settings["normalize"], bool):
-        raise XbenchInputError(
-            f"metric '{key}' setting 'normalize'", "must be true or false", found=settings["normalize"]
-        )
     settings = dict(settings)
     samples = int(settings["samples"])
     assert inputs.model is not None
@@ -337,7 +348,6 @@ def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
         return tile_result(key, truth, values, reasons, settings)
     score = model_scorer(inputs.model)
     base_probs = score(images[good])
-    check_choice(key, "score", settings["score"], SCORES)
     base = target_score(base_probs[np.arange(good.size), targets[good]], settings["score"])
     if settings["noise"] == AUTO:
         spread = band_spread(images)

@@ -131,6 +131,13 @@ def validate_task_keys(task: Task) -> None:
         tiles = settings.get("tiles", 1)
         if isinstance(tiles, bool) or not isinstance(tiles, int) or tiles < 1:  # `tiles`: see runs.execute
             raise where.child("tiles").error("bad value", expected="a positive integer", found=tiles)
+    # a variant's own settings, checked where they stand in the file (its [[variants]] table)
+    for i, variant in enumerate(getattr(task, "variants", None) or []):
+        w = top.child("variants").child(i)
+        for key, settings in variant.explainer_settings.items():
+            get_explainer(key).check_settings(settings, w.child("explainer_settings").child(key))
+        for key, settings in variant.metric_settings.items():
+            get_metric(key).check_settings(settings, w.child("metric_settings").child(key))
 
 
 def _source_sha256(factory: str) -> str | None:

@@ -135,6 +135,7 @@ def run_task(
         models = _narrow(models, spec.models)
         metrics = _narrow(metrics, spec.metrics)
     else:  # every variant's settings are checked against the registries before any work
+        validate_task_keys(task_obj)  # the task's own settings first, then each variant's where it stands
         for v in task_obj.variants:
             validate_task_keys(apply_variant(task_obj, v.name))
     task_path = task_obj  # the parsed task itself travels to the cells: parsed once, also when given as a dict
