@@ -148,8 +148,9 @@ def parametrised_layers(module: nn.Module, example: torch.Tensor) -> list[str]:
 def _reinitialise(layer: nn.Module, seed: int) -> None:
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(seed)
-        if hasattr(layer, "reset_parameters"):
-            layer.reset_parameters()
+        reset = getattr(layer, "reset_parameters", None)
+        if callable(reset):
+            reset()
         else:
             with torch.no_grad():
                 for p in layer.parameters(recurse=False):
@@ -270,8 +271,7 @@ def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[st
     values = np.abs(curve[:, -1])  # the similarity's size: 0 = the map moved completely
     last = maps[-1].reshape(n, -1)
     orig = np.asarray(inputs.attributions, dtype=np.float64).reshape(n, -1)
-    for i in np.flatnonzero(~np.isfinite(values)):
-        i = int(i)
+    for i in np.flatnonzero(~np.isfinite(values)).tolist():
         if bad[i]:
             reasons[i] = NONFINITE_REASON
         elif not np.isfinite(last[i]).all():
@@ -294,7 +294,7 @@ def _cascade_steps(value: Any, where: Where) -> int | str:
     raise where.error("not an allowed value", expected="a positive integer or 'all'", found=value)
 
 
-_SANITY = dict(
+_SANITY: dict[str, Any] = dict(
     family="model-dependence",
     needs=("torch model", "explainer re-runs"),
     per_tile=True,

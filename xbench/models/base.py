@@ -62,7 +62,7 @@ def _channels_last_problem(module: nn.Module, sample: torch.Tensor) -> str | Non
         fast = clone(sample)
     except RuntimeError as exc:
         return f"{type(exc).__name__}: {exc}"
-    reference = clone.to(memory_format=torch.contiguous_format)(sample.contiguous())
+    reference = clone.to(memory_format=torch.contiguous_format)(sample.contiguous())  # type: ignore[call-overload]  # torch's stubs omit Module.to(memory_format=...)
     if not isinstance(fast, torch.Tensor) or not isinstance(reference, torch.Tensor) or fast.shape != reference.shape:
         return "outputs differ in shape"
     fast, reference = fast.double(), reference.double()
@@ -213,7 +213,7 @@ class ModelHandle:
         """Convert the module's 4-D parameters to channels-last; the first call checks the result."""
         if not any(p.ndim == 4 for p in module.parameters()):
             return
-        module.to(memory_format=torch.channels_last)
+        module.to(memory_format=torch.channels_last)  # type: ignore[call-overload]  # torch's stubs omit Module.to(memory_format=...)
         self.layout = "probe"
         self._install_probe(module)
 
@@ -236,7 +236,7 @@ class ModelHandle:
                     except Exception as exc:  # noqa: BLE001 - e.g. a module that cannot be deep-copied
                         problem = f"{type(exc).__name__}: {exc}"
                     if problem is not None:
-                        module.to(memory_format=torch.contiguous_format)
+                        module.to(memory_format=torch.contiguous_format)  # type: ignore[call-overload]  # torch's stubs omit Module.to(memory_format=...)
             finally:
                 self.layout = "channels_last" if problem is None else "nchw"
             if problem is not None:
@@ -331,6 +331,7 @@ class ModelHandle:
                     else:
                         probs = logits.double().numpy()
             else:
+                assert self.predict_fn is not None  # exactly one of module / predict_fn
                 probs = np.asarray(self.predict_fn(chunk), dtype=np.float64)
                 self.calls.forward += chunk.shape[0]
             self._check_output(probs, chunk.shape[0])

@@ -29,14 +29,17 @@ from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from xbench.errors import XbenchInputError
 from xbench.runs import execute
 from xbench.runs.execute import CELL_THREADS, compute_cell, failed_result
 from xbench.runs.grid import Cell
 
-CellJob = tuple[str, Cell, list[str], dict[str, dict], str]  # task path, cell, metric keys, settings, run id
+if TYPE_CHECKING:
+    from xbench.tasks import Task
+
+CellJob = tuple["str | Task", Cell, list[str], dict[str, dict], str]  # task, cell, metric keys, settings, run id
 
 # Expected model calls per explained tile of each built-in explainer at its demo settings (README cost
 # table); only the order matters. Unknown (plugin) explainers are assumed to be mid-range.
@@ -71,7 +74,7 @@ def shared_state(jobs: list[CellJob]) -> dict[str, Any]:
     """What this process has already prepared for the jobs' tasks, models and seeds (task data, models,
     truth, concept sets), to install in a worker before it runs cells."""
     # a job's task is the parsed task (or, from older callers, a task file's path)
-    paths = {str(Path(getattr(job[0], "path", job[0])).resolve()) for job in jobs}
+    paths = {str(Path(job[0] if isinstance(job[0], str) else job[0].path).resolve()) for job in jobs}
     task_keys = {key for key, (task, _) in execute._TASK_CACHE.items() if str(Path(task.path).resolve()) in paths}
     return {
         "tasks": {k: execute._TASK_CACHE[k] for k in task_keys},
@@ -103,6 +106,7 @@ def install_state(state: dict[str, Any] | tuple[str, bytes] | None) -> None:
             return
         _INSTALLED.add(key)
         state = pickle.loads(blob)
+    assert isinstance(state, dict)  # unpacked state: {cache name: entries}
     for name, cache in (("tasks", execute._TASK_CACHE), ("preps", execute._PREP_CACHE)):
         for key, value in state.get(name, {}).items():
             cache.setdefault(key, value)

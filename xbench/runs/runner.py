@@ -16,7 +16,7 @@ from tqdm.auto import tqdm
 
 from xbench import __version__
 from xbench.runs.execute import Prepared, prepare, task_and_data
-from xbench.runs.executors import executor_for
+from xbench.runs.executors import CellJob, executor_for
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
     CELL_IDENTITY,
@@ -178,7 +178,7 @@ def run_task(
         if cell.cell_id in store.problems:
             summary.repaired.append(f"{cell.describe()}: {store.problems[cell.cell_id]}; computed again")
     metric_settings = {k: dict(task_obj.metric_settings.get(k, {})) for k in grid.metrics}
-    jobs_list = [(task_path, c, list(grid.metrics), metric_settings, run_id) for c in pending]
+    jobs_list: list[CellJob] = [(task_path, c, list(grid.metrics), metric_settings, run_id) for c in pending]
     # models flagged before the cells: a model at chance level explains nothing worth ranking
     summary.warnings.extend(model_warnings(task_obj, model_rows))
     bar = tqdm(total=len(pending), desc="cells", disable=not progress, unit="cell")
@@ -307,9 +307,10 @@ def write_georeference(out: Path, task: Any) -> None:
 
     test = task_and_data(task)[1].test
     meta = test.meta.get("georef") if isinstance(test.meta, dict) else None
-    if getattr(test, "georef", None) is None or not meta:
+    georef = test.georef
+    if georef is None or not meta:
         return
-    atomic_write(out / "georef.csv", lambda tmp: write_georef_csv(test.georef, meta, Path(tmp), {"test": len(test)}))
+    atomic_write(out / "georef.csv", lambda tmp: write_georef_csv(georef, meta, Path(tmp), {"test": len(test)}))
 
 
 def assemble(
