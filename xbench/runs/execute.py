@@ -64,6 +64,15 @@ class Prepared:
     band_spread: np.ndarray | None = None  # (C,) per-band standard deviation of the training split
 
 
+def gallery_positions(targets: np.ndarray, count: int) -> np.ndarray:
+    """Which explained tiles (positions in the explained set) the gallery shows: the first tile of every
+    class, then the second of every class, and so on, so that a gallery of a few tiles shows every class."""
+    targets = np.asarray(targets)
+    by_class = [np.flatnonzero(targets == c) for c in dict.fromkeys(targets.tolist())]
+    order = [int(idx[k]) for k in range(max((len(i) for i in by_class), default=0)) for idx in by_class if k < len(idx)]
+    return np.asarray(order[: max(count, 0)], dtype=np.int64)
+
+
 _TASK_CACHE: dict[str, tuple[Task, TaskData]] = {}
 _PREP_CACHE: dict[tuple[str, str, int], Prepared] = {}
 _CONCEPT_CACHE: dict[str, dict[str, np.ndarray]] = {}
@@ -423,14 +432,14 @@ def _compute_cell(
         metric_seconds[key] = time.perf_counter() - t0
     records = pd.DataFrame(rows, columns=RECORD_COLUMNS)
     concepts = concept_rows(cell, explanation.concepts)
-    gallery_n = min(int(prep.task.run["gallery_tiles"]), len(tiles))
+    gallery = gallery_positions(prep.targets, int(prep.task.run["gallery_tiles"]))
     cell_result: dict[str, Any] = {
         "status": "ok",
         "records": records,
         "curves": pd.DataFrame(curves, columns=CURVE_COLUMNS),
         "concepts": pd.DataFrame(concepts, columns=CONCEPT_COLUMNS),
         "reasons": pd.DataFrame(reasons, columns=REASON_COLUMNS),
-        "gallery": {"map": explanation.attributions[:gallery_n].astype(np.float32)},
+        "gallery": {"map": explanation.attributions[gallery].astype(np.float32)},
         "meta": {
             "cell": cell.to_dict(),
             "error": None,
@@ -456,7 +465,7 @@ def _compute_cell(
     report = explanation.concepts
     if report is not None and getattr(report, "cluster_maps", None) is not None:
         cell_result["clusters"] = {
-            "cluster_maps": np.asarray(report.cluster_maps)[:gallery_n].astype(np.int64),
+            "cluster_maps": np.asarray(report.cluster_maps)[gallery].astype(np.int64),
             "score_changes": np.asarray(report.score_changes, dtype=np.float64),
         }
     return cell_result

@@ -15,7 +15,7 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from xbench import __version__
-from xbench.runs.execute import Prepared, prepare, task_and_data
+from xbench.runs.execute import Prepared, gallery_positions, prepare, task_and_data
 from xbench.runs.executors import CellJob, executor_for
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
@@ -421,17 +421,19 @@ def assemble(
             }
         )
     for (name, seed), prep in preps.items():
-        g = min(int(task.run["gallery_tiles"]), len(prep.explain_index))
+        g = gallery_positions(prep.targets, int(task.run["gallery_tiles"]))  # every class among the first
         arrays: dict[str, np.ndarray] = {
-            "images": prep.images[:g],
+            "images": prep.images[g],
             "band_names": np.array(prep.data.test.band_names),
-            "planted": prep.planted[:g],
-            "tiles": prep.explain_index[:g].astype(np.int64),
+            "planted": prep.planted[g],
+            "tiles": prep.explain_index[g].astype(np.int64),
             "class_names": np.array(task.class_names),
-            "targets": prep.targets[:g],
+            "targets": prep.targets[g],
         }
+        if prep.planted_coverage is not None:
+            arrays["coverage"] = prep.planted_coverage[g].astype(np.float32)  # core and fringe in the figures
         if prep.reliance is not None:
-            arrays["evidence"] = prep.reliance.evidence[:g].astype(np.float32)
+            arrays["evidence"] = prep.reliance.evidence[g].astype(np.float32)
         for cid in order:
             cell = (store.meta(cid) or {}).get("cell") or {}
             if cid not in first or (cell.get("task"), cell.get("model"), cell.get("seed")) != (task.name, name, seed):
@@ -443,7 +445,7 @@ def assemble(
             if clusters is not None:
                 write_npz(
                     out / "artifacts" / f"clusters__{task.name}__{name}__{seed}.npz",
-                    clusters | {"images": prep.images[:g], "class_names": np.array(task.class_names)},
+                    clusters | {"images": prep.images[g], "class_names": np.array(task.class_names)},
                 )
         write_npz(out / "artifacts" / f"gallery__{task.name}__{name}__{seed}.npz", arrays)
 
