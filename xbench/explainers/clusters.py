@@ -59,7 +59,6 @@ import torch
 from scipy import stats
 from sklearn.decomposition import PCA
 from sklearn.mixture import GaussianMixture
-from threadpoolctl import threadpool_limits
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
@@ -75,6 +74,7 @@ from xbench.explainers.base import (
 )
 from xbench.explainers.concept_sets import classes_of_type
 from xbench.explainers.registry import register_explainer
+from xbench.models.base import one_blas_thread
 from xbench.schema import Field, Where
 
 CITE_CLUSTERS = (
@@ -106,7 +106,7 @@ def _fit_mixture(
         gm = GaussianMixture(
             n_components=k, covariance_type=covariance, reg_covar=1e-4, n_init=1, max_iter=200, random_state=seed
         )
-        with threadpool_limits(1):  # small problems: BLAS threads only add contention
+        with one_blas_thread():  # tiny problems: BLAS threads only add contention
             gm.fit(x)
             bic = float(gm.bic(x))
         bics[k] = bic
@@ -240,14 +240,14 @@ def activation_clusters(
     )
     pca = None
     if width > pca_components:
-        with threadpool_limits(1):
+        with one_blas_thread():  # tiny problems: BLAS threads only add contention
             pca = PCA(n_components=pca_components, random_state=seed).fit(sample)
 
     def project(x: np.ndarray) -> np.ndarray:
         return pca.transform(x) if pca is not None else x
 
     def assign(x: np.ndarray) -> np.ndarray:
-        with threadpool_limits(1):
+        with one_blas_thread():  # tiny problems: BLAS threads only add contention
             return gm.predict(project(x))
 
     gm, bics = _fit_mixture(project(sample), n_clusters, tuple(cluster_range), covariance, seed)

@@ -67,7 +67,6 @@ import numpy as np
 import torch
 from scipy import stats
 from sklearn.linear_model import LogisticRegression
-from threadpoolctl import threadpool_limits
 from torch import nn
 
 from xbench.errors import XbenchInputError
@@ -129,7 +128,7 @@ def _cav(pos: np.ndarray, neg: np.ndarray, regularization: float, seed: int) -> 
     y = np.concatenate([np.ones(len(pos)), np.zeros(len(neg))])
     scale = x.std(axis=0).mean() or 1.0  # a common scale keeps the solver well-conditioned
     clf = LogisticRegression(C=regularization, solver="liblinear", max_iter=2000, random_state=seed)
-    with threadpool_limits(1):  # tiny problems: BLAS threads only add contention
+    with one_blas_thread():  # tiny problems: BLAS threads only add contention
         clf.fit(x / scale, y)
     v = clf.coef_[0] / scale
     norm = np.linalg.norm(v)

@@ -27,6 +27,7 @@ Speed (measured by ``tests/bench/bench_models.py``; see PROFILE notes in notes/s
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import math
 import warnings
@@ -139,6 +140,20 @@ def single_thread_pools() -> None:
     from threadpoolctl import threadpool_limits
 
     _THREAD_POOLS["limits"] = threadpool_limits(1)  # kept: the limit holds for the life of the process
+
+
+@contextlib.contextmanager
+def one_blas_thread() -> Iterator[None]:
+    """One BLAS / OpenMP thread for a small fit: nothing to do where :func:`single_thread_pools` is in force
+    (every run's cells), else a scoped limit, so a user calling an explainer directly keeps their own
+    thread settings afterwards."""
+    if "limits" in _THREAD_POOLS:
+        yield
+        return
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(1):
+        yield
 
 
 # Largest |difference| of logits between channels-last and NCHW runs accepted on the first call.
