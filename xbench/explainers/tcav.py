@@ -85,7 +85,7 @@ from xbench.explainers.base import (
 )
 from xbench.explainers.concept_sets import classes_of_type
 from xbench.explainers.registry import register_explainer
-from xbench.models.base import ModelHandle
+from xbench.models.base import ModelHandle, one_blas_thread
 from xbench.schema import Field
 
 CITE_TCAV = (
