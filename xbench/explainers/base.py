@@ -151,32 +151,6 @@ def check_choice(key: str, name: str, value: Any, options: tuple[str, ...]) -> s
     return str(value)
 
 
-def check_int(key: str, name: str, value: Any, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or int(value) < minimum:
-        raise XbenchInputError(
-            f"explainer '{key}': setting '{name}'", "bad value", expected=f"an integer >= {minimum}", found=value
-        )
-    return int(value)
-
-
-def check_float(
-    key: str, name: str, value: Any, minimum: float = 0.0, maximum: float = float("inf"), inclusive_min: bool = True
-) -> float:
-    ok = isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(value, bool)
-    if ok:
-        v = float(value)
-        ok = np.isfinite(v) and (v >= minimum if inclusive_min else v > minimum) and v <= maximum
-    if not ok:
-        bound = ">=" if inclusive_min else ">"
-        raise XbenchInputError(
-            f"explainer '{key}': setting '{name}'",
-            "bad value",
-            expected=f"a number {bound} {minimum} and <= {maximum}",
-            found=value,
-        )
-    return float(value)
-
-
 # ---------------------------------------------------------------------------------------------------
 # Signed or unsigned maps
 # ---------------------------------------------------------------------------------------------------

@@ -17,8 +17,9 @@ from scipy import ndimage
 from skimage.filters import sobel
 
 from xbench.errors import XbenchInputError
-from xbench.explainers.base import check_choice, check_float, signed_maps
+from xbench.explainers.base import signed_maps
 from xbench.explainers.registry import register_explainer
+from xbench.schema import Field
 
 CITE_RANDOM = "Control (common practice): uniform noise from a seeded generator."
 CITE_EDGES = (
@@ -33,12 +34,11 @@ CITE_ORACLE = "Control: the planted structure masks of the synthetic scenes (gro
     citation=CITE_RANDOM,
     needs=set(),
     kind="control",
-    defaults={"distribution": "uniform"},
+    settings={"distribution": Field("str", "uniform", choices=("uniform", "normal"), doc="of the random values")},
     description="seeded noise, independent of model and image (uniform [0, 1) or standard normal)",
 )
 @signed_maps(lambda settings: settings["distribution"] == "normal")
 def random_map(model, images, targets, context, *, distribution):
-    distribution = check_choice("random", "distribution", distribution, ("uniform", "normal"))
     rng = context.rng(stream=7)
     n, _, h, w = images.shape
     if distribution == "uniform":
@@ -51,14 +51,15 @@ def random_map(model, images, targets, context, *, distribution):
     citation=CITE_EDGES,
     needs=set(),
     kind="control",
-    defaults={"sigma": 0.0, "combine": "mean"},
+    settings={
+        "sigma": Field("number", 0.0, low=0.0, doc="Gaussian smoothing before the Sobel filter, in pixels"),
+        "combine": Field("str", "mean", choices=("mean", "max"), doc="how the bands' edge magnitudes combine"),
+    },
     description="Sobel gradient magnitude of each band (optionally Gaussian-smoothed "
     "first), combined over bands by mean or max; ignores the model",
 )
 @signed_maps(False)
 def edges(model, images, targets, context, *, sigma, combine):
-    sigma = check_float("edges", "sigma", sigma, 0.0)
-    combine = check_choice("edges", "combine", combine, ("mean", "max"))
     x = images.astype(np.float64)
     if sigma > 0:
         x = ndimage.gaussian_filter(x, sigma=(0, 0, sigma, sigma), mode="reflect")

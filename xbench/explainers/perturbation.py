@@ -19,18 +19,18 @@ from captum.attr import KernelShap, Occlusion
 from skimage.segmentation import slic
 
 from xbench.explainers.base import (
+    BLUR_SIGMA,
+    SCORES,
     as_numpy,
     as_tensor,
     batches,
-    check_choice,
-    check_float,
-    check_int,
     make_baseline,
     reduce_channels,
     score_function,
     signed_maps,
 )
 from xbench.explainers.registry import register_explainer
+from xbench.schema import Field
 
 CITE_OCCLUSION = "Zeiler, Fergus. Visualizing and understanding convolutional networks. ECCV 2014."
 CITE_RISE = "Petsiuk, Das, Saenko. RISE: randomized input sampling for explanation of black-box models. BMVC 2018."
@@ -39,6 +39,17 @@ CITE_KERNEL_SHAP = (
     "(KernelSHAP); SLIC superpixels: Achanta et al. IEEE TPAMI 2012."
 )
 PERTURB_BASELINES = ("zero", "mean", "blur")
+
+
+def _perturb_fields(baseline: str) -> dict[str, Field]:
+    """Settings every perturbation explainer shares: the baseline that replaces removed pixels and the score."""
+    return {
+        "baseline": Field("str", baseline, choices=PERTURB_BASELINES, doc="what replaces a removed patch"),
+        "blur_sigma": Field("number", BLUR_SIGMA, low=0.0, doc="Gaussian sigma in pixels of the 'blur' baseline"),
+        "score": Field("str", "probability", choices=SCORES, doc="the target class's probability or logit"),
+    }
+
+
 RISE_GROUP = 256  # perturbed copies built at once (the model sees them in its preferred batches)
 
 
@@ -46,7 +57,11 @@ RISE_GROUP = 256  # perturbed copies built at once (the model sees them in its p
     "occlusion",
     citation=CITE_OCCLUSION,
     needs=set(),
-    defaults={"window": 8, "stride": 4, "baseline": "mean", "blur_sigma": 4.0, "score": "probability"},
+    settings={
+        "window": Field("int", 8, low=1, doc="side of the occluded square patch, in pixels"),
+        "stride": Field("int", 4, low=1, doc="step between patches, in pixels"),
+        **_perturb_fields("mean"),
+    },
     description="drop of the target score when a window x window patch (all bands) is "
     "replaced by a baseline, averaged over the windows covering each pixel "
     "(captum Occlusion); black box ok",
@@ -54,10 +69,6 @@ RISE_GROUP = 256  # perturbed copies built at once (the model sees them in its p
 @signed_maps(True)
 def occlusion(model, images, targets, context, *, window, stride, baseline, blur_sigma, score):
     key = "occlusion"
-    window = check_int(key, "window", window, 1)
-    stride = check_int(key, "stride", stride, 1)
-    check_choice(key, "baseline", baseline, PERTURB_BASELINES)
-    blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     forward = score_function(key, model, score)
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     c = images.shape[1]
@@ -99,7 +110,12 @@ def rise_masks(n_masks: int, grid: int, p: float, size: tuple[int, int], rng: np
     "rise",
     citation=CITE_RISE,
     needs=set(),
-    defaults={"n_masks": 500, "grid": 8, "p": 0.5, "baseline": "zero", "blur_sigma": 4.0, "score": "probability"},
+    settings={
+        "n_masks": Field("int", 500, low=1, doc="random masks"),
+        "grid": Field("int", 8, low=1, doc="cells per side of the coarse mask grid before upsampling"),
+        "p": Field("number", 0.5, low=0.0, high=1.0, low_open=True, doc="probability that a grid cell is kept"),
+        **_perturb_fields("zero"),
+    },
     description="target score under random smooth masks, averaged per pixel weighted by "
     "the mask (masked-out pixels take the baseline); black box ok",
 )
@@ -109,11 +125,6 @@ def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_si
     b = 0 in the paper). The same seeded masks serve every tile, so a tile's map does not depend on the
     other tiles in the call."""
     key = "rise"
-    n_masks = check_int(key, "n_masks", n_masks, 1)
-    grid = check_int(key, "grid", grid, 1)
-    p = check_float(key, "p", p, 0.0, 1.0, inclusive_min=False)
-    check_choice(key, "baseline", baseline, PERTURB_BASELINES)
-    blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     score_function(key, model, score)  # validates the score for this model (black boxes have no logits)
     n, c, h, w = images.shape
     masks = rise_masks(n_masks, grid, p, (h, w), context.rng(stream=1))
@@ -156,13 +167,11 @@ def superpixels(tile: np.ndarray, n_segments: int, compactness: float, seed: int
     "kernel-shap",
     citation=CITE_KERNEL_SHAP,
     needs=set(),
-    defaults={
-        "n_segments": 50,
-        "compactness": 1.0,
-        "n_samples": 200,
-        "baseline": "mean",
-        "blur_sigma": 4.0,
-        "score": "probability",
+    settings={
+        "n_segments": Field("int", 50, low=2, doc="SLIC superpixels per tile (the players of the game)"),
+        "compactness": Field("number", 1.0, low=0.0, low_open=True, doc="SLIC compactness"),
+        "n_samples": Field("int", 200, low=2, doc="random coalitions scored per tile"),
+        **_perturb_fields("mean"),
     },
     description="Shapley values of SLIC superpixels by weighted linear regression on "
     "random coalitions (captum KernelShap with a feature mask); each pixel "
@@ -171,11 +180,6 @@ def superpixels(tile: np.ndarray, n_segments: int, compactness: float, seed: int
 @signed_maps(True)
 def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_samples, baseline, blur_sigma, score):
     key = "kernel-shap"
-    n_segments = check_int(key, "n_segments", n_segments, 2)
-    compactness = check_float(key, "compactness", compactness, 0.0, inclusive_min=False)
-    n_samples = check_int(key, "n_samples", n_samples, 2)
-    check_choice(key, "baseline", baseline, PERTURB_BASELINES)
-    blur_sigma = check_float(key, "blur_sigma", blur_sigma, 0.0)
     forward = score_function(key, model, score)
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     n, c, h, w = images.shape

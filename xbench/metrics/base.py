@@ -387,21 +387,3 @@ def tile_result(
         settings=dict(settings),
         **extra,
     )
-
-
-def check_choice(key: str, name: str, value: Any, choices: tuple) -> None:
-    if value not in choices:
-        raise XbenchInputError(
-            f"metric '{key}' setting '{name}'", "unknown value", expected=" | ".join(map(str, choices)), found=value
-        )
-
-
-def check_number(key: str, name: str, value: Any, lo: float, hi: float, integer: bool = False) -> None:
-    ok = isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool)
-    if ok and integer:
-        ok = float(value) == int(value)
-    if not ok or not (lo <= float(value) <= hi):
-        kind = "an integer" if integer else "a number"
-        raise XbenchInputError(
-            f"metric '{key}' setting '{name}'", "out of range", expected=f"{kind} in [{lo:g}, {hi:g}]", found=value
-        )

@@ -43,13 +43,11 @@ from scipy import ndimage
 from scipy.stats import rankdata
 from torch import nn
 
-from xbench.errors import XbenchInputError
 from xbench.metrics.base import (
     NONFINITE_REASON,
     MetricInputs,
     MetricResult,
     bad_attribution_tiles,
-    check_number,
     register_metric,
     tile_result,
 )
@@ -234,16 +232,7 @@ def _cascade(
 
 
 def _randomization(key: str, inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> MetricResult:
-    absolute = settings["absolute"]
-    if not isinstance(absolute, bool):
-        raise XbenchInputError(f"metric '{key}' setting 'absolute'", "must be true or false", found=absolute)
-    max_layers = settings["max_layers"]
-    if max_layers is not None:
-        check_number(key, "max_layers", max_layers, 1, 100_000, integer=True)
-    steps = settings["cascade_steps"]
-    if steps != "all":
-        check_number(key, "cascade_steps", steps, 1, 100_000, integer=True)
-        steps = int(steps)
+    absolute, max_layers, steps = settings["absolute"], settings["max_layers"], settings["cascade_steps"]
     n = inputs.n_tiles
     if key == "randomization-ssim" and min(np.shape(inputs.attributions)[1:]) < SSIM_WINDOW:
         return tile_result(
@@ -300,12 +289,14 @@ _SANITY: dict[str, Any] = dict(
     per_tile=True,
     defaults={"absolute": True, "max_layers": None, "cascade_steps": 1},
     settings={
+        "absolute": Field("bool", True, doc="compare |a| / max|a| (true) or a / max|a| (false)"),
+        "max_layers": Field("int", None, low=1, high=100_000, nullable=True, doc="randomize at most this many layers"),
         "cascade_steps": Field(
             "any",
             1,
             check=_cascade_steps,
             doc="re-run the explainer after 1 (the fully randomized model), k evenly spaced or 'all' steps",
-        )
+        ),
     },
     settings_doc={
         "absolute": "compare |a| / max|a| (true) or a / max|a| (false)",
