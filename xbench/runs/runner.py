@@ -298,6 +298,18 @@ def _kept_table(store: CellStore, order: list[str], contributes: dict, first: se
     return pd.concat(frames, ignore_index=True)[columns]
 
 
+def portable_path(path: str | Path) -> str:
+    """A task file's path as the manifest keeps it: relative to the xbench checkout for shipped tasks, else
+    relative to the working folder, else the file name (a manifest does not reveal a user's folders)."""
+    from xbench.errors import repo_root
+
+    p = Path(path).resolve()
+    for base in (repo_root(), Path.cwd().resolve()):
+        if p.is_relative_to(base):
+            return p.relative_to(base).as_posix()
+    return p.name
+
+
 def write_georeference(out: Path, task: Any) -> None:
     """``georef.csv`` in the run folder when the test tiles were read from georeferenced rasters: for each
     test tile (the ``tile`` of the records) its source raster, pixel row/col, transform and CRS, so a user
@@ -455,7 +467,7 @@ def assemble(
     manifest = {
         "run_id": run_id,
         "task": task.name,
-        "task_file": str(task.path),
+        "task_file": portable_path(task.path),
         "task_hash": task.file_hash,
         "description": task.description,
         "variant": getattr(task, "variant", None),
