@@ -2,9 +2,10 @@
 # Rebuild xbench's reference results from a clean model cache:
 #   bash results/make.sh
 # - results/demo/                the whole `demo` task (every explainer and metric); CI reruns it and checks it
-# - results/roads/, clearings/   the `roads` and `clearings` tasks: the torch models (cnn, resnet, separable)
-#                                with three training seeds each, the `forest` black box, and the tasks' protocol
-#                                variants (faithfulness baselines, signed vs absolute maps) under variants/
+# - results/roads/, clearings/   the `roads` and `clearings` tasks: the `cnn` with three training seeds, the
+#                                `forest` black box, and the tasks' protocol variants (faithfulness baselines,
+#                                signed vs absolute maps) under variants/. MODELS=cnn,resnet,separable,forest
+#                                adds the other torch families (about three times the CPU time).
 # - results/demo-transplant/     the demo's structures transplanted into a generated Vellardine GeoTIFF scene
 # - results/geotiff-roads/       a generated GeoTIFF with digitized roads and clear-cuts (no twins)
 # - results/report/              recommendation page, tables, figures, methods text and BibTeX over all runs
@@ -14,12 +15,13 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 export XBENCH_CACHE="${XBENCH_CACHE:-$(mktemp -d)}"
 JOBS="${JOBS:-2}"
+MODELS="${MODELS:-cnn,forest}"
 SECONDS=0
 # from scratch: a run folder keeps what earlier runs put there, so stale folders would mix in old values
 rm -rf results/demo results/roads results/clearings results/demo-transplant results/geotiff-roads results/report
 xbench run demo --out results/demo --quiet --jobs "$JOBS"
-xbench run roads --out results/roads --seeds 0,1,2 --quiet --jobs "$JOBS"
-xbench run clearings --out results/clearings --seeds 0,1,2 --quiet --jobs "$JOBS"
+xbench run roads --out results/roads --models "$MODELS" --seeds 0,1,2 --quiet --jobs "$JOBS"
+xbench run clearings --out results/clearings --models "$MODELS" --seeds 0,1,2 --quiet --jobs "$JOBS"
 xbench run demo-transplant --out results/demo-transplant --quiet --jobs "$JOBS"
 xbench run geotiff-roads --out results/geotiff-roads --quiet --jobs "$JOBS"
 for d in demo roads clearings demo-transplant geotiff-roads; do
