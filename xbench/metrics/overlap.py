@@ -345,7 +345,10 @@ def _docs(own: dict[str, str] | None = None, weights: bool = False) -> dict[str,
     return {**(own or {}), **COMMON_DOC, **(WEIGHT_DOC if weights else {})}
 
 
-_ARRAS = "Arras, Osman, Samek. Ground-truth evaluation of neural network explanations. Information Fusion 81, 2022."
+_ARRAS = (
+    "Arras, Osman, Samek. CLEVR-XAI: A benchmark dataset for the ground truth evaluation of neural network "
+    "explanations. Information Fusion 81, 2022."
+)
 
 
 @register_metric(
