@@ -211,3 +211,12 @@ def test_shortcut_cue_rates_per_split(tmp_path: Path, small_task_file: Path) -> 
     assert agree > 0.9  # 95% agreement in train (binomial, 320 tiles)
     test_pos = data.test.clean_labels == 1
     assert 0.25 < np.mean(data.test.cue == test_pos) < 0.75  # independent in test
+
+
+@pytest.mark.parametrize("name", sorted(p.stem for p in (Path(__file__).parent.parent / "tasks").glob("*.toml")))
+def test_every_shipped_task_passes_the_runners_checks(name):
+    # Explainer and metric keys and settings are checked by the runner before any work (names.RENAMED keys
+    # fail there): every shipped task file, the imagery tasks included, must pass those checks.
+    from xbench.runs.grid import validate_task_keys
+
+    validate_task_keys(load_task(name))
