@@ -336,10 +336,10 @@ def runs(tmp_path_factory) -> list[Path]:
     base = tmp_path_factory.mktemp("runs")
     # Three task x model blocks; the second folder holds records and a manifest only (fewer figures: fast).
     return [
-        make_run(base / "vale", "orrin-roads", ["cnn", "resnet"], [0, 1], rng_seed=1),
+        make_run(base / "vale", "vellardine-roads", ["cnn", "resnet"], [0, 1], rng_seed=1),
         make_run(
             base / "bog",
-            "orrin-clearcuts",
+            "vellardine-clearcuts",
             ["cnn"],
             [0, 1],
             rng_seed=2,
@@ -450,7 +450,7 @@ def _seed_averaged(records: pd.DataFrame, task, model, metric, truth) -> pd.Data
 def test_table_numbers_equal_scipy_on_the_records(runs, report):
     records = pd.concat([pd.read_parquet(r / "records.parquet") for r in runs])
     summary = pd.read_csv(report.out_dir / "summary.csv")
-    task, model, metric, truth = "orrin-roads", "cnn", "mass-accuracy", "planted"
+    task, model, metric, truth = "vellardine-roads", "cnn", "mass-accuracy", "planted"
     wide = _seed_averaged(records, task, model, metric, truth)
     block = summary[
         (summary.task == task) & (summary.model == model) & (summary.metric == metric) & (summary.truth == truth)
@@ -589,7 +589,7 @@ def test_bibliography_entries_are_complete():
 
 
 def test_missing_optional_files_are_logged_not_fatal(tmp_path):
-    run = make_run(tmp_path / "run", "orrin-roads", ["cnn"], [0], artifacts=False)
+    run = make_run(tmp_path / "run", "vellardine-roads", ["cnn"], [0], artifacts=False)
     for name in (
         "curves.parquet",
         "reliance.parquet",
@@ -658,10 +658,10 @@ def test_figures_of_an_earlier_report_are_replaced(tmp_path):
 
 
 def test_breakdowns_by_class_type_and_coverage_and_models_side_by_side(tmp_path):
-    run = make_run(tmp_path / "run", "orrin-roads", ["cnn", "resnet"], [0, 1], artifacts=False)
+    run = make_run(tmp_path / "run", "vellardine-roads", ["cnn", "resnet"], [0, 1], artifacts=False)
     tiles = pd.DataFrame(
         {
-            "task": "orrin-roads",
+            "task": "vellardine-roads",
             "tile": np.arange(24),
             "class_name": np.where(np.arange(24) % 2 == 0, "road", "clearing"),
             "main_type": np.where(np.arange(24) % 3 == 0, "road", "clearing"),
@@ -672,10 +672,10 @@ def test_breakdowns_by_class_type_and_coverage_and_models_side_by_side(tmp_path)
     s = write_report([run], tmp_path / "out", "md,tex", n_resamples=200, figures=False)
     md = (tmp_path / "out" / "tables.md").read_text()
     assert "# Breakdowns" in md
-    assert "orrin-roads, model cnn: mass-accuracy (planted) by class" in md
-    assert "orrin-roads, model cnn: mass-accuracy (planted) by structure type" in md
-    assert "orrin-roads, model cnn: mass-accuracy (planted) by coverage" in md
-    assert "orrin-roads: models side by side" in md
+    assert "vellardine-roads, model cnn: mass-accuracy (planted) by class" in md
+    assert "vellardine-roads, model cnn: mass-accuracy (planted) by structure type" in md
+    assert "vellardine-roads, model cnn: mass-accuracy (planted) by coverage" in md
+    assert "vellardine-roads: models side by side" in md
     # Known answer: the by-class mean of grad-cam on road tiles, computed here with pandas from the records
     # (tiles averaged over seeds first, then over the class's tiles).
     rec = pd.read_parquet(run / "records.parquet")
@@ -690,7 +690,7 @@ def test_breakdowns_by_class_type_and_coverage_and_models_side_by_side(tmp_path)
 
 
 def test_skipped_metrics_and_their_reasons_are_in_the_report(tmp_path):
-    run = make_run(tmp_path / "run", "orrin-roads", ["cnn"], [0], artifacts=False)
+    run = make_run(tmp_path / "run", "vellardine-roads", ["cnn"], [0], artifacts=False)
     manifest = json.loads((run / "manifest.json").read_text())
     manifest["cells"][0]["notes"] = {"deletion-auc/none": "the pack has no twins: needs counterfactual twins"}
     (run / "manifest.json").write_text(json.dumps(manifest))
@@ -703,9 +703,9 @@ def test_skipped_metrics_and_their_reasons_are_in_the_report(tmp_path):
     # a reasons table written by the run takes precedence over the manifest's notes
     cols = ["task", "model", "seed", "explainer", "metric", "truth", "reason"]
     pd.DataFrame(
-        [("orrin-roads", "cnn", 0, "", "insertion-auc", "none", "skipped: no twins")], columns=cols
+        [("vellardine-roads", "cnn", 0, "", "insertion-auc", "none", "skipped: no twins")], columns=cols
     ).to_parquet(run / "reasons.parquet", index=False)
     write_report([run], tmp_path / "b", "md", n_resamples=200, figures=False)
     md = (tmp_path / "b" / "tables.md").read_text()
     assert "skipped: no twins" in md and "needs counterfactual twins" not in md
-    assert "| orrin-roads / cnn | insertion-auc | all | skipped: no twins |" in md
+    assert "| vellardine-roads / cnn | insertion-auc | all | skipped: no twins |" in md

@@ -437,8 +437,8 @@ def test_toml_syntax_error_names_line(tmp_path):
 
 def test_unknown_recipe_lists_shipped():
     with pytest.raises(XbenchInputError) as err:
-        load_recipe("orrin-valley")
-    assert "orrin-valley" in str(err.value) and all(n in str(err.value) for n in RECIPES)
+        load_recipe("vellardine-valley")
+    assert "vellardine-valley" in str(err.value) and all(n in str(err.value) for n in RECIPES)
 
 
 @pytest.mark.parametrize(
