@@ -377,3 +377,20 @@ def test_raster_data_errors(tmp_path: Path, case: str, old: str, new: str, at: s
         load_task(path)
     message = str(err.value)
     assert message.startswith(f"{path} line {line}, key {key}: {problem}"), message
+
+
+@pytest.mark.parametrize(
+    "argv, old, new",
+    [
+        (["synth", "--recipe", "orrin-vale", "--count", "2", "--out", "OUT"], "orrin-vale", "conifer-upland"),
+        (["run", "weak-labels", "--out", "OUT"], "weak-labels", "label-noise"),
+        (["metrics", "--family", "sanity"], "sanity", "model-dependence"),
+    ],
+)
+def test_old_names_fail_naming_the_new_one(argv, old, new, tmp_path, capsys) -> None:
+    # Renamed keys (xbench.names.RENAMED, CHANGELOG.md): one error line that names the new key, exit 2.
+    from xbench.cli import main
+
+    code = main([str(tmp_path / "out") if a == "OUT" else a for a in argv])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and f"'{old}' was renamed to '{new}'" in err and len(err.splitlines()) == 1, err

@@ -24,7 +24,6 @@ RENAMED: dict[str, dict[str, str]] = {
     "recipe": {"orrin-vale": "conifer-upland"},
     "task": {"weak-labels": "label-noise"},
     "model": {"bottleneck": "separable"},
-    "class": {"natural": "intact", "human": "disturbed"},
 }
 
 

@@ -32,7 +32,7 @@ import numpy as np
 
 from xbench.data import TilePack, load_pack, save_pack
 from xbench.errors import XbenchInputError, load_toml, repo_root
-from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, RENAMED, renamed_hint
+from xbench.names import HUMAN_TYPES, LOOKALIKE_TYPES, renamed_hint
 from xbench.schema import Field, Where, as_where, check_table, check_value, load_config
 
 MODEL_KINDS = ("cnn", "resnet", "separable", "forest", "user-torch", "user-callable")
@@ -347,13 +347,9 @@ def resolve_task_path(path_or_name: str | Path) -> Path:
     shipped = tasks_dir() / f"{text}.toml"
     if not shipped.is_file():
         hint = renamed_hint("task", text)
-        if hint:
-            raise XbenchInputError(
-                f"task '{text}'", f"unknown task: {hint}", expected=RENAMED["task"][text], found=text
-            )
         raise XbenchInputError(
             f"task '{text}'",
-            "unknown task",
+            "unknown task" + (f": {hint}" if hint else ""),
             expected="a task file path or one of: " + ", ".join(list_tasks()),
             found=text,
         )

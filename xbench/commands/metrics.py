@@ -15,6 +15,7 @@ import textwrap
 from typing import TYPE_CHECKING, Any
 
 from xbench.errors import XbenchInputError
+from xbench.names import renamed_hint
 from xbench.schema import describe
 
 if TYPE_CHECKING:
@@ -160,7 +161,9 @@ def run(args: argparse.Namespace) -> int:
     from xbench.metrics import FAMILIES, get_metric, list_metrics
 
     if args.family is not None and args.family not in FAMILIES:
-        raise XbenchInputError("--family", "unknown metric family", expected=" | ".join(FAMILIES), found=args.family)
+        hint = renamed_hint("metric family", args.family)
+        problem = "unknown metric family" + (f": {hint}" if hint else "")
+        raise XbenchInputError("--family", problem, expected=" | ".join(FAMILIES), found=args.family)
     specs = [get_metric(k) for k in args.keys] if args.keys else list_metrics(args.family)
     if args.keys and args.family:
         specs = [s for s in specs if s.family == args.family]

@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from xbench.errors import XbenchInputError, repo_root
-from xbench.names import HUMAN_TYPES, RENAMED, renamed_hint
+from xbench.names import HUMAN_TYPES, renamed_hint
 from xbench.scenes.labels import ALL_TYPES, LabelRule, parse_label_rule
 from xbench.scenes.materials import BANDS, LIBRARY, MATERIAL_KINDS, Material
 from xbench.schema import Field, Where, as_where, check_table, check_value, load_config
@@ -267,13 +267,9 @@ def load_recipe(name_or_path: str | Path | Recipe) -> Recipe:
         shipped = recipe_dir() / f"{text}.toml"
         if not shipped.is_file():
             hint = renamed_hint("recipe", text)
-            if hint:
-                raise XbenchInputError(
-                    f"recipe '{text}'", f"unknown recipe: {hint}", expected=RENAMED["recipe"][text], found=text
-                )
             raise XbenchInputError(
                 f"recipe '{text}'",
-                "unknown recipe",
+                "unknown recipe" + (f": {hint}" if hint else ""),
                 expected="a file path or one of " + ", ".join(list_recipes()),
                 found=text,
             )
