@@ -74,6 +74,7 @@ explain_tiles = 24
 gallery_tiles = 4
 batch_size = 32
 concept_set_size = 10
+random_sets = 10
 fit_tiles = 40
 """
 

@@ -303,7 +303,7 @@ def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
     y = np.array([1, 2] * 12)
     names = ["none", "a", "b"]
     ctx = ExplainContext(concept_sets=sets, class_names=names, driving_types={1: ["band0-lines"], 2: []})
-    exp = explain("tcav", model, x, y, ctx, layer="feat", layers=["feat", "relu"])
+    exp = explain("tcav", model, x, y, ctx, layer="feat", layers=["feat", "relu"], statistic="score", test="runs")
     rep = exp.concepts
     rows = {(r["concept"], r["class_name"]): r for r in rep.rows}
     assert rows[("band0-lines", "a")]["score"] > 0.9 and rows[("band0-lines", "b")]["score"] < 0.1
@@ -313,11 +313,15 @@ def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
     assert rep.type_class["band0-lines"] == "a"
     # if the concept were meant to drive class b, its importance there is negative: not flagged
     ctx_b = ExplainContext(concept_sets=sets, class_names=names, driving_types={2: ["band0-lines"], 1: []})
-    rep_b = explain("tcav", model, x, y, ctx_b, layer="feat").concepts
+    rep_b = explain("tcav", model, x, y, ctx_b, layer="feat", statistic="score", test="runs").concepts
     assert rep_b.type_importance["band0-lines"] < -0.3 and not rep_b.flagged["band0-lines"]
-    # the set-level test runs on the same runs and gives p-values in [0, 1] (its power is low by design)
-    rep_set = explain("tcav", model, x, y, ctx, layer="feat", test="set").concepts
-    assert all(0 <= r["p_value"] <= 1 for r in rep_set.rows) and rep_set.set_means.shape == (10, 2)
+    # the set-level test of the same statistic: the concept's mean score against the random sets' (one null
+    # draw per random set); the concept lies above every random set on class a and below every one on class b
+    rep_set = explain("tcav", model, x, y, ctx, layer="feat", test="set", statistic="score").concepts
+    assert rep_set.set_means.shape == (10, 2)
+    c_mean = rep_set.concept_statistics["band0-lines"].mean(axis=0)
+    assert c_mean[0] > rep_set.set_means[:, 0].max() and c_mean[1] < rep_set.set_means[:, 1].min()
+    assert all(0 <= r["p_value"] <= 1 for r in rep_set.rows)
     # per-layer rows for every requested layer
     assert {r["layer"] for r in rep.layer_rows} == {"feat", "relu"}
     assert exp.cost.backward_calls == 24 * 2  # the explained layer, then the extra layer 'relu'
@@ -333,16 +337,82 @@ def test_tcav_detects_a_concept_the_model_uses():
     sets = band0_sets(rng)
     x = rng.random((16, C, H, W), dtype=np.float32)
     exp = explain(
-        "tcav", model, x, np.ones(16, int), ExplainContext(concept_sets=sets, class_names=["a", "b"]), layer="feat"
+        "tcav",
+        model,
+        x,
+        np.ones(16, int),
+        ExplainContext(concept_sets=sets, class_names=["a", "b"]),
+        layer="feat",
+        statistic="score",
     )
     rep = exp.concepts
     row = next(r for r in rep.rows if r["concept"] == "band0-lines")
     assert row["score"] > 0.8 and row["class_name"] == "b" and row["matched_type"] == "band0-lines"
     assert row["p_value"] < 0.05 and rep.flagged == {"band0-lines": True, "band2-wash": False}
-    assert rep.type_importance["band0-lines"] > 0.3  # centred on the random-concept runs
+    assert rep.type_importance["band0-lines"] > 0.3  # centred on the random sets' mean score
     assert rep.tcav_scores["band0-lines"] > 0.8
     assert exp.cost.backward_calls == 16
     assert exp.attributions.shape == (16, H, W) and np.isfinite(exp.attributions).all()
+
+
+BANDS = 48
+
+
+class PooledHeadNet(nn.Module):
+    """``feat`` = ReLU of the bands themselves (identity 1x1 conv over ``BANDS`` bands), a global mean pool and a
+    linear head with class 1 = 2 * pooled_0 + sum_c u_c * pooled_c (u_c ~ N(0, 0.3^2)). The gradient of class 1
+    with respect to the pooled features is the fixed vector g = (2, u) on every tile."""
+
+    def __init__(self, seed: int = 0):
+        super().__init__()
+        g = torch.Generator().manual_seed(seed)
+        self.feat = nn.Conv2d(BANDS, BANDS, 1, bias=False)
+        self.relu = nn.ReLU()
+        self.head = nn.Linear(BANDS, 2)
+        with torch.no_grad():
+            self.feat.weight.copy_(torch.eye(BANDS)[:, :, None, None])
+            self.head.weight.zero_()
+            self.head.bias.zero_()
+            self.head.weight[1, 0] = 2.0
+            self.head.weight[1, 1:] = 0.3 * torch.randn(BANDS - 1, generator=g)
+
+    def forward(self, x):
+        return self.head(self.relu(self.feat(x)).mean(dim=(2, 3)))
+
+
+def band_offset_tiles(rng: np.random.Generator, n: int, band: int | None = None) -> np.ndarray:
+    """Tiles whose band means vary independently (a random offset per tile and band); ``band`` gets +0.5."""
+    tiles = 0.2 * rng.random((n, BANDS, H, W), dtype=np.float32) + rng.random((n, BANDS, 1, 1), dtype=np.float32)
+    if band is not None:
+        tiles[:, band] += 0.5
+    return tiles
+
+
+def test_tcav_alignment_detects_what_the_sign_count_cannot():
+    # By construction (PooledHeadNet) the gradient of class 1 at `relu` is the same vector g = (2, u) on every
+    # tile. A direction's TCAV score (Kim et al. 2018: the share of tiles with a positive directional
+    # derivative) is then exactly 0 or 1 for every direction, random ones included, so the score cannot tell a
+    # concept from a random set. The band-0 concept's CAV points along channel 0, where g leans hardest (cosine
+    # 2 / |g|, about 0.7 with |u| about 0.3 sqrt(47)), while random sets' CAVs are directions of sampling noise in
+    # 48 dimensions (cosine spread about 1 / sqrt(48) = 0.14): the alignment test flags band 0; the band-2 concept
+    # leans only by u_2 / |g| and is not flagged.
+    model = ModelHandle("pooled", 2, module=PooledHeadNet().eval())
+    rng = np.random.default_rng(3)
+    sets = {f"random-{i}": band_offset_tiles(rng, 20) for i in range(10)}
+    sets |= {"band0-lines": band_offset_tiles(rng, 20, band=0), "band2-wash": band_offset_tiles(rng, 20, band=2)}
+    x = band_offset_tiles(rng, 16)
+    ctx = ExplainContext(concept_sets=sets, class_names=["a", "b"], driving_types={1: ["band0-lines"]})
+    rep = explain("tcav", model, x, np.ones(16, int), ctx, layer="relu").concepts
+    assert set(np.unique(rep.random_runs)) <= {0.0, 1.0}  # every random run's TCAV score is 0 or 1
+    row = {r["concept"]: r for r in rep.rows}
+    assert row["band0-lines"]["score"] == 1.0 and row["band0-lines"]["p_value"] < 0.01
+    assert rep.flagged == {"band0-lines": True, "band2-wash": False}
+    # cosine above the random sets' mean: 0.7 for the exact channel-0 direction, less for the fitted CAV, which
+    # carries sampling noise in the other 47 channels
+    assert rep.type_importance["band0-lines"] > 0.25
+    # the same sets tested on the TCAV score: the random sets' scores spread over 0..1, no power
+    by_score = explain("tcav", model, x, np.ones(16, int), ctx, layer="relu", statistic="score").concepts
+    assert not by_score.flagged["band0-lines"]
 
 
 def test_tcav_bad_concept_sets():

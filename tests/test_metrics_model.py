@@ -17,7 +17,12 @@ from torch import nn
 
 from xbench.metrics import MetricInputs, compute_metric
 from xbench.metrics.model_dependence import parametrised_layers
-from xbench.metrics.steadiness import infidelity_perturbations, sensitivity_perturbations
+from xbench.metrics.steadiness import (
+    infidelity_perturbations,
+    sensitivity_perturbations,
+    square_perturbations,
+    square_side,
+)
 from xbench.models.base import ModelHandle
 
 H = W = 16
@@ -159,7 +164,15 @@ def test_infidelity_agrees_with_captum(fresh, normalize):
     targets = np.ones(n, int)
     attr = _input_gradient(handle, images, targets)
     inputs = MetricInputs(attr, images, targets, model=handle, seed=seed)
-    (res,) = compute_metric("infidelity", inputs, samples=samples, noise=noise_sd, normalize=normalize)
+    (res,) = compute_metric(
+        "infidelity",
+        inputs,
+        perturbation="gaussian",
+        score="probability",
+        samples=samples,
+        noise=noise_sd,
+        normalize=normalize,
+    )
     ours = res.values
     pert = np.concatenate([infidelity_perturbations(seed, i, (H, W), samples, noise_sd) for i in range(n)])
     pert = torch.from_numpy(np.repeat(pert[:, None], c, axis=1))  # shared by every band
@@ -226,22 +239,84 @@ def test_cascading_randomization(trained):
     assert top.curve_labels["randomization-spearman"] == ["head"]
 
 
-def test_infidelity_default_noise_separates_oracle_from_random(trained):
-    # The calibrated default (noise 'auto'): per-band noise a fraction of the band spread, halved until at most
-    # 1% of the perturbed copies flip. With few flips the oracle (the square the model detects) explains the
-    # score drops better than random noise (Yeh et al. 2019: lower infidelity = more faithful).
-    handle, images, masks, _ = trained
+@pytest.mark.parametrize("score", ["log-odds", "probability"])
+def test_square_infidelity_agrees_with_captum(fresh, score):
+    # Yeh et al.'s square removal: I is the square's indicator, x - I the tile with the square set to the
+    # baseline (here its zero image). captum.metrics.infidelity computes the same quantity when its perturb_func
+    # returns (indicator spread over the bands, the tile with the square removed) and f is our target score.
+    handle, images = fresh
+    images, n, samples, seed = images[:6], 6, 8, 4
+    c = images.shape[1]
+    targets = np.zeros(n, int)
+    attr = _input_gradient(handle, images, targets)
+    inputs = MetricInputs(attr, images, targets, model=handle, seed=seed)
+    (res,) = compute_metric("infidelity", inputs, samples=samples, baseline="zero", side=0.3, score=score)
+    side = square_side(0.3, (H, W))
+    assert side == 5 and "5 x 5 px" in res.settings["calibrated"]
+    squares = np.concatenate([square_perturbations(seed, i, (H, W), samples, side) for i in range(n)])
+    squares = torch.from_numpy(np.repeat(squares[:, None], c, axis=1))
+
+    def perturb(x):
+        return squares, x * (1 - squares)
+
+    def forward(x):
+        p = torch.softmax(handle.module(x).double(), dim=1).clamp(1e-6, 1 - 1e-6)
+        return p if score == "probability" else torch.log(p) - torch.log1p(-p)
+
+    spread = torch.from_numpy(np.repeat(attr[:, None] / c, c, axis=1))
+    # reference: captum.metrics.infidelity on the same perturbations (Yeh et al. 2019, square removal)
+    ref = captum_infidelity(
+        forward,
+        perturb,
+        torch.from_numpy(images),
+        spread,
+        target=torch.from_numpy(targets),
+        n_perturb_samples=samples,
+        normalize=True,
+    ).numpy()
+    assert np.all(ref > 1e-12)
+    np.testing.assert_allclose(res.values, ref, rtol=1e-3, atol=0)
+
+
+def test_square_perturbations_are_squares_inside_the_tile():
+    squares = square_perturbations(3, 7, (12, 20), 50, 5)
+    assert squares.shape == (50, 12, 20) and np.all(squares.sum(axis=(1, 2)) == 25)
+    rows, cols = squares.any(axis=2), squares.any(axis=1)
+    assert np.all(rows.sum(axis=1) == 5) and np.all(cols.sum(axis=1) == 5)  # one contiguous 5 x 5 block each
+    np.testing.assert_array_equal(squares, square_perturbations(3, 7, (12, 20), 50, 5))  # seeded per tile
+    assert square_side(0.01, (48, 48)) == 2 and square_side(1.0, (16, 48)) == 16
+
+
+def test_infidelity_default_separates_oracle_from_random(trained):
+    # The default (squares set to the twin, log-odds score): removing a square changes the score only where it
+    # covers the planted square, so the oracle's sum over the square predicts the drop and a random map's does not
+    # (Yeh et al. 2019: lower infidelity = more faithful).
+    handle, images, masks, twins = trained
     n = len(images)
     rng = np.random.default_rng(11)
     maps = {"oracle": masks.astype(np.float32), "random": rng.random(masks.shape).astype(np.float32)}
     values = {}
     for name, attr in maps.items():
-        (res,) = compute_metric("infidelity", MetricInputs(attr, images, np.ones(n, int), model=handle, seed=2))
+        inputs = MetricInputs(attr, images, np.ones(n, int), model=handle, twins=twins, seed=2)
+        (res,) = compute_metric("infidelity", inputs)
         values[name] = res.values
-        flips = float(res.settings["calibrated"].split("; ")[1].split("%")[0]) / 100
-        assert flips <= 0.01 and 0 < res.settings["fraction_used"] <= 0.5
     assert np.nanmean(values["oracle"]) < 0.5 * np.nanmean(values["random"])
     assert (values["oracle"] < values["random"]).mean() > 0.8
+    # without twins the default baseline cannot be made: NaN with the reason, never a silent zero
+    (res,) = compute_metric("infidelity", MetricInputs(maps["oracle"], images, np.ones(n, int), model=handle))
+    assert np.isnan(res.values).all() and "twins" in res.skipped
+
+
+def test_infidelity_gaussian_noise_is_calibrated(trained):
+    # The gaussian variant's calibrated noise ('auto'): per-band noise a fraction of the band spread, halved until
+    # at most 1% of the perturbed copies flip; the chosen level is recorded.
+    handle, images, masks, _ = trained
+    n = len(images)
+    inputs = MetricInputs(masks.astype(np.float32), images, np.ones(n, int), model=handle, seed=2)
+    (res,) = compute_metric("infidelity", inputs, perturbation="gaussian")
+    flips = float(res.settings["calibrated"].split("; ")[1].split("%")[0]) / 100
+    assert flips <= 0.01 and 0 < res.settings["fraction_used"] <= 0.5
+    assert np.isfinite(res.values).all()
 
 
 def test_max_sensitivity_default_radius_is_calibrated(trained):

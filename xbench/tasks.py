@@ -45,9 +45,9 @@ RUN_DEFAULTS: dict[str, int] = {
     "explain_tiles": 64,  # test tiles explained and scored per (model, seed)
     "gallery_tiles": 8,  # tiles kept with every explainer's map for figures
     "batch_size": 64,  # images per model call in explainers and metrics
-    "concept_set_size": 40,  # example tiles per concept set (tcav)
+    "concept_set_size": 80,  # example tiles per concept set (tcav; 80 gives the test power on the zoo)
     "fit_tiles": 200,  # training tiles used to fit concept explainers (activation-clusters)
-    "random_sets": 10,  # random example sets for concept significance tests (tcav)
+    "random_sets": 20,  # random example sets for concept significance tests (tcav)
     "cell_timeout": 1800,  # seconds one cell (explain + score) may take before it is stopped and recorded failed
 }
 MAX_SPLIT_TILES = 100_000  # tiles per split: a stated maximum instead of running out of memory

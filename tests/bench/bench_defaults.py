@@ -1,6 +1,7 @@
 """Defaults fitted to the data: on a task's test tiles (the tiles the runner explains), the share of
 SmoothGrad's noisy copies that keep the clean prediction (default 15% of each band's training spread vs the
-former 0.05 reflectance), and infidelity's calibrated noise level with the oracle's and random map's means.
+former 0.05 reflectance), and infidelity's oracle and random means under its default perturbation (squares set
+to the twin) and the gaussian variant (calibrated noise; the former fixed 0.02).
 
 Usage: python tests/bench/bench_defaults.py [TASK ...] [--model cnn] [--seed 0] [--tiles 64]
 Uses the model cache of $XBENCH_CACHE (trains the model with the task's settings once when missing).
@@ -54,16 +55,21 @@ def main() -> int:
             for t in task.class_driving_types.get(int(cls), []):
                 planted[row] |= data.test.masks[index[row], data.test.mask_names.index(t)]
         maps = {"oracle": planted.astype(np.float32), "random": rng.random(planted.shape).astype(np.float32)}
-        for label, noise in (("auto", "auto"), ("0.02 (former)", 0.02)):
+        twins = data.test.twins[index]
+        for label, options in (
+            ("square (default)", {}),
+            ("gaussian, noise auto", {"perturbation": "gaussian"}),
+            ("gaussian, noise 0.02 (former)", {"perturbation": "gaussian", "noise": 0.02}),
+        ):
             means = {}
             text = ""
             for key, attr in maps.items():
-                inputs = MetricInputs(attr, images, targets, model=handle, seed=args.seed)
-                (res,) = compute_metric("infidelity", inputs, noise=noise)
+                inputs = MetricInputs(attr, images, targets, model=handle, twins=twins, seed=args.seed)
+                (res,) = compute_metric("infidelity", inputs, **options)
                 means[key] = float(np.nanmean(res.values))
                 text = res.settings.get("calibrated", "")
             print(
-                f"{name}: infidelity noise {label}: oracle {means['oracle']:.3g}, random {means['random']:.3g}"
+                f"{name} ({args.model}): infidelity {label}: oracle {means['oracle']:.3g}, random {means['random']:.3g}"
                 + (f"; {text}" if text else "")
             )
     return 0

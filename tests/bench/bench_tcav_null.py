@@ -1,14 +1,21 @@
-"""Null simulation of TCAV's significance test (Kim et al. 2018) through our own code: a random set posing
-as a concept should come out significant at about the nominal level. Prints the share of significant
-trials at the 5% level (one concept, so Bonferroni changes nothing) for each setting of ``resample``.
+"""Null simulation of TCAV's significance tests through our own code: a random set posing as a concept should
+come out significant at about the nominal level (5%). Prints the share of significant (concept, class) tests
+at the 5% level (one concept, so Bonferroni changes nothing) and at 1%.
 
-Model: the GateNet of tests/test_explainers_concepts.py (its gradients flip sign from tile to tile, so
-random directions score near 0.5 with real spread).
-Usage: python tests/bench/bench_tcav_null.py [TRIALS] [RANDOM_SETS] [RESAMPLE: true,false] [TEST: runs | set]
+Two models:
+- default: the GateNet of tests/test_explainers_concepts.py (its gradients flip sign from tile to tile, so
+  random directions score near 0.5 with real spread); example sets of uniform noise.
+- ``--task NAME``: the task's first torch model (seed 0, trained once into $XBENCH_CACHE), its explained tiles
+  and default TCAV layer; each trial draws ``random-sets + 1`` fresh random example sets from the task's
+  recipe (``--set-size`` tiles each) and lets the last one pose as the concept.
+
+Usage: python tests/bench/bench_tcav_null.py [--trials 100] [--random-sets 10] [--test set|runs]
+       [--statistic alignment|score] [--resample true,false] [--task demo --set-size 80]
 """
 
 from __future__ import annotations
 
+import argparse
 import sys
 import time
 
@@ -16,40 +23,77 @@ import numpy as np
 
 
 def main() -> int:
-    trials = int(sys.argv[1]) if len(sys.argv) > 1 else 100
-    n_random = int(sys.argv[2]) if len(sys.argv) > 2 else 10
-    test = sys.argv[4] if len(sys.argv) > 4 else "runs"
-    resamples = [v == "true" for v in (sys.argv[3] if len(sys.argv) > 3 else "true,false").split(",")]
-    sys.path.insert(0, "tests")
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--trials", type=int, default=100)
+    parser.add_argument("--random-sets", type=int, default=10)
+    parser.add_argument("--test", default="set", choices=("set", "runs"))
+    parser.add_argument("--statistic", default="alignment", choices=("alignment", "score"))
+    parser.add_argument("--resample", default="true")
+    parser.add_argument("--task", default=None)
+    parser.add_argument("--set-size", type=int, default=80)
+    args = parser.parse_args()
     import torch
-    from test_explainers_concepts import C, GateNet, H, W
 
     from xbench.explainers import ExplainContext, explain
-    from xbench.models.base import ModelHandle
 
     torch.set_num_threads(1)
-    model = ModelHandle("gate", 2, module=GateNet().eval())
-    for resample in resamples:
+    if args.task:
+        from xbench.explainers.concept_sets import make_concept_sets
+        from xbench.runs.execute import prepare
+
+        prep = prepare(args.task, next(m.name for m in _torch_models(args.task)), 0)
+        model, images, targets = prep.trained.handle, prep.images, prep.targets
+        recipe, size = prep.task.data.recipe, prep.task.data.size
+
+        def draw(trial: int) -> dict[str, np.ndarray]:
+            sets = make_concept_sets(recipe, size, [], args.set_size, args.random_sets + 1, 50_000 + trial)
+            sets["posing"] = sets.pop(f"random-{args.random_sets}")
+            return sets
+
+        label = f"task {args.task}, model {model.name}, sets of {args.set_size}"
+    else:
+        sys.path.insert(0, "tests")
+        from test_explainers_concepts import C, GateNet, H, W
+
+        from xbench.models.base import ModelHandle
+
+        model = ModelHandle("gate", 2, module=GateNet().eval())
+        images = np.random.default_rng(0).random((12, C, H, W), dtype=np.float32)
+        targets = np.ones(12, int)
+
+        def draw(trial: int) -> dict[str, np.ndarray]:
+            rng = np.random.default_rng(100 + trial)
+            sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(args.random_sets)}
+            sets["posing"] = rng.random((10, C, H, W), dtype=np.float32)
+            return sets
+
+        label = "GateNet, sets of 10"
+    for resample in [v == "true" for v in args.resample.split(",")]:
         t0 = time.perf_counter()
         p_values = []
-        for trial in range(trials):
-            rng = np.random.default_rng(100 + trial)
-            sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(n_random)}
-            sets["noise"] = rng.random((10, C, H, W), dtype=np.float32)
-            x = rng.random((12, C, H, W), dtype=np.float32)
-            ctx = ExplainContext(seed=trial, concept_sets=sets)
-            rep = explain("tcav", model, x, np.ones(12, int), ctx, layer="feat", resample=resample, test=test).concepts
-            p_values.append(rep.rows[0]["p_value"])
+        for trial in range(args.trials):
+            ctx = ExplainContext(seed=trial, concept_sets=draw(trial))
+            options = dict(resample=resample, test=args.test, statistic=args.statistic)
+            if not args.task:
+                options["layer"] = "feat"
+            rep = explain("tcav", model, images, targets, ctx, **options).concepts
+            p_values += [r["p_value"] for r in rep.rows]
         p = np.array(p_values)
         rate = float((p < 0.05).mean())
-        se = np.sqrt(rate * (1 - rate) / trials)
+        se = np.sqrt(rate * (1 - rate) / len(p))
         print(
-            f"test {test}, random sets {n_random}, resample={resample}: significant at 5% in {rate:.3f} "
-            f"(+- {1.96 * se:.3f}) of {trials} null trials; "
-            f"share of p < 0.01: {(p < 0.01).mean():.3f}  ({time.perf_counter() - t0:.0f} s)",
+            f"{label}: test {args.test}, statistic {args.statistic}, random sets {args.random_sets}, "
+            f"resample={resample}: significant at 5% in {rate:.3f} (+- {1.96 * se:.3f}) of {len(p)} null tests "
+            f"({args.trials} trials); share of p < 0.01: {(p < 0.01).mean():.3f}  ({time.perf_counter() - t0:.0f} s)",
             flush=True,
         )
     return 0
+
+
+def _torch_models(task_name: str) -> list:
+    from xbench.tasks import load_task
+
+    return [m for m in load_task(task_name).models if m.kind != "forest"]
 
 
 if __name__ == "__main__":

@@ -20,41 +20,42 @@ direct implementation on arrays is shorter and keeps everything in memory and se
   positive set's activations from a negative set's.
 - TCAV score of a CAV for class k: the fraction of the explained tiles *of class k* (target k) whose
   directional derivative grad_A h_k . v is positive (Kim et al. 2018).
-- Runs (Kim et al. 2018): concept run r = CAV of the concept examples against random set r
-  (r = 0..R-1); random-concept run r = CAV of random set r against random set r+1 (mod R), so each
-  random run has its own positive set rather than one shared random counterpart. With ``resample = true``
-  (default) the positive examples of each run are a bootstrap resample (seeded). Null simulation through
-  this code (tests/bench/bench_tcav_null.py, a random set posing as the concept, 100 trials): significant
-  at p < 0.05 in 20% of trials (19% without resampling) and at p < 0.01 in 8% (12% without); the runs of
-  one concept still share that set's luck, so the test runs above its nominal level, and more so with
-  more runs: with 30 random sets, 37% at p < 0.05 and 25% at p < 0.01 (the earlier design with one shared
-  random counterpart: 45-70% with 10). Bonferroni over the 5-8 concepts of a task brings the per-concept
-  threshold near 0.01. Power on the demo's cnn at the default layer: with 10 random sets road (score 0.98
-  on class road) gets p = 0.38 and clearing (1.00 on class clearing) p = 0.013; with 30, p = 0.0027 and
-  9e-6. The trade-off is the task's ``[run] random_sets``.
-- Significance (``test = "runs"``, default; Kim et al. 2018): per (concept, class), the two-sided
-  two-sample t-test (scipy ``ttest_ind``) of the concept runs' scores against the random-concept runs'
-  scores. ``test = "set"``: each random set posing as a concept against every other random set gives one
-  mean score (one null draw at the level of sets); the concept's mean score is tested as one new draw
-  against them (``ttest_ind`` with a sample of one). Its level is right by exchangeability (null
-  simulation, 10 random sets, 60 trials: 1.7% significant at p < 0.05), but where a
-  set's score is mostly decided by the set (as on the demo's cnn) it has little power: road, score 0.93 on
-  class road, p = 1 after Bonferroni with 30 random sets, where ``runs`` gives p = 0.0027.
+- Alignment (``statistic = "alignment"``, default): the mean over that class's tiles of the cosine between
+  the class logit's gradient at the layer (summed over positions for ``pool = "mean"``) and the CAV. The TCAV
+  score counts only signs: where the gradient points the same way on every tile (as on the zoo's cnn one block
+  before the head), every direction, random ones included, scores near 0 or 1, and the score cannot tell a
+  concept from a random direction (on the demo's cnn, 20 random sets posing as concepts scored from 0.01 to
+  0.99 on class road). The cosine keeps how far the gradient leans towards the CAV: random directions lean
+  little (null spread 0.06-0.12), concepts the model uses lean far (road on class road 0.31-0.36).
+  ``statistic = "score"`` tests the TCAV score itself (Kim et al.).
+- Significance (``test = "set"``, default): every random set posing as a concept against each of the others
+  gives one null draw at the level of sets (its mean statistic); the concept's mean statistic over its runs
+  against the random sets is tested as one new draw against them (two-sided; scipy ``ttest_ind`` with a sample
+  of one, i.e. a t prediction interval). Under the null a concept set is one more random set, so the level
+  holds by exchangeability: NULL_SET_RESULT. ``test = "runs"`` (Kim et al. 2018): concept run r = CAV of the
+  concept examples against random set r; random-concept run r = CAV of random set r against random set r+1
+  (mod R); the two-sided two-sample t-test (scipy ``ttest_ind``) of the concept runs' statistics against the
+  random runs'. Its runs share the concept set's luck, so it runs above its level (GateNet, 10 random sets,
+  100 trials, TCAV score: 20% significant at p < 0.05, 37% with 30 random sets): a variant for comparison with
+  published numbers, not for verdicts. With ``resample = true`` (default; runs test only) the positive
+  examples of each run are a bootstrap resample (seeded). Power on the zoo (default layer, 20 random sets of
+  80 tiles, Bonferroni over 7 types): POWER_RESULT.
   ``correction = "bonferroni"`` (default) multiplies p by the number of concepts (capped at 1),
-  ``"none"`` reports raw p-values. Rows: ``score`` = mean over concept runs, ``spread`` = their standard
-  deviation, ``p_value`` as above.
+  ``"none"`` reports raw p-values. Rows: ``score`` = the TCAV score (mean over the concept runs), ``spread`` =
+  its standard deviation over the runs, ``p_value`` as above (for the tested statistic).
 - ``type_importance[type]`` is taken on the class the type is meant to drive (the class whose label rule
-  uses the type, from ``context.driving_types``): mean concept-run score minus mean random-run score on
-  that class (0 = no effect beyond random directions). A type that drives no class is scored on every
+  uses the type, from ``context.driving_types``): the concept's mean statistic minus its mean under the null
+  (the random sets'; 0 = no effect beyond random directions). A type that drives no class is scored on every
   class that some type drives, keeping the class with the largest value (a claim that it drives any of
   them). ``flagged[type]``: on such a class the effect is positive and the corrected p-value is below
   ``alpha``. A type whose class has no explained tile is left out (not assessable).
-  Raw scores on that class: ``extras['tcav_scores']``; the class used: ``extras['type_class']``.
+  Raw TCAV scores on that class: ``extras['tcav_scores']``; the class used: ``extras['type_class']``; the
+  statistic per run: ``extras['concept_statistics']``.
 - Pixel attribution (documented choice): concept-presence maps at the layer, weighted by how much the
   concept pushes the tile's target. For each concept C with mean CAV v and random-set mean activation mu,
   presence(i, j) = relu(v . (A(i, j) - mu)) (per position; for ``pool = "none"`` with the position's own
-  CAV slice); attribution = sum_C (score_C(target) - random score(target)) * presence_C, upsampled
-  bilinearly.
+  CAV slice); attribution = sum_C effect_C(target) * presence_C with effect_C the concept's mean statistic
+  minus its null mean on the tile's target class, upsampled bilinearly.
 """
 
 from __future__ import annotations
@@ -153,6 +154,22 @@ def run_scores(gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: n
     return np.array([positive[targets == k].mean() for k in classes])
 
 
+def run_alignments(gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Alignment of the unit direction ``v`` per class: the mean over that class's tiles of the cosine between
+    the class logit's gradient at the layer and ``v`` (0 where a tile's gradient is zero)."""
+    norms = np.linalg.norm(gfeat, axis=1)
+    cosine = np.divide(gfeat @ v, norms, out=np.zeros(len(gfeat)), where=norms > 0)
+    return np.array([cosine[targets == k].mean() for k in classes])
+
+
+def run_statistics(
+    gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: np.ndarray, statistic: str
+) -> np.ndarray:
+    """The tested statistic of direction ``v`` per class: ``score`` (TCAV score) or ``alignment``."""
+    fn = run_scores if statistic == "score" else run_alignments
+    return fn(gfeat, targets, classes, v)
+
+
 def _run_layer(
     model: ModelHandle,
     images: np.ndarray,
@@ -166,6 +183,7 @@ def _run_layer(
     regularization: float,
     resample: bool,
     test: str,
+    statistic: str,
     seed: int,
     batch_size: int,
 ) -> dict[str, Any]:
@@ -201,48 +219,49 @@ def _run_layer(
 
     def positives(name: str, salt: int, r: int) -> np.ndarray:
         f = feats[name]
-        if not resample:
+        if not resample or test == "set":  # the set test compares whole sets: the concept's as the random ones'
             return f
         rng = np.random.default_rng([seed, salt, r])
         return f[rng.integers(0, len(f), len(f))]
 
     n_r = len(randoms)
-    random_runs = np.array(
-        [
-            run_scores(
-                gfeat,
-                targets,
-                classes,
-                _cav(positives(randoms[r], 7919, r), feats[randoms[(r + 1) % n_r]], regularization, seed + r),
-            )
-            for r in range(n_r)
-        ]
-    )  # (runs, classes)
+    random_cavs = [
+        _cav(positives(randoms[r], 7919, r), feats[randoms[(r + 1) % n_r]], regularization, seed + r)
+        for r in range(n_r)
+    ]
+    random_runs = np.array([run_scores(gfeat, targets, classes, v) for v in random_cavs])  # (runs, classes)
+    random_stats = np.array([run_statistics(gfeat, targets, classes, v, statistic) for v in random_cavs])
     set_means = None
-    if test == "set":  # each random set posing as a concept against the others: its mean score is one null draw
+    if test == "set":  # each random set posing as a concept against the others: its mean statistic is one null draw
         pair = np.full((n_r, n_r, len(classes)), np.nan)
         for i in range(n_r):
             for j in range(i + 1, n_r):
                 v = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 5000 + i * n_r + j)
-                pair[i, j] = run_scores(gfeat, targets, classes, v)
-                pair[j, i] = run_scores(gfeat, targets, classes, -v)  # the CAV of j against i points the other way
+                pair[i, j] = run_statistics(gfeat, targets, classes, v, statistic)
+                # the CAV of j against i points the other way
+                pair[j, i] = run_statistics(gfeat, targets, classes, -v, statistic)
         set_means = np.nanmean(pair, axis=1)  # (n_r, classes)
-    concept_runs, cavs = {}, {}
+    concept_runs, concept_stats, cavs = {}, {}, {}
     for ci, concept in enumerate(concepts):
         vs = [
             _cav(positives(concept, ci, r), feats[randoms[r]], regularization, seed + 1000 * (ci + 1) + r)
             for r in range(n_r)
         ]
         concept_runs[concept] = np.array([run_scores(gfeat, targets, classes, v) for v in vs])
+        concept_stats[concept] = np.array([run_statistics(gfeat, targets, classes, v, statistic) for v in vs])
         v = np.mean(vs, axis=0)
         cavs[concept] = v / (np.linalg.norm(v) or 1.0)
     mu = np.concatenate([raw[r] for r in randoms])
     mu = mu.mean(axis=(0, 2, 3)) if pool == "mean" else mu.mean(axis=0)
+    null = set_means if test == "set" else random_stats
     return {
         "classes": classes,
         "random_runs": random_runs,
+        "random_stats": random_stats,
         "set_means": set_means,
+        "null_mean": null.mean(axis=0),  # (classes,): the tested statistic's mean under the null
         "concept_runs": concept_runs,
+        "concept_stats": concept_stats,
         "cavs": cavs,
         "acts": acts_a,
         "mu": mu,
@@ -253,12 +272,12 @@ def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], corr
     m_tests = len(concepts) if correction == "bonferroni" else 1
     rows = []
     for concept in concepts:
-        c_runs = res["concept_runs"][concept]
+        c_runs, c_stats = res["concept_runs"][concept], res["concept_stats"][concept]
         for j, k in enumerate(res["classes"]):
             if test == "runs":
-                p = ttest_runs(c_runs[:, j], res["random_runs"][:, j])
-            else:  # the concept's mean score as one new draw against the random sets' mean scores
-                p = ttest_runs(c_runs[:, j].mean(keepdims=True), res["set_means"][:, j])
+                p = ttest_runs(c_stats[:, j], res["random_stats"][:, j])
+            else:  # the concept's mean statistic as one new draw against the random sets' mean statistics
+                p = ttest_runs(c_stats[:, j].mean(keepdims=True), res["set_means"][:, j])
             rows.append(
                 {
                     "concept": concept,
@@ -285,16 +304,18 @@ def _rows(res: dict[str, Any], concepts: list[str], class_names: list[str], corr
         "pool": Field("str", "mean", choices=("mean", "none"), doc="spatial pooling of the activations"),
         "regularization": Field("number", 1.0, low=0.0, low_open=True, doc="inverse strength C of the CAV's fit"),
         "resample": Field("bool", True, doc="each run draws its own concept examples"),
-        "test": Field("str", "runs", choices=("runs", "set"), doc="significance over runs (Kim et al.) or one set"),
+        "test": Field("str", "set", choices=("set", "runs"), doc="significance over sets, or over runs (Kim et al.)"),
+        "statistic": Field("str", "alignment", choices=("alignment", "score"), doc="the tested statistic"),
         "correction": Field("str", "bonferroni", choices=("bonferroni", "none"), doc="over concepts"),
         "alpha": Field("number", 0.05, low=0.0, high=1.0, low_open=True, doc="significance level"),
         "min_random": Field("int", 10, low=2, doc="random example sets needed at least"),
     },
     description="concept activation vectors from example sets (logistic regression at a layer); TCAV "
-    "score per (concept, class) on that class's tiles; two-sided t-test of concept runs against "
-    "random-concept runs (Kim et al.), Bonferroni over concepts; attribution = weighted concept-presence maps",
+    "score per (concept, class) on that class's tiles; significance of the gradient's alignment with the CAV "
+    "against random sets posing as concepts (Kim et al.'s runs test as a variant), Bonferroni over concepts; "
+    "attribution = weighted concept-presence maps",
 )
-@signed_maps(True)  # concept presence weighted by (TCAV score - 0.5): negative for counter-evidence
+@signed_maps(True)  # concept presence weighted by the concept's effect: negative for counter-evidence
 def tcav(
     model,
     images,
@@ -307,6 +328,7 @@ def tcav(
     regularization,
     resample,
     test,
+    statistic,
     correction,
     alpha,
     min_random,
@@ -334,6 +356,7 @@ def tcav(
     )
     common = dict(
         test=test,
+        statistic=statistic,
         pool=pool,
         regularization=regularization,
         resample=resample,
@@ -350,7 +373,7 @@ def tcav(
         layer_rows += [{"layer": other, **r} for r in _rows(other_res, concepts, class_names, correction, test)]
 
     classes = [int(k) for k in res["classes"]]
-    random_mean = res["random_runs"].mean(axis=0)  # (classes,)
+    null_mean = res["null_mean"]  # (classes,): the tested statistic's mean under the null
     by_key = {(r["concept"], r["class_name"]): r for r in rows}
     importance: dict[str, float] = {}
     flagged: dict[str, bool] = {}
@@ -363,7 +386,7 @@ def tcav(
                 continue  # no explained tile of that class
             j = classes.index(k)
             row = by_key[(concept, class_names[k] if k < len(class_names) else str(k))]
-            effect = row["score"] - float(random_mean[j])
+            effect = float(res["concept_stats"][concept][:, j].mean()) - float(null_mean[j])
             hit = effect > 0 and row["p_value"] < alpha
             if best is None or (hit, effect) > (best[1], best[0]):
                 best = (effect, hit, row["score"], row["class_name"])
@@ -383,7 +406,7 @@ def tcav(
             presence = np.einsum("nkij,k->nij", centred, v)
         else:
             presence = (centred * v.reshape(acts_a.shape[1:])[None]).sum(axis=1)
-        effect = res["concept_runs"][concept].mean(axis=0) - random_mean
+        effect = res["concept_stats"][concept].mean(axis=0) - null_mean
         low += effect[col][:, None, None] * np.maximum(presence, 0.0)
     attributions = upsample(low.astype(np.float32), images.shape[2:], "bilinear")
 
@@ -400,7 +423,10 @@ def tcav(
             "random_runs": res["random_runs"],
             "set_means": res["set_means"],
             "test": test,
+            "statistic": statistic,
             "concept_runs": res["concept_runs"],
+            "concept_statistics": res["concept_stats"],
+            "null_mean": res["null_mean"],
             "tcav_scores": tcav_scores,
             "type_class": type_class,
             "classes": classes,

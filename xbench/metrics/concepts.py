@@ -9,10 +9,10 @@ types can be false alarms.
 
 A method's evidence per type, on the class the type is meant to drive (the class whose label rule uses it;
 a type that drives no class: the classes some type drives):
-- **concept methods** (``concept_report`` given): ``concept_report.type_importance`` and
-  ``concept_report.flagged``. ``tcav``: mean TCAV score of the concept runs minus that of the
-  random-concept runs on that class; ``activation-clusters``: mean drop of that class's probability when
-  the cluster labelled with the type is replaced, on that class's tiles.
+- **concept methods** (``concept_report`` given): ``concept_report.type_importance`` and ``concept_report.flagged``.
+  ``tcav``: the concept's mean alignment (cosine between the class logit's gradient and the CAV) minus the random
+  sets' mean on that class; ``activation-clusters``: mean drop of that class's probability when the cluster labelled
+  with the type is replaced, on that class's tiles.
 - **pixel methods**: per tile, the type's *enrichment* = (mean attribution inside the type's mask - mean
   attribution over the tile) / standard deviation of the attribution over the tile (scale-free; 0 for a
   map unrelated to the type, whatever the type's area). Tiles used: those holding the type whose target
@@ -23,7 +23,7 @@ a type that drives no class: the classes some type drives):
 **One flagging rule for every family**: a type is flagged when its effect on its class is positive and
 significant: a two-sided t-test over the method's samples (pixel methods: the per-tile enrichments
 against 0; ``activation-clusters``: the per-tile probability drops against 0, with the truth's practical
-floor of 0.02; ``tcav``: Kim et al.'s test of the concept runs against the random-concept runs), at level
+floor of 0.02; ``tcav``: the concept's alignment against random sets posing as concepts), at level
 ``alpha`` (0.05) with Bonferroni over the types. Concept explainers apply it themselves (their ``flagged``);
 pixel methods get it here.
 
@@ -184,8 +184,8 @@ _ALPHA_FIELD = Field("number", 0.05, low=0.0, high=1.0, doc="significance level 
     "concept-recovery",
     definition="AUROC (Mann-Whitney, ties 1/2) of the method's importance per structure type for telling the "
     "types the model relies on (relied-on look-alikes included) from the unused types; importance on the class "
-    "the type drives (pixel methods: mean enrichment of the attribution in the type's mask; tcav: concept-run "
-    "minus random-run score; activation-clusters: probability drop of the matched cluster). Chance level 0.5 "
+    "the type drives (pixel methods: mean enrichment of the attribution in the type's mask; tcav: the concept's "
+    "alignment minus the random sets'; activation-clusters: probability drop of the matched cluster). Chance level 0.5 "
     "(the mean over every assignment of the values to the types); 1 = every relied-on type ranked first",
     citation="Interventional reliance from counterfactual twins vs. method importance per type (concept scores "
     "after Kim et al., ICML 2018; Ghorbani et al., NeurIPS 2019); AUROC as the Mann-Whitney U / (n1 n2): "
