@@ -533,6 +533,18 @@ def test_markdown_tables_mark_best_and_significance(report):
     assert "per seed†" in md  # 'seconds' has one value per seed
 
 
+def test_methods_text_names_the_concept_example_sets():
+    from xbench.report.methods import concept_sets_sentences
+
+    manifest = {
+        "explainers": {"tcav": {}, "activation-clusters": {}},
+        "run_settings": {"concept_set_size": 80, "random_sets": 20, "fit_tiles": 150},
+    }
+    text = " ".join(concept_sets_sentences(manifest))
+    assert "example sets of 80 synthetic tiles" in text and "20 random sets" in text and "150 correctly" in text
+    assert concept_sets_sentences({"explainers": {"gradient": {}}, "run_settings": manifest["run_settings"]}) == []
+
+
 def test_methods_text_and_bibliography(report):
     text = (report.out_dir / "methods.md").read_text()
     bib = (report.out_dir / "refs.bib").read_text()

@@ -75,7 +75,9 @@ def test_every_removal_curve_runs_over_the_fraction_removed(self_check_run) -> N
 
 def test_calibrated_noise_and_verified_truth_reach_the_run(self_check_run) -> None:
     manifest = json.loads((self_check_run / "manifest.json").read_text())
-    assert "calibrated" in json.dumps(manifest)  # the chosen infidelity noise level is in the manifest
+    assert "calibrated" in json.dumps(manifest)  # the infidelity perturbation's size is in the manifest
+    # the [run] settings behind concept verdicts are recorded for the methods text (tests/conftest.py's task)
+    assert manifest["run_settings"] == {"concept_set_size": 10, "random_sets": 10, "fit_tiles": 40}
     records = pd.read_parquet(self_check_run / "records.parquet")
     verified = records[(records["metric"] == "mass-accuracy") & (records["truth"] == "verified")]
     assert np.isfinite(verified["value"]).mean() > 0.9  # Shapley shares leave few tiles without evidence

@@ -122,7 +122,22 @@ def data_paragraph(task: str, m: dict[str, Any], bands: list[str] | None) -> str
     parts.append(f"Spurious cue: {d['cue']}." if d.get("cue") else "No spurious cue was added.")
     if m.get("explain_tiles"):
         parts.append(f"Explanations and metrics were computed on {m['explain_tiles']} test tiles per model and seed.")
+    parts += concept_sets_sentences(m)
     return " ".join(parts)
+
+
+def concept_sets_sentences(m: dict[str, Any]) -> list[str]:
+    """The [run] settings behind the concept explainers' verdicts, when a concept explainer ran."""
+    run, explainers = m.get("run_settings") or {}, m.get("explainers") or {}
+    out = []
+    if "tcav" in explainers and run.get("concept_set_size") and run.get("random_sets"):
+        out.append(
+            f"TCAV's concept activation vectors were fitted on example sets of {run['concept_set_size']} synthetic "
+            f"tiles per structure type, tested against {run['random_sets']} random sets of the same size."
+        )
+    if "activation-clusters" in explainers and run.get("fit_tiles"):
+        out.append(f"Activation clusters were fitted on up to {run['fit_tiles']} correctly classified training tiles.")
+    return out
 
 
 # Accuracy keys in a manifest's model rows: the short names of the result-store contract, or the long

@@ -310,6 +310,10 @@ def portable_path(path: str | Path) -> str:
     return p.name
 
 
+# [run] settings that can move a verdict (concept example sets, the clusters' fitting set), for the methods text.
+RECORDED_RUN_SETTINGS = ("concept_set_size", "random_sets", "fit_tiles")
+
+
 def write_georeference(out: Path, task: Any) -> None:
     """``georef.csv`` in the run folder when the test tiles were read from georeferenced rasters: for each
     test tile (the ``tile`` of the records) its source raster, pixel row/col, transform and CRS, so a user
@@ -504,6 +508,7 @@ def assemble(
         "metrics": {k: task.metric_settings.get(k, {}) for k in task.metrics},
         "metric_order": list(grid.metrics),
         "explain_tiles": int(len(next(iter(preps.values())).explain_index)) if preps else 0,
+        "run_settings": {k: task.run[k] for k in RECORDED_RUN_SETTINGS if k in task.run},
         "skipped": grid.skipped,
         "skipped_metrics": list(summary.skipped_metrics),
         "undefined_values": list(summary.undefined),
