@@ -192,3 +192,39 @@ def test_cluster_figure_table_and_render():
     labels = [a.get_ylabel() for a in fig.get_axes()] + [a.get_xlabel() for a in fig.get_axes()]
     assert "mean probability drop (original - replaced)" in labels
     assert not any("change in class probability" in x for x in labels)
+
+
+def test_the_oracle_is_the_top_anchor_of_the_concept_metrics():
+    # The model relies on road and on the river look-alike, not on the clearing the labels are made of. The
+    # oracle's planted map covers the driving types (road, clearing): as a pixel map it would flag clearing (a
+    # false alarm) and miss the river. With the measured reliance in its context it reports that reliance as its
+    # concept evidence, so it sits at the top of every concept metric by construction (an anchor, like the
+    # planted mask for localization): recovery 1, detection 1, false alarm 0.
+    from xbench.explainers import ExplainContext, explain
+    from xbench.models.base import ModelHandle
+
+    black_box = ModelHandle("bb", 2, predict_fn=lambda x: np.tile([0.5, 0.5], (len(x), 1)))
+    n, h, w = 6, 10, 10
+    importance = {"road": 0.5, "clearing": 0.02, "river": 0.3, "outcrop": -0.05}  # measured mean drops
+    inputs = concept_inputs(np.zeros((n, h, w), np.float32), targets=np.ones(n, int), type_importance=importance)
+    ctx = ExplainContext(
+        masks=inputs.type_masks,
+        mask_names=list(inputs.mask_names),
+        driving_types={1: ["road", "clearing"]},
+        reliance=importance,
+        relied_types=["road", "river"],
+    )
+    exp = explain("oracle", black_box, inputs.images, inputs.targets, ctx)
+    assert exp.concepts.flagged == {"road": True, "clearing": False, "river": True, "outcrop": False}
+    np.testing.assert_array_equal(exp.attributions > 0, inputs.type_masks[:, 0] | inputs.type_masks[:, 1])
+    inputs.attributions, inputs.concept_report = exp.attributions, exp.concepts
+    assert values(inputs) == {"concept-recovery": 1.0, "concept-detection": 1.0, "concept-false-alarm": 0.0}
+    # the same planted map read as a pixel method: clearing is flagged (a false alarm) and the river missed
+    inputs.concept_report = None
+    pixel = values(inputs)
+    assert pixel["concept-false-alarm"] > 0 and pixel["concept-detection"] < 1
+    # without measured reliance (a user's tile pack) the oracle is a plain map
+    plain = explain(
+        "oracle", black_box, inputs.images, inputs.targets, ExplainContext(**{**ctx.__dict__, "reliance": None})
+    )
+    assert plain.concepts is None

@@ -52,6 +52,9 @@ class ExplainContext:
         fraction of a band's spread (``smoothgrad``); when absent, the spread of the explained tiles is used.
     self_checks: a dict the caller passes to receive per-tile self-checks an explainer can make of itself
         (``completeness-gap`` of integrated gradients and DeepLIFT, float (N,)); None = not wanted.
+    reliance / relied_types: the model's measured reliance per structure type (interventional importance, the
+        truth of the concept metrics) and the types it relies on; the ``oracle`` control reports them as its
+        concept evidence. None = not measured (a user's tile pack).
     """
 
     seed: int = 0
@@ -67,6 +70,8 @@ class ExplainContext:
     concept_sets: dict[str, np.ndarray] | None = None
     band_spread: np.ndarray | None = None
     self_checks: dict[str, np.ndarray] | None = None
+    reliance: dict[str, float] | None = None
+    relied_types: list[str] | None = None
 
     def rng(self, stream: int = 0) -> np.random.Generator:
         """A numpy generator seeded from ``seed`` (``stream`` separates independent uses)."""

@@ -6,6 +6,12 @@
   an edge detector).
 - ``oracle``: the planted mask of the target class's driving structure types; an upper bound for
   localization metrics (not necessarily for faithfulness: the model may not use every planted pixel).
+  When the context carries the model's measured reliance (``context.reliance``, ``context.relied_types``),
+  the oracle also reports it as its concept evidence (importance = the interventional importance per type,
+  flagged = the relied-on types), so that it is the top anchor of the concept metrics too (recovery below 1
+  only where an unused type's mean drop exceeds a relied-on type's without being significant): the planted mask
+  says what the labels are made of, which is not what a model relies on when it uses a look-alike or ignores
+  a driving type.
 
 None of them calls the model, so all work with black boxes and cost zero model calls.
 """
@@ -17,7 +23,7 @@ from scipy import ndimage
 from skimage.filters import sobel
 
 from xbench.errors import XbenchInputError
-from xbench.explainers.base import signed_maps
+from xbench.explainers.base import ConceptReport, signed_maps
 from xbench.explainers.registry import register_explainer
 from xbench.schema import Field
 
@@ -76,7 +82,8 @@ def edges(model, images, targets, context, *, sigma, combine):
     kind="control",
     defaults={},
     description="1 on the planted pixels of the target class's driving structure types "
-    "(context.driving_types), 0 elsewhere; needs the planted masks",
+    "(context.driving_types), 0 elsewhere; needs the planted masks; reports the measured reliance per type as "
+    "its concept evidence",
 )
 @signed_maps(False)
 def oracle(model, images, targets, context):
@@ -103,4 +110,8 @@ def oracle(model, images, targets, context):
         planes = [names.index(t) for t in driving.get(int(targets[i]), [])]
         if planes:
             out[i] = masks[i, planes].any(axis=0)
-    return out
+    if context.reliance is None:
+        return out
+    relied = set(context.relied_types or [])
+    importance = {str(t): float(v) for t, v in context.reliance.items()}
+    return out, ConceptReport(type_importance=importance, flagged={t: t in relied for t in importance})

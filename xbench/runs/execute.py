@@ -215,6 +215,7 @@ def explain_context(prep: Prepared, cell: Cell) -> ExplainContext:
     from xbench.explainers import ExplainContext
 
     task = prep.task
+    importance, relied, _, _ = type_groups(prep)
     return ExplainContext(
         seed=int(cell.seed),
         batch_size=int(task.run["batch_size"]),
@@ -229,6 +230,8 @@ def explain_context(prep: Prepared, cell: Cell) -> ExplainContext:
         concept_sets=prep.concept_sets,
         band_spread=prep.band_spread,
         self_checks={},
+        reliance=importance,
+        relied_types=relied,
     )
 
 
