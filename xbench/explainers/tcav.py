@@ -32,7 +32,9 @@ direct implementation on arrays is shorter and keeps everything in memory and se
   gives one null draw at the level of sets (its mean statistic); the concept's mean statistic over its runs
   against the random sets is tested as one new draw against them (two-sided; scipy ``ttest_ind`` with a sample
   of one, i.e. a t prediction interval). Under the null a concept set is one more random set, so the level
-  holds by exchangeability: NULL_SET_RESULT. ``test = "runs"`` (Kim et al. 2018): concept run r = CAV of the
+  holds by exchangeability: null simulation through this code (tests/bench/bench_tcav_null.py, a random set posing
+  as the concept) on the demo's cnn with 20 random sets of 80 tiles, 2.5% of 200 tests significant at p < 0.05;
+  on a hand-built network with 10 sets, 1% of 100. ``test = "runs"`` (Kim et al. 2018): concept run r = CAV of the
   concept examples against random set r; random-concept run r = CAV of random set r against random set r+1
   (mod R); the two-sided two-sample t-test (scipy ``ttest_ind``) of the concept runs' statistics against the
   random runs'. Its runs share the concept set's luck, so it runs above its level (GateNet, 10 random sets,
