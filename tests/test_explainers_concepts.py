@@ -454,3 +454,28 @@ def test_make_concept_sets_from_the_synthesizer():
     assert kinds == {types[0]}
     with pytest.raises(XbenchInputError, match="catalogue"):
         make_concept_sets(recipe, 32, ["no-such-type"], 2, 2, 0)
+
+
+def test_tcav_fits_its_cavs_once_per_model_state():
+    # Metrics re-run the explainer on perturbed copies of the tiles with the same model; the CAVs depend on the
+    # model's weights, the layer, the example sets and the settings only, so they are fitted once. Another
+    # model state (the randomization cascade) gets its own fit.
+    from xbench.explainers import tcav as tcav_module
+
+    tcav_module._CAV_FITS.clear()
+    model = ModelHandle("pooled", 2, module=PooledHeadNet().eval())
+    rng = np.random.default_rng(5)
+    sets = {f"random-{i}": band_offset_tiles(rng, 12) for i in range(10)}
+    sets["band0-lines"] = band_offset_tiles(rng, 12, band=0)
+    x = band_offset_tiles(rng, 8)
+    ctx = ExplainContext(concept_sets=sets, class_names=["a", "b"])
+    first = explain("tcav", model, x, np.ones(8, int), ctx, layer="relu")
+    again = explain("tcav", model, x + 0.01, np.ones(8, int), ctx, layer="relu")
+    assert len(tcav_module._CAV_FITS.entries) == 1
+    np.testing.assert_array_equal(first.concepts.cavs["band0-lines"], again.concepts.cavs["band0-lines"])
+    fresh = explain("tcav", model, x, np.ones(8, int), ctx, layer="relu")
+    np.testing.assert_array_equal(first.attributions, fresh.attributions)  # a cached fit gives the same maps
+    with torch.no_grad():
+        model.module.head.weight[1, 0] = -2.0
+    explain("tcav", model, x, np.ones(8, int), ctx, layer="relu")
+    assert len(tcav_module._CAV_FITS.entries) == 2

@@ -324,6 +324,49 @@ def torch_module(model: ModelHandle) -> nn.Module:
     return model.module
 
 
+def fit_content_key(model: ModelHandle, arrays: list[np.ndarray], settings: tuple) -> str | None:
+    """A content key for state an explainer fits once and reuses within a process (metrics re-run an explainer
+    on the same model many times): the module's weights (parameters and buffers), the arrays' bytes and the
+    settings. None for a model without a torch module."""
+    import hashlib
+
+    module = model.module
+    if module is None:
+        return None
+    digest = hashlib.blake2b(digest_size=16)
+    for name, tensor in module.state_dict().items():
+        digest.update(name.encode())
+        digest.update(tensor.detach().contiguous().cpu().numpy().tobytes())
+    for array in arrays:
+        a = np.ascontiguousarray(array)
+        digest.update(repr((a.shape, str(a.dtype))).encode())
+        digest.update(a.tobytes())
+    digest.update(repr(settings).encode())
+    return digest.hexdigest()
+
+
+class FitCache:
+    """Fitted state of one explainer in this process, by content key; the oldest entries are dropped beyond
+    ``size`` (each may hold activations of a few MB)."""
+
+    def __init__(self, size: int = 4) -> None:
+        self.size = size
+        self.entries: dict[str, Any] = {}
+
+    def get_or_fit(self, key: str | None, fit: Callable[[], Any]) -> Any:
+        """The entry of ``key``, fitted by ``fit()`` the first time (always fitted when ``key`` is None)."""
+        if key is None:
+            return fit()
+        if key not in self.entries:
+            self.entries[key] = fit()
+            while len(self.entries) > self.size:
+                self.entries.pop(next(iter(self.entries)))
+        return self.entries[key]
+
+    def clear(self) -> None:
+        self.entries.clear()
+
+
 def score_function(key: str, model: ModelHandle, score: str) -> Callable[[torch.Tensor], torch.Tensor]:
     """A forward function ``x (B, C, H, W) tensor -> class scores (B, n_classes) float32 tensor``.
 

@@ -76,11 +76,13 @@ from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
     LAYER_FIELD,
     ConceptReport,
+    FitCache,
     LayerTap,
     as_numpy,
     as_tensor,
     backward_counted,
     batches,
+    fit_content_key,
     layer_activations,
     signed_maps,
     torch_module,
@@ -172,6 +174,73 @@ def run_statistics(
     return fn(gfeat, targets, classes, v)
 
 
+# CAVs fitted in this process by content (model weights, layer, example sets, settings, seed): metrics re-run
+# the explainer on perturbed copies of the tiles with the same model, and the CAVs do not depend on the tiles.
+_CAV_FITS = FitCache()
+
+
+def _fit_cavs(
+    model: ModelHandle,
+    sets: dict[str, np.ndarray],
+    concepts: list[str],
+    randoms: list[str],
+    layer: str,
+    *,
+    pool: str,
+    regularization: float,
+    resample: bool,
+    test: str,
+    seed: int,
+    batch_size: int,
+) -> dict[str, Any]:
+    """Every CAV of one layer: the random runs', the random pairs' (set test), the concept runs' and each
+    concept's mean direction; the random sets' mean activation; each set's layer map shape."""
+    feats, shapes, sums, count = {}, {}, None, 0
+    for name in concepts + randoms:
+        a = layer_activations(KEY, model, layer, sets[name], batch_size)
+        shapes[name] = a.shape[1:]
+        feats[name] = _features(a, pool)
+        if name in randoms:
+            part = a.sum(axis=(0, 2, 3)) if pool == "mean" else a.sum(axis=0)
+            sums = part if sums is None else sums + part
+            count += a.shape[0] * (a.shape[2] * a.shape[3] if pool == "mean" else 1)
+
+    def positives(name: str, salt: int, r: int) -> np.ndarray:
+        f = feats[name]
+        if not resample or test == "set":  # the set test compares whole sets: the concept's as the random ones'
+            return f
+        rng = np.random.default_rng([seed, salt, r])
+        return f[rng.integers(0, len(f), len(f))]
+
+    n_r = len(randoms)
+    random_cavs = [
+        _cav(positives(randoms[r], 7919, r), feats[randoms[(r + 1) % n_r]], regularization, seed + r)
+        for r in range(n_r)
+    ]
+    pair_cavs = {}
+    if test == "set":
+        for i in range(n_r):
+            for j in range(i + 1, n_r):
+                pair_cavs[i, j] = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 5000 + i * n_r + j)
+    concept_cavs, cavs = {}, {}
+    for ci, concept in enumerate(concepts):
+        vs = [
+            _cav(positives(concept, ci, r), feats[randoms[r]], regularization, seed + 1000 * (ci + 1) + r)
+            for r in range(n_r)
+        ]
+        concept_cavs[concept] = vs
+        v = np.mean(vs, axis=0)
+        cavs[concept] = v / (np.linalg.norm(v) or 1.0)
+    return {
+        "random_cavs": random_cavs,
+        "pair_cavs": pair_cavs,
+        "concept_cavs": concept_cavs,
+        "cavs": cavs,
+        "mu": sums / max(count, 1),
+        "shapes": shapes,
+    }
+
+
 def _run_layer(
     model: ModelHandle,
     images: np.ndarray,
@@ -205,56 +274,51 @@ def _run_layer(
     grads_a, acts_a = np.concatenate(grads), np.concatenate(acts)
     gfeat = grads_a.sum(axis=(2, 3)) if pool == "mean" else grads_a.reshape(n, -1)
     gfeat = gfeat.astype(np.float64)
-    feats, raw = {}, {}
-    for name in concepts + randoms:
-        a = layer_activations(KEY, model, layer, sets[name], batch_size)
-        if pool == "none" and a.shape[1:] != acts_a.shape[1:]:
+    settings = (layer, pool, regularization, resample, test, seed, tuple(concepts), tuple(randoms))
+    key = fit_content_key(model, [sets[name] for name in concepts + randoms], settings)
+    fit = _CAV_FITS.get_or_fit(
+        key,
+        lambda: _fit_cavs(
+            model,
+            sets,
+            concepts,
+            randoms,
+            layer,
+            pool=pool,
+            regularization=regularization,
+            resample=resample,
+            test=test,
+            seed=seed,
+            batch_size=batch_size,
+        ),
+    )
+    for name, shape in fit["shapes"].items():
+        if pool == "none" and shape != acts_a.shape[1:]:
             raise XbenchInputError(
                 f"explainer '{KEY}': context.concept_sets['{name}']",
                 "layer map size differs from the explained tiles' (pool = 'none' needs equal sizes)",
                 expected=acts_a.shape[1:],
-                found=a.shape[1:],
+                found=shape,
             )
-        raw[name] = a
-        feats[name] = _features(a, pool)
     classes = np.unique(targets)
-
-    def positives(name: str, salt: int, r: int) -> np.ndarray:
-        f = feats[name]
-        if not resample or test == "set":  # the set test compares whole sets: the concept's as the random ones'
-            return f
-        rng = np.random.default_rng([seed, salt, r])
-        return f[rng.integers(0, len(f), len(f))]
-
-    n_r = len(randoms)
-    random_cavs = [
-        _cav(positives(randoms[r], 7919, r), feats[randoms[(r + 1) % n_r]], regularization, seed + r)
-        for r in range(n_r)
-    ]
+    random_cavs = fit["random_cavs"]
     random_runs = np.array([run_scores(gfeat, targets, classes, v) for v in random_cavs])  # (runs, classes)
     random_stats = np.array([run_statistics(gfeat, targets, classes, v, statistic) for v in random_cavs])
     set_means = None
     if test == "set":  # each random set posing as a concept against the others: its mean statistic is one null draw
+        n_r = len(randoms)
         pair = np.full((n_r, n_r, len(classes)), np.nan)
-        for i in range(n_r):
-            for j in range(i + 1, n_r):
-                v = _cav(feats[randoms[i]], feats[randoms[j]], regularization, seed + 5000 + i * n_r + j)
-                pair[i, j] = run_statistics(gfeat, targets, classes, v, statistic)
-                # the CAV of j against i points the other way
-                pair[j, i] = run_statistics(gfeat, targets, classes, -v, statistic)
+        for (i, j), v in fit["pair_cavs"].items():
+            pair[i, j] = run_statistics(gfeat, targets, classes, v, statistic)
+            # the CAV of j against i points the other way
+            pair[j, i] = run_statistics(gfeat, targets, classes, -v, statistic)
         set_means = np.nanmean(pair, axis=1)  # (n_r, classes)
-    concept_runs, concept_stats, cavs = {}, {}, {}
-    for ci, concept in enumerate(concepts):
-        vs = [
-            _cav(positives(concept, ci, r), feats[randoms[r]], regularization, seed + 1000 * (ci + 1) + r)
-            for r in range(n_r)
-        ]
+    concept_runs, concept_stats = {}, {}
+    for concept in concepts:
+        vs = fit["concept_cavs"][concept]
         concept_runs[concept] = np.array([run_scores(gfeat, targets, classes, v) for v in vs])
         concept_stats[concept] = np.array([run_statistics(gfeat, targets, classes, v, statistic) for v in vs])
-        v = np.mean(vs, axis=0)
-        cavs[concept] = v / (np.linalg.norm(v) or 1.0)
-    mu = np.concatenate([raw[r] for r in randoms])
-    mu = mu.mean(axis=(0, 2, 3)) if pool == "mean" else mu.mean(axis=0)
+    cavs, mu = fit["cavs"], fit["mu"]
     null = set_means if test == "set" else random_stats
     return {
         "classes": classes,
