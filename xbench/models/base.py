@@ -171,9 +171,16 @@ LAYOUT_TOLERANCE = 1e-3
 INFERENCE_TOLERANCE = 1e-4
 
 
-def _weights_signature(module: nn.Module) -> tuple:
-    """Identity and in-place version of every parameter and buffer: changes when the weights change."""
-    return tuple((t.data_ptr(), t._version) for t in (*module.parameters(), *module.buffers()))
+def _weights_signature(modules: list[nn.Module]) -> tuple:
+    """Identity and in-place version of every parameter and buffer of ``modules`` (the module's
+    ``modules()``, listed once): changes when a weight is replaced or changed in place."""
+    return tuple(
+        (id(t), t.data_ptr(), t._version)
+        for m in modules
+        for table in (m._parameters, m._buffers)
+        for t in table.values()
+        if t is not None
+    )
 
 
 def _frozen_inference_copy(module: nn.Module, sample: torch.Tensor) -> torch.jit.ScriptModule | None:
@@ -249,6 +256,7 @@ class ModelHandle:
                     self._install_probe(self.module)
         state["_hooks"] = []
         state["_inference"] = {}  # rebuilt where the handle lands (script modules do not pickle)
+        state.pop("_module_list", None)
         state["_inference_weights"] = ()
         state["calls"] = (self.calls.forward, self.calls.backward)
         return state
@@ -329,19 +337,27 @@ class ModelHandle:
         assert self.module is not None  # called for torch modules only
         if module_impl._global_forward_hooks or module_impl._global_forward_pre_hooks:
             return True
+        root = self.module
         own = {h.id for h in self._hooks}
-        for m in self.module.modules():
-            for hooks in (m._forward_hooks, m._forward_pre_hooks):
-                if any(key not in own for key in hooks) if m is self.module else hooks:
-                    return True
-        return False
+        if any(key not in own for key in (*root._forward_hooks, *root._forward_pre_hooks)):
+            return True
+        return any(m._forward_hooks or m._forward_pre_hooks for m in self._submodules()[1:])
+
+    def _submodules(self) -> list[nn.Module]:
+        """The module's ``modules()`` (the root first), listed once per module object."""
+        assert self.module is not None  # called for torch modules only
+        cached = self.__dict__.get("_module_list")
+        if cached is None or cached[0] is not self.module:
+            cached = (self.module, list(self.module.modules()))
+            self.__dict__["_module_list"] = cached
+        return cached[1]
 
     def _inference_copy(self, x: torch.Tensor) -> Any:
         """The frozen copy for tiles shaped like ``x`` (built on first use, rebuilt after a weight change),
         or None where the eager module must run."""
         if not self.fast_inference or self.module is None or x.ndim != 4 or self._foreign_hooks():
             return None
-        weights = _weights_signature(self.module)
+        weights = _weights_signature(self._submodules())
         if weights != self._inference_weights:
             self._inference.clear()
             self._inference_weights = weights
