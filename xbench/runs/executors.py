@@ -6,8 +6,14 @@ workers never write the store.
 What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``):
 - **Setup ships once per worker.** The client has already built the task's tile packs, loaded the models
   and computed the model-verified truth (``runs.execute.prepare``). That state goes to each worker once
-  (a process pool's initializer; on dask a broadcast ``scatter``, keyed by the task file's content hash),
-  so workers neither synthesize the tiles again nor recompute the truth, and no cell carries it.
+  (locally a temporary file each worker reads once; on dask a broadcast ``scatter``, keyed by the task
+  file's content hash), so workers neither synthesize the tiles again nor recompute the truth, and no cell
+  carries it.
+- **Workers boot while the client prepares.** Local workers and dask workers are started when the executor
+  is made, before the client builds the data, so their imports (torch, captum, scikit-learn: seconds of
+  CPU) overlap the client's preparation.
+- **The client works too.** ``--jobs N`` runs N - 1 worker processes and computes cells in the client
+  itself: no process sits idle waiting, and one worker start-up fewer.
 - **Longest cells first.** Cells are dispatched in decreasing expected cost (model calls per tile of the
   explainer, :data:`EXPECTED_COST`), so the costliest cell (``rise``) does not start last and leave the other
   workers idle at the end (longest-processing-time-first scheduling). Records do not depend on the order.
@@ -26,7 +32,7 @@ import pickle
 import threading
 import time
 from collections.abc import Callable, Iterator
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -131,24 +137,123 @@ def compute_cell_with(state: Any, *job: Any) -> dict[str, Any]:
 
 
 def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict[str, Any]]]:
-    """Run cells here (n_jobs == 1) or in a pool of fresh processes (spawned: safe with torch)."""
-    if n_jobs <= 1:
-        for job in jobs:
+    """Run cells here (n_jobs == 1), or here and in n_jobs - 1 fresh processes (spawned: safe with torch)."""
+    pool = LocalPool(n_jobs)
+    try:
+        yield from pool(jobs)
+    finally:
+        pool.close()
+
+
+def _noop() -> None:
+    return None
+
+
+def compute_cell_from(state_file: str, state_key: str, *job: Any) -> dict[str, Any]:
+    """A pool task: install the shared state from the client's file (once per process), compute the cell."""
+    if state_key not in _INSTALLED:
+        install_state((state_key, Path(state_file).read_bytes()))
+    return compute_cell(*job)
+
+
+class LocalPool:
+    """``--jobs N`` on this machine: this process computes cells itself and N - 1 spawned worker processes
+    compute the others. The workers start (and import torch, captum, ...) as soon as the pool is made, while
+    this process prepares the data, models and truth; the prepared state then goes to them once, through a
+    temporary file (read once per worker). Cells are taken longest first from one shared list by whoever is
+    free (this process, or a thread of this process that keeps one cell in flight per worker)."""
+
+    def __init__(self, n_jobs: int):
+        self.n_jobs = max(int(n_jobs), 1)
+        self.pool: ProcessPoolExecutor | None = None
+        self.state_file: Path | None = None
+        self.todo: list[CellJob] = []
+        if self.n_jobs > 1:
+            ctx = multiprocessing.get_context("spawn")
+            self.pool = ProcessPoolExecutor(max_workers=self.n_jobs - 1, mp_context=ctx, initializer=_warm_imports)
+            for _ in range(self.n_jobs - 1):  # workers are spawned on demand: one warm-up task each
+                self.pool.submit(_noop)
+
+    def close(self) -> None:
+        self.todo.clear()  # feeder threads stop taking cells
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+            self.pool = None
+        if self.state_file is not None:
+            self.state_file.unlink(missing_ok=True)
+            self.state_file = None
+
+    def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict[str, Any]]]:
+        try:
+            if self.pool is None:
+                for job in jobs:
+                    yield job[1], compute_cell(*job)
+                return
+            yield from self._shared(jobs)
+        finally:
+            self.close()
+
+    def _shared(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict[str, Any]]]:
+        import queue
+        import tempfile
+
+        assert self.pool is not None  # only with workers
+        pool = self.pool
+        todo = self.todo
+        todo[:] = longest_first(jobs)
+        if not todo:
+            return
+        key, blob = packed_state(jobs)
+        handle, name = tempfile.mkstemp(prefix="xbench-state-", suffix=".pickle")
+        with open(handle, "wb") as f:
+            f.write(blob)
+        self.state_file = Path(name)
+        del blob
+        lock = threading.Lock()
+        done: queue.Queue = queue.Queue()
+
+        def take() -> CellJob | None:
+            with lock:
+                return todo.pop(0) if todo else None
+
+        def feed() -> None:  # keeps one cell in flight on one worker
+            while (job := take()) is not None:
+                started = time.perf_counter()
+                try:
+                    result = pool.submit(compute_cell_from, name, key, *job).result()
+                except BrokenProcessPool as exc:  # a worker died (segfault, os._exit): its cell fails
+                    result = failed_result(job[1], f"worker process died ({exc})", started)
+                    done.put((job[1], result))
+                    break  # the pool is unusable: this process takes the remaining cells
+                except Exception as exc:  # noqa: BLE001 - e.g. a result that cannot be pickled back
+                    result = failed_result(job[1], f"{type(exc).__name__}: {exc}", started)
+                done.put((job[1], result))
+            done.put(None)
+
+        feeders = [threading.Thread(target=feed, daemon=True) for _ in range(self.n_jobs - 1)]
+        for thread in feeders:
+            thread.start()
+        running = len(feeders)
+        while True:
+            while True:  # hand over what the workers finished
+                try:
+                    item = done.get_nowait()
+                except queue.Empty:
+                    break
+                if item is None:
+                    running -= 1
+                else:
+                    yield item
+            job = take()
+            if job is None:
+                break
             yield job[1], compute_cell(*job)
-        return
-    ctx = multiprocessing.get_context("spawn")
-    ordered = longest_first(jobs)
-    workers = min(n_jobs, max(len(ordered), 1))
-    with ProcessPoolExecutor(
-        max_workers=workers, mp_context=ctx, initializer=_init_worker, initargs=(packed_state(jobs),)
-    ) as pool:
-        futures = {pool.submit(compute_cell, *job): job[1] for job in ordered}
-        for future in as_completed(futures):
-            try:
-                result = future.result()
-            except BrokenProcessPool as exc:  # a worker died (segfault, os._exit): its cells fail, the run goes on
-                result = failed_result(futures[future], f"worker process died ({exc})", time.perf_counter())
-            yield futures[future], result
+        while running:
+            item = done.get()
+            if item is None:
+                running -= 1
+            else:
+                yield item
 
 
 def worker_environment() -> dict[str, Any]:
@@ -265,7 +370,7 @@ def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int =
 
 def executor_for(name: str, n_jobs: int, scheduler: str | None) -> Callable[[list[CellJob]], Iterator]:
     if name == "local":
-        return lambda jobs: run_local(jobs, n_jobs)
+        return LocalPool(n_jobs)  # workers start now, while the client prepares
     if name == "dask":
         return DaskCluster(scheduler, max(n_jobs, 1))  # starts now, while the client prepares
     raise XbenchInputError("--executor", "unknown executor", expected="local or dask", found=name)
