@@ -189,11 +189,14 @@ def _frozen_inference_copy(module: nn.Module, sample: torch.Tensor) -> torch.jit
     clone = _without_hooks(module)
     probe = torch.cat([sample, sample[:1]])  # another batch size than the traced one
     try:
-        with torch.inference_mode(False), torch.no_grad(), warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # tracer warnings about Python values: checked below instead
-            frozen = torch.jit.optimize_for_inference(
-                torch.jit.freeze(torch.jit.trace(clone, sample, check_trace=False))
-            )
+        with torch.inference_mode(False), torch.no_grad(), warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            traced = torch.jit.trace(clone, sample, check_trace=False)
+            # the tracer warns when the module turns a tensor into a Python value (a branch on the input,
+            # a size read as a number): the copy might not hold for other inputs, so the module stays eager
+            if any(issubclass(w.category, torch.jit.TracerWarning) for w in caught):
+                return None
+            frozen = torch.jit.optimize_for_inference(torch.jit.freeze(traced))
             for x in (sample, probe):
                 fast, reference = frozen(x), clone(x)
                 if not isinstance(fast, torch.Tensor) or not isinstance(reference, torch.Tensor):
