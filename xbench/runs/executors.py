@@ -267,6 +267,17 @@ def worker_environment() -> dict[str, Any]:
         # the workers' statistical profiler samples every thread's stack each 10 ms: GIL and CPU time that
         # the Python-heavy parts of a cell (captum glue, metrics) pay for
         "distributed.worker.profile.enabled": False,
+        # no memory manager (it polls each worker's memory every 100 ms, from the worker and its nanny) and a
+        # slower system monitor: cells are small, and on a 2-core machine every polling process takes CPU
+        # from the cells
+        "distributed.worker.memory.target": False,
+        "distributed.worker.memory.spill": False,
+        "distributed.worker.memory.pause": False,
+        "distributed.worker.memory.terminate": False,
+        "distributed.admin.system-monitor.interval": "5s",
+        # cells are queued on the scheduler longest first and handed to whichever worker is free: stealing
+        # can only move a long cell behind another
+        "distributed.scheduler.work-stealing": False,
     }
 
 
