@@ -292,10 +292,18 @@ def _warm_imports() -> None:
     _init_worker()
 
 
+IN_CLIENT_WORKER = "in-client"
+
+
 class DaskCluster:
     """A dask client (to ``scheduler``, or to a local cluster of ``n_workers`` one-thread workers) that starts
     in a background thread as soon as it is made, so workers boot and import while the client prepares the
-    data, models and truth; calling it with the jobs waits for it, then runs the cells."""
+    data, models and truth; calling it with the jobs waits for it, then runs the cells.
+
+    The local cluster's first worker runs inside this process (a dask ``Worker`` on the client's event loop,
+    computing on its own thread while the client waits), the others in worker processes under nannies: like
+    ``--jobs N`` locally, no process sits idle and the machine starts one worker process fewer. A remote
+    scheduler's workers are wherever their owner started them."""
 
     def __init__(self, scheduler: str | None = None, n_workers: int = 2):
         try:
@@ -321,9 +329,11 @@ class DaskCluster:
             if self.scheduler:
                 self.client = Client(self.scheduler)
             else:
+                from dask.distributed import Worker
+
                 with dask.config.set(worker_environment()):
                     self.cluster = LocalCluster(
-                        n_workers=self.n_workers,
+                        n_workers=self.n_workers - 1,
                         threads_per_worker=1,
                         processes=True,
                         host="127.0.0.1",
@@ -331,6 +341,13 @@ class DaskCluster:
                         scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
                         silence_logs=logging.ERROR,
                     )
+                    # one of the workers lives in this process: it has the prepared state already, and the
+                    # machine runs one worker process (and its nanny) fewer
+                    self.cluster.worker_spec[IN_CLIENT_WORKER] = {
+                        "cls": Worker,
+                        "options": {"nthreads": 1, "host": "127.0.0.1", "name": IN_CLIENT_WORKER},
+                    }
+                    self.cluster.sync(self.cluster._correct_state)
                 self.client = Client(self.cluster)
             self.client.run(_warm_imports)
         except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
@@ -355,7 +372,10 @@ class DaskCluster:
             if not ordered:
                 return
             # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
-            state = client.scatter(packed_state(jobs), broadcast=True, hash=True)
+            packed = packed_state(jobs)
+            _INSTALLED.add(packed[0])  # this process (and the worker in it) holds the state already
+            state = client.scatter(packed, broadcast=True, hash=True)
+            del packed
             futures = [
                 client.submit(
                     compute_cell_with,
