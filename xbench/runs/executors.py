@@ -6,9 +6,10 @@ workers never write the store.
 What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``):
 - **Setup ships once per worker.** The client has already built the task's tile packs, loaded the models
   and computed the model-verified truth (``runs.execute.prepare``). That state goes to each worker once
-  (locally a temporary file each worker reads once; on dask a broadcast ``scatter``, keyed by the task
-  file's content hash), so workers neither synthesize the tiles again nor recompute the truth, and no cell
-  carries it.
+  (a temporary file each worker on this machine reads once, its path broadcast by ``scatter`` on a local dask
+  cluster; the bytes themselves to a remote dask scheduler's workers; keyed by content), so workers neither
+  synthesize the tiles again nor recompute the truth, and no cell carries it. Sending the ~150 MB of the demo's
+  state through a socket to each worker cost about 3 s; reading the file costs a fraction of that.
 - **Workers boot while the client prepares.** Local workers and dask workers are started when the executor
   is made, before the client builds the data, so their imports (torch, captum, scikit-learn: seconds of
   CPU) overlap the client's preparation.
@@ -101,15 +102,17 @@ def packed_state(jobs: list[CellJob]) -> tuple[str, bytes]:
 _INSTALLED: set[str] = set()
 
 
-def install_state(state: dict[str, Any] | tuple[str, bytes] | None) -> None:
-    """Put shipped state into this process's caches (entries already present are kept); packed state is
-    unpickled once per process."""
+def install_state(state: dict[str, Any] | tuple[str, bytes | str] | None) -> None:
+    """Put shipped state into this process's caches (entries already present are kept); packed state (the
+    pickle bytes, or the path of a file holding them on this machine) is unpickled once per process."""
     if not state:
         return
     if isinstance(state, tuple):
         key, blob = state
         if key in _INSTALLED:
             return
+        if isinstance(blob, str):
+            blob = Path(blob).read_bytes()
         _INSTALLED.add(key)
         state = pickle.loads(blob)
     assert isinstance(state, dict)  # unpacked state: {cache name: entries}
@@ -151,9 +154,19 @@ def _noop() -> None:
 
 def compute_cell_from(state_file: str, state_key: str, *job: Any) -> dict[str, Any]:
     """A pool task: install the shared state from the client's file (once per process), compute the cell."""
-    if state_key not in _INSTALLED:
-        install_state((state_key, Path(state_file).read_bytes()))
+    install_state((state_key, state_file))
     return compute_cell(*job)
+
+
+def state_file(blob: bytes) -> Path:
+    """The packed state in a temporary file, for workers on this machine to read once each (sending ~150 MB
+    through a pipe or a socket to every worker costs seconds)."""
+    import tempfile
+
+    handle, name = tempfile.mkstemp(prefix="xbench-state-", suffix=".pickle")
+    with open(handle, "wb") as f:
+        f.write(blob)
+    return Path(name)
 
 
 class LocalPool:
@@ -195,7 +208,6 @@ class LocalPool:
 
     def _shared(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict[str, Any]]]:
         import queue
-        import tempfile
 
         assert self.pool is not None  # only with workers
         pool = self.pool
@@ -204,10 +216,8 @@ class LocalPool:
         if not todo:
             return
         key, blob = packed_state(jobs)
-        handle, name = tempfile.mkstemp(prefix="xbench-state-", suffix=".pickle")
-        with open(handle, "wb") as f:
-            f.write(blob)
-        self.state_file = Path(name)
+        self.state_file = state_file(blob)
+        name = str(self.state_file)
         del blob
         lock = threading.Lock()
         done: queue.Queue = queue.Queue()
@@ -318,6 +328,8 @@ class DaskCluster:
         self.client: Any = None
         self.cluster: Any = None
         self.error: BaseException | None = None
+        self._config: Any = None
+        self.state_path: Path | None = None
         self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
         self._thread.start()
 
@@ -331,23 +343,28 @@ class DaskCluster:
             else:
                 from dask.distributed import Worker
 
-                with dask.config.set(worker_environment()):
-                    self.cluster = LocalCluster(
-                        n_workers=self.n_workers - 1,
-                        threads_per_worker=1,
-                        processes=True,
-                        host="127.0.0.1",
-                        dashboard_address=None,
-                        scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
-                        silence_logs=logging.ERROR,
-                    )
-                    # one of the workers lives in this process: it has the prepared state already, and the
-                    # machine runs one worker process (and its nanny) fewer
-                    self.cluster.worker_spec[IN_CLIENT_WORKER] = {
-                        "cls": Worker,
-                        "options": {"nthreads": 1, "host": "127.0.0.1", "name": IN_CLIENT_WORKER},
-                    }
-                    self.cluster.sync(self.cluster._correct_state)
+                # kept until close(): the worker processes start later, from the cluster's event loop
+                self._config = dask.config.set(worker_environment())
+                self.cluster = LocalCluster(
+                    n_workers=0,
+                    threads_per_worker=1,
+                    processes=True,
+                    host="127.0.0.1",
+                    dashboard_address=None,
+                    scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
+                    silence_logs=logging.ERROR,
+                )
+                # one of the workers lives in this process: it has the prepared state already, it can take
+                # the first cell as soon as the client has prepared, and the machine runs one worker process
+                # (and its nanny) fewer
+                self.cluster.worker_spec[IN_CLIENT_WORKER] = {
+                    "cls": Worker,
+                    "options": {"nthreads": 1, "host": "127.0.0.1", "name": IN_CLIENT_WORKER},
+                }
+                self.cluster.sync(self.cluster._correct_state)
+                # the worker processes boot in the background and join when ready (cells do not wait for
+                # them; a late worker fetches the shared state from a worker that has it)
+                self.cluster.scale(self.n_workers)
                 self.client = Client(self.cluster)
             self.client.run(_warm_imports)
         except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
@@ -357,8 +374,16 @@ class DaskCluster:
         self._thread.join()
         if self.client is not None:
             self.client.close()
+            self.client = None
         if self.cluster is not None:
             self.cluster.close()
+            self.cluster = None
+        if self._config is not None:
+            self._config.__exit__(None, None, None)
+            self._config = None
+        if self.state_path is not None:
+            self.state_path.unlink(missing_ok=True)
+            self.state_path = None
 
     def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict]]:
         from dask.distributed import as_completed as dask_completed
@@ -372,10 +397,14 @@ class DaskCluster:
             if not ordered:
                 return
             # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
-            packed = packed_state(jobs)
-            _INSTALLED.add(packed[0])  # this process (and the worker in it) holds the state already
-            state = client.scatter(packed, broadcast=True, hash=True)
-            del packed
+            key, blob = packed_state(jobs)
+            _INSTALLED.add(key)  # this process (and the worker in it) holds the state already
+            if self.cluster is not None:  # workers on this machine: they read a file once each
+                self.state_path = state_file(blob)
+                state = client.scatter((key, str(self.state_path)), broadcast=True, hash=False)
+            else:
+                state = client.scatter((key, blob), broadcast=True, hash=True)
+            del blob
             futures = [
                 client.submit(
                     compute_cell_with,
