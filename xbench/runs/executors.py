@@ -305,6 +305,12 @@ def _warm_imports() -> None:
 IN_CLIENT_WORKER = "in-client"
 
 
+def dask_setup(worker: Any) -> None:
+    """dask's preload hook (``preload=["xbench.runs.executors"]``): a local cluster's worker processes import
+    what cells need and set one thread per library when they start."""
+    _warm_imports()
+
+
 class DaskCluster:
     """A dask client (to ``scheduler``, or to a local cluster of ``n_workers`` one-thread workers) that starts
     in a background thread as soon as it is made, so workers boot and import while the client prepares the
@@ -353,6 +359,7 @@ class DaskCluster:
                     dashboard_address=None,
                     scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
                     silence_logs=logging.ERROR,
+                    preload=[__name__],  # worker processes import torch, captum, ... before they register
                 )
                 # one of the workers lives in this process: it has the prepared state already, it can take
                 # the first cell as soon as the client has prepared, and the machine runs one worker process
@@ -366,7 +373,8 @@ class DaskCluster:
                 # them; a late worker fetches the shared state from a worker that has it)
                 self.cluster.scale(self.n_workers)
                 self.client = Client(self.cluster)
-            self.client.run(_warm_imports)
+            if self.cluster is None:  # a remote cluster's workers import while the client prepares
+                self.client.run(_warm_imports)
         except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
             self.error = exc
 
