@@ -389,11 +389,11 @@ def score_function(key: str, model: ModelHandle, score: str) -> Callable[[torch.
 
         return black_box
 
-    module = torch_module(model)
+    torch_module(model)  # a black box would have been handled above
 
     def white_box(x: torch.Tensor) -> torch.Tensor:
         with torch.no_grad():
-            logits = module(x)
+            logits = model.inference_logits(x)  # the handle's frozen inference copy where it applies
             if score == "probability":
                 return torch.softmax(logits.double(), dim=1).float()
             return logits.float()

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import numpy as np
 import torch
-from captum.attr import LayerAttribution, LayerGradCam
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
@@ -61,6 +60,8 @@ def grad_cam(model, images, targets, context, *, layer, relu, upsample):
     key = "grad-cam"
     mode = upsample
     module = model.get_layer(layer)
+    from captum.attr import LayerAttribution, LayerGradCam
+
     method = LayerGradCam(model.module, module)
     h, w = images.shape[2:]
     out = np.empty((images.shape[0], h, w), dtype=np.float32)

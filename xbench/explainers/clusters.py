@@ -51,6 +51,7 @@ Outputs
 
 from __future__ import annotations
 
+import hashlib
 import warnings
 from typing import Any
 
@@ -176,6 +177,57 @@ def _ordered(value: list[int], where: Where) -> list[int]:
     return value
 
 
+# Fitted cluster models of this process, by (model weights, layer, fitting set, seed, fit settings); the
+# oldest are dropped beyond _MAX_FITS (each holds the fitting set's activations: a few MB).
+_FITS: dict[str, tuple[np.ndarray, PCA | None, GaussianMixture, dict[int, float], np.ndarray]] = {}
+_MAX_FITS = 4
+
+
+def _fit_key(model: Any, layer: str, fit_images: np.ndarray | None, seed: int, settings: tuple) -> str | None:
+    """Content key of a fit: the module's weights (parameters and buffers), the layer, the fitting set's
+    bytes, the seed and the fit settings. None for a model without a torch module."""
+    module = getattr(model, "module", None)
+    if module is None or fit_images is None:
+        return None
+    digest = hashlib.blake2b(digest_size=16)
+    for name, tensor in module.state_dict().items():
+        digest.update(name.encode())
+        digest.update(tensor.detach().contiguous().cpu().numpy().tobytes())
+    images = np.ascontiguousarray(fit_images)
+    digest.update(repr((layer, images.shape, str(images.dtype), seed, settings)).encode())
+    digest.update(images.tobytes())
+    return digest.hexdigest()
+
+
+def _fit_clusters(
+    model, layer, context, bs, n_clusters, cluster_range, pca_components, covariance, max_positions
+) -> tuple[np.ndarray, PCA | None, GaussianMixture, dict[int, float], np.ndarray]:
+    """Steps 1-3 and the fitting set's cluster maps: (fit activations, PCA or None, mixture, BIC per k,
+    fit cluster maps (N_fit, h, w))."""
+    seed = int(context.seed)
+    fit_acts = layer_activations(KEY, model, layer, context.fit_images, bs)
+    _, width, h, w = fit_acts.shape
+    fit_x = _positions(fit_acts)
+    rng = context.rng(stream=3)
+    sample = (
+        fit_x
+        if fit_x.shape[0] <= max_positions
+        else fit_x[np.sort(rng.choice(fit_x.shape[0], max_positions, replace=False))]
+    )
+    pca = None
+    if width > pca_components:
+        with one_blas_thread():  # tiny problems: BLAS threads only add contention
+            pca = PCA(n_components=pca_components, random_state=seed).fit(sample)
+
+    def project(x: np.ndarray) -> np.ndarray:
+        return pca.transform(x) if pca is not None else x
+
+    gm, bics = _fit_mixture(project(sample), n_clusters, tuple(cluster_range), covariance, seed)
+    with one_blas_thread():
+        fit_maps = gm.predict(project(fit_x)).reshape(-1, h, w)
+    return fit_acts, pca, gm, bics, fit_maps
+
+
 @register_explainer(
     KEY,
     citation=CITE_CLUSTERS,
@@ -228,29 +280,27 @@ def activation_clusters(
     seed = int(context.seed)
     bs = context.batch_size
 
-    # 1-3: fit the mixture on the fitting set's activation vectors
-    fit_acts = layer_activations(KEY, model, layer, context.fit_images, bs)
-    _, width, h, w = fit_acts.shape
-    fit_x = _positions(fit_acts)
-    rng = context.rng(stream=3)
-    sample = (
-        fit_x
-        if fit_x.shape[0] <= max_positions
-        else fit_x[np.sort(rng.choice(fit_x.shape[0], max_positions, replace=False))]
+    # 1-3: fit the mixture on the fitting set's activation vectors (once per model state, layer, fitting set,
+    # seed and fit settings in a process: metrics re-run the explainer on the same model many times)
+    fit_key = _fit_key(
+        model, layer, context.fit_images, seed, (n_clusters, cluster_range, pca_components, covariance, max_positions)
     )
-    pca = None
-    if width > pca_components:
-        with one_blas_thread():  # tiny problems: BLAS threads only add contention
-            pca = PCA(n_components=pca_components, random_state=seed).fit(sample)
-
-    def project(x: np.ndarray) -> np.ndarray:
-        return pca.transform(x) if pca is not None else x
+    fitted = _FITS.get(fit_key) if fit_key is not None else None
+    if fitted is None:
+        fitted = _fit_clusters(
+            model, layer, context, bs, n_clusters, cluster_range, pca_components, covariance, max_positions
+        )
+        if fit_key is not None:
+            _FITS[fit_key] = fitted
+            while len(_FITS) > _MAX_FITS:
+                _FITS.pop(next(iter(_FITS)))
+    fit_acts, pca, gm, bics, fit_maps = fitted
+    _, width, h, w = fit_acts.shape
 
     def assign(x: np.ndarray) -> np.ndarray:
         with one_blas_thread():  # tiny problems: BLAS threads only add contention
-            return gm.predict(project(x))
+            return gm.predict(pca.transform(x) if pca is not None else x)
 
-    gm, bics = _fit_mixture(project(sample), n_clusters, tuple(cluster_range), covariance, seed)
     k = int(gm.n_components)
 
     # 4: assign positions
@@ -264,7 +314,6 @@ def activation_clusters(
         )
     n = images.shape[0]
     cluster_maps = assign(_positions(acts)).reshape(n, h, w)
-    fit_maps = assign(fit_x).reshape(-1, h, w)
     base_vec = fit_acts.mean(axis=(0, 2, 3)) if baseline == "fit-mean" else np.zeros(width, np.float32)
     base_t = torch.from_numpy(base_vec.astype(np.float32))[None, :, None, None]
 
@@ -399,7 +448,7 @@ def activation_clusters(
             "mask_names": names,
             "class_names": class_names,
             "n_clusters": k,
-            "bic": bics,
+            "bic": dict(bics),
             "layer": layer,
             "score": score,
             "baseline_vector": base_vec.astype(np.float32),

@@ -26,16 +26,10 @@ the change is below 1e-6), put into
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import TYPE_CHECKING
 
 import numpy as np
 import torch
-from captum.attr import (
-    DeepLift,
-    GuidedBackprop,
-    InputXGradient,
-    IntegratedGradients,
-    Saliency,
-)
 
 from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
@@ -54,6 +48,9 @@ from xbench.explainers.base import (
 from xbench.explainers.registry import register_explainer
 from xbench.models.base import ModelHandle
 from xbench.schema import Field
+
+if TYPE_CHECKING:  # captum is imported where a method runs: a client that only dispatches cells never loads it
+    from captum.attr import DeepLift, IntegratedGradients
 
 CITE_GRADIENT = "Simonyan, Vedaldi, Zisserman. Deep inside convolutional networks. ICLR Workshop 2014."
 CITE_IXG = "Shrikumar, Greenside, Shcherbina, Kundaje. Not just a black box. arXiv:1605.01713, 2016."
@@ -172,6 +169,8 @@ def _modified_backprop_error(key: str, model: ModelHandle, exc: Exception) -> Xb
 )
 @signed_maps(reduce_is_signed)
 def gradient(model, images, targets, context, *, reduce):
+    from captum.attr import Saliency
+
     method = Saliency(model.module)
     raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(x, target=t, abs=False))
     return reduce_channels(raw, reduce)
@@ -186,6 +185,8 @@ def gradient(model, images, targets, context, *, reduce):
 )
 @signed_maps(reduce_is_signed)
 def input_x_gradient(model, images, targets, context, *, reduce):
+    from captum.attr import InputXGradient
+
     method = InputXGradient(model.module)
     raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(x, target=t))
     return reduce_channels(raw, reduce)
@@ -209,6 +210,8 @@ def input_x_gradient(model, images, targets, context, *, reduce):
 def integrated_gradients(model, images, targets, context, *, baseline, n_steps, method, blur_sigma, reduce):
     key = "integrated-gradients"
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
+    from captum.attr import IntegratedGradients
+
     ig = IntegratedGradients(model.module)
     raw = _per_batch(
         model,
@@ -268,6 +271,8 @@ def smoothgrad(model, images, targets, context, *, n_samples, noise_fraction, st
         sigma = float(noise_fraction) * band_spread(images, context)
     else:
         sigma = np.full(images.shape[1], float(stdev))
+    from captum.attr import Saliency
+
     saliency = Saliency(model.module)
     n, c, h, w = images.shape
     out = np.zeros(images.shape, dtype=np.float64)
@@ -304,6 +309,8 @@ def smoothgrad(model, images, targets, context, *, n_samples, noise_fraction, st
 def guided_backprop(model, images, targets, context, *, reduce):
     key = "guided-backprop"
     _require_modules(key, model, (torch.nn.ReLU,), "nn.ReLU")
+    from captum.attr import GuidedBackprop
+
     method = GuidedBackprop(model.module)
     try:
         raw = _per_batch(model, images, targets, context, lambda x, t, sl: method.attribute(x, target=t))
@@ -325,6 +332,8 @@ def deeplift(model, images, targets, context, *, baseline, blur_sigma, reduce):
     key = "deeplift"
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     _require_modules(key, model, DEEPLIFT_MODULES, "nn.ReLU (or other DeepLIFT-supported activation)")
+    from captum.attr import DeepLift
+
     method = DeepLift(model.module)
     try:
         raw = _per_batch(

@@ -15,8 +15,6 @@ from __future__ import annotations
 import numpy as np
 import torch
 import torch.nn.functional as F
-from captum.attr import KernelShap, Occlusion
-from skimage.segmentation import slic
 
 from xbench.explainers.base import (
     BLUR_SIGMA,
@@ -72,6 +70,8 @@ def occlusion(model, images, targets, context, *, window, stride, baseline, blur
     forward = score_function(key, model, score)
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     c = images.shape[1]
+    from captum.attr import Occlusion
+
     method = Occlusion(forward)
     out = np.empty(images.shape, dtype=np.float32)
     for sl in batches(images.shape[0], context.batch_size):
@@ -150,6 +150,8 @@ def superpixels(tile: np.ndarray, n_segments: int, compactness: float, seed: int
     lo = x.min(axis=(0, 1), keepdims=True)
     span = x.max(axis=(0, 1), keepdims=True) - lo
     x = (x - lo) / np.where(span > 0, span, 1.0)
+    from skimage.segmentation import slic
+
     seg = slic(
         x,
         n_segments=n_segments,
@@ -183,6 +185,8 @@ def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_s
     forward = score_function(key, model, score)
     base = make_baseline(images, baseline, context.twins, blur_sigma, where=f"explainer '{key}'")
     n, c, h, w = images.shape
+    from captum.attr import KernelShap
+
     method = KernelShap(forward)
     out = np.empty(images.shape, dtype=np.float32)
     for i in range(n):

@@ -198,7 +198,13 @@ def cascading_randomization(
     if max_layers is not None:
         layers = layers[: int(max_layers)]
     modules = dict(clone.named_modules())
-    handle = ModelHandle(f"{model.name}~randomized", model.n_classes, module=clone, batch_size=model.batch_size)
+    handle = ModelHandle(
+        f"{model.name}~randomized",
+        model.n_classes,
+        module=clone,
+        batch_size=model.batch_size,
+        fast_inference=model.fast_inference,
+    )
     chosen = set(cascade_step_indices(len(layers), cascade_steps))
     names, maps = [], []
     for step, name in enumerate(layers):

@@ -161,7 +161,10 @@ def load_user_torch_model(
                 found=f"missing {result.missing_keys[:5]}, unexpected {result.unexpected_keys[:5]}",
             )
     module.register_forward_pre_hook(_clone_inputs)
-    handle = ModelHandle(name or factory.split(":")[-1], n_classes, module=module, batch_size=batch_size)
+    # a user's module may branch on its input, which a traced copy would freeze: it runs eagerly
+    handle = ModelHandle(
+        name or factory.split(":")[-1], n_classes, module=module, batch_size=batch_size, fast_inference=False
+    )
     if probe is not None:
         probe_model(handle, probe, f"model '{handle.name}' ({factory})")
     return handle

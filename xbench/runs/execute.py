@@ -78,6 +78,24 @@ _PREP_CACHE: dict[tuple[str, str, int], Prepared] = {}
 _CONCEPT_CACHE: dict[str, dict[str, np.ndarray]] = {}
 
 
+def release_process_caches() -> None:
+    """Drop what this process keeps between cells (task data, prepared models and truth, concept sets, fitted
+    cluster models) and hand the freed memory back to the system, so that work after a run (the demo's
+    report) does not stack its peak on the run's. The next cell prepares again."""
+    import ctypes
+    import gc
+
+    from xbench.explainers import clusters
+
+    for cache in (_TASK_CACHE, _PREP_CACHE, _CONCEPT_CACHE, clusters._FITS):
+        cache.clear()
+    gc.collect()
+    try:  # glibc keeps freed small blocks in its arenas; one trim returns them (not a per-free trim threshold)
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):  # not glibc: nothing to do
+        pass
+
+
 def task_and_data(task_path: str | Path | Task) -> tuple[Task, TaskData]:
     """The task and its tile packs, built once per process (deterministic from the task's data seed)."""
     from xbench.tasks import build_task_data, load_task
@@ -334,6 +352,7 @@ def _compute_cell(
     from xbench.metrics import MetricInputs, compute_metric
     from xbench.models.base import counting_all, single_thread_pools
 
+    cpu_started = time.thread_time()  # this thread's CPU seconds: what the cell costs whatever else runs
     torch.set_num_threads(CELL_THREADS)
     single_thread_pools()  # once per process: entering threadpool_limits rescans the libraries each time
     needs = set(get_explainer(cell.explainer).needs)
@@ -459,6 +478,7 @@ def _compute_cell(
                 "backward_calls": int(explanation.cost.backward_calls),
                 "seconds": float(explanation.cost.seconds),
                 "tiles": int(len(tiles)),
+                "cpu_seconds": round(time.thread_time() - cpu_started, 4),
                 # what the metrics cost on top (explainer re-runs included): {metric: [forward, backward]}
                 "metric_calls": metric_calls,
                 "metric_seconds": {k: round(v, 4) for k, v in metric_seconds.items()},

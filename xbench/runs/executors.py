@@ -6,8 +6,15 @@ workers never write the store.
 What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``):
 - **Setup ships once per worker.** The client has already built the task's tile packs, loaded the models
   and computed the model-verified truth (``runs.execute.prepare``). That state goes to each worker once
-  (a process pool's initializer; on dask a broadcast ``scatter``, keyed by the task file's content hash),
-  so workers neither synthesize the tiles again nor recompute the truth, and no cell carries it.
+  (a temporary file each worker on this machine reads once, its path broadcast by ``scatter`` on a local dask
+  cluster; the bytes themselves to a remote dask scheduler's workers; keyed by content), so workers neither
+  synthesize the tiles again nor recompute the truth, and no cell carries it. Sending the ~150 MB of the demo's
+  state through a socket to each worker cost about 3 s; reading the file costs a fraction of that.
+- **Workers boot while the client prepares.** Local workers and dask workers are started when the executor
+  is made, before the client builds the data, so their imports (torch, captum, scikit-learn: seconds of
+  CPU) overlap the client's preparation.
+- **The client works too.** ``--jobs N`` runs N - 1 worker processes and computes cells in the client
+  itself: no process sits idle waiting, and one worker start-up fewer.
 - **Longest cells first.** Cells are dispatched in decreasing expected cost (model calls per tile of the
   explainer, :data:`EXPECTED_COST`), so the costliest cell (``rise``) does not start last and leave the other
   workers idle at the end (longest-processing-time-first scheduling). Records do not depend on the order.
@@ -26,7 +33,7 @@ import pickle
 import threading
 import time
 from collections.abc import Callable, Iterator
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -95,15 +102,17 @@ def packed_state(jobs: list[CellJob]) -> tuple[str, bytes]:
 _INSTALLED: set[str] = set()
 
 
-def install_state(state: dict[str, Any] | tuple[str, bytes] | None) -> None:
-    """Put shipped state into this process's caches (entries already present are kept); packed state is
-    unpickled once per process."""
+def install_state(state: dict[str, Any] | tuple[str, bytes | str] | None) -> None:
+    """Put shipped state into this process's caches (entries already present are kept); packed state (the
+    pickle bytes, or the path of a file holding them on this machine) is unpickled once per process."""
     if not state:
         return
     if isinstance(state, tuple):
         key, blob = state
         if key in _INSTALLED:
             return
+        if isinstance(blob, str):
+            blob = Path(blob).read_bytes()
         _INSTALLED.add(key)
         state = pickle.loads(blob)
     assert isinstance(state, dict)  # unpacked state: {cache name: entries}
@@ -131,24 +140,130 @@ def compute_cell_with(state: Any, *job: Any) -> dict[str, Any]:
 
 
 def run_local(jobs: list[CellJob], n_jobs: int = 1) -> Iterator[tuple[Cell, dict[str, Any]]]:
-    """Run cells here (n_jobs == 1) or in a pool of fresh processes (spawned: safe with torch)."""
-    if n_jobs <= 1:
-        for job in jobs:
+    """Run cells here (n_jobs == 1), or here and in n_jobs - 1 fresh processes (spawned: safe with torch)."""
+    pool = LocalPool(n_jobs)
+    try:
+        yield from pool(jobs)
+    finally:
+        pool.close()
+
+
+def _noop() -> None:
+    return None
+
+
+def compute_cell_from(state_file: str, state_key: str, *job: Any) -> dict[str, Any]:
+    """A pool task: install the shared state from the client's file (once per process), compute the cell."""
+    install_state((state_key, state_file))
+    return compute_cell(*job)
+
+
+def state_file(blob: bytes) -> Path:
+    """The packed state in a temporary file, for workers on this machine to read once each (sending ~150 MB
+    through a pipe or a socket to every worker costs seconds)."""
+    import tempfile
+
+    handle, name = tempfile.mkstemp(prefix="xbench-state-", suffix=".pickle")
+    with open(handle, "wb") as f:
+        f.write(blob)
+    return Path(name)
+
+
+class LocalPool:
+    """``--jobs N`` on this machine: this process computes cells itself and N - 1 spawned worker processes
+    compute the others. The workers start (and import torch, captum, ...) as soon as the pool is made, while
+    this process prepares the data, models and truth; the prepared state then goes to them once, through a
+    temporary file (read once per worker). Cells are taken longest first from one shared list by whoever is
+    free (this process, or a thread of this process that keeps one cell in flight per worker)."""
+
+    def __init__(self, n_jobs: int):
+        self.n_jobs = max(int(n_jobs), 1)
+        self.pool: ProcessPoolExecutor | None = None
+        self.state_file: Path | None = None
+        self.todo: list[CellJob] = []
+        if self.n_jobs > 1:
+            ctx = multiprocessing.get_context("spawn")
+            self.pool = ProcessPoolExecutor(max_workers=self.n_jobs - 1, mp_context=ctx, initializer=_warm_imports)
+            for _ in range(self.n_jobs - 1):  # workers are spawned on demand: one warm-up task each
+                self.pool.submit(_noop)
+
+    def close(self) -> None:
+        self.todo.clear()  # feeder threads stop taking cells
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+            self.pool = None
+        if self.state_file is not None:
+            self.state_file.unlink(missing_ok=True)
+            self.state_file = None
+
+    def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict[str, Any]]]:
+        try:
+            if self.pool is None:
+                for job in jobs:
+                    yield job[1], compute_cell(*job)
+                return
+            yield from self._shared(jobs)
+        finally:
+            self.close()
+
+    def _shared(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict[str, Any]]]:
+        import queue
+
+        assert self.pool is not None  # only with workers
+        pool = self.pool
+        todo = self.todo
+        todo[:] = longest_first(jobs)
+        if not todo:
+            return
+        key, blob = packed_state(jobs)
+        self.state_file = state_file(blob)
+        name = str(self.state_file)
+        del blob
+        lock = threading.Lock()
+        done: queue.Queue = queue.Queue()
+
+        def take() -> CellJob | None:
+            with lock:
+                return todo.pop(0) if todo else None
+
+        def feed() -> None:  # keeps one cell in flight on one worker
+            while (job := take()) is not None:
+                started = time.perf_counter()
+                try:
+                    result = pool.submit(compute_cell_from, name, key, *job).result()
+                except BrokenProcessPool as exc:  # a worker died (segfault, os._exit): its cell fails
+                    result = failed_result(job[1], f"worker process died ({exc})", started)
+                    done.put((job[1], result))
+                    break  # the pool is unusable: this process takes the remaining cells
+                except Exception as exc:  # noqa: BLE001 - e.g. a result that cannot be pickled back
+                    result = failed_result(job[1], f"{type(exc).__name__}: {exc}", started)
+                done.put((job[1], result))
+            done.put(None)
+
+        feeders = [threading.Thread(target=feed, daemon=True) for _ in range(self.n_jobs - 1)]
+        for thread in feeders:
+            thread.start()
+        running = len(feeders)
+        while True:
+            while True:  # hand over what the workers finished
+                try:
+                    item = done.get_nowait()
+                except queue.Empty:
+                    break
+                if item is None:
+                    running -= 1
+                else:
+                    yield item
+            job = take()
+            if job is None:
+                break
             yield job[1], compute_cell(*job)
-        return
-    ctx = multiprocessing.get_context("spawn")
-    ordered = longest_first(jobs)
-    workers = min(n_jobs, max(len(ordered), 1))
-    with ProcessPoolExecutor(
-        max_workers=workers, mp_context=ctx, initializer=_init_worker, initargs=(packed_state(jobs),)
-    ) as pool:
-        futures = {pool.submit(compute_cell, *job): job[1] for job in ordered}
-        for future in as_completed(futures):
-            try:
-                result = future.result()
-            except BrokenProcessPool as exc:  # a worker died (segfault, os._exit): its cells fail, the run goes on
-                result = failed_result(futures[future], f"worker process died ({exc})", time.perf_counter())
-            yield futures[future], result
+        while running:
+            item = done.get()
+            if item is None:
+                running -= 1
+            else:
+                yield item
 
 
 def worker_environment() -> dict[str, Any]:
@@ -162,6 +277,17 @@ def worker_environment() -> dict[str, Any]:
         # the workers' statistical profiler samples every thread's stack each 10 ms: GIL and CPU time that
         # the Python-heavy parts of a cell (captum glue, metrics) pay for
         "distributed.worker.profile.enabled": False,
+        # no memory manager (it polls each worker's memory every 100 ms, from the worker and its nanny) and a
+        # slower system monitor: cells are small, and on a 2-core machine every polling process takes CPU
+        # from the cells
+        "distributed.worker.memory.target": False,
+        "distributed.worker.memory.spill": False,
+        "distributed.worker.memory.pause": False,
+        "distributed.worker.memory.terminate": False,
+        "distributed.admin.system-monitor.interval": "5s",
+        # cells are queued on the scheduler longest first and handed to whichever worker is free: stealing
+        # can only move a long cell behind another
+        "distributed.scheduler.work-stealing": False,
     }
 
 
@@ -176,10 +302,24 @@ def _warm_imports() -> None:
     _init_worker()
 
 
+IN_CLIENT_WORKER = "in-client"
+
+
+def dask_setup(worker: Any) -> None:
+    """dask's preload hook (``preload=["xbench.runs.executors"]``): a local cluster's worker processes import
+    what cells need and set one thread per library when they start."""
+    _warm_imports()
+
+
 class DaskCluster:
     """A dask client (to ``scheduler``, or to a local cluster of ``n_workers`` one-thread workers) that starts
     in a background thread as soon as it is made, so workers boot and import while the client prepares the
-    data, models and truth; calling it with the jobs waits for it, then runs the cells."""
+    data, models and truth; calling it with the jobs waits for it, then runs the cells.
+
+    The local cluster's first worker runs inside this process (a dask ``Worker`` on the client's event loop,
+    computing on its own thread while the client waits), the others in worker processes under nannies: like
+    ``--jobs N`` locally, no process sits idle and the machine starts one worker process fewer. A remote
+    scheduler's workers are wherever their owner started them."""
 
     def __init__(self, scheduler: str | None = None, n_workers: int = 2):
         try:
@@ -194,6 +334,8 @@ class DaskCluster:
         self.client: Any = None
         self.cluster: Any = None
         self.error: BaseException | None = None
+        self._config: Any = None
+        self.state_path: Path | None = None
         self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
         self._thread.start()
 
@@ -205,18 +347,34 @@ class DaskCluster:
             if self.scheduler:
                 self.client = Client(self.scheduler)
             else:
-                with dask.config.set(worker_environment()):
-                    self.cluster = LocalCluster(
-                        n_workers=self.n_workers,
-                        threads_per_worker=1,
-                        processes=True,
-                        host="127.0.0.1",
-                        dashboard_address=None,
-                        scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
-                        silence_logs=logging.ERROR,
-                    )
+                from dask.distributed import Worker
+
+                # kept until close(): the worker processes start later, from the cluster's event loop
+                self._config = dask.config.set(worker_environment())
+                self.cluster = LocalCluster(
+                    n_workers=0,
+                    threads_per_worker=1,
+                    processes=True,
+                    host="127.0.0.1",
+                    dashboard_address=None,
+                    scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
+                    silence_logs=logging.ERROR,
+                    preload=[__name__],  # worker processes import torch, captum, ... before they register
+                )
+                # one of the workers lives in this process: it has the prepared state already, it can take
+                # the first cell as soon as the client has prepared, and the machine runs one worker process
+                # (and its nanny) fewer
+                self.cluster.worker_spec[IN_CLIENT_WORKER] = {
+                    "cls": Worker,
+                    "options": {"nthreads": 1, "host": "127.0.0.1", "name": IN_CLIENT_WORKER},
+                }
+                self.cluster.sync(self.cluster._correct_state)
+                # the worker processes boot in the background and join when ready (cells do not wait for
+                # them; a late worker fetches the shared state from a worker that has it)
+                self.cluster.scale(self.n_workers)
                 self.client = Client(self.cluster)
-            self.client.run(_warm_imports)
+            if self.cluster is None:  # a remote cluster's workers import while the client prepares
+                self.client.run(_warm_imports)
         except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
             self.error = exc
 
@@ -224,8 +382,16 @@ class DaskCluster:
         self._thread.join()
         if self.client is not None:
             self.client.close()
+            self.client = None
         if self.cluster is not None:
             self.cluster.close()
+            self.cluster = None
+        if self._config is not None:
+            self._config.__exit__(None, None, None)
+            self._config = None
+        if self.state_path is not None:
+            self.state_path.unlink(missing_ok=True)
+            self.state_path = None
 
     def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict]]:
         from dask.distributed import as_completed as dask_completed
@@ -239,7 +405,14 @@ class DaskCluster:
             if not ordered:
                 return
             # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
-            state = client.scatter(packed_state(jobs), broadcast=True, hash=True)
+            key, blob = packed_state(jobs)
+            _INSTALLED.add(key)  # this process (and the worker in it) holds the state already
+            if self.cluster is not None:  # workers on this machine: they read a file once each
+                self.state_path = state_file(blob)
+                state = client.scatter((key, str(self.state_path)), broadcast=True, hash=False)
+            else:
+                state = client.scatter((key, blob), broadcast=True, hash=True)
+            del blob
             futures = [
                 client.submit(
                     compute_cell_with,
@@ -265,7 +438,7 @@ def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int =
 
 def executor_for(name: str, n_jobs: int, scheduler: str | None) -> Callable[[list[CellJob]], Iterator]:
     if name == "local":
-        return lambda jobs: run_local(jobs, n_jobs)
+        return LocalPool(n_jobs)  # workers start now, while the client prepares
     if name == "dask":
         return DaskCluster(scheduler, max(n_jobs, 1))  # starts now, while the client prepares
     raise XbenchInputError("--executor", "unknown executor", expected="local or dask", found=name)
