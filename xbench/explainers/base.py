@@ -366,6 +366,9 @@ class FitCache:
     def clear(self) -> None:
         self.entries.clear()
 
+    def __len__(self) -> int:
+        return len(self.entries)
+
 
 def score_function(key: str, model: ModelHandle, score: str) -> Callable[[torch.Tensor], torch.Tensor]:
     """A forward function ``x (B, C, H, W) tensor -> class scores (B, n_classes) float32 tensor``.

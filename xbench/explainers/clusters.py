@@ -51,7 +51,6 @@ Outputs
 
 from __future__ import annotations
 
-import hashlib
 import warnings
 from typing import Any
 
@@ -65,9 +64,11 @@ from xbench.errors import XbenchInputError
 from xbench.explainers.base import (
     LAYER_FIELD,
     ConceptReport,
+    FitCache,
     LayerTap,
     as_tensor,
     batches,
+    fit_content_key,
     layer_activations,
     nearest_index_upsample,
     signed_maps,
@@ -177,26 +178,8 @@ def _ordered(value: list[int], where: Where) -> list[int]:
     return value
 
 
-# Fitted cluster models of this process, by (model weights, layer, fitting set, seed, fit settings); the
-# oldest are dropped beyond _MAX_FITS (each holds the fitting set's activations: a few MB).
-_FITS: dict[str, tuple[np.ndarray, PCA | None, GaussianMixture, dict[int, float], np.ndarray]] = {}
-_MAX_FITS = 4
-
-
-def _fit_key(model: Any, layer: str, fit_images: np.ndarray | None, seed: int, settings: tuple) -> str | None:
-    """Content key of a fit: the module's weights (parameters and buffers), the layer, the fitting set's
-    bytes, the seed and the fit settings. None for a model without a torch module."""
-    module = getattr(model, "module", None)
-    if module is None or fit_images is None:
-        return None
-    digest = hashlib.blake2b(digest_size=16)
-    for name, tensor in module.state_dict().items():
-        digest.update(name.encode())
-        digest.update(tensor.detach().contiguous().cpu().numpy().tobytes())
-    images = np.ascontiguousarray(fit_images)
-    digest.update(repr((layer, images.shape, str(images.dtype), seed, settings)).encode())
-    digest.update(images.tobytes())
-    return digest.hexdigest()
+# Fitted cluster models of this process, by (model weights, layer, fitting set, seed, fit settings).
+_FITS = FitCache()
 
 
 def _fit_clusters(
@@ -282,18 +265,14 @@ def activation_clusters(
 
     # 1-3: fit the mixture on the fitting set's activation vectors (once per model state, layer, fitting set,
     # seed and fit settings in a process: metrics re-run the explainer on the same model many times)
-    fit_key = _fit_key(
-        model, layer, context.fit_images, seed, (n_clusters, cluster_range, pca_components, covariance, max_positions)
-    )
-    fitted = _FITS.get(fit_key) if fit_key is not None else None
-    if fitted is None:
-        fitted = _fit_clusters(
+    settings = (layer, seed, n_clusters, tuple(cluster_range), pca_components, covariance, max_positions)
+    fit_key = None if context.fit_images is None else fit_content_key(model, [context.fit_images], settings)
+    fitted = _FITS.get_or_fit(
+        fit_key,
+        lambda: _fit_clusters(
             model, layer, context, bs, n_clusters, cluster_range, pca_components, covariance, max_positions
-        )
-        if fit_key is not None:
-            _FITS[fit_key] = fitted
-            while len(_FITS) > _MAX_FITS:
-                _FITS.pop(next(iter(_FITS)))
+        ),
+    )
     fit_acts, pca, gm, bics, fit_maps = fitted
     _, width, h, w = fit_acts.shape
 

@@ -85,9 +85,9 @@ def release_process_caches() -> None:
     import ctypes
     import gc
 
-    from xbench.explainers import clusters
+    from xbench.explainers import clusters, tcav
 
-    for cache in (_TASK_CACHE, _PREP_CACHE, _CONCEPT_CACHE, clusters._FITS):
+    for cache in (_TASK_CACHE, _PREP_CACHE, _CONCEPT_CACHE, clusters._FITS, tcav._CAV_FITS):
         cache.clear()
     gc.collect()
     try:  # glibc keeps freed small blocks in its arenas; one trim returns them (not a per-free trim threshold)
