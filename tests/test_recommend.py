@@ -129,3 +129,22 @@ def test_report_names_the_clear_winner_and_both_of_a_tie(tmp_path):
     # cost per tile from the manifest's cells: grad-cam 0.01 s / 10 tiles = 1 ms
     assert np.isclose(loc.set_index("explainer").loc["grad-cam", "seconds_per_tile"], 0.001)
     assert "(1 ms)" in page
+
+
+def test_an_aspect_whose_controls_do_not_separate_says_so():
+    """The controls are anchors every metric must separate; where the oracle does not beat random (the
+    randomization metrics: model-blind maps never change, so every control scores 1), the page says so."""
+    from xbench.report.recommend import AspectResult, BlockRecommendation, reading
+
+    def aspect(name: str, metric: str, hib: bool, anchors: dict[str, float]) -> AspectResult:
+        return AspectResult(name, metric, "none", hib, ["gradient"], {"gradient": 0.1}, anchors, 32, "tile", 1e-4)
+
+    block = BlockRecommendation("demo", "cnn", [0, 1])
+    block.aspects = [
+        aspect("sanity", "randomization-spearman", False, {"random": 1.0, "edges": 1.0, "oracle": 1.0}),
+        aspect("faithfulness", "deletion-auc", False, {"random": 0.45, "oracle": 0.08}),
+    ]
+    _, caveats = reading(block)
+    flagged = [c for c in caveats if "the controls do not separate" in c]
+    assert len(flagged) == 1 and flagged[0].startswith("sanity:")
+    assert "`oracle` 1, `random` 1" in flagged[0]

@@ -242,6 +242,22 @@ def reading(rec: BlockRecommendation, alpha: float = 0.05) -> tuple[list[str], l
                     f"{a.aspect}: the leader `{best}` is not significantly better than the `random` control "
                     f"({_fmt(a.means[best])} vs {_fmt(a.anchors['random'])}); treat this aspect as undecided."
                 )
+        if "oracle" in a.anchors and "random" in a.anchors:
+            oracle, rnd = a.anchors["oracle"], a.anchors["random"]
+            sign = 1.0 if a.higher_is_better else -1.0
+            if np.isfinite(oracle) and np.isfinite(rnd) and not sign * (oracle - rnd) > 1e-9:
+                # the anchors must bracket the methods; a metric that cannot separate them says so
+                why = (
+                    "maps that ignore the model (the controls) do not change when its weights are randomized, "
+                    "so they all score alike by construction; the metric tells model-dependent methods from "
+                    "model-blind ones, not evidence from noise"
+                    if a.aspect == "sanity"
+                    else "the metric does not tell the planted evidence from a random map here"
+                )
+                caveats.append(
+                    f"{a.aspect}: the controls do not separate on {a.label} (`oracle` {_fmt(oracle)}, `random` "
+                    f"{_fmt(rnd)}): {why}."
+                )
         if "oracle" in a.anchors and "random" in a.anchors and a.aspect == "localization":
             span = a.anchors["oracle"] - a.anchors["random"]
             if np.isfinite(span) and abs(span) > 1e-9:
