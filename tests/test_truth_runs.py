@@ -65,6 +65,27 @@ def test_completeness_gap_recorded_for_ig_and_deeplift(self_check_run) -> None:
         assert "completeness gap above 5% of the score change" in manifest
 
 
+def test_the_report_shows_a_failed_self_check(self_check_run, tmp_path) -> None:
+    import shutil
+
+    from xbench.report import write_report
+    from xbench.report.writer import SELF_CHECK_TITLE, self_check_warnings
+
+    run = shutil.copytree(self_check_run, tmp_path / "run")  # the module's run folder stays as it was
+    manifest = json.loads((run / "manifest.json").read_text())
+    # a cell whose completeness gap exceeded 5% (the text the metric leaves in the cell's notes)
+    cell = manifest["cells"][0]
+    cell["notes"]["completeness-gap/none warning"] = "completeness gap above 5% of the score change"
+    lines = self_check_warnings([manifest])
+    assert any(x.startswith(f"`{cell['explainer']}` on ") and "above 5%" in x for x in lines)
+    (run / "manifest.json").write_text(json.dumps(manifest))
+    write_report([run], tmp_path / "rep", "md,html", n_resamples=50, figures=False)
+    for name in ("tables.md", "report.html", "report.log"):
+        text = (tmp_path / "rep" / name).read_text()
+        assert "completeness gap above 5% of the score change" in text, name
+    assert SELF_CHECK_TITLE in (tmp_path / "rep" / "report.html").read_text()
+
+
 def test_every_removal_curve_runs_over_the_fraction_removed(self_check_run) -> None:
     curves = pd.read_parquet(self_check_run / "curves.parquet")
     lerf = curves[curves["curve"] == "deletion-lerf"]

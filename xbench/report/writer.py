@@ -457,6 +457,7 @@ def write_report(
     result.paths.append(out / "recommendations.csv")
     write("recommendations.md", advice_md)
     skipped_md, skipped_html = skipped_section(runs.reasons)
+    self_checks = self_check_warnings(runs.manifests)
     if "md" in fmts:
         write(
             "tables.md",
@@ -466,6 +467,7 @@ def write_report(
             + ("\n# Breakdowns\n\n" + "\n".join(T.to_markdown(t) for t in breakdowns) if breakdowns else "")
             + T.left_out_markdown(summary)
             + T.flags_markdown("Protocol sensitivity: rankings that flip", variant_flags)
+            + T.flags_markdown(SELF_CHECK_TITLE, self_checks)
             + ("\n" + skipped_md if skipped_md else ""),
         )
     if "tex" in fmts:
@@ -479,6 +481,9 @@ def write_report(
         if variant_flags:
             items = "".join(f"<li>{P.inline_markdown(x)}</li>" for x in variant_flags)
             extra += [("protocol", "Protocol sensitivity: rankings that flip", f"<ul>{items}</ul>")]
+        if self_checks:
+            items = "".join(f"<li>{P.inline_markdown(x)}</li>" for x in self_checks)
+            extra += [("self-checks", SELF_CHECK_TITLE, f"<ul>{items}</ul>")]
         write(
             "report.html",
             P.render_page(runs.dirs, recs, alpha, results, ranks, figs, methods_md, log, concept_specs, extra),
@@ -487,12 +492,30 @@ def write_report(
     write("refs.bib", render_bib(cites.keys))
     for f in figs:
         result.paths += [f.png, f.pdf]
+    log += [f"warning: {x}" for x in self_checks]  # the page has its own section for them
     write("report.log", "\n".join(log) + ("\n" if log else ""))
     result.warnings = log
     result.n_tables = len(results) + len(ranks) + len(concept_specs) + len(breakdowns)
     result.n_figures = len(figs)
     result.recommendations = recs
     return result
+
+
+SELF_CHECK_TITLE = "Self-checks that failed"
+
+
+def self_check_warnings(manifests: list[dict]) -> list[str]:
+    """One line per cell whose metric left a warning in its notes (e.g. the completeness gap of integrated
+    gradients or DeepLIFT above 5% of the score change): a self-check of the explainer that failed."""
+    out = []
+    for m in manifests:
+        for c in m.get("cells") or []:
+            for tag, text in sorted((c.get("notes") or {}).items()):
+                if tag.endswith(" warning"):
+                    what = tag[: -len(" warning")]
+                    where = f"{m.get('task')}/{c.get('model')} seed {c.get('seed')}"
+                    out.append(f"`{c.get('explainer')}` on {where}, {what}: {text}")
+    return out
 
 
 def skipped_section(reasons: pd.DataFrame | None) -> tuple[str, str]:
