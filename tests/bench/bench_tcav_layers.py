@@ -1,7 +1,7 @@
 """TCAV's power per layer: the test's p-value for the type a class is labelled by, on that class, at every
 ReLU layer of a zoo model (the default layer's row marked), so the default layer rule can be checked.
 
-    python tests/bench/bench_tcav_layers.py roads:cnn:0 roads:resnet:0 clearings:separable:0 ...
+    python tests/bench/bench_tcav_layers.py roads:cnn:0 roads:resnet:0 clearings:separable:0 ... [--set KEY=VALUE]
 
 Each argument is TASK:MODEL[:SEED]; the model is trained once into $XBENCH_CACHE. TCAV runs with the task's
 own settings (concept sets of `concept_set_size` tiles, `random_sets` random sets, the set test with the
@@ -10,13 +10,14 @@ alignment statistic, Bonferroni over the concept types); the p-values are the co
 
 from __future__ import annotations
 
+import json
 import sys
 
 import torch
 from torch import nn
 
 
-def probe(task: str, model_name: str, seed: int) -> None:
+def probe(task: str, model_name: str, seed: int, settings: dict) -> None:
     from xbench.explainers import explain
     from xbench.explainers.tcav import tcav_default_layer
     from xbench.runs.execute import explain_context, prepare
@@ -29,11 +30,13 @@ def probe(task: str, model_name: str, seed: int) -> None:
     relus = [name for name, m in module.named_modules() if isinstance(m, nn.ReLU)]
     default = tcav_default_layer(handle)
     cell = Cell(cell_id="probe", task=prep.task.name, model=model_name, seed=seed, explainer="tcav")
-    report = explain("tcav", handle, prep.images, prep.targets, explain_context(prep, cell), layers=relus).concepts
+    report = explain(
+        "tcav", handle, prep.images, prep.targets, explain_context(prep, cell), layers=relus, **settings
+    ).concepts
     assert report is not None
     rows = report.extras["layer_rows"]
     names = list(prep.task.class_names)
-    print(f"{task} / {model_name} / seed {seed} (default layer {default}):")
+    print(f"{task} / {model_name} / seed {seed} (default layer {default}){' ' + str(settings) if settings else ''}:")
     for index, types in prep.task.class_driving_types.items():
         cls = names[int(index)]
         for typ in types:
@@ -46,9 +49,17 @@ def probe(task: str, model_name: str, seed: int) -> None:
 
 def main() -> int:
     torch.set_num_threads(1)
-    for arg in sys.argv[1:] or ["roads:cnn:0"]:
+    args, settings = [], {}
+    items = iter(sys.argv[1:])
+    for arg in items:
+        if arg == "--set":  # an explainer setting, e.g. --set regularization=0.1
+            key, value = next(items).split("=", 1)
+            settings[key] = json.loads(value) if value[:1] in "0123456789-[{tf" else value
+        else:
+            args.append(arg)
+    for arg in args or ["roads:cnn:0"]:
         parts = arg.split(":")
-        probe(parts[0], parts[1], int(parts[2]) if len(parts) > 2 else 0)
+        probe(parts[0], parts[1], int(parts[2]) if len(parts) > 2 else 0, settings)
     return 0
 
 

@@ -22,7 +22,7 @@ import torch.nn.functional as F
 from scipy import ndimage
 
 from xbench.errors import XbenchInputError
-from xbench.models.base import ModelHandle
+from xbench.models.base import ModelHandle, tensor_from
 from xbench.schema import Field
 
 if TYPE_CHECKING:
@@ -201,7 +201,7 @@ def batches(n: int, size: int) -> Iterator[slice]:
 
 
 def as_tensor(a: np.ndarray) -> torch.Tensor:
-    return torch.from_numpy(np.ascontiguousarray(a, dtype=np.float32))
+    return tensor_from(a)
 
 
 def as_numpy(t: torch.Tensor) -> np.ndarray:

@@ -376,15 +376,24 @@ def _check_masks(where: str, masks: Any, names: Any, nhw: tuple[int, int, int], 
         )
 
 
+def _read_only(a: np.ndarray) -> np.ndarray:
+    view = a.view()
+    view.flags.writeable = False
+    return view
+
+
 def private_context(context: ExplainContext) -> ExplainContext:
-    """A copy of the context whose arrays (twins, masks, fitting set, concept sets) are copies too."""
+    """A copy of the context whose arrays (twins, masks, fitting set, concept sets) are read-only views: an
+    explainer cannot change what later explainers and metrics read (writing raises numpy's "assignment
+    destination is read-only"), and nothing is copied (the concept sets alone are ~120 MB on the demo, and
+    the metrics re-run explainers many times)."""
     changes: dict[str, Any] = {}
     for f in fields(context):
         value = getattr(context, f.name)
         if isinstance(value, np.ndarray):
-            changes[f.name] = value.copy()
+            changes[f.name] = _read_only(value)
         elif isinstance(value, dict) and any(isinstance(v, np.ndarray) for v in value.values()):
-            changes[f.name] = {k: v.copy() if isinstance(v, np.ndarray) else v for k, v in value.items()}
+            changes[f.name] = {k: _read_only(v) if isinstance(v, np.ndarray) else v for k, v in value.items()}
     return replace(context, **changes) if changes else context
 
 
@@ -441,8 +450,8 @@ def explain(
                 warnings.filterwarnings("ignore", message=".*required_grads has been set automatically.*")
                 warnings.filterwarnings("ignore", message=".*[Ss]etting (forward, )?backward hooks.*")
                 warnings.filterwarnings("ignore", message=".*multiple inputs for Lime.*")
-                # the explainer gets its own copies: one that writes into its input cannot change the arrays
-                # that later explainers and metrics read
+                # the explainer gets its own copies of the tiles and targets and read-only views of the
+                # context: one that writes into its input cannot change what later explainers and metrics read
                 out = spec.fn(model, images.copy(), targets.copy(), private_context(context), **merged)
         seconds = time.perf_counter() - start
     if isinstance(out, tuple):

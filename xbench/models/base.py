@@ -210,6 +210,13 @@ def _frozen_inference_copy(module: nn.Module, sample: torch.Tensor) -> torch.jit
     return frozen
 
 
+def tensor_from(a: np.ndarray) -> torch.Tensor:
+    """A float32 tensor sharing ``a``'s memory where it can; read-only arrays (the views explainers get of
+    shared context arrays) are copied, since torch does not support non-writable tensors."""
+    a = np.ascontiguousarray(a, dtype=np.float32)
+    return torch.from_numpy(a if a.flags.writeable else a.copy())
+
+
 class ModelHandle:
     """A classifier behind one small protocol (see module docstring)."""
 
@@ -457,7 +464,7 @@ class ModelHandle:
         for start in range(0, m, size):
             chunk = images[start : start + size]
             if self.module is not None:
-                logits = self.inference_logits(torch.from_numpy(np.ascontiguousarray(chunk)))
+                logits = self.inference_logits(tensor_from(chunk))
                 if kind == "probability":
                     probs = torch.softmax(logits.double(), dim=1).numpy()
                 else:
