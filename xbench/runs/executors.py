@@ -111,10 +111,12 @@ def install_state(state: dict[str, Any] | tuple[str, bytes | str] | None) -> Non
         key, blob = state
         if key in _INSTALLED:
             return
-        if isinstance(blob, str):
-            blob = Path(blob).read_bytes()
         _INSTALLED.add(key)
-        state = pickle.loads(blob)
+        if isinstance(blob, str):  # unpickled straight from the file: the bytes (~150 MB) are never held whole
+            with open(blob, "rb") as f:
+                state = pickle.load(f)
+        else:
+            state = pickle.loads(blob)
     assert isinstance(state, dict)  # unpacked state: {cache name: entries}
     for name, cache in (("tasks", execute._TASK_CACHE), ("preps", execute._PREP_CACHE)):
         for key, value in state.get(name, {}).items():
