@@ -7,6 +7,7 @@ import json
 import shutil
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -115,6 +116,27 @@ def test_a_damaged_data_cache_is_rebuilt(make_task, tmp_path, monkeypatch):
     with pytest.warns(UserWarning, match="damaged data cache"):
         again = build_task_data(task)
     assert (again.train.images == first.train.images).all()
+
+
+def test_concept_sets_are_cached_on_disk_and_a_damaged_entry_is_rebuilt(make_task, tmp_path, monkeypatch):
+    from xbench.runs import execute
+    from xbench.tasks import cache_root, load_task
+
+    task = load_task(make_task())
+    monkeypatch.setenv("XBENCH_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setattr(execute, "_CONCEPT_CACHE", {})
+    types = ["road", "river"]
+    first = execute.concept_sets_for(task, types)
+    (entry,) = (cache_root() / "concepts").glob("*.npz")
+    monkeypatch.setattr(execute, "_CONCEPT_CACHE", {})
+    read = execute.concept_sets_for(task, types)
+    assert list(read) == list(first)  # the order names the concepts first, then random-0, random-1, ...
+    assert all(np.array_equal(read[k], first[k]) and read[k].dtype == np.float32 for k in first)
+    entry.write_bytes(entry.read_bytes()[:100])
+    monkeypatch.setattr(execute, "_CONCEPT_CACHE", {})
+    with pytest.warns(UserWarning, match="damaged concept-set cache"):
+        again = execute.concept_sets_for(task, types)
+    assert all(np.array_equal(again[k], first[k]) for k in first)
 
 
 def _pack_task(tmp_path: Path, module_dir: Path) -> tuple[Path, object]:
