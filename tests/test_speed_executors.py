@@ -89,3 +89,19 @@ def test_costliest_cells_are_dispatched_first():
     cells = [type("C", (), {"explainer": k})() for k in ("oracle", "gradient", "rise", "my-plugin", "occlusion")]
     order = [job[1].explainer for job in longest_first([("t", c, [], {}, "r") for c in cells])]
     assert order == ["rise", "occlusion", "my-plugin", "gradient", "oracle"]
+
+
+def test_a_local_dask_worker_process_runs_without_a_nanny_and_says_why_it_ended_early():
+    pytest.importorskip("dask.distributed")
+    from xbench.runs.executors import _ended_early, _worker_process
+
+    # no scheduler listens on this address: the worker gives up after its death timeout, so stop it here
+    process = _worker_process("tcp://127.0.0.1:9", "probe")
+    try:
+        assert "--no-nanny" in process.args and "--preload" in process.args
+        assert _ended_early(process) is None  # still trying to reach the scheduler
+    finally:
+        process.kill()
+        process.wait()
+    reason = _ended_early(process)
+    assert reason is not None and reason.startswith("exit code -9")

@@ -187,8 +187,8 @@ def _write_concept_sets(path: Path, sets: dict[str, np.ndarray]) -> None:
     from xbench.data import atomic_write
 
     def write(tmp: str) -> None:
-        with open(tmp, "wb") as fh:
-            np.savez(fh, **sets)  # not compressed: reflectances barely compress, and reading stays fast
+        with open(tmp, "wb") as fh:  # not compressed: reflectances barely compress, and reading stays fast
+            np.savez(fh, allow_pickle=False, **sets)
 
     try:
         atomic_write(path, write)

@@ -21,7 +21,11 @@ What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``
 - **glibc's allocator left alone on dask workers.** dask's nanny sets ``MALLOC_TRIM_THRESHOLD_=65536`` in
   each worker by default, which makes every freed activation buffer go back to the kernel and be
   page-faulted in again (tens of millions of page faults and ~1.6x the wall time on these small models);
-  the local cluster is started without it (``distributed.nanny.pre-spawn-environ``).
+  the local cluster's workers run without it.
+- **No nannies, no busy event loops on a local cluster.** Its worker processes are plain ``dask worker
+  --no-nanny`` processes started before the scheduler (they import while it comes up): one process per
+  worker, not two. Every dask server checks its event loop every 20 ms by default; the check runs every
+  second here, since the scheduler and one worker share the client's process with a computing cell.
 """
 
 from __future__ import annotations
@@ -29,9 +33,15 @@ from __future__ import annotations
 import hashlib
 import logging
 import multiprocessing
+import os
 import pickle
+import socket
+import subprocess
+import sys
+import tempfile
 import threading
 import time
+import warnings
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
@@ -287,6 +297,10 @@ def worker_environment() -> dict[str, Any]:
         "distributed.worker.memory.pause": False,
         "distributed.worker.memory.terminate": False,
         "distributed.admin.system-monitor.interval": "5s",
+        # every server (the scheduler and the worker in the client's process, each worker process) checks
+        # its event loop for blocking every 20 ms by default: 50 wake-ups a second per server that take the
+        # GIL from a cell computing on a thread of the same process
+        "distributed.admin.tick.interval": "1s",
         # cells are queued on the scheduler longest first and handed to whichever worker is free: stealing
         # can only move a long cell behind another
         "distributed.scheduler.work-stealing": False,
@@ -313,13 +327,54 @@ def dask_setup(worker: Any) -> None:
     _warm_imports()
 
 
+def _free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on now (the scheduler takes it a moment later)."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def _worker_process(address: str, name: str) -> subprocess.Popen:
+    """A one-thread dask worker process without a nanny (``dask worker --no-nanny``) for a local cluster:
+    one process per worker instead of two (the nanny's own start-up, imports and polling cost CPU on a
+    machine whose every core runs cells). Settings
+    go through the environment: :func:`worker_environment` as ``DASK_*`` variables, one thread for every
+    numeric library, glibc's own trim threshold. It gives up if no scheduler answers within a minute (so
+    it never outlives a client that died)."""
+    env = {k: v for k, v in os.environ.items() if k != "MALLOC_TRIM_THRESHOLD_"}
+    for key, value in worker_environment().items():
+        if key.startswith("distributed.nanny.pre-spawn-environ."):
+            if value is not None:
+                env[key.rsplit(".", 1)[1]] = str(value)
+        else:
+            env["DASK_" + key.replace(".", "__").replace("-", "_").upper()] = repr(value)
+    command = [sys.executable, "-m", "distributed.cli.dask_worker", address, "--no-nanny", "--nthreads", "1"]
+    command += ["--name", name, "--host", "127.0.0.1", "--no-dashboard", "--memory-limit", "0"]
+    command += ["--death-timeout", "60", "--preload", __name__]
+    log = tempfile.TemporaryFile(mode="w+b")  # read back only if the worker ends before it is told to
+    return subprocess.Popen(command, env=env, stdin=subprocess.DEVNULL, stdout=log, stderr=log)
+
+
+def _ended_early(process: subprocess.Popen) -> str | None:
+    """Why a worker process ended before the client told it to (its exit code and last log lines), or None."""
+    code = process.poll()
+    if code is None:
+        return None
+    log = process.stdout
+    tail: list[str] = []
+    if log is not None:
+        log.seek(0)
+        tail = log.read().decode(errors="replace").strip().splitlines()[-3:]
+    return f"exit code {code}" + (": " + " | ".join(tail) if tail else "")
+
+
 class DaskCluster:
     """A dask client (to ``scheduler``, or to a local cluster of ``n_workers`` one-thread workers) that starts
     in a background thread as soon as it is made, so workers boot and import while the client prepares the
     data, models and truth; calling it with the jobs waits for it, then runs the cells.
 
     The local cluster's first worker runs inside this process (a dask ``Worker`` on the client's event loop,
-    computing on its own thread while the client waits), the others in worker processes under nannies: like
+    computing on its own thread while the client waits), the others in worker processes (no nannies): like
     ``--jobs N`` locally, no process sits idle and the machine starts one worker process fewer. A remote
     scheduler's workers are wherever their owner started them."""
 
@@ -338,6 +393,7 @@ class DaskCluster:
         self.error: BaseException | None = None
         self._config: Any = None
         self.state_path: Path | None = None
+        self.processes: list[subprocess.Popen] = []
         self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
         self._thread.start()
 
@@ -351,29 +407,32 @@ class DaskCluster:
             else:
                 from dask.distributed import Worker
 
-                # kept until close(): the worker processes start later, from the cluster's event loop
-                self._config = dask.config.set(worker_environment())
+                port = _free_port()
+                # the worker processes start first and import while the scheduler comes up (they retry
+                # connecting until it listens)
+                self.processes = [
+                    _worker_process(f"tcp://127.0.0.1:{port}", f"xbench-worker-{i + 1}")
+                    for i in range(self.n_workers - 1)
+                ]
+                self._config = dask.config.set(worker_environment())  # kept until close()
                 self.cluster = LocalCluster(
                     n_workers=0,
                     threads_per_worker=1,
                     processes=True,
                     host="127.0.0.1",
+                    scheduler_port=port,
                     dashboard_address=None,
                     scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
                     silence_logs=logging.ERROR,
-                    preload=[__name__],  # worker processes import torch, captum, ... before they register
                 )
                 # one of the workers lives in this process: it has the prepared state already, it can take
                 # the first cell as soon as the client has prepared, and the machine runs one worker process
-                # (and its nanny) fewer
+                # fewer
                 self.cluster.worker_spec[IN_CLIENT_WORKER] = {
                     "cls": Worker,
                     "options": {"nthreads": 1, "host": "127.0.0.1", "name": IN_CLIENT_WORKER},
                 }
                 self.cluster.sync(self.cluster._correct_state)
-                # the worker processes boot in the background and join when ready (cells do not wait for
-                # them; a late worker fetches the shared state from a worker that has it)
-                self.cluster.scale(self.n_workers)
                 self.client = Client(self.cluster)
             if self.cluster is None:  # a remote cluster's workers import while the client prepares
                 self.client.run(_warm_imports)
@@ -382,6 +441,22 @@ class DaskCluster:
 
     def close(self) -> None:
         self._thread.join()
+        # worker processes first, while the scheduler still answers (a worker told to stop after the
+        # scheduler has gone keeps trying to reach it)
+        for process in self.processes:
+            why = _ended_early(process)
+            if why is not None:  # its cells ran on the other workers; the run is right, only slower
+                warnings.warn(f"a local dask worker process ended early ({why})", stacklevel=2)
+            process.terminate()
+        for process in self.processes:
+            try:
+                process.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
+            if process.stdout is not None:
+                process.stdout.close()
+        self.processes = []
         if self.client is not None:
             self.client.close()
             self.client = None
