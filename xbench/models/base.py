@@ -362,27 +362,29 @@ class ModelHandle:
             self.__dict__["_module_list"] = cached
         return cached[1]
 
-    def _inference_copy(self, x: torch.Tensor) -> Any:
+    def _inference_copy(self, x: torch.Tensor, check_weights: bool = True) -> Any:
         """The frozen copy for tiles shaped like ``x`` (built on first use, rebuilt after a weight change),
-        or None where the eager module must run."""
+        or None where the eager module must run. ``check_weights = False``: the caller has checked the
+        weights since they last could change (the later chunks of one :meth:`scores` call)."""
         if not self.fast_inference or self.module is None or x.ndim != 4 or self._foreign_hooks():
             return None
-        weights = _weights_signature(self._submodules())
-        if weights != self._inference_weights:
-            self._inference.clear()
-            self._inference_weights = weights
+        if check_weights:
+            weights = _weights_signature(self._submodules())
+            if weights != self._inference_weights:
+                self._inference.clear()
+                self._inference_weights = weights
         key = (str(x.dtype), *x.shape[1:])
         if key not in self._inference:
             self._inference[key] = _frozen_inference_copy(self.module, x[:2].detach().clone())
         return self._inference[key]
 
-    def inference_logits(self, x: torch.Tensor) -> torch.Tensor:
+    def inference_logits(self, x: torch.Tensor, check_weights: bool = True) -> torch.Tensor:
         """Logits of a batch without gradients (counted as forward calls): the frozen inference copy where
         it applies, else the eager module. The result is an ordinary (not inference-mode) tensor."""
         if self.module is None:
             raise XbenchInputError(f"model '{self.name}'", "is a black box: it has no logits")
         self._settle_layout(x)
-        fast = self._inference_copy(x)
+        fast = self._inference_copy(x, check_weights)
         with torch.no_grad():
             if fast is None:
                 return self.module(x)
@@ -464,7 +466,8 @@ class ModelHandle:
         for start in range(0, m, size):
             chunk = images[start : start + size]
             if self.module is not None:
-                logits = self.inference_logits(tensor_from(chunk))
+                # the weights cannot change between the chunks of one call: checked on the first only
+                logits = self.inference_logits(tensor_from(chunk), check_weights=start == 0)
                 if kind == "probability":
                     probs = torch.softmax(logits.double(), dim=1).numpy()
                 else:
