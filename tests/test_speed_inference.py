@@ -134,3 +134,25 @@ def test_kept_cluster_fit_gives_the_maps_of_a_fresh_fit():
     explain("activation-clusters", handle, x, targets, context, **settings)
     assert len(clusters_module._FITS) == 2
     clusters_module._FITS.clear()
+
+
+def test_fit_keys_follow_the_bytes_and_remember_only_arrays_that_cannot_change():
+    import hashlib
+
+    from xbench.explainers import base as explainer_base
+    from xbench.explainers.base import array_digest
+
+    data = np.arange(24, dtype=np.float32).reshape(2, 3, 4)
+    reference = hashlib.blake2b(data.tobytes(), digest_size=16).digest()  # hashlib over the C-order bytes
+    assert array_digest(data) == reference
+    assert array_digest(np.asfortranarray(data)) == reference  # the layout does not matter, the values do
+    data[0, 0, 0] = 99.0  # a writeable array is hashed again every time
+    assert array_digest(data) != reference
+    frozen = data.copy()
+    frozen.flags.writeable = False
+    view = frozen[1:]
+    first = array_digest(view)
+    assert first == hashlib.blake2b(view.tobytes(), digest_size=16).digest()
+    remembered = [k for k in explainer_base._FROZEN_DIGESTS if k[0] == id(frozen)]
+    assert len(remembered) == 1 and array_digest(frozen[1:]) == first  # a new view of the same place
+    assert array_digest(frozen[:1]) != first  # another place in the same array

@@ -153,8 +153,19 @@ def concept_sets_for(task: Task, types: list[str]) -> dict[str, np.ndarray]:
             sets = make_concept_sets(task.data.recipe, task.data.size, *settings)
             if path is not None:
                 _write_concept_sets(path, sets)
-        _CONCEPT_CACHE[key] = sets
+        _CONCEPT_CACHE[key] = frozen_sets(sets)
     return _CONCEPT_CACHE[key]
+
+
+def frozen_sets(sets: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """The sets as read-only arrays that own their memory: nothing changes them after they are made, and
+    explainers that hash them for their fit caches hash each one once per process."""
+    out = {}
+    for name, array in sets.items():
+        a = np.array(array, dtype=np.float32) if not np.asarray(array).flags.owndata else np.asarray(array)
+        a.flags.writeable = False
+        out[name] = a
+    return out
 
 
 def _concept_cache_path(task: Task, settings: tuple) -> Path:
@@ -176,7 +187,7 @@ def _read_concept_sets(path: Path) -> dict[str, np.ndarray] | None:
         return None
     try:
         with np.load(path, allow_pickle=False) as data:
-            sets = {name: np.asarray(data[name], dtype=np.float32) for name in data.files}
+            sets = {name: np.array(data[name], dtype=np.float32) for name in data.files}
     except (OSError, ValueError, KeyError, zipfile.BadZipFile) as exc:
         warnings.warn(f"damaged concept-set cache entry {path} rebuilt: {exc}", stacklevel=3)
         return None

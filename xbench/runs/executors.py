@@ -132,7 +132,7 @@ def install_state(state: dict[str, Any] | tuple[str, bytes | str] | None) -> Non
         for key, value in state.get(name, {}).items():
             cache.setdefault(key, value)
     for key, value in state.get("concepts", {}).items():
-        execute._CONCEPT_CACHE.setdefault(key, value)
+        execute._CONCEPT_CACHE.setdefault(key, execute.frozen_sets(value))
 
 
 def _init_worker(state: tuple[str, bytes] | None = None) -> None:
