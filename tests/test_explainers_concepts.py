@@ -324,7 +324,8 @@ def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
     assert all(0 <= r["p_value"] <= 1 for r in rep_set.rows)
     # per-layer rows for every requested layer
     assert {r["layer"] for r in rep.layer_rows} == {"feat", "relu"}
-    assert exp.cost.backward_calls == 24 * 2  # the explained layer, then the extra layer 'relu'
+    # one backward pass per tile reads the gradients of every layer (the explained layer and 'relu')
+    assert exp.cost.backward_calls == 24
     assert exp.attributions.shape == (24, H, W) and np.isfinite(exp.attributions).all()
 
 
@@ -344,6 +345,7 @@ def test_tcav_detects_a_concept_the_model_uses():
         ExplainContext(concept_sets=sets, class_names=["a", "b"]),
         layer="feat",
         statistic="score",
+        evidence="layer",  # the test at 'feat' alone
     )
     rep = exp.concepts
     row = next(r for r in rep.rows if r["concept"] == "band0-lines")
@@ -402,7 +404,11 @@ def test_tcav_alignment_detects_what_the_sign_count_cannot():
     sets |= {"band0-lines": band_offset_tiles(rng, 20, band=0), "band2-wash": band_offset_tiles(rng, 20, band=2)}
     x = band_offset_tiles(rng, 16)
     ctx = ExplainContext(concept_sets=sets, class_names=["a", "b"], driving_types={1: ["band0-lines"]})
-    rep = explain("tcav", model, x, np.ones(16, int), ctx, layer="relu").concepts
+    rep = explain("tcav", model, x, np.ones(16, int), ctx, layer="relu", evidence="layer").concepts
+    # the model's only ReLU is 'relu': the default evidence pools that one layer, one test, the same p-value
+    pooled = explain("tcav", model, x, np.ones(16, int), ctx, layer="relu").concepts
+    assert pooled.extras["evidence_layers"] == ["relu"]
+    assert pooled.rows[0]["p_value"] == pytest.approx(rep.rows[0]["p_value"], rel=1e-9)
     assert set(np.unique(rep.random_runs)) <= {0.0, 1.0}  # every random run's TCAV score is 0 or 1
     row = {r["concept"]: r for r in rep.rows}
     assert row["band0-lines"]["score"] == 1.0 and row["band0-lines"]["p_value"] < 0.01
@@ -413,6 +419,170 @@ def test_tcav_alignment_detects_what_the_sign_count_cannot():
     # the same sets tested on the TCAV score: the random sets' scores spread over 0..1, no power
     by_score = explain("tcav", model, x, np.ones(16, int), ctx, layer="relu", statistic="score").concepts
     assert not by_score.flagged["band0-lines"]
+
+
+class DoubledNet(nn.Module):
+    """``relu_a`` = ReLU(1x1 conv of the bands with weights >= 0 and bias 0.1: channel 0 reads band 0 alone, the
+    other channels bands 1 and 2), so it is > 0 everywhere on tiles in [0, 1]; ``twice`` = 1x1 conv with weight
+    2 * I and no bias; ``relu_b`` = its ReLU; then a global mean pool and the head of :class:`PooledHeadNet`
+    (class 1 = 2 * pooled_0 + sum_c u_c * pooled_c)."""
+
+    def __init__(self, seed: int = 0, width: int = 8):
+        super().__init__()
+        g = torch.Generator().manual_seed(seed)
+        self.feat = nn.Conv2d(C, width, 1)
+        self.relu_a = nn.ReLU()
+        self.twice = nn.Conv2d(width, width, 1, bias=False)
+        self.relu_b = nn.ReLU()
+        self.head = nn.Linear(width, 2)
+        with torch.no_grad():
+            self.feat.weight.copy_(torch.rand(width, C, 1, 1, generator=g))
+            self.feat.weight[0] = 0.0
+            self.feat.weight[0, 0] = 1.0
+            self.feat.weight[1:, 0] = 0.0
+            self.feat.bias.fill_(0.1)
+            self.twice.weight.copy_(2.0 * torch.eye(width)[:, :, None, None])
+            self.head.weight.zero_()
+            self.head.bias.zero_()
+            self.head.weight[1, 0] = 2.0
+            self.head.weight[1, 1:] = 0.3 * torch.randn(width - 1, generator=g)
+
+    def forward(self, x):
+        return self.head(self.relu_b(self.twice(self.relu_a(self.feat(x)))).mean(dim=(2, 3)))
+
+
+def test_tcav_evidence_layers_are_every_relu_in_registration_order():
+    from xbench.explainers.tcav import tcav_default_layer, tcav_evidence_layers
+
+    # The stated rule reads the model's structure only: every nn.ReLU module, in registration order; a Tanh is
+    # not a ReLU; a model without ReLU modules falls back to the single default layer.
+    class Mixed(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.conv_a = nn.Conv2d(C, 4, 3, padding=1)
+            self.relu_a = nn.ReLU()
+            self.conv_b = nn.Conv2d(4, 4, 3, padding=1)
+            self.squash = nn.Tanh()
+            self.block = nn.Sequential(nn.Conv2d(4, 4, 1), nn.ReLU())
+            self.head = nn.Linear(4, 2)
+            self.explain_layer = "block.0"
+
+        def forward(self, x):
+            return self.head(self.block(self.squash(self.conv_b(self.relu_a(self.conv_a(x))))).mean(dim=(2, 3)))
+
+    mixed = ModelHandle("mixed", 2, module=Mixed().eval())
+    assert tcav_evidence_layers(mixed) == ["relu_a", "block.1"]
+    no_relu = ModelHandle("no-relu", 2, module=nn.Sequential(nn.Conv2d(C, 4, 1), nn.Tanh()).eval())
+    assert tcav_evidence_layers(no_relu) == [tcav_default_layer(no_relu)] == ["0"]
+    # the zoo: cnn relu1..relu4; resnet the stem's, two per basic block and the mix conv's; separable the
+    # stem's and two per separable block (depthwise, pointwise); see xbench/models/zoo.py
+    from xbench.models.zoo import build_torch_model
+
+    counts = {}
+    for kind in ("cnn", "resnet", "separable"):
+        handle = ModelHandle(kind, 2, module=build_torch_model(kind, C, 2, width=4).eval())
+        counts[kind] = len(tcav_evidence_layers(handle))
+    assert counts == {"cnn": 4, "resnet": 1 + 3 * 2 + 1, "separable": 1 + 4 * 2}
+
+
+def test_tcav_pooled_statistics_are_layer_z_scores_averaged():
+    from xbench.explainers.tcav import pooled_statistics
+
+    rng = np.random.default_rng(0)
+    a = rng.normal(size=11)
+    z = (a - a.mean()) / a.std(ddof=1)  # standard scores (common practice)
+    np.testing.assert_allclose(pooled_statistics([a]), z)
+    # a positive affine copy of a layer has the same standard scores: pooling it with the original changes nothing
+    np.testing.assert_allclose(pooled_statistics([a, 3.0 * a - 1.0]), z)
+    # a layer with no spread carries no evidence and is left out (no division by zero)
+    np.testing.assert_allclose(pooled_statistics([a, np.full(11, 0.2)]), z)
+    # the mean over layers of each set's standard score
+    b = rng.normal(size=11)
+    zb = (b - b.mean()) / b.std(ddof=1)
+    np.testing.assert_allclose(pooled_statistics([a, b]), (z + zb) / 2)
+    # the same map for every set: permuting the sets permutes the pooled values (exchangeability is kept)
+    order = rng.permutation(11)
+    np.testing.assert_allclose(pooled_statistics([a[order], b[order]]), pooled_statistics([a, b])[order])
+
+
+def test_tcav_pooled_test_of_two_copies_of_a_layer_is_the_single_layer_test():
+    # Known answer, derived by construction (DoubledNet): relu_a > 0 everywhere, so relu_b = 2 * relu_a exactly
+    # and the gradient of class 1 at relu_a is 2 * the gradient at relu_b. The CAV fit standardises the
+    # features by their mean sd, so both layers give the same fit and the same unit CAV; the cosine between
+    # gradient and CAV is unchanged by the factor 2. Every set's alignment is therefore the same at both layers,
+    # the pooled statistic is each set's standard score at one layer, and the t prediction interval of a
+    # standard score equals that of the raw statistic (t is invariant under a positive affine map). So the
+    # pooled p-value equals the single-layer p-value of either layer, and both layers' rows agree.
+    model = ModelHandle("doubled", 2, module=DoubledNet().eval())
+    rng = np.random.default_rng(4)
+    sets = {f"random-{i}": rng.random((12, C, H, W), dtype=np.float32) for i in range(10)}
+    lines = rng.random((12, C, H, W), dtype=np.float32)
+    lines[:, 0, 5:8] += 0.6
+    sets["band0-lines"] = np.clip(lines, 0, 1)
+    x = rng.random((10, C, H, W), dtype=np.float32)
+    ctx = ExplainContext(concept_sets=sets, class_names=["a", "b"], driving_types={1: ["band0-lines"]})
+    rep = explain("tcav", model, x, np.ones(10, int), ctx, evidence="relu-layers").concepts
+    assert rep.extras["evidence"] == "relu-layers" and rep.extras["evidence_layers"] == ["relu_a", "relu_b"]
+    by_layer = {r["layer"]: r["p_value"] for r in rep.layer_rows}
+    pooled_p = rep.rows[0]["p_value"]
+    assert 1e-9 < pooled_p < 0.5  # a p-value that says something, not a cap
+    assert by_layer["relu_a"] == pytest.approx(by_layer["relu_b"], rel=1e-6)  # float32 maps: not bitwise
+    assert pooled_p == pytest.approx(by_layer["relu_a"], rel=1e-6)
+    single = explain("tcav", model, x, np.ones(10, int), ctx, evidence="layer").concepts
+    assert single.extras["evidence"] == "layer" and single.rows[0]["p_value"] == pytest.approx(pooled_p, rel=1e-6)
+    # the default: both tests, Bonferroni over the two (p = 2 * min(p_layer, p_pooled)); here they agree
+    both = explain("tcav", model, x, np.ones(10, int), ctx).concepts
+    assert both.extras["evidence"] == "layer+relu-layers"
+    assert both.rows[0]["p_value"] == pytest.approx(2 * pooled_p, rel=1e-6)
+    (row,) = both.extras["evidence_rows"]
+    assert row["z_layer"] == pytest.approx(row["z_pooled"], rel=1e-6)
+    # importance is the standard score against the random sets (the pooled one here), > 0: the concept raises a
+    assert both.type_importance["band0-lines"] == pytest.approx(row["z_pooled"], rel=1e-6) and row["z_pooled"] > 0
+
+
+def test_tcav_pooled_test_on_every_zoo_model():
+    # Every zoo model: the evidence layers are all its ReLU modules, each has its per-layer rows, the p-values
+    # are probabilities, and one backward pass per tile reads every layer's gradient.
+    from xbench.explainers.tcav import tcav_default_layer, tcav_evidence_layers
+    from xbench.models.zoo import TORCH_KINDS, build_torch_model
+
+    rng = np.random.default_rng(1)
+    x = rng.random((6, C, 32, 32), dtype=np.float32)
+    sets = {f"random-{i}": rng.random((4, C, 32, 32), dtype=np.float32) for i in range(10)}
+    sets["bright"] = np.clip(rng.random((4, C, 32, 32), dtype=np.float32) + 0.3, 0, 1)
+    y = np.array([0, 1] * 3)
+    for kind in TORCH_KINDS:
+        torch.manual_seed(0)
+        model = ModelHandle(kind, 2, module=build_torch_model(kind, C, 2, width=4).eval())
+        exp = explain("tcav", model, x, y, ExplainContext(concept_sets=sets))
+        rep = exp.concepts
+        relus = [name for name, m in model.module.named_modules() if isinstance(m, nn.ReLU)]
+        assert rep.extras["evidence_layers"] == tcav_evidence_layers(model) == relus, kind
+        assert exp.settings["layer"] == tcav_default_layer(model), kind
+        assert list(dict.fromkeys(r["layer"] for r in rep.layer_rows)) == relus, kind
+        assert all(0.0 <= r["p_value"] <= 1.0 for r in rep.rows + rep.layer_rows), kind
+        assert exp.cost.backward_calls == 6, kind
+        assert np.isfinite(exp.attributions).all(), kind
+
+
+def test_tcav_pooled_test_keeps_its_level_on_random_sets():
+    # Null simulation through our code (Kim et al. 2018: a concept made of random examples should not come out
+    # significant): a random set posing as a concept on the zoo cnn (4 ReLU layers pooled), 12 trials x 2
+    # classes = 24 tests at p < 0.05. Expected 1.2; at most 4 (binomial(24, 0.05): P(X >= 5) = 0.006).
+    # Measured on trained zoo models with tests/bench/bench_tcav_null.py (see xbench/explainers/tcav.py).
+    from xbench.models.zoo import build_torch_model
+
+    torch.manual_seed(0)
+    model = ModelHandle("cnn", 2, module=build_torch_model("cnn", C, 2, width=4).eval())
+    significant = 0
+    for trial in range(12):
+        rng = np.random.default_rng(200 + trial)
+        sets = {f"random-{i}": rng.random((10, C, H, W), dtype=np.float32) for i in range(10)}
+        sets["posing"] = rng.random((10, C, H, W), dtype=np.float32)
+        x = rng.random((8, C, H, W), dtype=np.float32)
+        rep = explain("tcav", model, x, np.array([0, 1] * 4), ExplainContext(seed=trial, concept_sets=sets)).concepts
+        significant += sum(r["p_value"] < 0.05 for r in rep.rows)
+    assert significant <= 4, significant
 
 
 def test_tcav_bad_concept_sets():

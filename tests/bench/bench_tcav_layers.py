@@ -1,5 +1,7 @@
 """TCAV's power per layer: the test's p-value for the type a class is labelled by, on that class, at every
-ReLU layer of a zoo model (the default layer's row marked), so the default layer rule can be checked.
+ReLU layer of a zoo model (the default layer's row marked), the p-value of the test on every ReLU layer's
+evidence pooled, and the verdict of the default test (``evidence = "layer+relu-layers"``: the default layer's
+test and the pooled one, Bonferroni over the two), so the layer rules can be checked.
 
     python tests/bench/bench_tcav_layers.py roads:cnn:0 roads:resnet:0 clearings:separable:0 ... [--set KEY=VALUE]
 
@@ -45,6 +47,14 @@ def probe(task: str, model_name: str, seed: int, settings: dict) -> None:
                     mark = "  <- default" if r["layer"] == default else ""
                     what = f"{typ:>10} on class {cls:<10} {r['layer']:<24}"
                     print(f"  {what} score {r['score']:.3f}  p {r['p_value']:.2g}{mark}")
+            for e in report.extras["evidence_rows"]:
+                if e["concept"] == typ and e["class_name"] == cls:
+                    what = f"{typ:>10} on class {cls:<10} {'every ReLU layer pooled':<24}"
+                    print(f"  {what}              p {e['p_pooled']:.2g}")
+            for r in report.rows:
+                if r["concept"] == typ and r["class_name"] == cls:
+                    what = f"{typ:>10} on class {cls:<10} {report.extras['evidence']:<24}"
+                    print(f"  {what} score {r['score']:.3f}  p {r['p_value']:.2g}  <- the test's verdict")
 
 
 def main() -> int:
