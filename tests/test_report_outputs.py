@@ -543,6 +543,10 @@ def test_methods_text_names_the_concept_example_sets():
     text = " ".join(concept_sets_sentences(manifest))
     assert "example sets of 80 synthetic tiles" in text and "20 random sets" in text and "150 correctly" in text
     assert concept_sets_sentences({"explainers": {"gradient": {}}, "run_settings": manifest["run_settings"]}) == []
+    # the TCAV test the verdicts come from is named, with the explainer's evidence setting (default: both tests)
+    assert "every ReLU layer" in text and "Bonferroni over the two tests" in text
+    single = dict(manifest, explainers={"tcav": {"evidence": "layer"}})
+    assert "at the explainer's layer alone" in " ".join(concept_sets_sentences(single))
 
 
 def test_methods_text_and_bibliography(report):

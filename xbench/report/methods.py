@@ -135,6 +135,17 @@ def concept_sets_sentences(m: dict[str, Any]) -> list[str]:
             f"TCAV's concept activation vectors were fitted on example sets of {run['concept_set_size']} synthetic "
             f"tiles per structure type, tested against {run['random_sets']} random sets of the same size."
         )
+        evidence = (explainers.get("tcav") or {}).get("evidence", "layer+relu-layers")
+        test = {
+            "layer+relu-layers": "at the explainer's layer and on the standard scores of every ReLU layer "
+            "averaged (Stouffer's pooling), Bonferroni over the two tests",
+            "relu-layers": "on the standard scores of every ReLU layer averaged (Stouffer's pooling)",
+            "layer": "at the explainer's layer alone",
+        }.get(str(evidence), f"with evidence '{evidence}'")
+        out.append(
+            "A concept's significance was the alignment of the class logit's gradient with its CAV, tested as one "
+            f"more draw against the random sets {test}, with Bonferroni over concepts."
+        )
     if "activation-clusters" in explainers and run.get("fit_tiles"):
         out.append(f"Activation clusters were fitted on up to {run['fit_tiles']} correctly classified training tiles.")
     return out
