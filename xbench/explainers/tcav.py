@@ -306,7 +306,9 @@ def run_statistics(
 
 # CAVs fitted in this process by content (model weights, layer, example sets, settings, seed): metrics re-run
 # the explainer on perturbed copies of the tiles with the same model, and the CAVs do not depend on the tiles.
-_CAV_FITS = FitCache()
+# one entry per (model weights, layer, sets, settings): the pooled test fits every ReLU layer (up to 9 on the
+# zoo), and the metrics re-run the explainer; a few small vectors per entry, so room for many
+_CAV_FITS = FitCache(size=64)
 
 
 def _fit_cavs(
