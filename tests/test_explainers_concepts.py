@@ -491,6 +491,9 @@ def test_tcav_pooled_statistics_are_layer_z_scores_averaged():
     rng = np.random.default_rng(0)
     a = rng.normal(size=11)
     z = (a - a.mean()) / a.std(ddof=1)  # standard scores (common practice)
+    from scipy import stats
+
+    np.testing.assert_allclose(z, stats.zscore(a, ddof=1))  # the reference library's standard scores
     np.testing.assert_allclose(pooled_statistics([a]), z)
     # a positive affine copy of a layer has the same standard scores: pooling it with the original changes nothing
     np.testing.assert_allclose(pooled_statistics([a, 3.0 * a - 1.0]), z)
