@@ -156,3 +156,63 @@ def test_fit_keys_follow_the_bytes_and_remember_only_arrays_that_cannot_change()
     remembered = [k for k in explainer_base._FROZEN_DIGESTS if k[0] == id(frozen)]
     assert len(remembered) == 1 and array_digest(frozen[1:]) == first  # a new view of the same place
     assert array_digest(frozen[:1]) != first  # another place in the same array
+
+
+@pytest.mark.parametrize("kind", ["cnn", "resnet", "separable"])
+def test_one_pass_for_many_layers_reads_what_one_pass_per_layer_reads(kind):
+    # TCAV reads every ReLU layer of the example sets: one forward pass per batch with all the taps gives the
+    # same arrays, bit for bit, as one pass per layer (the same eager module runs the same operations)
+    from xbench.explainers.base import layer_activations, layers_activations
+    from xbench.explainers.tcav import tcav_evidence_layers
+
+    handle = ModelHandle(kind, K, module=zoo_module(kind))
+    names = tcav_evidence_layers(handle)
+    images = tiles(10, seed=3)
+    with handle.counting() as calls:
+        together = layers_activations("test", handle, names, images, batch_size=4)
+    assert calls.forward == 10  # one pass for all the layers
+    for name in names:
+        assert np.array_equal(together[name], layer_activations("test", handle, name, images, batch_size=4)), name
+
+
+class _Slow(nn.Module):
+    """Sleeps a known time forward and backward (a custom autograd function): the handle's clock must see
+    those seconds inside the model's passes and nothing of what the caller does around them."""
+
+    FORWARD, BACKWARD = 0.05, 0.08
+
+    def __init__(self):
+        super().__init__()
+        self.linear = nn.Linear(C * H * W, K)
+
+    def forward(self, x):
+        import time
+
+        class SleepBack(torch.autograd.Function):
+            @staticmethod
+            def forward(ctx, t):
+                return t.view_as(t)
+
+            @staticmethod
+            def backward(ctx, g):
+                time.sleep(_Slow.BACKWARD)
+                return g
+
+        time.sleep(self.FORWARD)
+        return self.linear(SleepBack.apply(x).flatten(1))
+
+
+def test_the_handle_times_the_model_passes_not_the_work_around_them():
+    import time
+
+    handle = ModelHandle("slow", K, module=_Slow(), channels_last=False, fast_inference=False)
+    x = torch.from_numpy(tiles(2)).requires_grad_(True)
+    with handle.counting() as calls:
+        time.sleep(0.1)  # the caller's own work: not the model's
+        out = handle.logits_tensor(x)
+        time.sleep(0.1)
+        out[:, 0].sum().backward()
+    assert (calls.forward, calls.backward) == (2, 2)
+    # known answer: 0.05 s forward + 0.08 s backward slept inside the passes; the 0.2 s outside are not
+    # counted (allowance 0.05 s for the hooks' own work and a busy machine's scheduling)
+    assert _Slow.FORWARD + _Slow.BACKWARD <= calls.seconds < _Slow.FORWARD + _Slow.BACKWARD + 0.05

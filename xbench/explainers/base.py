@@ -11,6 +11,7 @@ iteration, and forward hooks that read or replace a layer's activations.
 
 from __future__ import annotations
 
+import contextlib
 import weakref
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -81,11 +82,13 @@ class ExplainContext:
 
 @dataclass
 class Cost:
-    """What one explanation cost: images passed forward / backward through the model, and seconds."""
+    """What one explanation cost: images passed forward / backward through the model, seconds, and the
+    seconds of those inside the model's own passes (the rest is the explainer's and the harness's work)."""
 
     forward_calls: int
     backward_calls: int
     seconds: float
+    model_seconds: float = 0.0
 
     def per_tile(self, n: int) -> dict[str, float]:
         n = max(int(n), 1)
@@ -549,10 +552,14 @@ class LayerTap:
             raise XbenchInputError(f"explainer '{self.key}': layer '{self.layer_name}'", "no forward pass yet")
         return self.activation
 
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        """Run the whole model once with the tap installed; returns the logits."""
+    def reset(self) -> None:
+        """Forget the last pass (before a pass run by another tap on the same model)."""
         self.calls = 0
         self.activation = None
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        """Run the whole model once with the tap installed; returns the logits."""
+        self.reset()
         out = self.module(x)
         if self.activation is None:
             raise XbenchInputError(
@@ -564,11 +571,24 @@ class LayerTap:
 
 def layer_activations(key: str, model: ModelHandle, layer_name: str, images: np.ndarray, batch_size: int) -> np.ndarray:
     """The layer's output for all images, float32 (N, C, h, w), computed without gradients."""
-    out = []
-    with LayerTap(key, model, layer_name) as t, torch.no_grad():
+    return layers_activations(key, model, [layer_name], images, batch_size)[layer_name]
+
+
+def layers_activations(
+    key: str, model: ModelHandle, layer_names: list[str], images: np.ndarray, batch_size: int
+) -> dict[str, np.ndarray]:
+    """Several layers' outputs for all images from one forward pass per batch: layer -> float32 (N, C, h, w)
+    (the same arrays as :func:`layer_activations` per layer, at a fraction of the model calls)."""
+    names = list(dict.fromkeys(layer_names))
+    out: dict[str, list[np.ndarray]] = {name: [] for name in names}
+    with contextlib.ExitStack() as stack, torch.no_grad():
+        taps = [stack.enter_context(LayerTap(key, model, name)) for name in names]
         for sl in batches(images.shape[0], batch_size):
-            t.forward(as_tensor(images[sl]))
-            out.append(as_numpy(t.recorded))
-    if not out:
+            for t in taps[1:]:
+                t.reset()
+            taps[0].forward(as_tensor(images[sl]))  # the whole model runs once: every tap records
+            for t in taps:
+                out[t.layer_name].append(as_numpy(t.recorded))
+    if not names or not out[names[0]]:
         raise XbenchInputError(f"explainer '{key}'", "no images to compute activations from")
-    return np.concatenate(out, axis=0)
+    return {name: np.concatenate(parts, axis=0) for name, parts in out.items()}

@@ -460,7 +460,12 @@ def explain(
         out, concepts = out
         _check_report(key, concepts)
     attributions = _check_attributions(key, out, (n, h, w))
-    cost = Cost(forward_calls=int(calls.forward), backward_calls=int(calls.backward), seconds=float(seconds))
+    cost = Cost(
+        forward_calls=int(calls.forward),
+        backward_calls=int(calls.backward),
+        seconds=float(seconds),
+        model_seconds=float(calls.seconds),
+    )
     return Explanation(attributions=attributions, cost=cost, concepts=concepts, settings=merged)
 
 

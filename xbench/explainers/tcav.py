@@ -50,8 +50,8 @@ direct implementation on arrays is shorter and keeps everything in memory and se
   resnet``; ``--task clearings --model separable``: a fresh random set posing as the concept, 50 trials each):
   significant at p < 0.05 in 1 of 100 tests (demo cnn), 1 of 50 (roads resnet), 1 of 50 (clearings separable),
   3 of 200 = 1.5% in all; the same trials by each test alone: default layer 7 of 200 (3.5%), pooled 4 of 200.
-  Cost: one forward and backward pass of the explained tiles reads every evidence layer; the example sets run
-  through the model once per evidence layer (CAVs fitted per layer, cached).
+  Cost: one forward and backward pass of the explained tiles reads every evidence layer; each example set runs
+  through the model once for all of them (CAVs fitted per layer, cached).
 - Features at the layer: ``pool = "mean"`` (default) averages the layer's (K, h, w) map over positions,
   so a CAV is a direction in channel space, independent of where the structure lies in the tile;
   ``pool = "none"`` uses the flattened map as in Kim et al. 2018.
@@ -104,9 +104,11 @@ from __future__ import annotations
 
 import re
 import warnings
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
+import sklearn
 import torch
 from scipy import stats
 from sklearn.linear_model import LogisticRegression
@@ -122,7 +124,7 @@ from xbench.explainers.base import (
     backward_counted,
     batches,
     fit_content_key,
-    layer_activations,
+    layers_activations,
     signed_maps,
     torch_module,
     upsample,
@@ -263,7 +265,9 @@ def _cav(pos: np.ndarray, neg: np.ndarray, regularization: float, seed: int) -> 
     y = np.concatenate([np.ones(len(pos)), np.zeros(len(neg))])
     scale = x.std(axis=0).mean() or 1.0  # a common scale keeps the solver well-conditioned
     clf = LogisticRegression(C=regularization, solver="liblinear", max_iter=2000, random_state=seed)
-    with one_blas_thread():  # tiny problems: BLAS threads only add contention
+    # tiny problems: BLAS threads only add contention; the solver's settings are ours and fixed, so
+    # scikit-learn's check of them (a third of a fit's time here) is skipped
+    with one_blas_thread(), sklearn.config_context(skip_parameter_validation=True):
         clf.fit(x / scale, y)
     v = clf.coef_[0] / scale
     norm = np.linalg.norm(v)
@@ -311,31 +315,48 @@ def run_statistics(
 _CAV_FITS = FitCache(size=64)
 
 
-def _fit_cavs(
+def _set_features(
     model: ModelHandle,
     sets: dict[str, np.ndarray],
     concepts: list[str],
     randoms: list[str],
-    layer: str,
+    layers: list[str],
     *,
     pool: str,
+    batch_size: int,
+) -> dict[str, dict[str, Any]]:
+    """Every example set's features at every layer in ``layers``, from one forward pass of each set through
+    the model (not one per layer): layer -> ``feats`` (set -> (N, features) float64), ``shapes`` (set -> the
+    layer map's shape) and ``mu`` (the random sets' mean activation)."""
+    out: dict[str, dict[str, Any]] = {layer: {"feats": {}, "shapes": {}, "sums": None, "count": 0} for layer in layers}
+    for name in concepts + randoms:
+        for layer, a in layers_activations(KEY, model, layers, sets[name], batch_size).items():
+            at = out[layer]
+            at["shapes"][name] = a.shape[1:]
+            at["feats"][name] = _features(a, pool)
+            if name in randoms:
+                part = a.sum(axis=(0, 2, 3)) if pool == "mean" else a.sum(axis=0)
+                at["sums"] = part if at["sums"] is None else at["sums"] + part
+                at["count"] += a.shape[0] * (a.shape[2] * a.shape[3] if pool == "mean" else 1)
+    for at in out.values():
+        at["mu"] = (at.pop("sums") if at["sums"] is not None else 0.0) / max(at.pop("count"), 1)
+    return out
+
+
+def _fit_cavs(
+    features: dict[str, Any],
+    concepts: list[str],
+    randoms: list[str],
+    *,
     regularization: float,
     resample: bool,
     test: str,
     seed: int,
-    batch_size: int,
 ) -> dict[str, Any]:
-    """Every CAV of one layer: the random runs', the random pairs' (set test), the concept runs' and each
-    concept's mean direction; the random sets' mean activation; each set's layer map shape."""
-    feats, shapes, sums, count = {}, {}, None, 0
-    for name in concepts + randoms:
-        a = layer_activations(KEY, model, layer, sets[name], batch_size)
-        shapes[name] = a.shape[1:]
-        feats[name] = _features(a, pool)
-        if name in randoms:
-            part = a.sum(axis=(0, 2, 3)) if pool == "mean" else a.sum(axis=0)
-            sums = part if sums is None else sums + part
-            count += a.shape[0] * (a.shape[2] * a.shape[3] if pool == "mean" else 1)
+    """Every CAV of one layer from its :func:`_set_features`: the random runs', the random pairs' (set test),
+    the concept runs' and each concept's mean direction; the random sets' mean activation; each set's layer
+    map shape."""
+    feats, shapes = features["feats"], features["shapes"]
 
     def positives(name: str, salt: int, r: int) -> np.ndarray:
         f = feats[name]
@@ -368,7 +389,7 @@ def _fit_cavs(
         "pair_cavs": pair_cavs,
         "concept_cavs": concept_cavs,
         "cavs": cavs,
-        "mu": (sums if sums is not None else 0.0) / max(count, 1),
+        "mu": features["mu"],
         "shapes": shapes,
     }
 
@@ -382,6 +403,7 @@ def _run_layer(
     randoms: list[str],
     layer: str,
     tapped: tuple[np.ndarray, np.ndarray],
+    features_at: Callable[[str], dict[str, Any]],
     *,
     pool: str,
     regularization: float,
@@ -389,11 +411,11 @@ def _run_layer(
     test: str,
     statistic: str,
     seed: int,
-    batch_size: int,
 ) -> dict[str, Any]:
     """Concept and random-concept runs at one layer: per-class scores of every run, plus what the pixel
     attribution needs (activations, CAVs, random mean). ``tapped`` = the layer's (gradients, activations) on
-    the explained tiles (from :func:`layer_gradients`)."""
+    the explained tiles (from :func:`layer_gradients`); ``features_at(layer)`` the example sets' features
+    there (:func:`_set_features`), read only when the layer's CAVs are not cached."""
     n = images.shape[0]
     grads_a, acts_a = tapped
     gfeat = grads_a.sum(axis=(2, 3)) if pool == "mean" else grads_a.reshape(n, -1)
@@ -403,17 +425,13 @@ def _run_layer(
     fit = _CAV_FITS.get_or_fit(
         key,
         lambda: _fit_cavs(
-            model,
-            sets,
+            features_at(layer),
             concepts,
             randoms,
-            layer,
-            pool=pool,
             regularization=regularization,
             resample=resample,
             test=test,
             seed=seed,
-            batch_size=batch_size,
         ),
     )
     for name, shape in fit["shapes"].items():
@@ -558,14 +576,24 @@ def tcav(
         regularization=regularization,
         resample=resample,
         seed=int(context.seed),
-        batch_size=context.batch_size,
     )
     pooled_mode = evidence != "layer" and test == "set"  # the runs test reads 'layer' alone
     evidence_layers = tcav_evidence_layers(model) if pooled_mode else [layer]
     read = list(dict.fromkeys([layer] + evidence_layers + list(layers)))
     tapped = layer_gradients(model, images, targets, read, context.batch_size)
+    computed: dict[str, dict[str, Any]] = {}
+
+    def features_at(name: str) -> dict[str, Any]:
+        # the first layer whose CAVs are not cached reads every layer's features in one pass per set
+        if not computed:
+            computed.update(
+                _set_features(model, sets, concepts, randoms, read, pool=pool, batch_size=context.batch_size)
+            )
+        return computed[name]
+
     per_layer = {
-        name: _run_layer(model, images, targets, sets, concepts, randoms, name, tapped[name], **common) for name in read
+        name: _run_layer(model, images, targets, sets, concepts, randoms, name, tapped[name], features_at, **common)
+        for name in read
     }
     res = per_layer[layer]
     rows = _rows(res, concepts, class_names, correction, test)

@@ -38,6 +38,7 @@ from __future__ import annotations
 import contextlib
 import copy
 import math
+import time
 import warnings
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -84,10 +85,12 @@ def _channels_last_problem(module: nn.Module, sample: torch.Tensor) -> str | Non
 
 @dataclass
 class CallCount:
-    """Images passed forward and backward through a model (a batch of 8 counts 8)."""
+    """Images passed forward and backward through a model (a batch of 8 counts 8), and the wall seconds
+    spent inside those passes (from the model's first layer to its output and back)."""
 
     forward: int = 0
     backward: int = 0
+    seconds: float = 0.0
 
 
 # Every handle's calls in this process, including handles that metrics build on the fly (randomized copies).
@@ -98,8 +101,8 @@ class _TrackedCount(CallCount):
     """A handle's counter: increments also go to :data:`PROCESS_CALLS` (resets to 0 do not subtract)."""
 
     def __setattr__(self, name: str, value: Any) -> None:
-        if name in ("forward", "backward"):
-            delta = int(value) - int(getattr(self, name, 0))
+        if name in ("forward", "backward", "seconds"):
+            delta = value - getattr(self, name, 0)
             if delta > 0:
                 object.__setattr__(PROCESS_CALLS, name, getattr(PROCESS_CALLS, name) + delta)
         object.__setattr__(self, name, value)
@@ -108,13 +111,14 @@ class _TrackedCount(CallCount):
 @contextmanager
 def counting_all() -> Iterator[CallCount]:
     """Count the calls of every handle in this process made inside the block."""
-    before = CallCount(PROCESS_CALLS.forward, PROCESS_CALLS.backward)
+    before = CallCount(PROCESS_CALLS.forward, PROCESS_CALLS.backward, PROCESS_CALLS.seconds)
     result = CallCount()
     try:
         yield result
     finally:
         result.forward = PROCESS_CALLS.forward - before.forward
         result.backward = PROCESS_CALLS.backward - before.backward
+        result.seconds = PROCESS_CALLS.seconds - before.seconds
 
 
 # -- the batch-size rule ----------------------------------------------------------------------------------
@@ -388,7 +392,9 @@ class ModelHandle:
         with torch.no_grad():
             if fast is None:
                 return self.module(x)
+            start = time.perf_counter()
             out = fast(x)
+            self.calls.seconds += time.perf_counter() - start
         self.calls.forward += int(x.shape[0])
         return out
 
@@ -403,30 +409,47 @@ class ModelHandle:
 
     # -- call counting ----------------------------------------------------------------------------
     def _install_counters(self, module: nn.Module) -> None:
+        # start times of the pass in progress: the model's own seconds are measured from the first layer's
+        # input to the output (forward) and from the output's gradient to the input's (backward)
+        started = {"forward": 0.0, "backward": 0.0}
+
+        def before_forward(_mod, _args):
+            started["forward"] = time.perf_counter()
+
         def on_forward(_mod, args, _out):
             x = args[0] if args else None
             if isinstance(x, torch.Tensor):
                 self.calls.forward += int(x.shape[0])
+                self.calls.seconds += time.perf_counter() - started["forward"]
+
+        def before_backward(_mod, _grad_output):
+            started["backward"] = time.perf_counter()
 
         def on_backward(_mod, grad_input, _grad_output):
             g = grad_input[0] if grad_input else None
             if isinstance(g, torch.Tensor):
                 self.calls.backward += int(g.shape[0])
+                if started["backward"]:
+                    self.calls.seconds += time.perf_counter() - started["backward"]
+                started["backward"] = 0.0
 
+        self._hooks.append(module.register_forward_pre_hook(before_forward))
         self._hooks.append(module.register_forward_hook(on_forward))
         # A full backward hook fires once per backward pass through the whole module.
+        self._hooks.append(module.register_full_backward_pre_hook(before_backward))
         self._hooks.append(module.register_full_backward_hook(on_backward))
 
     @contextmanager
     def counting(self) -> Iterator[CallCount]:
         """Count the calls made inside the block: ``with handle.counting() as c: ...; c.forward``."""
-        before = CallCount(self.calls.forward, self.calls.backward)
+        before = CallCount(self.calls.forward, self.calls.backward, self.calls.seconds)
         result = CallCount()
         try:
             yield result
         finally:
             result.forward = self.calls.forward - before.forward
             result.backward = self.calls.backward - before.backward
+            result.seconds = self.calls.seconds - before.seconds
 
     # -- scoring ----------------------------------------------------------------------------------
     def logits_tensor(self, x: torch.Tensor) -> torch.Tensor:
@@ -474,7 +497,9 @@ class ModelHandle:
                     probs = logits.double().numpy()
             else:
                 assert self.predict_fn is not None  # exactly one of module / predict_fn
+                called = time.perf_counter()
                 probs = np.asarray(self.predict_fn(chunk), dtype=np.float64)
+                self.calls.seconds += time.perf_counter() - called
                 self.calls.forward += chunk.shape[0]
             self._check_output(probs, chunk.shape[0])
             out[start : start + chunk.shape[0]] = probs

@@ -464,6 +464,7 @@ def _compute_cell(
         notes["verified truth"] = unverified_summary(prep.reliance)
     metric_seconds: dict[str, float] = {}
     metric_calls: dict[str, list[int]] = {}  # images forward / backward through any model, per metric
+    metric_model_seconds: dict[str, float] = {}  # seconds inside those passes, per metric
     tiles = prep.explain_index.astype(np.int64)
     # Self-checks the explainer recorded (integrated gradients' and DeepLIFT's completeness gap) are
     # recorded for every such cell, listed in the task or not.
@@ -475,6 +476,7 @@ def _compute_cell(
         with counting_all() as calls:
             results = compute_metric(key, inputs_for(size), **settings)
         metric_calls[key] = [int(calls.forward), int(calls.backward)]
+        metric_model_seconds[key] = round(float(calls.seconds), 4)
         for result in results:
             tag = f"{key}/{result.truth}"
             ident = (run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth)
@@ -535,11 +537,13 @@ def _compute_cell(
                 "forward_calls": int(explanation.cost.forward_calls),
                 "backward_calls": int(explanation.cost.backward_calls),
                 "seconds": float(explanation.cost.seconds),
+                "model_seconds": round(float(explanation.cost.model_seconds), 4),
                 "tiles": int(len(tiles)),
                 "cpu_seconds": round(time.thread_time() - cpu_started, 4),
                 # what the metrics cost on top (explainer re-runs included): {metric: [forward, backward]}
                 "metric_calls": metric_calls,
                 "metric_seconds": {k: round(v, 4) for k, v in metric_seconds.items()},
+                "metric_model_seconds": metric_model_seconds,
             },
         },
     }
