@@ -105,3 +105,43 @@ def test_a_local_dask_worker_process_runs_without_a_nanny_and_says_why_it_ended_
         process.wait()
     reason = _ended_early(process)
     assert reason is not None and reason.startswith("exit code -9")
+
+
+def test_when_the_workers_are_gone_the_cell_in_flight_fails_and_this_process_takes_the_rest(monkeypatch):
+    import threading
+
+    from xbench.runs import executors
+    from xbench.runs.grid import Cell
+
+    here = []
+
+    def compute_here(task, cell, *_rest):
+        here.append(cell.explainer)
+        return {"status": "ok", "meta": {"cell": cell.to_dict()}}
+
+    monkeypatch.setattr(executors, "compute_cell", compute_here)
+    gone = threading.Event()
+
+    def remote(job):  # the one worker dies on its first cell
+        gone.set()
+        raise executors.WorkersGone("every local dask worker process ended (exit code -9)")
+
+    names = ["rise", "occlusion", "gradient", "oracle"]
+    jobs = [("t", Cell(cell_id=n, task="t", model="cnn", seed=0, explainer=n), [], {}, "r") for n in names]
+    results = {cell.explainer: result for cell, result in executors.share_cells(jobs, [], 1, remote)}
+    assert gone.is_set() and set(results) == set(names)  # every cell comes back, none twice
+    failed = [k for k, r in results.items() if r["status"] == "failed"]
+    assert len(failed) == 1 and "exit code -9" in results[failed[0]]["meta"]["error"]
+    assert sorted(here) == sorted(set(names) - set(failed))  # this process computed all the others
+
+
+def test_dask_missing_is_named_with_the_install_command(monkeypatch):
+    import importlib.util
+
+    from xbench.errors import XbenchInputError
+    from xbench.runs.executors import DaskCluster
+
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "distributed" else real(name, *a))
+    with pytest.raises(XbenchInputError, match=r"dask.distributed is not installed.*xbench\[cluster\]"):
+        DaskCluster(None, 2)

@@ -3,10 +3,11 @@ pool) and ``--executor dask`` on a 2-worker local cluster.
 
     python tests/bench/bench_executors.py [--task demo] [--explainers a,b,...] [--repeat 1]
 
-Each run is a fresh ``xbench run`` process (as a user runs it: the tile packs, the model from the training
-cache and the truth are prepared in every run) into a fresh temporary folder; a first, untimed run trains
-the model if the cache lacks it. Prints wall seconds (median of ``--repeat``), the speedup over
-one local process, the efficiency (speedup / workers) and whether the records equal those of the local
+Rounds run each executor once, in turn (a drift of the machine touches each alike); each run is a fresh
+``xbench run`` process (as a user runs it: the tile packs, the model from the training cache and the truth
+are prepared in every run) into a fresh temporary folder; a first, untimed run trains the model if the
+cache lacks it. Prints every round's wall seconds, then the median of ``--repeat``, the speedup over one
+local process, the efficiency (speedup / workers) and whether the records equal those of the local
 run (every value but wall-clock ``seconds``). Targets: dask >= 1.6x one process and >= ``--jobs 2``.
 The machine's load average is printed beside each figure.
 """
@@ -50,20 +51,22 @@ def main() -> None:
     root = Path(tempfile.mkdtemp(prefix="xbench-bench-exec-"))
     run_task(args.task, root / "warm", explainers=explainers or ["random"])  # trains / loads the model once
     setups = [("local, 1 process", "local", 1), ("local, --jobs 2", "local", 2), ("dask, 2 local workers", "dask", 2)]
-    results = {}
-    for label, executor, jobs in setups:
-        walls, cpus, loads = [], [], []
-        for i in range(args.repeat):
+    runs: dict[str, list[tuple[float, float, float, Path]]] = {label: [] for label, _, _ in setups}
+    # rounds interleave the executors, so a drift of the machine's load or clock touches each alike
+    for i in range(args.repeat):
+        for label, executor, jobs in setups:
             out = root / f"{executor}-{jobs}-{i}"
             c0 = cpu_seconds()
             t = time.perf_counter()
             cmd = [sys.executable, "-m", "xbench.cli", "run", args.task, "--out", str(out), "--jobs", str(jobs)]
             cmd += ["--executor", executor] + (["--explainers", ",".join(explainers)] if explainers else [])
             subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-            walls.append(time.perf_counter() - t)
-            cpus.append(cpu_seconds() - c0)
-            loads.append(os.getloadavg()[0])
-        results[label] = (float(np.median(walls)), jobs, out, float(np.mean(loads)), float(np.median(cpus)))
+            runs[label].append((time.perf_counter() - t, cpu_seconds() - c0, os.getloadavg()[0], out))
+        print(f"round {i + 1}: " + ", ".join(f"{label} {r[-1][0]:.1f} s" for label, r in runs.items()), flush=True)
+    results = {}
+    for label, _, jobs in setups:
+        walls, cpus, loads, outs = zip(*runs[label], strict=True)
+        results[label] = (float(np.median(walls)), jobs, outs[-1], float(np.mean(loads)), float(np.median(cpus)))
     base_wall, _, base_out, _, base_cpu = results["local, 1 process"]
     reference = comparable(base_out)
     print(

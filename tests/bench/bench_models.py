@@ -15,9 +15,10 @@
    from the first layer's input to the output and each backward pass from the output's gradient to the
    input's); the rest of a cell's wall time is harness overhead beside model calls (numpy work, captum
    glue, sklearn fits, Python). ``at limit`` = model-limited seconds / actual seconds: 1.0 means neither
-   the harness nor slower passes (eager layer taps, small batches, both cores busy) add anything. Metrics that do not call the model are listed with
-   their seconds only. ``calls/tile, all`` and ``s/tile, all`` are each explainer's real per-tile cost in a
-   benchmark run: its own calls plus those of every metric (re-runs included), and the cell's seconds.
+   the harness nor slower passes (eager layer taps, small batches, both cores busy) add anything. Metrics
+   that do not call the model are listed with their seconds only. ``calls/tile, all`` and ``s/tile, all``
+   are each explainer's real per-tile cost in a benchmark run: its own calls plus those of every metric
+   (re-runs included), and the cell's seconds.
 
 The load of the machine (``os.getloadavg``) is printed beside the figures: on a shared machine both sides
 of each ratio slow down, but not equally.

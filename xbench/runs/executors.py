@@ -219,63 +219,81 @@ class LocalPool:
             self.close()
 
     def _shared(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict[str, Any]]]:
-        import queue
-
         assert self.pool is not None  # only with workers
         pool = self.pool
-        todo = self.todo
-        todo[:] = longest_first(jobs)
-        if not todo:
-            return
         key, blob = packed_state(jobs)
         self.state_file = state_file(blob)
         name = str(self.state_file)
         del blob
-        lock = threading.Lock()
-        done: queue.Queue = queue.Queue()
 
-        def take() -> CellJob | None:
-            with lock:
-                return todo.pop(0) if todo else None
+        def remote(job: CellJob) -> dict[str, Any]:
+            try:
+                return pool.submit(compute_cell_from, name, key, *job).result()
+            except BrokenProcessPool as exc:  # a worker died (segfault, os._exit)
+                raise WorkersGone(f"worker process died ({exc})") from exc
 
-        def feed() -> None:  # keeps one cell in flight on one worker
-            while (job := take()) is not None:
-                started = time.perf_counter()
-                try:
-                    result = pool.submit(compute_cell_from, name, key, *job).result()
-                except BrokenProcessPool as exc:  # a worker died (segfault, os._exit): its cell fails
-                    result = failed_result(job[1], f"worker process died ({exc})", started)
-                    done.put((job[1], result))
-                    break  # the pool is unusable: this process takes the remaining cells
-                except Exception as exc:  # noqa: BLE001 - e.g. a result that cannot be pickled back
-                    result = failed_result(job[1], f"{type(exc).__name__}: {exc}", started)
-                done.put((job[1], result))
-            done.put(None)
+        yield from share_cells(jobs, self.todo, self.n_jobs - 1, remote)
 
-        feeders = [threading.Thread(target=feed, daemon=True) for _ in range(self.n_jobs - 1)]
-        for thread in feeders:
-            thread.start()
-        running = len(feeders)
-        while True:
-            while True:  # hand over what the workers finished
-                try:
-                    item = done.get_nowait()
-                except queue.Empty:
-                    break
-                if item is None:
-                    running -= 1
-                else:
-                    yield item
-            job = take()
-            if job is None:
+
+class WorkersGone(Exception):
+    """No worker can take cells any more: the cell in flight fails and this process takes the rest."""
+
+
+def share_cells(
+    jobs: list[CellJob], todo: list[CellJob], n_workers: int, remote: Callable[[CellJob], dict[str, Any]]
+) -> Iterator[tuple[Cell, dict[str, Any]]]:
+    """Cells from one shared list, longest first, taken by whoever is free: this process (in this thread)
+    and ``n_workers`` workers, each kept busy with one cell in flight by a thread of this process calling
+    ``remote(job)``. ``todo`` is the shared list (emptied from outside to stop the workers' threads)."""
+    import queue
+
+    todo[:] = longest_first(jobs)
+    if not todo:
+        return
+    lock = threading.Lock()
+    done: queue.Queue = queue.Queue()
+
+    def take() -> CellJob | None:
+        with lock:
+            return todo.pop(0) if todo else None
+
+    def feed() -> None:  # keeps one cell in flight on one worker
+        while (job := take()) is not None:
+            started = time.perf_counter()
+            try:
+                result = remote(job)
+            except WorkersGone as exc:
+                done.put((job[1], failed_result(job[1], str(exc), started)))
+                break  # the workers are unusable: this process takes the remaining cells
+            except Exception as exc:  # noqa: BLE001 - e.g. a result that cannot be pickled back
+                result = failed_result(job[1], f"{type(exc).__name__}: {exc}", started)
+            done.put((job[1], result))
+        done.put(None)
+
+    feeders = [threading.Thread(target=feed, daemon=True) for _ in range(n_workers)]
+    for thread in feeders:
+        thread.start()
+    running = len(feeders)
+    while True:
+        while True:  # hand over what the workers finished
+            try:
+                item = done.get_nowait()
+            except queue.Empty:
                 break
-            yield job[1], compute_cell(*job)
-        while running:
-            item = done.get()
             if item is None:
                 running -= 1
             else:
                 yield item
+        job = take()
+        if job is None:
+            break
+        yield job[1], compute_cell(*job)
+    while running:
+        item = done.get()
+        if item is None:
+            running -= 1
+        else:
+            yield item
 
 
 def worker_environment() -> dict[str, Any]:
@@ -316,9 +334,6 @@ def _warm_imports() -> None:
 
     load_plugins()
     _init_worker()
-
-
-IN_CLIENT_WORKER = "in-client"
 
 
 def dask_setup(worker: Any) -> None:
@@ -373,19 +388,23 @@ class DaskCluster:
     in a background thread as soon as it is made, so workers boot and import while the client prepares the
     data, models and truth; calling it with the jobs waits for it, then runs the cells.
 
-    The local cluster's first worker runs inside this process (a dask ``Worker`` on the client's event loop,
-    computing on its own thread while the client waits), the others in worker processes (no nannies): like
-    ``--jobs N`` locally, no process sits idle and the machine starts one worker process fewer. A remote
-    scheduler's workers are wherever their owner started them."""
+    A local cluster of ``n_workers`` has ``n_workers - 1`` worker processes (no nannies); this process is the
+    other worker: it computes cells in its main thread, as ``--jobs N`` does, while a thread per worker
+    process keeps one cell in flight there (so no process sits idle, and the machine starts one worker
+    process fewer). An earlier design ran a dask ``Worker`` inside this process instead: its cells computed on
+    a thread that shared the interpreter lock with the scheduler's and the client's event loops, about 5%
+    slower than the same cells here. A remote scheduler's workers are wherever their owner started them: all
+    cells go to them."""
 
     def __init__(self, scheduler: str | None = None, n_workers: int = 2):
-        try:
-            import dask  # noqa: F401
-            import dask.distributed  # noqa: F401
-        except ImportError:
+        import importlib.util
+
+        # found, not imported: the import (a quarter second) runs on the starting thread, beside the client's
+        # preparation
+        if importlib.util.find_spec("dask") is None or importlib.util.find_spec("distributed") is None:
             raise XbenchInputError(
                 "--executor dask", "dask.distributed is not installed", expected="pip install 'xbench[cluster]'"
-            ) from None
+            )
         self.scheduler = scheduler
         self.n_workers = n_workers
         self.client: Any = None
@@ -394,6 +413,8 @@ class DaskCluster:
         self._config: Any = None
         self.state_path: Path | None = None
         self.processes: list[subprocess.Popen] = []
+        self.todo: list[CellJob] = []  # the local cluster's shared list of cells (emptied to stop its feeders)
+        self._scattered: list[Any] = []  # the state's futures on a local cluster
         self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
         self._thread.start()
 
@@ -405,8 +426,6 @@ class DaskCluster:
             if self.scheduler:
                 self.client = Client(self.scheduler)
             else:
-                from dask.distributed import Worker
-
                 port = _free_port()
                 # the worker processes start first and import while the scheduler comes up (they retry
                 # connecting until it listens)
@@ -425,14 +444,6 @@ class DaskCluster:
                     scheduler_kwargs={"dashboard": False},  # no web server (and no port clash) for a batch run
                     silence_logs=logging.ERROR,
                 )
-                # one of the workers lives in this process: it has the prepared state already, it can take
-                # the first cell as soon as the client has prepared, and the machine runs one worker process
-                # fewer
-                self.cluster.worker_spec[IN_CLIENT_WORKER] = {
-                    "cls": Worker,
-                    "options": {"nthreads": 1, "host": "127.0.0.1", "name": IN_CLIENT_WORKER},
-                }
-                self.cluster.sync(self.cluster._correct_state)
                 self.client = Client(self.cluster)
             if self.cluster is None:  # a remote cluster's workers import while the client prepares
                 self.client.run(_warm_imports)
@@ -440,20 +451,22 @@ class DaskCluster:
             self.error = exc
 
     def close(self) -> None:
+        self.todo.clear()  # feeder threads stop taking cells
         self._thread.join()
-        # worker processes first, while the scheduler still answers (a worker told to stop after the
-        # scheduler has gone keeps trying to reach it)
+        if self._scattered and self.client is not None:
+            # released before the workers that hold them stop (else the scheduler logs lost data as an error)
+            self.client.cancel(self._scattered)
+            self._scattered = []
+        # worker processes first, while the scheduler still answers; killed, not asked to stop: they hold
+        # nothing the run needs (every result is back, the shared state released), and a dask worker's
+        # orderly shutdown takes about 0.6 s of the run's wall time
         for process in self.processes:
             why = _ended_early(process)
             if why is not None:  # its cells ran on the other workers; the run is right, only slower
                 warnings.warn(f"a local dask worker process ended early ({why})", stacklevel=2)
-            process.terminate()
+            process.kill()
         for process in self.processes:
-            try:
-                process.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait()
+            process.wait()
             if process.stdout is not None:
                 process.stdout.close()
         self.processes = []
@@ -471,41 +484,68 @@ class DaskCluster:
             self.state_path = None
 
     def __call__(self, jobs: list[CellJob]) -> Iterator[tuple[Cell, dict]]:
-        from dask.distributed import as_completed as dask_completed
-
         self._thread.join()
         try:
             if self.error is not None:
                 raise self.error
-            client = self.client
-            ordered = longest_first(jobs)
-            if not ordered:
+            if not jobs:
                 return
             # once per worker, keyed by content (the task file hash is in the cache keys): not once per cell
             key, blob = packed_state(jobs)
-            _INSTALLED.add(key)  # this process (and the worker in it) holds the state already
+            _INSTALLED.add(key)  # this process holds the state already
             if self.cluster is not None:  # workers on this machine: they read a file once each
                 self.state_path = state_file(blob)
-                state = client.scatter((key, str(self.state_path)), broadcast=True, hash=False)
+                del blob
+                yield from self._shared(jobs, key)
             else:
-                state = client.scatter((key, blob), broadcast=True, hash=True)
-            del blob
-            futures = [
-                client.submit(
-                    compute_cell_with,
-                    state,
-                    *job,
-                    key=f"xbench-cell-{job[1].cell_id}",
-                    pure=False,
-                    priority=len(ordered) - rank,  # dask runs higher priorities first
-                )
-                for rank, job in enumerate(ordered)
-            ]
-            by_key = {f.key: job[1] for f, job in zip(futures, ordered, strict=True)}
-            for future in dask_completed(futures):
-                yield by_key[future.key], future.result()
+                yield from self._remote(jobs, key, blob)
         finally:
             self.close()
+
+    def _shared(self, jobs: list[CellJob], key: str) -> Iterator[tuple[Cell, dict]]:
+        """A local cluster: this process computes cells in this thread, as ``--jobs N`` does, and each worker
+        process is kept busy with one cell in flight; all take from one list, longest first."""
+        client = self.client
+        state = client.scatter((key, str(self.state_path)), broadcast=True, hash=False)
+        self._scattered = list(state)
+        processes = self.processes
+
+        def remote(job: CellJob) -> dict[str, Any]:
+            future = client.submit(compute_cell_with, state, *job, key=f"xbench-cell-{job[1].cell_id}", pure=False)
+            while True:
+                try:
+                    return future.result(timeout=1.0)
+                except TimeoutError:
+                    # a cell waits for a worker; if none is left, it would wait for ever
+                    ended = [why for p in processes if (why := _ended_early(p)) is not None]
+                    if processes and len(ended) == len(processes):
+                        future.cancel()
+                        raise WorkersGone(f"every local dask worker process ended ({ended[0]})") from None
+
+        yield from share_cells(jobs, self.todo, len(processes), remote)
+
+    def _remote(self, jobs: list[CellJob], key: str, blob: bytes) -> Iterator[tuple[Cell, dict]]:
+        """A remote scheduler: every cell goes to its workers, longest first (they run on dask's queue)."""
+        from dask.distributed import as_completed as dask_completed
+
+        client = self.client
+        ordered = longest_first(jobs)
+        state = client.scatter((key, blob), broadcast=True, hash=True)
+        del blob
+        futures = [
+            client.submit(
+                compute_cell_with,
+                state,
+                *job,
+                key=f"xbench-cell-{job[1].cell_id}",
+                pure=False,
+                priority=len(ordered) - rank,  # dask runs higher priorities first
+            )
+            for rank, job in enumerate(ordered)
+        ]
+        by_key = {f.key: job[1] for f, job in zip(futures, ordered, strict=True)}
+        for future in dask_completed(futures):
+            yield by_key[future.key], future.result()
 
 
 def run_dask(jobs: list[CellJob], scheduler: str | None = None, n_workers: int = 2) -> Iterator[tuple[Cell, dict]]:
