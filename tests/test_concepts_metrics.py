@@ -140,6 +140,19 @@ def test_pixel_flag_rule_null_rate_and_area_independence():
     assert abs(np.mean(e)) < 0.05
 
 
+def test_a_mask_covering_the_whole_tile_has_no_enrichment_at_any_scale():
+    # known answer: a mask over every pixel has inside mean = tile mean, so enrichment is 0 by definition;
+    # float rounding left ~1e-17 that differed between tiles and between scalings of the same map, and the
+    # t-test flagged that noise as an effect (found by the property test of scale invariance)
+    a = np.zeros((2, 5, 6), np.float32)
+    a[0, 4, 3:] = [2.0, 4.0, 0.25]
+    a[1, 4, 3:] = [0.75, 4.0, 0.75]
+    everywhere = np.ones((2, 1, 5, 6), bool)
+    for c in (1.0, 0.125, 0.37, 3.0, 1024.0):
+        enrichment, used = pixel_enrichment(a.astype(np.float64) * c, everywhere, None)
+        assert used.all() and (enrichment == 0.0).all(), c
+
+
 def test_tiles_scored_per_type_follow_the_class_it_drives():
     # road drives class 1 (planted = road mask on class-1 tiles); the river drives nothing, so it is
     # scored on the tiles of classes some type drives (non-empty planted mask): the class-1 tiles.

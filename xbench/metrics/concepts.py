@@ -83,6 +83,9 @@ def one_sample_p(values: np.ndarray) -> float:
     return p if np.isfinite(p) else 1.0
 
 
+ENRICHMENT_NOISE = 1e-9
+
+
 def pixel_enrichment(
     attributions: np.ndarray, type_masks: np.ndarray, planted: np.ndarray | None
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -105,6 +108,9 @@ def pixel_enrichment(
     present = (area > 0) & usable[:, None]
     inside = np.einsum("nkp,np->nk", m, a) / np.maximum(area, 1)
     enrichment = (inside - a.mean(axis=1)[:, None]) / np.where(usable, sd, 1.0)[:, None]
+    # enrichment is in units of the tile's sd: below 1e-9 it is float noise (a mask covering the whole tile
+    # gives 0 up to rounding, and noise that differs between tiles would pass the t-test as a real effect)
+    enrichment[np.abs(enrichment) < ENRICHMENT_NOISE] = 0.0
     if planted is None:
         return enrichment, present
     p = np.asarray(planted, dtype=bool).reshape(n, 1, -1)

@@ -13,8 +13,9 @@ What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``
 - **Workers boot while the client prepares.** Local workers and dask workers are started when the executor
   is made, before the client builds the data, so their imports (torch, captum, scikit-learn: seconds of
   CPU) overlap the client's preparation.
-- **The client works too.** ``--jobs N`` runs N - 1 worker processes and computes cells in the client
-  itself: no process sits idle waiting, and one worker start-up fewer.
+- **The client works too.** ``--jobs N`` and a local dask cluster of N workers run N - 1 worker processes
+  and compute cells in the client itself, in its main thread (:func:`share_cells`): no process sits idle
+  waiting, and one worker start-up fewer.
 - **Longest cells first.** Cells are dispatched in decreasing expected cost (model calls per tile of the
   explainer, :data:`EXPECTED_COST`), so the costliest cell (``rise``) does not start last and leave the other
   workers idle at the end (longest-processing-time-first scheduling). Records do not depend on the order.
@@ -25,7 +26,7 @@ What makes parallel runs pay off (measured by ``tests/bench/bench_executors.py``
 - **No nannies, no busy event loops on a local cluster.** Its worker processes are plain ``dask worker
   --no-nanny`` processes started before the scheduler (they import while it comes up): one process per
   worker, not two. Every dask server checks its event loop every 20 ms by default; the check runs every
-  second here, since the scheduler and one worker share the client's process with a computing cell.
+  second here, since the scheduler shares the client's process with a computing cell.
 """
 
 from __future__ import annotations
