@@ -11,6 +11,7 @@ clipped to [0, 1].
 
 from __future__ import annotations
 
+import textwrap
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -620,7 +621,9 @@ def cost_quality_figure(
             ax.grid(alpha=0.3, linewidth=0.5, which="both")
         for k in range(len(blocks), nrows * ncols):
             axes[k // ncols, k % ncols].set_visible(False)
-        fig.suptitle(title + " (hollow markers: controls)", fontsize=9)
+        # wrapped to the figure's width: one panel is ~3.4 in wide, too narrow for the title on one line
+        width_chars = max(30, int(fig.get_figwidth() * 12))
+        fig.suptitle(textwrap.fill(title + " (hollow markers: controls)", width_chars), fontsize=9)
     return fig
 
 
