@@ -141,7 +141,8 @@ def test_pixel_flag_rule_null_rate_and_area_independence():
 
 
 def test_a_mask_covering_the_whole_tile_has_no_enrichment_at_any_scale():
-    # known answer: a mask over every pixel has inside mean = tile mean, so enrichment is 0 by definition;
+    # known answer: a mask over every pixel has inside mean = tile mean, so enrichment (a standard score of
+    # the mask's mean, common practice) is 0 by definition;
     # float rounding left ~1e-17 that differed between tiles and between scalings of the same map, and the
     # t-test flagged that noise as an effect (found by the property test of scale invariance)
     a = np.zeros((2, 5, 6), np.float32)
