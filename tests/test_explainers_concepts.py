@@ -290,6 +290,41 @@ def test_tcav_random_versus_random_concepts_are_rarely_significant():
     assert significant <= 4, significant
 
 
+@pytest.mark.parametrize("features, shift", [(3, 0.2), (16, 1.0), (40, 4.0), (200, 1.0)])
+def test_cav_fit_is_liblinears_optimum(features, shift):
+    # Outside check: scikit-learn's LogisticRegression(solver="liblinear") minimizes the same objective
+    # (L2, intercept as a penalized feature of value 1; Fan et al. 2008); run to a tight tolerance it gives
+    # the optimum our batched Newton solve must reach. Cases: overlapping sets, nearly separable sets (large
+    # shift), and more features than examples (200 > 60: the QR-reduced form).
+    from sklearn.linear_model import LogisticRegression
+
+    from xbench.explainers.tcav import logistic_directions
+
+    rng = np.random.default_rng(features)
+    b, n = 5, 60
+    x = rng.normal(size=(b, n, features))
+    x[:, : n // 2] += shift * rng.normal(size=(b, 1, features)) / np.sqrt(features)
+    y = np.r_[np.ones(n // 2), np.zeros(n // 2)]
+    for c in (0.1, 1.0):
+        w = logistic_directions(x, np.broadcast_to(y, (b, n)), c)
+        for i in range(b):
+            ref = LogisticRegression(C=c, solver="liblinear", tol=1e-12, max_iter=100_000).fit(x[i], y).coef_[0]
+            assert np.allclose(w[i], ref, rtol=0, atol=1e-6 * np.abs(ref).max()), (c, i)
+
+
+def test_cav_fit_of_one_feature_by_hand():
+    # Known answer: two examples, x = +1 (label 1) and x = -1 (label 0), C = 1. By symmetry the intercept is
+    # 0, and the optimum of 0.5 w^2 + 2 log(1 + exp(-w)) satisfies w = 2 / (1 + exp(w)); its root is
+    # w = 0.7388... (solved below with scipy's brentq, an outside root finder).
+    from scipy.optimize import brentq
+
+    from xbench.explainers.tcav import logistic_directions
+
+    w_star = brentq(lambda w: w - 2.0 / (1.0 + np.exp(w)), 0.0, 2.0)
+    w = logistic_directions(np.array([[[1.0], [-1.0]]]), np.array([[1.0, 0.0]]), 1.0)
+    assert w.shape == (1, 1) and abs(w[0, 0] - w_star) < 1e-12
+
+
 def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
     # By construction (SignedGateNet): adding band-0 structure raises class 1 and lowers class 2 on every
     # tile. Kim et al. 2018: the TCAV score of a class is the share of that class's inputs with a positive
