@@ -389,6 +389,51 @@ def test_every_file_exists_and_figures_are_png_and_pdf(report):
     assert stems == {"gallery", "curves", "randomization", "cd", "clusters", "reliance", "cost_quality"}
 
 
+def test_figures_drawn_on_two_cores_are_the_same_files_and_notes(runs, report, tmp_path):
+    # the module's report was drawn with the default jobs (2 here: forked); one process must give the same
+    # bytes of every figure, the same list of figures and the same report.log
+    serial = write_report(runs, tmp_path / "serial", n_resamples=500, gallery_tiles=2, jobs=1)
+    names = sorted(p.name for p in (report.out_dir / "figures").iterdir())
+    assert names == sorted(p.name for p in (serial.out_dir / "figures").iterdir())
+    for name in names:
+        assert (report.out_dir / "figures" / name).read_bytes() == (serial.out_dir / "figures" / name).read_bytes()
+    assert (report.out_dir / "report.log").read_text() == (serial.out_dir / "report.log").read_text()
+
+
+def test_draw_units_keeps_order_and_redraws_what_a_dead_child_left():
+    import os
+    import time
+
+    from xbench.report.drawing import can_fork, draw_units
+
+    parent = os.getpid()
+
+    def unit(i):
+        def run(notes):
+            time.sleep(0.02)
+            notes.append(f"note {i}")
+            return [(i, os.getpid())]
+
+        return run
+
+    out = draw_units([unit(i) for i in range(8)], jobs=2)
+    assert [files[0][0] for files, _ in out] == list(range(8))
+    assert [notes for _, notes in out] == [[f"note {i}"] for i in range(8)]
+    if can_fork():  # both processes drew some
+        pids = {files[0][1] for files, _ in out}
+        assert parent in pids and len(pids) == 2
+
+    def dies_in_child(notes):
+        if os.getpid() != parent:
+            os._exit(3)  # the child ends without sending anything back
+        time.sleep(0.05)
+        return ["drawn here"]
+
+    out = draw_units([dies_in_child] * 4, jobs=2)
+    assert [files for files, _ in out] == [["drawn here"]] * 4
+    assert draw_units([], jobs=2) == [] and draw_units([unit(0)], jobs=2)[0][0][0][0] == 0
+
+
 def test_figures_use_the_agg_canvas():
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 

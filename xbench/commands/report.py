@@ -44,6 +44,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="comma-separated models whose task x model blocks enter the report (default: all)",
     )
     parser.add_argument("--no-figures", action="store_true", help="tables and text only")
+    parser.add_argument(
+        "--jobs", type=int, default=None, help="processes drawing the figures (default: 2 on two or more cores)"
+    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -54,6 +57,8 @@ def run(args: argparse.Namespace) -> int:
         raise XbenchInputError("--resamples", "too few bootstrap resamples", expected=">= 100", found=args.resamples)
     if not 0 < args.alpha < 1:
         raise XbenchInputError("--alpha", "must lie strictly between 0 and 1", found=args.alpha)
+    if args.jobs is not None and args.jobs < 1:
+        raise XbenchInputError("--jobs", "must be at least 1", found=args.jobs)
     summary = write_report(
         args.run_dirs,
         args.out,
@@ -66,6 +71,7 @@ def run(args: argparse.Namespace) -> int:
         figures=not args.no_figures,
         against=args.against,
         models=[m.strip() for m in args.models.split(",") if m.strip()] if args.models else None,
+        jobs=args.jobs,
     )
     print(summary)
     for path in summary.paths:

@@ -12,6 +12,7 @@ Output folder::
 
 from __future__ import annotations
 
+import functools
 import html
 import logging
 import warnings
@@ -31,6 +32,7 @@ from xbench.report import recommend as R
 from xbench.report import tables as T
 from xbench.report.bib import render_bib
 from xbench.report.compare import Column, Summary, summarize, variant_sensitivity
+from xbench.report.drawing import Unit, default_jobs, draw_units
 from xbench.report.load import RunSet, load_runs
 from xbench.report.methods import methods_text
 
@@ -194,37 +196,57 @@ def make_figures(
     log: list[str],
     gallery_tiles: int,
     costs: pd.DataFrame | None = None,
+    jobs: int = 1,
 ) -> list[F.FigureFile]:
-    out: list[F.FigureFile] = []
+    """Every figure of the report, drawn and saved into ``folder`` (on two cores where ``jobs`` >= 2, see
+    :mod:`xbench.report.drawing`); notes go to ``log`` in the figures' order, whoever drew them."""
+    units: list[Unit] = []
     styles = F.explainer_styles(summary.explainers)
 
-    def emit(make, stem: str, section: str, title: str, caption: str) -> None:
+    def draw(make, stem: str, section: str, title: str, caption: str, notes: list[str]) -> list[F.FigureFile]:
         try:
             fig = make()
         except Exception as exc:  # one odd input must not sink the whole report
-            log.append(f"figure {stem}: not drawn ({type(exc).__name__}: {exc})")
-            return
+            notes.append(f"figure {stem}: not drawn ({type(exc).__name__}: {exc})")
+            return []
         if isinstance(fig, tuple):
-            fig, notes = fig
-            log.extend(notes)
+            fig, more = fig
+            notes.extend(more)
         if fig is None:
-            log.append(f"figure {stem}: nothing to draw")
-            return
+            notes.append(f"figure {stem}: nothing to draw")
+            return []
         png, pdf = F.save(fig, folder, stem)
-        out.append(F.FigureFile(stem, section, title, caption, png, pdf))
+        return [F.FigureFile(stem, section, title, caption, png, pdf)]
 
-    for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
-        title = f"{a.task}, model {a.model}, seed {a.seed}"
+    def note(text: str) -> None:  # a note between figures keeps its place in the log
+        def unit(notes: list[str]) -> list[F.FigureFile]:
+            notes.append(text)
+            return []
+
+        units.append(unit)
+
+    def emit(make, stem: str, section: str, title: str, caption: str) -> None:
+        units.append(lambda notes: draw(make, stem, section, title, caption, notes))
+
+    def gallery(a, title: str, notes: list[str]) -> list[F.FigureFile]:
         try:
-            pages, notes = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles)
+            pages, more = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles)
         except Exception as exc:  # one odd artifact must not sink the whole report
-            log.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
-            continue
-        log.extend(notes)
+            notes.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
+            return []
+        notes.extend(more)
+        files = []
         for k, page in enumerate(pages, start=1):
             stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{k}" if len(pages) > 1 else "")
             part = f" (part {k} of {len(pages)})" if len(pages) > 1 else ""
-            emit(lambda page=page: page, stem, "gallery", f"Heatmap gallery: {title}{part}", CAPTIONS["gallery"])
+            files += draw(
+                lambda page=page: page, stem, "gallery", f"Heatmap gallery: {title}{part}", CAPTIONS["gallery"], notes
+            )
+        return files
+
+    for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
+        title = f"{a.task}, model {a.model}, seed {a.seed}"
+        units.append(functools.partial(gallery, a, title))
     if runs.curves is not None:
         for (task, model), c in runs.curves.groupby(["task", "model"], sort=False):
             title = f"{task}, model {model}"
@@ -243,17 +265,17 @@ def make_figures(
                 CAPTIONS["randomization"],
             )
     else:
-        log.append("no curves.parquet: deletion, insertion and randomization figures left out")
+        note("no curves.parquet: deletion, insertion and randomization figures left out")
     for rt in summary.rank_tests.values():
         col = rt.column
         stem = F.file_stem("cd", col.metric, col.truth) + ("" if rt.group == "torch models" else "__black-box")
         if len(rt.blocks) < 2:
-            log.append(f"CD diagram for {col.label} ({rt.group}): needs at least 2 blocks, has {len(rt.blocks)}")
+            note(f"CD diagram for {col.label} ({rt.group}): needs at least 2 blocks, has {len(rt.blocks)}")
             continue
         fr = rt.friedman
         if not rt.rejects:  # no diagram without a rejecting Friedman test: a sentence in the rank table instead
             ptext = f"p = {fr.p_value:.3g}" if np.isfinite(fr.p_value) else "not defined"
-            log.append(f"CD diagram for {col.label} ({rt.group}) not drawn: Friedman test does not reject ({ptext})")
+            note(f"CD diagram for {col.label} ({rt.group}) not drawn: Friedman test does not reject ({ptext})")
             continue
         ptext = f"Friedman p = {fr.p_value:.3g}"
         title = f"{col.label} {col.arrow}, {rt.group}: N = {len(rt.blocks)} task × model × seed blocks, {ptext}"
@@ -285,7 +307,7 @@ def make_figures(
                 CAPTIONS["reliance"],
             )
     else:
-        log.append("no reliance.parquet: reliance chart left out")
+        note("no reliance.parquet: reliance chart left out")
     if headline is not None:
         points = cost_points(costs if costs is not None else explainer_costs(runs, log), summary, headline)
         if len(points):
@@ -299,6 +321,10 @@ def make_figures(
                 f"Cost vs quality: {headline.label}",
                 CAPTIONS["cost"].format(label=headline.label),
             )
+    out: list[F.FigureFile] = []
+    for files, notes in draw_units(units, jobs):
+        out += files
+        log.extend(notes)
     return out
 
 
@@ -357,13 +383,15 @@ def write_report(
     figures: bool = True,
     against: str | None = None,
     models: list[str] | None = None,
+    jobs: int | None = None,
 ) -> ReportSummary:
     """Read the run folders and write tables, figures, methods text and BibTeX into ``out_dir``.
 
     ``out_dir`` defaults to ``<first run folder>/report``. ``headline_metric`` / ``headline_truth`` choose
     the quality axis of the cost figure and the worked CD numbers in the methods text. ``against`` names a
     real method declared before the run as the comparator of the paired tests (default: all pairs with Holm);
-    ``models`` chooses the models whose blocks enter (default: all). Prints nothing.
+    ``models`` chooses the models whose blocks enter (default: all). ``jobs``: processes drawing the figures
+    (default 2 on two or more cores; forked, Linux only; the files are the same either way). Prints nothing.
     """
     fmts = _formats(formats)
     runs = load_runs(run_dirs)
@@ -391,7 +419,14 @@ def write_report(
             headline = choose_headline(summary, headline_metric, headline_truth, log)
             costs = explainer_costs(runs, log)
             recs = R.recommend(summary.table, runs.records, costs, summary.seeds, alpha=alpha)
-            figs = make_figures(runs, summary, headline, out / "figures", log, gallery_tiles, costs) if figures else []
+            figs = (
+                make_figures(
+                    runs, summary, headline, out / "figures", log, gallery_tiles, costs,
+                    jobs=default_jobs() if jobs is None else jobs,
+                )
+                if figures
+                else []
+            )  # fmt: skip
             results = T.result_tables(summary)
             ranks = T.rank_tables(summary)
             variant_runs = find_variants(runs, log)

@@ -1,0 +1,86 @@
+"""Drawing a report's figures on two cores: a forked copy of this process takes figures from the same list.
+
+Rendering figures is most of a report's time and runs on one core. Where ``fork`` is the platform's safe way
+to start a process (Linux), one forked child draws figures beside this process: both take the next undrawn
+figure from a shared counter, so a long gallery does not hold the other side up. Fork, not spawn: the child
+starts with the runs, tables and styles already in memory, so nothing is pickled but each drawn figure's
+file names and notes on the way back. The files are the same bytes whoever draws them (tests), the returned
+list and notes keep the units' order, and a child that dies leaves its figures to this process.
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+import sys
+from collections.abc import Callable, Sequence
+from typing import Any
+
+# a unit draws and saves its figures, appends its notes to the list it is given, and returns what it wrote
+Unit = Callable[[list[str]], list[Any]]
+
+
+def can_fork() -> bool:
+    """Fork only on Linux: macOS's system frameworks are not fork-safe, Windows has no fork."""
+    return sys.platform.startswith("linux") and "fork" in multiprocessing.get_all_start_methods()
+
+
+def draw_units(units: Sequence[Unit], jobs: int = 2) -> list[tuple[list[Any], list[str]]]:
+    """Run every unit once; per unit (what it returned, its notes), in the units' order.
+
+    ``jobs`` >= 2 on a forking platform with >= 2 units: this process and one forked child share the list;
+    otherwise one after the other here."""
+    results: dict[int, tuple[list[Any], list[str]]] = {}
+    if jobs >= 2 and len(units) >= 2 and can_fork():
+        results = _shared(units)
+    for i, unit in enumerate(units):  # serial, or what a dead child left undrawn
+        if i not in results:
+            results[i] = _run(unit)
+    return [results[i] for i in range(len(units))]
+
+
+def _run(unit: Unit) -> tuple[list[Any], list[str]]:
+    notes: list[str] = []
+    return unit(notes), notes
+
+
+def _shared(units: Sequence[Unit]) -> dict[int, tuple[list[Any], list[str]]]:
+    ctx = multiprocessing.get_context("fork")
+    counter = ctx.Value("i", 0)
+    receive, send = ctx.Pipe(duplex=False)
+
+    def take() -> int | None:
+        with counter.get_lock():
+            i = counter.value
+            if i >= len(units):
+                return None
+            counter.value = i + 1
+            return i
+
+    def child() -> None:
+        receive.close()
+        drawn = {}
+        while (i := take()) is not None:
+            drawn[i] = _run(units[i])
+        send.send(drawn)
+        send.close()
+
+    process = ctx.Process(target=child, daemon=True)
+    process.start()
+    send.close()
+    results: dict[int, tuple[list[Any], list[str]]] = {}
+    while (i := take()) is not None:
+        results[i] = _run(units[i])
+    try:
+        results.update(receive.recv())
+    except (EOFError, OSError):  # the child died: its figures are drawn again by the caller
+        pass
+    finally:
+        receive.close()
+        process.join()
+    return results
+
+
+def default_jobs() -> int:
+    """Two where there are two cores to use."""
+    return 2 if (os.cpu_count() or 1) >= 2 else 1
