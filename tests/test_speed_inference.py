@@ -173,6 +173,14 @@ def test_one_pass_for_many_layers_reads_what_one_pass_per_layer_reads(kind):
     assert calls.forward == 10  # one pass for all the layers
     for name in names:
         assert np.array_equal(together[name], layer_activations("test", handle, name, images, batch_size=4)), name
+    # a reduction applied in torch (TCAV's mean over positions, in float64) equals the same mean taken of
+    # the full maps afterwards, to float32 rounding of the maps' sums
+    pooled = layers_activations(
+        "test", handle, names, images, 4, reduce=lambda _, a: a.mean(dim=(2, 3), dtype=torch.float64)
+    )
+    for name in names:
+        assert pooled[name].dtype == np.float64 and pooled[name].shape == together[name].shape[:2]
+        assert np.allclose(pooled[name], together[name].astype(np.float64).mean(axis=(2, 3)), rtol=1e-6, atol=1e-7)
 
 
 class _Slow(nn.Module):

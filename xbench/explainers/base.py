@@ -575,10 +575,19 @@ def layer_activations(key: str, model: ModelHandle, layer_name: str, images: np.
 
 
 def layers_activations(
-    key: str, model: ModelHandle, layer_names: list[str], images: np.ndarray, batch_size: int
+    key: str,
+    model: ModelHandle,
+    layer_names: list[str],
+    images: np.ndarray,
+    batch_size: int,
+    reduce: Callable[[str, torch.Tensor], torch.Tensor] | None = None,
 ) -> dict[str, np.ndarray]:
     """Several layers' outputs for all images from one forward pass per batch: layer -> float32 (N, C, h, w)
-    (the same arrays as :func:`layer_activations` per layer, at a fraction of the model calls)."""
+    (the same arrays as :func:`layer_activations` per layer, at a fraction of the model calls).
+
+    ``reduce(layer, output)`` maps each batch's output before it leaves torch (e.g. a mean over positions,
+    so full maps are never copied out); the arrays are then its outputs in their dtype, concatenated along
+    the batch."""
     names = list(dict.fromkeys(layer_names))
     out: dict[str, list[np.ndarray]] = {name: [] for name in names}
     with contextlib.ExitStack() as stack, torch.no_grad():
@@ -588,7 +597,10 @@ def layers_activations(
                 t.reset()
             taps[0].forward(as_tensor(images[sl]))  # the whole model runs once: every tap records
             for t in taps:
-                out[t.layer_name].append(as_numpy(t.recorded))
+                if reduce is None:
+                    out[t.layer_name].append(as_numpy(t.recorded))
+                else:  # the reduction's own dtype
+                    out[t.layer_name].append(reduce(t.layer_name, t.recorded.detach()).cpu().numpy())
     if not names or not out[names[0]]:
         raise XbenchInputError(f"explainer '{key}'", "no images to compute activations from")
     return {name: np.concatenate(parts, axis=0) for name, parts in out.items()}

@@ -254,12 +254,6 @@ def standard_score(value: float, null: np.ndarray) -> float:
     return float((value - np.mean(null)) / sd) if sd > 0 and np.isfinite(sd) else 0.0
 
 
-def _features(acts: np.ndarray, pool: str) -> np.ndarray:
-    if pool == "mean":
-        return acts.mean(axis=(2, 3)).astype(np.float64)
-    return acts.reshape(acts.shape[0], -1).astype(np.float64)
-
-
 def logistic_directions(x: np.ndarray, y: np.ndarray, regularization: float, *, max_iter: int = 100) -> np.ndarray:
     """Weights (intercept dropped) of ``B`` L2-regularized logistic regressions at once, each at its optimum.
 
@@ -366,24 +360,34 @@ def ttest_runs(a: np.ndarray, b: np.ndarray) -> float:
     return p if np.isfinite(p) else 1.0
 
 
+def _per_class(values: np.ndarray, targets: np.ndarray, classes: np.ndarray) -> np.ndarray:
+    """(n, M) per-tile values -> (M, classes): the mean over each class's tiles."""
+    return np.stack([values[targets == k].mean(axis=0) for k in classes], axis=-1)
+
+
 def run_scores(gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """TCAV score of direction ``v`` per class: the share of that class's tiles with grad . v > 0."""
-    positive = (gfeat @ v) > 0
-    return np.array([positive[targets == k].mean() for k in classes])
+    """TCAV score of direction ``v`` per class: the share of that class's tiles with grad . v > 0.
+    ``v`` (d,) gives (classes,); a stack of directions (M, d) gives (M, classes) in one product."""
+    out = _per_class((gfeat @ np.atleast_2d(v).T) > 0, targets, classes)
+    return out[0] if np.ndim(v) == 1 else out
 
 
 def run_alignments(gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Alignment of the unit direction ``v`` per class: the mean over that class's tiles of the cosine between
-    the class logit's gradient at the layer and ``v`` (0 where a tile's gradient is zero)."""
-    norms = np.linalg.norm(gfeat, axis=1)
-    cosine = np.divide(gfeat @ v, norms, out=np.zeros(len(gfeat)), where=norms > 0)
-    return np.array([cosine[targets == k].mean() for k in classes])
+    the class logit's gradient at the layer and ``v`` (0 where a tile's gradient is zero). ``v`` (d,) or a
+    stack (M, d), as in :func:`run_scores`."""
+    norms = np.linalg.norm(gfeat, axis=1)[:, None]
+    proj = gfeat @ np.atleast_2d(v).T
+    cosine = np.divide(proj, norms, out=np.zeros_like(proj), where=norms > 0)
+    out = _per_class(cosine, targets, classes)
+    return out[0] if np.ndim(v) == 1 else out
 
 
 def run_statistics(
     gfeat: np.ndarray, targets: np.ndarray, classes: np.ndarray, v: np.ndarray, statistic: str
 ) -> np.ndarray:
-    """The tested statistic of direction ``v`` per class: ``score`` (TCAV score) or ``alignment``."""
+    """The tested statistic of direction ``v`` (or a stack of them) per class: ``score`` (TCAV score) or
+    ``alignment``."""
     fn = run_scores if statistic == "score" else run_alignments
     return fn(gfeat, targets, classes, v)
 
@@ -408,18 +412,25 @@ def _set_features(
     """Every example set's features at every layer in ``layers``, from one forward pass of each set through
     the model (not one per layer): layer -> ``feats`` (set -> (N, features) float64), ``shapes`` (set -> the
     layer map's shape) and ``mu`` (the random sets' mean activation)."""
-    out: dict[str, dict[str, Any]] = {layer: {"feats": {}, "shapes": {}, "sums": None, "count": 0} for layer in layers}
+    out: dict[str, dict[str, Any]] = {layer: {"feats": {}, "shapes": {}} for layer in layers}
+    shapes: dict[str, tuple[int, ...]] = {}
+
+    def pooled(layer: str, acts: torch.Tensor) -> torch.Tensor:
+        # the mean over positions in float64 before the maps leave torch: full maps are never copied out
+        shapes[layer] = tuple(acts.shape[1:])
+        return acts.mean(dim=(2, 3), dtype=torch.float64) if pool == "mean" else acts
+
     for name in concepts + randoms:
-        for layer, a in layers_activations(KEY, model, layers, sets[name], batch_size).items():
+        for layer, a in layers_activations(KEY, model, layers, sets[name], batch_size, reduce=pooled).items():
             at = out[layer]
-            at["shapes"][name] = a.shape[1:]
-            at["feats"][name] = _features(a, pool)
-            if name in randoms:
-                part = a.sum(axis=(0, 2, 3)) if pool == "mean" else a.sum(axis=0)
-                at["sums"] = part if at["sums"] is None else at["sums"] + part
-                at["count"] += a.shape[0] * (a.shape[2] * a.shape[3] if pool == "mean" else 1)
+            at["shapes"][name] = shapes[layer]
+            at["feats"][name] = a.reshape(a.shape[0], -1).astype(np.float64)
     for at in out.values():
-        at["mu"] = (at.pop("sums") if at["sums"] is not None else 0.0) / max(at.pop("count"), 1)
+        # the random sets' mean activation: per channel over examples and positions ("mean"; every example
+        # has the same number of positions), per position and channel over examples ("none")
+        at["mu"] = np.concatenate([at["feats"][name] for name in randoms]).mean(axis=0)
+        if pool == "none":
+            at["mu"] = at["mu"].reshape(at["shapes"][randoms[0]])
     return out
 
 
@@ -521,22 +532,24 @@ def _run_layer(
             )
     classes = np.unique(targets)
     random_cavs = fit["random_cavs"]
-    random_runs = np.array([run_scores(gfeat, targets, classes, v) for v in random_cavs])  # (runs, classes)
-    random_stats = np.array([run_statistics(gfeat, targets, classes, v, statistic) for v in random_cavs])
+    random_runs = run_scores(gfeat, targets, classes, np.array(random_cavs))  # (runs, classes)
+    random_stats = run_statistics(gfeat, targets, classes, np.array(random_cavs), statistic)
     set_means = None
     if test == "set":  # each random set posing as a concept against the others: its mean statistic is one null draw
         n_r = len(randoms)
         pair = np.full((n_r, n_r, len(classes)), np.nan)
-        for (i, j), v in fit["pair_cavs"].items():
-            pair[i, j] = run_statistics(gfeat, targets, classes, v, statistic)
-            # the CAV of j against i points the other way
-            pair[j, i] = run_statistics(gfeat, targets, classes, -v, statistic)
+        index = list(fit["pair_cavs"])
+        if index:
+            rows, cols = np.array(index).T
+            vs = np.array([fit["pair_cavs"][ij] for ij in index])
+            pair[rows, cols] = run_statistics(gfeat, targets, classes, vs, statistic)
+            pair[cols, rows] = run_statistics(gfeat, targets, classes, -vs, statistic)  # j against i: the other way
         set_means = np.nanmean(pair, axis=1)  # (n_r, classes)
     concept_runs, concept_stats = {}, {}
     for concept in concepts:
-        vs = fit["concept_cavs"][concept]
-        concept_runs[concept] = np.array([run_scores(gfeat, targets, classes, v) for v in vs])
-        concept_stats[concept] = np.array([run_statistics(gfeat, targets, classes, v, statistic) for v in vs])
+        vs = np.array(fit["concept_cavs"][concept])
+        concept_runs[concept] = run_scores(gfeat, targets, classes, vs)
+        concept_stats[concept] = run_statistics(gfeat, targets, classes, vs, statistic)
     cavs, mu = fit["cavs"], fit["mu"]
     null = set_means if set_means is not None else random_stats
     return {
