@@ -294,12 +294,13 @@ def logistic_directions(x: np.ndarray, y: np.ndarray, regularization: float, *, 
     for _ in range(max_iter):
         if active.size == 0:
             break
-        za, sa, wa = z[active], s[active], w[active]
+        every = active.size == b  # views, not copies, while every problem is still running
+        za, sa, wa = (z, s, w.copy()) if every else (z[active], s[active], w[active])
         margins = sa * (za @ wa[..., None])[..., 0]
         tail = expit(-margins)  # -d/dm log(1 + exp(-m))
         grad = wa - c * (np.swapaxes(za, 1, 2) @ (sa * tail)[..., None])[..., 0]
         curvature = (tail * (1.0 - tail)).astype(np.float32)
-        za32 = z32[active]
+        za32 = z32 if every else z32[active]
         hess = eye + np.float32(c) * (np.swapaxes(za32 * curvature[..., None], 1, 2) @ za32)
         step = np.linalg.solve(hess, grad[..., None].astype(np.float32))[..., 0].astype(np.float64)
         decrement = np.sum(grad * step, axis=1)  # Newton decrement squared: ~ 2 (f(w) - f*)
@@ -332,7 +333,7 @@ def _cavs(pairs: list[tuple[np.ndarray, np.ndarray]], regularization: float) -> 
     for i, (pos, neg) in enumerate(pairs):
         groups.setdefault((len(pos), len(neg), pos.shape[1]), []).append(i)
     for (n_pos, n_neg, d), members in groups.items():
-        chunk = max(1, int(32e6 // ((n_pos + n_neg) * (d + 1) * 8)))  # ~32 MB of features per solve
+        chunk = max(1, int(8e6 // ((n_pos + n_neg) * (d + 1) * 8)))  # ~8 MB of features per solve
         for start in range(0, len(members), chunk):
             part = members[start : start + chunk]
             x = np.stack([np.concatenate(pairs[i]) for i in part])
