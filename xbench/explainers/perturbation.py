@@ -193,7 +193,9 @@ def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_s
     out = np.empty(images.shape, dtype=np.float32)
     for i in range(n):
         seg = superpixels(images[i], n_segments, compactness)
-        mask = torch.from_numpy(np.broadcast_to(seg, (1, c, h, w)).copy())
+        # one mask plane broadcast over the bands (captum accepts a broadcastable mask): each coalition's
+        # input is built from an h x w selection, not a c x h x w one; same values
+        mask = torch.from_numpy(seg[None, None].copy())
         # coalitions drawn from a generator seeded per tile: a tile's map ignores the other tiles
         torch.manual_seed(int(np.random.SeedSequence([int(context.seed), i]).generate_state(1)[0]))
         attr = method.attribute(
