@@ -300,7 +300,11 @@ def _curves(inputs: MetricInputs, settings: dict[str, Any], mode: str, morf: boo
         images = np.asarray(inputs.images, dtype=np.float32)[good]
         twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
         base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]), where="metric")
-        order = pixel_order(np.asarray(inputs.attributions)[good], inputs.seed, most_relevant_first=morf, tile_ids=good)
+        order_key = inputs.cache_key("pixel-order", morf)  # deletion and insertion share the MoRF order
+        if order_key not in inputs._cache:
+            attributions = np.asarray(inputs.attributions)[good]
+            inputs._cache[order_key] = pixel_order(attributions, inputs.seed, most_relevant_first=morf, tile_ids=good)
+        order = inputs._cache[order_key]
         out[good] = perturbation_curves(
             _prob_fn(inputs), images, np.asarray(inputs.targets)[good], base, order, steps, mode
         )
