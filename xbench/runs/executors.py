@@ -334,6 +334,11 @@ def _warm_imports() -> None:
     from xbench.explainers.registry import load_plugins
 
     load_plugins()
+    # the explainers import these where they are used (a client that only dispatches never pays for them);
+    # a worker that is waiting for the client's models has the time
+    import captum.attr  # noqa: F401
+    import skimage.segmentation  # noqa: F401
+
     _init_worker()
 
 
