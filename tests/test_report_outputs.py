@@ -770,3 +770,19 @@ def test_skipped_metrics_and_their_reasons_are_in_the_report(tmp_path):
     md = (tmp_path / "b" / "tables.md").read_text()
     assert "skipped: no twins" in md and "needs counterfactual twins" not in md
     assert "| vellardine-roads / cnn | insertion-auc | all | skipped: no twins |" in md
+
+
+def test_draw_units_inside_a_pool_worker_draws_everything_there():
+    # a daemonic process (a multiprocessing pool's worker) may not start children: the units run in it
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    with ctx.Pool(1) as pool:
+        out = pool.apply(_draw_in_worker)
+    assert out == [[0], [1], [2]]
+
+
+def _draw_in_worker():
+    from xbench.report.drawing import draw_units
+
+    return [files for files, _ in draw_units([lambda notes, i=i: [i] for i in range(3)], jobs=2)]

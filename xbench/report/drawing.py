@@ -21,8 +21,13 @@ Unit = Callable[[list[str]], list[Any]]
 
 
 def can_fork() -> bool:
-    """Fork only on Linux: macOS's system frameworks are not fork-safe, Windows has no fork."""
-    return sys.platform.startswith("linux") and "fork" in multiprocessing.get_all_start_methods()
+    """Fork only on Linux (macOS's system frameworks are not fork-safe, Windows has no fork), and not from a
+    daemonic process (a pool's worker may not have children)."""
+    return (
+        sys.platform.startswith("linux")
+        and "fork" in multiprocessing.get_all_start_methods()
+        and not multiprocessing.current_process().daemon
+    )
 
 
 def draw_units(units: Sequence[Unit], jobs: int = 2) -> list[tuple[list[Any], list[str]]]:
@@ -66,7 +71,12 @@ def _shared(units: Sequence[Unit]) -> dict[int, tuple[list[Any], list[str]]]:
         send.close()
 
     process = ctx.Process(target=child, daemon=True)
-    process.start()
+    try:
+        process.start()
+    except OSError:  # no process to be had (limits): everything is drawn here
+        receive.close()
+        send.close()
+        return {}
     send.close()
     results: dict[int, tuple[list[Any], list[str]]] = {}
     while (i := take()) is not None:
