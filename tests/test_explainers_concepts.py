@@ -325,6 +325,20 @@ def test_cav_fit_of_one_feature_by_hand():
     assert w.shape == (1, 1) and abs(w[0, 0] - w_star) < 1e-12
 
 
+def test_cav_fit_refuses_non_finite_activations():
+    # a NaN activation must stop the explainer with a message naming the example sets, not turn into a
+    # silent NaN direction
+    from xbench.explainers.tcav import _cavs, logistic_directions
+
+    pos, neg = np.ones((4, 3)), np.zeros((4, 3))
+    bad = pos.copy()
+    bad[1, 2] = np.nan
+    with pytest.raises(XbenchInputError, match="concept_sets"):
+        _cavs([(pos, neg), (bad, neg)], 1.0)
+    with pytest.raises(ValueError, match="finite"):
+        logistic_directions(np.array([np.r_[bad, neg]]), np.array([np.r_[np.ones(4), np.zeros(4)]]), 1.0)
+
+
 def test_tcav_per_class_scores_follow_the_sign_of_the_directional_derivative():
     # By construction (SignedGateNet): adding band-0 structure raises class 1 and lowers class 2 on every
     # tile. Kim et al. 2018: the TCAV score of a class is the share of that class's inputs with a positive
