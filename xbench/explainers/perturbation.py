@@ -135,11 +135,13 @@ def rise(model, images, targets, context, *, n_masks, grid, p, baseline, blur_si
     for i in range(n):
         x = images[i][None]
         b = base[i][None]
+        zero_baseline = not b.any()  # the default: b * (1 - m) adds nothing
         for ms in batches(n_masks, RISE_GROUP):
             m = masks[ms][:, None]
             # x * m + b * (1 - m), in float32 like the inputs, without the extra copies
             perturbed = np.multiply(x, m, dtype=np.float32)
-            perturbed += b * (1.0 - m)
+            if not zero_baseline:
+                perturbed += b * (1.0 - m)
             scores = model.scores(perturbed, score)[:, targets[i]]
             out[i] += np.tensordot(scores, masks[ms], axes=(0, 0))
     return (out / (n_masks * p)).astype(np.float32)
