@@ -786,3 +786,25 @@ def _draw_in_worker():
     from xbench.report.drawing import draw_units
 
     return [files for files, _ in draw_units([lambda notes, i=i: [i] for i in range(3)], jobs=2)]
+
+
+def test_draw_units_raises_the_units_warnings_again_in_the_caller():
+    # a warning raised while a figure is drawn (in the forked child or here) reaches the caller's own
+    # warning filters, in the units' order: write_report logs them as it logs any other warning
+    import warnings
+
+    from xbench.report.drawing import draw_units
+
+    def unit(i):
+        def run(notes):
+            warnings.warn(f"unit {i} warns", UserWarning, stacklevel=1)
+            return [i]
+
+        return run
+
+    for jobs in (1, 2):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            out = draw_units([unit(i) for i in range(4)], jobs=jobs)
+        assert [files for files, _ in out] == [[0], [1], [2], [3]]
+        assert [str(w.message) for w in caught] == [f"unit {i} warns" for i in range(4)], jobs

@@ -4,8 +4,9 @@ Rendering figures is most of a report's time and runs on one core. Where ``fork`
 to start a process (Linux), one forked child draws figures beside this process: both take the next undrawn
 figure from a shared counter, so a long gallery does not hold the other side up. Fork, not spawn: the child
 starts with the runs, tables and styles already in memory, so nothing is pickled but each drawn figure's
-file names and notes on the way back. The files are the same bytes whoever draws them (tests), the returned
-list and notes keep the units' order, and a child that dies leaves its figures to this process.
+file names, notes and warnings on the way back. The files are the same bytes whoever draws them (tests); the
+returned list, the notes and the warnings (raised again here, to reach the caller's filters) keep the units'
+order; a child that dies leaves its figures to this process.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ from __future__ import annotations
 import multiprocessing
 import os
 import sys
+import warnings
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -35,21 +37,33 @@ def draw_units(units: Sequence[Unit], jobs: int = 2) -> list[tuple[list[Any], li
 
     ``jobs`` >= 2 on a forking platform with >= 2 units: this process and one forked child share the list;
     otherwise one after the other here."""
-    results: dict[int, tuple[list[Any], list[str]]] = {}
+    results: dict[int, Drawn] = {}
     if jobs >= 2 and len(units) >= 2 and can_fork():
         results = _shared(units)
     for i, unit in enumerate(units):  # serial, or what a dead child left undrawn
         if i not in results:
             results[i] = _run(unit)
-    return [results[i] for i in range(len(units))]
+    out = []
+    for i in range(len(units)):
+        files, notes, caught = results[i]
+        for category, message in caught:  # warnings reach the caller's filters, whoever drew the unit
+            warnings.warn(message, category, stacklevel=2)
+        out.append((files, notes))
+    return out
 
 
-def _run(unit: Unit) -> tuple[list[Any], list[str]]:
+Drawn = tuple[list[Any], list[str], list[tuple[type[Warning], str]]]
+
+
+def _run(unit: Unit) -> Drawn:
     notes: list[str] = []
-    return unit(notes), notes
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        files = unit(notes)
+    return files, notes, [(w.category, str(w.message)) for w in caught]
 
 
-def _shared(units: Sequence[Unit]) -> dict[int, tuple[list[Any], list[str]]]:
+def _shared(units: Sequence[Unit]) -> dict[int, Drawn]:
     ctx = multiprocessing.get_context("fork")
     counter = ctx.Value("i", 0)
     receive, send = ctx.Pipe(duplex=False)
@@ -78,7 +92,7 @@ def _shared(units: Sequence[Unit]) -> dict[int, tuple[list[Any], list[str]]]:
         send.close()
         return {}
     send.close()
-    results: dict[int, tuple[list[Any], list[str]]] = {}
+    results: dict[int, Drawn] = {}
     while (i := take()) is not None:
         results[i] = _run(units[i])
     try:
