@@ -145,3 +145,51 @@ def test_dask_missing_is_named_with_the_install_command(monkeypatch):
     monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "distributed" else real(name, *a))
     with pytest.raises(XbenchInputError, match=r"dask.distributed is not installed.*xbench\[cluster\]"):
         DaskCluster(None, 2)
+
+
+@pytest.mark.skipif(not Path("/proc").is_dir(), reason="reads process states from /proc (Linux)")
+def test_a_pool_worker_ends_when_its_client_is_killed(tmp_path):
+    # a client killed outright (SIGKILL: no cleanup runs) must not leave its worker process waiting on the
+    # pool's queue forever
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    script = tmp_path / "client.py"
+    script.write_text(
+        "import sys, time\n"
+        "from xbench.runs.executors import LocalPool, _noop\n"
+        "if __name__ == '__main__':\n"
+        "    pool = LocalPool(2)\n"
+        "    pool.pool.submit(_noop).result()\n"
+        "    print(*[p.pid for p in pool.pool._processes.values()], flush=True)\n"
+        "    time.sleep(600)\n"
+    )
+    client = subprocess.Popen([sys.executable, str(script)], stdout=subprocess.PIPE, text=True)
+    workers: list[int] = []
+    try:
+        workers = [int(pid) for pid in client.stdout.readline().split()]
+        assert workers
+        client.send_signal(signal.SIGKILL)
+        client.wait(timeout=10)
+        deadline = time.monotonic() + 20
+        alive = list(workers)
+        while alive and time.monotonic() < deadline:
+            time.sleep(0.2)
+            alive = [pid for pid in alive if _running(pid)]
+        assert not alive, f"worker processes still running after their client was killed: {alive}"
+    finally:
+        client.kill()
+        for pid in workers:
+            if _running(pid):
+                os.kill(pid, signal.SIGKILL)
+
+
+def _running(pid: int) -> bool:
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except FileNotFoundError:
+        return False
+    return stat.split()[2] != "Z"  # a zombie has ended

@@ -326,9 +326,25 @@ def worker_environment() -> dict[str, Any]:
     }
 
 
+def _exit_with_parent() -> None:
+    """In a worker process started by multiprocessing: end when the parent ends. A pool's worker waits on a
+    queue whose pipe it holds both ends of, so a client killed outright (SIGKILL, SIGTERM) would otherwise
+    leave it waiting forever, holding its memory (seen: ~0.8 GB)."""
+    parent = multiprocessing.parent_process()
+    if parent is None:  # not started by multiprocessing (a dask worker process, the client itself)
+        return
+
+    def watch() -> None:
+        parent.join()  # returns when the parent's sentinel closes, i.e. when it has ended
+        os._exit(1)
+
+    threading.Thread(target=watch, name="xbench-exit-with-parent", daemon=True).start()
+
+
 def _warm_imports() -> None:
     """Import what cells need (torch, captum, the explainers and metrics), so a worker that starts while the
     client prepares the models is ready when the first cell arrives."""
+    _exit_with_parent()
     import xbench.explainers  # noqa: F401
     import xbench.metrics  # noqa: F401
     from xbench.explainers.registry import load_plugins
