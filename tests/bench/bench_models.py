@@ -18,7 +18,8 @@
    the harness nor slower passes (eager layer taps, small batches, both cores busy) add anything. Metrics
    that do not call the model are listed with their seconds only. ``calls/tile, all`` and ``s/tile, all``
    are each explainer's real per-tile cost in a benchmark run: its own calls plus those of every metric
-   (re-runs included), and the cell's seconds.
+   (re-runs included), and the cell's seconds. ``outside`` = seconds - in model; the ten largest
+   (explainer, metric) shares of the time outside the model are listed at the end.
 
 The load of the machine (``os.getloadavg``) is printed beside the figures: on a shared machine both sides
 of each ratio slow down, but not equally.
@@ -109,10 +110,11 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
     manifest = json.loads((run / "manifest.json").read_text())
     print(f"\nwhat the run achieved ({run}):")
     print(
-        f"{'':<28}{'model calls':>12}{'seconds':>9}{'in model':>9}{'at limit':>10}"
+        f"{'':<28}{'model calls':>12}{'seconds':>9}{'in model':>9}{'outside':>9}{'at limit':>10}"
         f"{'calls/tile, all':>17}{'s/tile, all':>13}"
     )
     per_metric: dict[str, list[float]] = defaultdict(lambda: [0, 0, 0.0, 0.0])
+    outside_by_pair: dict[tuple[str, str], float] = {}  # (explainer, its own call or a metric) -> seconds
     total_limit = total_inside = total_seconds = 0.0
     for cell in manifest["cells"]:
         cost = cell.get("cost") or {}
@@ -126,22 +128,25 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
         tiles = max(int(cost.get("tiles", 1)), 1)
         every = f + b + sum(mf + mb for mf, mb in (cost.get("metric_calls") or {}).values())
         print(
-            f"explainer {cell['explainer']:<18}{f + b:>12}{s:>9.2f}{inside:>9.2f}{ratio:>10}{every / tiles:>17.0f}"
-            f"{(cell.get('seconds') or 0.0) / tiles:>13.3f}"
+            f"explainer {cell['explainer']:<18}{f + b:>12}{s:>9.2f}{inside:>9.2f}{s - inside:>9.2f}{ratio:>10}"
+            f"{every / tiles:>17.0f}{(cell.get('seconds') or 0.0) / tiles:>13.3f}"
         )
+        outside_by_pair[cell["explainer"], "(its own call)"] = s - inside
         for key, (mf, mb) in (cost.get("metric_calls") or {}).items():
             acc = per_metric[key]
             acc[0] += mf
             acc[1] += mb
             acc[2] += (cost.get("metric_seconds") or {}).get(key, 0.0)
             acc[3] += (cost.get("metric_model_seconds") or {}).get(key, 0.0)
+        for key, seconds in (cost.get("metric_seconds") or {}).items():
+            outside_by_pair[cell["explainer"], key] = seconds - (cost.get("metric_model_seconds") or {}).get(key, 0.0)
         total_seconds += cell.get("seconds") or 0.0
     for key, (mf, mb, s, inside) in sorted(per_metric.items(), key=lambda kv: -kv[1][2]):
         m = model_seconds(int(mf), int(mb), limit)
         total_limit += m
         total_inside += inside
         ratio = f"{m / s:.2f}" if mf and s > 0 else "-"
-        print(f"metric {key:<21}{int(mf + mb):>12}{s:>9.2f}{inside:>9.2f}{ratio:>10}")
+        print(f"metric {key:<21}{int(mf + mb):>12}{s:>9.2f}{inside:>9.2f}{s - inside:>9.2f}{ratio:>10}")
     share = total_limit / total_seconds if total_seconds else float("nan")
     inside_share = total_inside / total_seconds if total_seconds else float("nan")
     print(
@@ -152,6 +157,10 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
         f"{100 * share:.0f}% of it (overhead and slower passes together: {100 * (1 - share):.0f}%); "
         f"load {os.getloadavg()[0]:.1f}"
     )
+    largest = sorted(outside_by_pair.items(), key=lambda kv: -kv[1])[:10]
+    print(f"largest shares of the {total_seconds - total_inside:.1f} s outside the model (explainer, call):")
+    for (explainer, what), seconds in largest:
+        print(f"  {seconds:6.2f} s  {explainer:<22}{what}")
 
 
 def main() -> None:
