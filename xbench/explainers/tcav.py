@@ -298,7 +298,7 @@ def logistic_directions(x: np.ndarray, y: np.ndarray, regularization: float, *, 
         if active.size == 0:
             break
         every = active.size == b  # views, not copies, while every problem is still running
-        za, sa, wa = (z, s, w.copy()) if every else (z[active], s[active], w[active])
+        za, sa, wa = (z, s, w) if every else (z[active], s[active], w[active])
         margins = sa * (za @ wa[..., None])[..., 0]
         tail = expit(-margins)  # -d/dm log(1 + exp(-m))
         grad = wa - c * (np.swapaxes(za, 1, 2) @ (sa * tail)[..., None])[..., 0]
@@ -435,7 +435,7 @@ def _set_features(
         for layer, a in layers_activations(KEY, model, layers, sets[name], batch_size, reduce=pooled).items():
             at = out[layer]
             at["shapes"][name] = shapes[layer]
-            at["feats"][name] = a.reshape(a.shape[0], -1).astype(np.float64)
+            at["feats"][name] = a.reshape(a.shape[0], -1).astype(np.float64, copy=False)
     for at in out.values():
         # the random sets' mean activation: per channel over examples and positions ("mean"; every example
         # has the same number of positions), per position and channel over examples ("none")
