@@ -16,7 +16,7 @@ from tqdm.auto import tqdm
 
 from xbench import __version__
 from xbench.runs.execute import Prepared, gallery_positions, prepare, task_and_data
-from xbench.runs.executors import CellJob, executor_for
+from xbench.runs.executors import CellJob, executor_for, import_backends
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
     CELL_IDENTITY,
@@ -181,6 +181,8 @@ def run_task(
     jobs_list: list[CellJob] = [(task_path, c, list(grid.metrics), metric_settings, run_id) for c in pending]
     # models flagged before the cells: a model at chance level explains nothing worth ranking
     summary.warnings.extend(model_warnings(task_obj, model_rows))
+    if pending and scheduler is None:  # this process computes cells (a remote scheduler's workers do it all)
+        import_backends()  # once per process, as the workers do when they start: not in the first cell's time
     bar = tqdm(total=len(pending), desc="cells", disable=not progress, unit="cell")
     for cell, result in run_for(jobs_list):
         store.commit(cell.cell_id, result)
