@@ -325,6 +325,28 @@ def test_cav_fit_of_one_feature_by_hand():
     assert w.shape == (1, 1) and abs(w[0, 0] - w_star) < 1e-12
 
 
+def test_tcav_column_t_tests_equal_one_scipy_call_per_column():
+    # Reference: scipy.stats.ttest_ind (Student's two-sample t-test, pooled variance) called once per column,
+    # and the edge rule of ttest_runs for samples without spread (equal: 1, different: 0).
+    from scipy import stats
+
+    from xbench.explainers.tcav import ttest_runs, ttest_runs_columns
+
+    rng = np.random.default_rng(3)
+    for trial in range(60):
+        a = np.round(rng.random((int(rng.integers(1, 10)), 4)), 1 if trial % 2 else 6)
+        b = np.round(rng.random((int(rng.integers(2, 20)), 4)), 1 if trial % 2 else 6)
+        a[:, 0], b[:, 0] = 0.5, 0.5  # no spread, equal
+        a[:, 1], b[:, 1] = 0.25, 0.75  # no spread, different
+        p = ttest_runs_columns(a, b)
+        assert p[0] == 1.0 and p[1] == 0.0
+        for j in range(4):
+            assert p[j] == pytest.approx(ttest_runs(a[:, j], b[:, j]), rel=1e-12, abs=1e-300)
+        if len(a) > 1:
+            expected = stats.ttest_ind(a[:, 3], b[:, 3]).pvalue
+            assert p[3] == pytest.approx(expected if np.isfinite(expected) else 1.0, rel=1e-12)
+
+
 def test_cav_fit_refuses_non_finite_activations():
     # a NaN activation must stop the explainer with a message naming the example sets, not turn into a
     # silent NaN direction
