@@ -331,6 +331,24 @@ def test_kernel_shap_equals_direct_captum_call():
             assert np.ptp(ours[i][seg == s]) < 1e-6
 
 
+def test_kernel_shap_coalition_inputs_equal_captums_default_transform():
+    # Reference library: captum's default_from_interp_rep_transform (mask * tile + (1 - mask) * baseline),
+    # which our select replaces; equal bit for bit on finite tiles and baselines of either sign.
+    from captum.attr._core.lime import default_from_interp_rep_transform
+
+    from xbench.explainers.perturbation import _coalition_input
+
+    rng = np.random.default_rng(5)
+    seg = torch.from_numpy(rng.integers(0, 9, size=(1, 1, H, W)))
+    tile = torch.from_numpy(rng.normal(size=(1, C, H, W)).astype(np.float32))
+    base = torch.from_numpy(rng.normal(size=(1, C, H, W)).astype(np.float32))
+    for _ in range(20):
+        coalition = torch.from_numpy(rng.integers(0, 2, size=(1, 9)))
+        ours = _coalition_input(coalition, tile, feature_mask=seg, baselines=base)
+        ref = default_from_interp_rep_transform(coalition, tile, feature_mask=seg, baselines=base)
+        assert torch.equal(ours, ref)
+
+
 # ---------------------------------------------------------------------------------------------------
 # RISE (written here; Petsiuk et al. 2018)
 # ---------------------------------------------------------------------------------------------------

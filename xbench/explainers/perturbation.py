@@ -12,6 +12,8 @@ value; the map is their mean (equal to any one band).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import torch
 import torch.nn.functional as F
@@ -169,6 +171,15 @@ def superpixels(tile: np.ndarray, n_segments: int, compactness: float, seed: int
     return seg.reshape(tile.shape[1:]).astype(np.int64)
 
 
+def _coalition_input(coalition: torch.Tensor, tile: torch.Tensor, **kwargs: Any) -> torch.Tensor:
+    """A coalition's model input: the tile where its superpixel is in the coalition, the baseline elsewhere.
+    captum's default (``default_from_interp_rep_transform``: ``mask * tile + (1 - mask) * baseline``) as one
+    select: the same values for finite tiles and baselines (x * 1 + 0 * b = x), in two tensor operations
+    per coalition instead of six (~0.1 ms each: captum builds the inputs one coalition at a time)."""
+    keep = coalition[0][kwargs["feature_mask"]].bool()
+    return torch.where(keep, tile, kwargs["baselines"])
+
+
 @register_explainer(
     "kernel-shap",
     citation=CITE_KERNEL_SHAP,
@@ -192,6 +203,7 @@ def kernel_shap(model, images, targets, context, *, n_segments, compactness, n_s
     from captum.attr import KernelShap
 
     method = KernelShap(forward)
+    method.from_interp_rep_transform = _coalition_input  # captum's own hook for building coalition inputs
     out = np.empty(images.shape, dtype=np.float32)
     for i in range(n):
         seg = superpixels(images[i], n_segments, compactness)
