@@ -60,6 +60,19 @@ def test_metric_calls_and_seconds_are_recorded_per_metric(local_run):
     assert all(v >= 0 for v in cost["metric_seconds"].values())
 
 
+def test_explainer_reruns_are_clocked_apart_from_the_metrics_own_work(local_run):
+    # The randomization check re-runs occlusion once on the randomized model (above); mass-accuracy re-runs
+    # nothing. The re-runs' seconds are part of the metric's seconds, and their model seconds part of both.
+    cells = {c["explainer"]: c for c in json.loads((local_run / "manifest.json").read_text())["cells"]}
+    cost = cells["occlusion"]["cost"]
+    reruns = cost["metric_rerun_seconds"]
+    assert "mass-accuracy" not in reruns
+    seconds, model_seconds = reruns["randomization-spearman"]
+    assert 0 < model_seconds <= seconds <= cost["metric_seconds"]["randomization-spearman"]
+    assert model_seconds <= cost["metric_model_seconds"]["randomization-spearman"]
+    assert cells["oracle"]["cost"]["metric_rerun_seconds"].get("randomization-spearman", [0, 0])[1] == 0
+
+
 def test_shared_state_makes_a_fresh_worker_skip_its_setup(local_run, monkeypatch):
     task_path = str(TINY.resolve())
     cell = type("C", (), {"explainer": "gradient"})()

@@ -19,7 +19,10 @@
    that do not call the model are listed with their seconds only. ``calls/tile, all`` and ``s/tile, all``
    are each explainer's real per-tile cost in a benchmark run: its own calls plus those of every metric
    (re-runs included), and the cell's seconds. ``outside`` = seconds - in model; the ten largest
-   (explainer, metric) shares of the time outside the model are listed at the end.
+   (explainer, metric) shares of the time outside the model are listed at the end. The time outside the
+   model is split into the compared explainers' own code (each explainer call's seconds outside the model,
+   and the metrics' re-runs of it: ``cost.metric_rerun_seconds``) and the benchmark's own code (the metrics'
+   arithmetic, data handling, Python glue): the harness overhead in the narrow sense.
 
 The load of the machine (``os.getloadavg``) is printed beside the figures: on a shared machine both sides
 of each ratio slow down, but not equally.
@@ -116,6 +119,7 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
     per_metric: dict[str, list[float]] = defaultdict(lambda: [0, 0, 0.0, 0.0])
     outside_by_pair: dict[tuple[str, str], float] = {}  # (explainer, its own call or a metric) -> seconds
     total_limit = total_inside = total_seconds = 0.0
+    explainers_own = 0.0  # the compared explainers' own code outside the model: their calls and re-runs
     for cell in manifest["cells"]:
         cost = cell.get("cost") or {}
         f, b, s = cost.get("forward_calls", 0), cost.get("backward_calls", 0), cost.get("seconds", 0.0)
@@ -132,6 +136,9 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
             f"{every / tiles:>17.0f}{(cell.get('seconds') or 0.0) / tiles:>13.3f}"
         )
         outside_by_pair[cell["explainer"], "(its own call)"] = s - inside
+        explainers_own += s - inside
+        for seconds, model in (cost.get("metric_rerun_seconds") or {}).values():
+            explainers_own += seconds - model
         for key, (mf, mb) in (cost.get("metric_calls") or {}).items():
             acc = per_metric[key]
             acc[0] += mf
@@ -156,6 +163,18 @@ def achieved(run: Path, limit: dict[str, float]) -> None:
         f"{total_limit / total_inside if total_inside else float('nan'):.2f} of the limit; the cells at "
         f"{100 * share:.0f}% of it (overhead and slower passes together: {100 * (1 - share):.0f}%); "
         f"load {os.getloadavg()[0]:.1f}"
+    )
+    harness = total_seconds - total_inside - explainers_own
+    print(
+        f"of the {total_seconds - total_inside:.1f} s outside the model: the compared explainers' own code "
+        f"{explainers_own:.1f} s (their calls, and the metrics' re-runs of them: CAV and mixture fits, captum's "
+        f"sampling, superpixels, ...), the benchmark's own code (metrics, glue) {harness:.1f} s = "
+        f"{100 * harness / total_seconds if total_seconds else float('nan'):.0f}% of the cells' wall time"
+        + (
+            ""
+            if any((c.get("cost") or {}).get("metric_rerun_seconds") is not None for c in manifest["cells"])
+            else " (this run folder predates the re-run clock: the re-runs are counted as the benchmark's)"
+        )
     )
     largest = sorted(outside_by_pair.items(), key=lambda kv: -kv[1])[:10]
     print(f"largest shares of the {total_seconds - total_inside:.1f} s outside the model (explainer, call):")

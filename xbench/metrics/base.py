@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 
 from xbench.errors import XbenchInputError
+from xbench.explainers.base import array_digest
 from xbench.models.base import ModelHandle
 from xbench.registry import Registry, check_settings, settings_schema
 from xbench.schema import Field, Where
@@ -106,9 +107,9 @@ class MetricInputs:
         """A key for shared work: the given parts plus a digest of the attributions and images."""
         digest = hashlib.blake2b(digest_size=12)
         for arr in (self.attributions, self.images, self.targets):
-            a = np.ascontiguousarray(arr)
-            digest.update(str(a.shape).encode())
-            digest.update(a.tobytes())
+            a = np.asarray(arr)
+            digest.update(repr((a.shape, a.dtype.str)).encode())
+            digest.update(array_digest(a))  # remembered for read-only arrays (the runner freezes both)
         return (*parts, id(self.model), self.seed, digest.hexdigest())
 
 

@@ -162,10 +162,19 @@ def frozen_sets(sets: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     explainers that hash them for their fit caches hash each one once per process."""
     out = {}
     for name, array in sets.items():
-        a = np.array(array, dtype=np.float32) if not np.asarray(array).flags.owndata else np.asarray(array)
-        a.flags.writeable = False
-        out[name] = a
+        a = np.asarray(array)
+        out[name] = frozen_array(a if a.flags.owndata else np.array(a, dtype=np.float32))
     return out
+
+
+def frozen_array(array: np.ndarray) -> np.ndarray:
+    """The array as a read-only array that owns its memory (a copy only when it does not own it): digests of
+    it are remembered (``array_digest``), so caches keyed on its content hash it once per process."""
+    a = np.asarray(array)
+    if not a.flags.owndata:
+        a = a.copy()
+    a.flags.writeable = False
+    return a
 
 
 def _concept_cache_path(task: Task, settings: tuple) -> Path:
@@ -252,7 +261,7 @@ def prepare(task_path: str | Path | Task, model_name: str, seed: int, need_conce
         trained=trained,
         seed=int(seed),
         explain_index=index,
-        images=sub.images,
+        images=frozen_array(sub.images),  # shared by every cell of the model; metrics key caches on it
         targets=targets,
         twins=sub.twins,
         masks=sub.masks,
@@ -421,8 +430,9 @@ def _compute_cell(
     t_explained = time.perf_counter()
 
     importance, relied, lookalikes, unused = type_groups(prep)
+    rerun_clock = RerunClock()
     full = MetricInputs(
-        attributions=explanation.attributions,
+        attributions=frozen_array(explanation.attributions),  # read by every metric, never changed
         images=prep.images,
         targets=prep.targets,
         model=handle,
@@ -435,7 +445,7 @@ def _compute_cell(
         twins=prep.twins,
         type_masks=prep.masks,
         mask_names=prep.mask_names,
-        rerun_explainer=make_rerun_explainer(cell, context, len(prep.targets)),
+        rerun_explainer=make_rerun_explainer(cell, context, len(prep.targets), rerun_clock),
         concept_report=explanation.concepts,
         type_importance=importance,
         relied_types=relied,
@@ -451,7 +461,7 @@ def _compute_cell(
 
     def inputs_for(size: int) -> MetricInputs:
         if size not in inputs_by_size:
-            inputs_by_size[size] = subset_inputs(full, size, make_rerun_explainer(cell, context, size))
+            inputs_by_size[size] = subset_inputs(full, size, make_rerun_explainer(cell, context, size, rerun_clock))
         return inputs_by_size[size]
 
     rows: list[tuple] = []
@@ -465,6 +475,7 @@ def _compute_cell(
     metric_seconds: dict[str, float] = {}
     metric_calls: dict[str, list[int]] = {}  # images forward / backward through any model, per metric
     metric_model_seconds: dict[str, float] = {}  # seconds inside those passes, per metric
+    metric_rerun_seconds: dict[str, list[float]] = {}  # [seconds, model seconds] of its explainer re-runs
     tiles = prep.explain_index.astype(np.int64)
     # Self-checks the explainer recorded (integrated gradients' and DeepLIFT's completeness gap) are
     # recorded for every such cell, listed in the task or not.
@@ -473,10 +484,16 @@ def _compute_cell(
         t0 = time.perf_counter()
         settings = dict(metric_settings.get(key, {}))
         size = min(int(settings.pop(TILE_SUBSET_SETTING, len(tiles))), len(tiles))
+        reran = (rerun_clock.seconds, rerun_clock.model_seconds)
         with counting_all() as calls:
             results = compute_metric(key, inputs_for(size), **settings)
         metric_calls[key] = [int(calls.forward), int(calls.backward)]
         metric_model_seconds[key] = round(float(calls.seconds), 4)
+        if rerun_clock.seconds > reran[0]:
+            metric_rerun_seconds[key] = [
+                round(rerun_clock.seconds - reran[0], 4),
+                round(rerun_clock.model_seconds - reran[1], 4),
+            ]
         for result in results:
             tag = f"{key}/{result.truth}"
             ident = (run_id, cell.task, cell.model, cell.seed, cell.explainer, key, result.truth)
@@ -544,6 +561,9 @@ def _compute_cell(
                 "metric_calls": metric_calls,
                 "metric_seconds": {k: round(v, 4) for k, v in metric_seconds.items()},
                 "metric_model_seconds": metric_model_seconds,
+                # of those, the explainer re-runs (randomization, max-sensitivity): the compared method's own
+                # code, not the benchmark's; {metric: [seconds, model seconds]}
+                "metric_rerun_seconds": metric_rerun_seconds,
             },
         },
     }
@@ -556,13 +576,25 @@ def _compute_cell(
     return cell_result
 
 
-def make_rerun_explainer(cell: Cell, context: ExplainContext, size: int) -> Callable[..., np.ndarray]:
+@dataclass
+class RerunClock:
+    """Seconds spent in a cell's explainer re-runs, and the model's own seconds within them."""
+
+    seconds: float = 0.0
+    model_seconds: float = 0.0
+
+
+def make_rerun_explainer(
+    cell: Cell, context: ExplainContext, size: int, clock: RerunClock | None = None
+) -> Callable[..., np.ndarray]:
     """The cell's explainer with its settings, for metrics that re-run it (on another model or on perturbed
     copies of the first `size` tiles). Per-tile context (twins, masks) goes along when the row count matches
-    those tiles; otherwise it is left out."""
+    those tiles; otherwise it is left out. ``clock`` adds up the re-runs' seconds (the bench scripts tell the
+    compared method's own time from the benchmark's)."""
     from dataclasses import replace
 
     from xbench.explainers import explain
+    from xbench.models.base import counting_all
 
     def rows(array: np.ndarray | None, tiles: np.ndarray) -> np.ndarray | None:
         return None if array is None else array[tiles]
@@ -579,7 +611,13 @@ def make_rerun_explainer(cell: Cell, context: ExplainContext, size: int) -> Call
         else:
             tiles = np.asarray(tiles, dtype=np.int64)
             ctx = replace(context, twins=rows(context.twins, tiles), masks=rows(context.masks, tiles), self_checks=None)
-        return explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings).attributions
+        started = time.perf_counter()
+        with counting_all() as calls:
+            attributions = explain(cell.explainer, model, images, targets, context=ctx, **cell.explainer_settings)
+        if clock is not None:
+            clock.seconds += time.perf_counter() - started
+            clock.model_seconds += calls.seconds
+        return attributions.attributions
 
     return rerun_explainer
 
