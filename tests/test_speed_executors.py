@@ -73,6 +73,31 @@ def test_explainer_reruns_are_clocked_apart_from_the_metrics_own_work(local_run)
     assert cells["oracle"]["cost"]["metric_rerun_seconds"].get("randomization-spearman", [0, 0])[1] == 0
 
 
+def test_frozen_shared_arrays_never_reach_torch_as_read_only(tmp_path):
+    # The runner freezes the prepared images and each cell's attributions (read-only, so metric caches hash
+    # them once); torch warns once per process when it wraps a read-only array ("not writable ... undefined
+    # behavior"), so a fresh process runs the tiny task with that warning raised as an error: a cell that
+    # hands a frozen array to torch without a copy fails.
+    import subprocess
+    import sys
+
+    script = (
+        "import sys\n"
+        "from xbench.runs import run_task\n"
+        f"summary = run_task({str(TINY)!r}, {str(tmp_path / 'run')!r})\n"
+        "sys.exit(0 if summary.ok else '; '.join(f['error'] for f in summary.failures))\n"
+    )
+    env = dict(os.environ, XBENCH_CACHE=str(tmp_path / "cache"), MPLBACKEND="Agg")
+    done = subprocess.run(
+        [sys.executable, "-W", "error:The given NumPy array is not writable:UserWarning", "-c", script],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=600,
+    )
+    assert done.returncode == 0, done.stderr[-2000:]
+
+
 def test_shared_state_makes_a_fresh_worker_skip_its_setup(local_run, monkeypatch):
     task_path = str(TINY.resolve())
     cell = type("C", (), {"explainer": "gradient"})()

@@ -238,7 +238,7 @@ def reduce_channels(attr: np.ndarray, how: str) -> np.ndarray:
 
 def upsample(maps: torch.Tensor | np.ndarray, size: tuple[int, int], mode: str = "bilinear") -> np.ndarray:
     """(N, h, w) -> (N, H, W) float32 by torch interpolation (``bilinear`` or ``nearest``)."""
-    t = maps if isinstance(maps, torch.Tensor) else torch.from_numpy(np.asarray(maps, dtype=np.float32))
+    t = maps if isinstance(maps, torch.Tensor) else tensor_from(maps)
     t = t.detach().float()[:, None]
     if tuple(t.shape[-2:]) != tuple(size):
         kwargs = {"align_corners": False} if mode == "bilinear" else {}

@@ -51,7 +51,7 @@ from xbench.metrics.base import (
     register_metric,
     tile_result,
 )
-from xbench.models.base import ModelHandle
+from xbench.models.base import ModelHandle, tensor_from
 from xbench.schema import Field, Where
 
 SSIM_WINDOW = 7
@@ -193,7 +193,7 @@ def cascading_randomization(
     (N, H, W) after each."""
     assert model.module is not None
     clone = _detached_copy(model.module)
-    example = torch.from_numpy(np.ascontiguousarray(np.asarray(images[:1], dtype=np.float32)))
+    example = tensor_from(images[:1])  # a copy when the images are read-only (the runner freezes them)
     layers = parametrised_layers(clone, example)[::-1]
     if max_layers is not None:
         layers = layers[: int(max_layers)]
