@@ -7,6 +7,7 @@ import os
 import pickle
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -231,3 +232,57 @@ def _running(pid: int) -> bool:
     except FileNotFoundError:
         return False
     return stat.split()[2] != "Z"  # a zombie has ended
+
+
+def _touch(path: str) -> None:
+    Path(path).write_text("done")
+
+
+def test_a_pool_runs_prefetched_work_on_a_worker_before_the_cells(tmp_path):
+    from xbench.runs.executors import LocalPool
+
+    pool = LocalPool(2)
+    try:
+        pool.prefetch(_touch, str(tmp_path / "flag"))
+        assert pool.pool is not None
+        pool.pool.submit(_noop_wait).result(timeout=120)  # queued after the prefetch on the one worker
+        assert (tmp_path / "flag").read_text() == "done"
+    finally:
+        pool.close()
+    LocalPool(1).prefetch(_touch, str(tmp_path / "never"))  # no workers: nothing runs
+    assert not (tmp_path / "never").exists()
+
+
+def _noop_wait() -> None:
+    return None
+
+
+def test_prefetched_concept_sets_are_the_ones_a_cell_would_make(small_task_file, monkeypatch, tmp_path):
+    # The worker writes the sets to the disk cache and keeps nothing in memory; the cell's process then reads
+    # exactly the arrays it would have synthesized itself.
+    from xbench.explainers import concept_sets as concept_sets_module
+    from xbench.runs import execute
+    from xbench.tasks import load_task
+
+    monkeypatch.setenv("XBENCH_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setattr(execute, "_CONCEPT_CACHE", {})
+    task = load_task(small_task_file)
+    types = ["road", "river"]
+    execute.prefetch_concept_sets(str(small_task_file), types)
+    assert execute._CONCEPT_CACHE == {}
+    assert list((tmp_path / "cache" / "concepts").glob("*.npz"))
+
+    def forbidden(*_a, **_k):
+        raise AssertionError("the sets are in the disk cache: nothing is synthesized again")
+
+    monkeypatch.setattr(concept_sets_module, "make_concept_sets", forbidden)
+    read = execute.concept_sets_for(task, types)
+    monkeypatch.undo()
+    run = task.run
+    made = concept_sets_module.make_concept_sets(
+        task.data.recipe, task.data.size, types, int(run["concept_set_size"]), int(run["random_sets"]),
+        int(task.data.seed) + 7919,
+    )  # fmt: skip
+    assert set(read) == set(made)
+    for name in made:
+        np.testing.assert_array_equal(read[name], made[name])

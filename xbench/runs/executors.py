@@ -200,6 +200,13 @@ class LocalPool:
             for _ in range(self.n_jobs - 1):  # workers are spawned on demand: one warm-up task each
                 self.pool.submit(_noop)
 
+    def prefetch(self, fn: Callable[..., Any], *args: Any) -> None:
+        """Run ``fn(*args)`` on a worker before any cell (the workers idle while this process trains): work
+        whose result the cells find in a disk cache. Nothing without workers; a failure there is ignored
+        (the cell that needs the result makes it, and reports any error itself)."""
+        if self.pool is not None:
+            self.pool.submit(fn, *args)
+
     def close(self) -> None:
         self.todo.clear()  # feeder threads stop taking cells
         if self.pool is not None:

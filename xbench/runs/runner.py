@@ -15,8 +15,8 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from xbench import __version__
-from xbench.runs.execute import Prepared, gallery_positions, prepare, task_and_data
-from xbench.runs.executors import CellJob, executor_for, import_backends
+from xbench.runs.execute import Prepared, gallery_positions, prefetch_concept_sets, prepare, task_and_data
+from xbench.runs.executors import CellJob, LocalPool, executor_for, import_backends
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
     CELL_IDENTITY,
@@ -152,7 +152,13 @@ def run_task(
     pairs = sorted(
         {(c.model, c.seed) for c in grid.cells}, key=lambda p: ([m.name for m in task_obj.models].index(p[0]), p[1])
     )
-    task_and_data(task_path)
+    from xbench.explainers import get_explainer
+
+    _, data = task_and_data(task_path)
+    if isinstance(run_for, LocalPool) and any(
+        "concept-sets" in get_explainer(name).needs for name in dict.fromkeys(c.explainer for c in grid.cells)
+    ):  # a worker makes TCAV's example sets while this process trains (the cell reads them from the cache)
+        run_for.prefetch(prefetch_concept_sets, task_path, list(data.test.mask_names))
     model_rows, preps = [], {}
     for name, seed in tqdm(pairs, desc="models + truth", disable=not progress, unit="model"):
         preps[(name, seed)] = prep = prepare(task_path, name, seed)  # trains or loads the model once
