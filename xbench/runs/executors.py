@@ -357,23 +357,18 @@ def _warm_imports() -> None:
     from xbench.explainers.registry import load_plugins
 
     load_plugins()
-    _import_backends()
+    import_backends()  # a worker that is waiting for the client's models has the time
     _init_worker()
 
 
-def _import_backends() -> None:
-    # the explainers import these where they are used (a client that only dispatches never pays for them);
-    # a worker that is waiting for the client's models has the time
+def import_backends() -> None:
+    """Import the explainers' libraries (captum, scikit-image) now. The explainers import them where they are
+    used (a client that only dispatches cells never pays for them); every worker imports them when it starts,
+    and a client that computes cells before its first one, so that a one-time import (~0.6-1.2 s) is not
+    counted in one cell's seconds. Not on a background thread during the model preparation: two threads
+    importing packages with circular imports inside can end in importlib's deadlock error."""
     import captum.attr  # noqa: F401
     import skimage.segmentation  # noqa: F401
-
-
-def import_backends() -> None:
-    """Import the explainers' libraries (captum, scikit-image) now: the client calls it before its first
-    cell, as every worker does when it starts, so that a one-time import (~0.6-1.2 s) is not counted in one
-    cell's seconds. Not on a background thread during the model preparation: two threads importing
-    packages with circular imports inside can end in importlib's deadlock error."""
-    _import_backends()
 
 
 def dask_setup(worker: Any) -> None:
