@@ -142,12 +142,16 @@ def concept_sets_for(task: Task, types: list[str]) -> dict[str, np.ndarray]:
     return _CONCEPT_CACHE[key]
 
 
+def _concept_settings(task: Task, types: list[str]) -> tuple:
+    run = task.run
+    return (list(types), int(run["concept_set_size"]), int(run.get("random_sets", 10)), int(task.data.seed) + 7919)
+
+
 def _concept_sets_through_disk(task: Task, types: list[str]) -> dict[str, np.ndarray]:
     """The sets from the disk cache, or made and written there (a tile pack's task: made, not kept)."""
     from xbench.explainers.concept_sets import make_concept_sets
 
-    run = task.run
-    settings = (list(types), int(run["concept_set_size"]), int(run.get("random_sets", 10)), int(task.data.seed) + 7919)
+    settings = _concept_settings(task, types)
     path = _concept_cache_path(task, settings) if not task.data.pack else None
     sets = _read_concept_sets(path) if path is not None else None
     if sets is None:
@@ -165,7 +169,9 @@ def prefetch_concept_sets(task_path: str | Path | Task, types: list[str]) -> Non
     from xbench.tasks import load_task
 
     task = load_task(task_path)  # a parsed task passes through
-    if not task.data.pack and _task_key(task) not in _CONCEPT_CACHE:
+    if task.data.pack or _task_key(task) in _CONCEPT_CACHE:
+        return
+    if not _concept_cache_path(task, _concept_settings(task, types)).is_file():  # not read just to be dropped
         _concept_sets_through_disk(task, types)
 
 
