@@ -125,3 +125,21 @@ def test_layer_lookup_lists_layers():
     with pytest.raises(XbenchInputError) as info:
         handle.get_layer("conv9")
     assert "layer not found" in str(info.value) and "one of 0, 1, 2, 3, 4" in str(info.value)
+
+
+def test_pack_archive_stores_reflectances_and_deflates_the_rest(tmp_path):
+    # Reflectances barely compress (noise texture) and cost most of the deflate time: kept stored; masks and the
+    # rest deflated. The archive is an ordinary .npz (numpy.load reads it) and the same pack gives the same bytes.
+    import zipfile
+
+    pack = make_pack()
+    first = save_pack(pack, tmp_path / "a.npz")
+    second = save_pack(pack, tmp_path / "b.npz")
+    assert first.read_bytes() == second.read_bytes()
+    with zipfile.ZipFile(first) as archive:
+        kinds = {info.filename: info.compress_type for info in archive.infolist()}
+    assert kinds["images.npy"] == kinds["twins.npy"] == zipfile.ZIP_STORED
+    assert kinds["masks.npy"] == kinds["labels.npy"] == zipfile.ZIP_DEFLATED
+    with np.load(first) as data:
+        np.testing.assert_array_equal(data["images"], pack.images)
+        np.testing.assert_array_equal(data["masks"], pack.masks)

@@ -333,3 +333,51 @@ def test_max_sensitivity_default_radius_is_calibrated(trained):
     # the fixed radius still works and is not calibrated
     (fixed,) = compute_metric("max-sensitivity", inputs, samples=4, radius=0.01)
     assert "calibrated" not in fixed.settings and np.isfinite(fixed.values).all()
+
+
+def test_work_shared_across_explainers_gives_the_same_values_without_model_calls(trained):
+    # subset-drop-corr's subsets, infidelity's squares and max-sensitivity's calibration are drawn from the seed
+    # alone, so the model's scores of them are the same for every explainer of the model: the runner keeps them
+    # (MetricInputs.shared) and a second explainer's metrics must give the values it would compute itself, bit for
+    # bit, without those model passes (only max-sensitivity's re-runs of the explainer remain).
+    handle, images, masks, twins = trained
+    n = 8
+    images, masks, twins = images[:n], masks[:n], twins[:n]
+    targets = np.ones(n, int)
+    rng = np.random.default_rng(5)
+    maps = {"oracle": masks.astype(np.float32), "random": rng.random(masks.shape).astype(np.float32)}
+
+    def rerun(model, imgs, tgts, tiles=None):
+        return _input_gradient(model, imgs, tgts)
+
+    metrics = {"subset-drop-corr": {}, "infidelity": {}, "max-sensitivity": {"samples": 3}}
+    shared: dict = {}
+    for name, attr in maps.items():
+        for metric, settings in metrics.items():
+            alone = MetricInputs(attr, images, targets, model=handle, twins=twins, rerun_explainer=rerun, seed=2)
+            kept = MetricInputs(
+                attr, images, targets, model=handle, twins=twins, rerun_explainer=rerun, seed=2, shared=shared
+            )
+            (expected,) = compute_metric(metric, alone, **settings)
+            with handle.counting() as calls:
+                (got,) = compute_metric(metric, kept, **settings)
+            np.testing.assert_array_equal(got.values, expected.values)
+            assert got.settings == expected.settings
+            if name == "random" and metric != "max-sensitivity":  # the first explainer computed them
+                assert calls.forward == 0
+    # a change of the weights (in place) or of the seed is another key: computed afresh, not reused
+    before = len(shared)
+    inputs = MetricInputs(maps["oracle"], images, targets, model=handle, twins=twins, seed=3, shared=shared)
+    compute_metric("subset-drop-corr", inputs)
+    assert len(shared) == before + 1
+    module = handle.module
+    assert module is not None
+    saved = {k: v.clone() for k, v in module.state_dict().items()}
+    try:
+        with torch.no_grad():
+            module.head.bias.add_(1.0)
+        with handle.counting() as calls:
+            compute_metric("subset-drop-corr", inputs)
+        assert calls.forward > 0 and len(shared) == before + 2
+    finally:
+        module.load_state_dict(saved)

@@ -808,3 +808,30 @@ def test_draw_units_raises_the_units_warnings_again_in_the_caller():
             out = draw_units([unit(i) for i in range(4)], jobs=jobs)
         assert [files for files, _ in out] == [[0], [1], [2], [3]]
         assert [str(w.message) for w in caught] == [f"unit {i} warns" for i in range(4)], jobs
+
+
+def test_gallery_pages_drawn_one_at_a_time_are_the_pages_drawn_together(tmp_path):
+    # The report draws each gallery page as a unit of its own (two processes share a long gallery): a page made
+    # alone must be the same figure, byte for byte, as that page made with the others.
+    from xbench.report import figures as F
+
+    rng = np.random.default_rng(2)
+    n, h = 4, 12
+    names = [f"method-{k}" for k in range(F.GALLERY_MAPS_PER_PART + 2)]  # two pages
+    data = {
+        "images": rng.random((n, 4, h, h)).astype(np.float32),
+        "band_names": np.array(["blue", "green", "red", "nir"]),
+        "planted": rng.random((n, h, h)) > 0.7,
+        "targets": np.array([0, 1, 0, 1]),
+        "class_names": np.array(["intact", "road"]),
+        **{f"map__{e}": rng.normal(size=(n, h, h)).astype(np.float32) for e in names},
+    }
+    assert F.gallery_part_count(data, names) == 2
+    together, notes = F.gallery_figures(data, names, "t", max_tiles=4)
+    assert len(together) == 2
+    for part, fig in enumerate(together, start=1):
+        (alone,), alone_notes = F.gallery_figures(data, names, "t", max_tiles=4, parts=[part])
+        assert alone_notes == notes
+        a, _ = F.save(fig, tmp_path / "together", f"p{part}")
+        b, _ = F.save(alone, tmp_path / "alone", f"p{part}")
+        assert a.read_bytes() == b.read_bytes()

@@ -220,3 +220,29 @@ def test_two_models_one_black_box(tmp_path):
     assert torch.explainers == GRADIENT_METHODS + BLACK_BOX_METHODS and not torch.excluded
     assert len(torch.blocks) == 3 and np.isfinite(torch.friedman.p_value)
     assert s.rank_tests[("black-box models", "mass-accuracy", "planted")].explainers == BLACK_BOX_METHODS
+
+
+def test_seed_tile_matrices_give_each_explainers_bootstrap_as_its_own_pivot():
+    # One reshaping per column for all explainers (rows and columns of any explainer) instead of one pandas
+    # pivot per explainer: the extra seeds and tiles are NaN, which the hierarchical bootstrap drops, so each
+    # explainer's interval must equal the one from its own pivot table (pandas' pivot_table, the reference).
+    from xbench import stats
+    from xbench.report.compare import seed_tile_matrices
+
+    rng = np.random.default_rng(4)
+    rows = []
+    for explainer, seeds, tiles in (("a", [0, 1, 2], range(12)), ("b", [1, 2], range(3, 12)), ("c", [0], range(8))):
+        for seed in seeds:
+            for tile in tiles:
+                value = np.nan if rng.random() < 0.1 else rng.normal(seed * 0.1, 1.0)
+                rows.append({"explainer": explainer, "seed": seed, "tile": tile, "value": value})
+    rows.append({"explainer": "a", "seed": 0, "tile": -1, "value": 5.0})  # a per-seed value: not a tile's
+    group = pd.DataFrame(rows)
+    matrices = seed_tile_matrices(group)
+    assert sorted(matrices) == ["a", "b", "c"]
+    for explainer, matrix in matrices.items():
+        g = group[(group["explainer"] == explainer) & (group["tile"] >= 0)]
+        own = g.pivot_table(index="seed", columns="tile", values="value", aggfunc="mean", dropna=False)
+        got = stats.hierarchical_bootstrap_ci(matrix, n_resamples=300, seed=1)
+        want = stats.hierarchical_bootstrap_ci(own.to_numpy(dtype=np.float64), n_resamples=300, seed=1)
+        assert got == want

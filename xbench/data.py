@@ -10,10 +10,11 @@ import hashlib
 import json
 import os
 import tempfile
+import zipfile
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import numpy as np
 
@@ -183,7 +184,8 @@ def validate_pack(pack: TilePack, source: str = "tile pack") -> TilePack:
 
 
 def save_pack(pack: TilePack, path: str | Path) -> Path:
-    """Validate and write a pack atomically (write to a temporary file, then rename)."""
+    """Validate and write a pack atomically (write to a temporary file, then rename), as an ``.npz`` archive
+    whose reflectances are stored and everything else deflated (see :func:`write_npz`)."""
     path = Path(path)
     validate_pack(pack, str(path))
     arrays: dict[str, np.ndarray] = {
@@ -201,10 +203,26 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
 
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
-            np.savez_compressed(fh, allow_pickle=True, **arrays)  # numpy's default, stated for mypy
+            write_npz(fh, arrays, stored=REFLECTANCE_ARRAYS)
 
     atomic_write(path, write)
     return path
+
+
+# Noise-textured reflectances: deflate shrinks them by ~10% at 6x the time of the whole rest of a pack
+# (measured on the demo's training pack: 1.95 s compressed, 0.34 s with these stored; 30 vs 34 MB).
+REFLECTANCE_ARRAYS = ("images", "twins")
+
+
+def write_npz(fh: BinaryIO, arrays: dict[str, np.ndarray], stored: tuple[str, ...] = ()) -> None:
+    """``numpy.savez_compressed`` with the arrays named in ``stored`` kept uncompressed (numpy offers no
+    per-array choice). ``numpy.load`` reads the archive like any other ``.npz``."""
+    with zipfile.ZipFile(fh, mode="w", compression=zipfile.ZIP_DEFLATED) as archive:
+        for name, array in arrays.items():
+            info = zipfile.ZipInfo(f"{name}.npy", date_time=(1980, 1, 1, 0, 0, 0))  # same arrays, same bytes
+            info.compress_type = zipfile.ZIP_STORED if name in stored else zipfile.ZIP_DEFLATED
+            with archive.open(info, "w", force_zip64=True) as member:
+                np.lib.format.write_array(member, np.asanyarray(array), allow_pickle=True)
 
 
 def atomic_write(path: str | Path, write: Callable[[str], Any]) -> None:

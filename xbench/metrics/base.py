@@ -89,6 +89,9 @@ class MetricInputs:
     cost: Any = None
     seed: int = 0
     batch_size: int = 256
+    # Work that does not depend on the attributions (see ``shared_work``), kept by the caller across the
+    # explainers of one model; None: computed each time.
+    shared: dict | None = field(default=None, repr=False, compare=False)
     # Shared work between metrics on the same inputs (perturbation curves, the randomization cascade).
     _cache: dict = field(default_factory=dict, init=False, repr=False, compare=False)
 
@@ -111,6 +114,41 @@ class MetricInputs:
             digest.update(repr((a.shape, a.dtype.str)).encode())
             digest.update(array_digest(a))  # remembered for read-only arrays (the runner freezes both)
         return (*parts, id(self.model), self.seed, digest.hexdigest())
+
+    def shared_work(self, compute: Callable[[], Any], *parts: Any) -> Any:
+        """``compute()``, or its result kept in ``shared`` from an earlier explainer of the same model.
+
+        For work that depends on the model, the tiles and the seed but not on the attributions: the model's
+        scores of perturbations drawn from the seed alone (subset-drop-corr's subsets, infidelity's squares,
+        max-sensitivity's noise calibration) are the same for every explainer, so the runner computes them
+        once per model and process instead of once per explainer. ``parts`` name the work and every setting
+        it reads; the key adds the seed, the model's identity and weights and digests of the images,
+        targets and twins, so a change to any of them computes afresh. Results are kept read-only; the
+        values are the same bits as computing them (the same calls on the same arrays)."""
+        if self.shared is None or self.model is None:
+            return compute()
+        digest = hashlib.blake2b(digest_size=12)
+        for arr in (self.images, self.targets, self.twins):
+            if arr is None:
+                digest.update(b"none")
+                continue
+            a = np.asarray(arr)
+            digest.update(repr((a.shape, a.dtype.str)).encode())
+            digest.update(array_digest(a))
+        key = (*parts, self.seed, id(self.model), self.model.weights_signature(), digest.hexdigest())
+        if key not in self.shared:
+            self.shared[key] = _read_only(compute())
+        return self.shared[key]
+
+
+def _read_only(value: Any) -> Any:
+    """Arrays (also inside tuples) made read-only, so that no caller changes a value another one reads."""
+    if isinstance(value, np.ndarray):
+        value.flags.writeable = False
+    elif isinstance(value, tuple):
+        for v in value:
+            _read_only(v)
+    return value
 
 
 @dataclass

@@ -231,13 +231,32 @@ def subset_drop_correlation_scores(
 ) -> tuple[np.ndarray, np.ndarray]:
     """(attribution sums over each subset, score drops f(x) - f(x with the subset set to the baseline)),
     both (N, runs), batched over tiles and runs."""
+    sums = subset_attribution_sums(attributions, subsets)
+    return sums, subset_score_drops(prob_fn, images, targets, baseline, subsets, chunk_bytes)
+
+
+def subset_attribution_sums(attributions: np.ndarray, subsets: np.ndarray) -> np.ndarray:
+    """(N, runs) sums of each tile's attribution over its random pixel subsets (N, runs, size)."""
+    a = np.asarray(attributions, dtype=np.float64)
+    a = a.reshape(a.shape[0], -1)
+    return np.take_along_axis(a[:, None, :].repeat(subsets.shape[1], 1), subsets, axis=2).sum(axis=2)
+
+
+def subset_score_drops(
+    prob_fn: ProbFn,
+    images: np.ndarray,
+    targets: np.ndarray,
+    baseline: np.ndarray,
+    subsets: np.ndarray,
+    chunk_bytes: int = CHUNK_BYTES,
+) -> np.ndarray:
+    """Score drops f(x) - f(x with the subset set to the baseline), (N, runs): the model's half of
+    :func:`subset_drop_correlation_scores`, which does not depend on the attributions."""
     images = np.asarray(images, dtype=np.float32)
     baseline = np.asarray(baseline, dtype=np.float32)
     n, c, h, w = images.shape
     p = h * w
     runs = subsets.shape[1]
-    a = np.asarray(attributions, dtype=np.float64).reshape(n, p)
-    sums = np.take_along_axis(a[:, None, :].repeat(runs, 1), subsets, axis=2).sum(axis=2)
     base_scores = prob_fn(images)[np.arange(n), targets]
     drops = np.empty((n, runs))
     tiles = max(1, int(chunk_bytes // (runs * c * p * 4)))
@@ -250,7 +269,7 @@ def subset_drop_correlation_scores(
         probs = prob_fn(stack.reshape(t * runs, c, h, w))
         scores = probs[np.arange(t * runs), np.repeat(targets[sl], runs)].reshape(t, runs)
         drops[sl] = base_scores[sl][:, None] - scores
-    return sums, drops
+    return drops
 
 
 # -- runners --------------------------------------------------------------------------------------------
@@ -404,18 +423,18 @@ def _subset_drop_corr(inputs: MetricInputs, truth: str, settings: dict[str, Any]
     values = np.full(n, np.nan)
     reasons = {int(i): NONFINITE_REASON for i in np.flatnonzero(bad)}
     if good.size:
-        images = np.asarray(inputs.images, dtype=np.float32)[good]
-        twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
-        base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]), where="metric")
         subsets = random_subsets(n, h * w, size, runs, inputs.seed, tile_ids=good)
-        sums, drops = subset_drop_correlation_scores(
-            _prob_fn(inputs),
-            images,
-            np.asarray(inputs.targets)[good],
-            np.asarray(inputs.attributions)[good],
-            base,
-            subsets,
+
+        def drops_of_model() -> np.ndarray:  # the same for every explainer of the model: shared
+            images = np.asarray(inputs.images, dtype=np.float32)[good]
+            twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
+            base = make_baseline(images, settings["baseline"], twins, float(settings["blur_sigma"]), where="metric")
+            return subset_score_drops(_prob_fn(inputs), images, np.asarray(inputs.targets)[good], base, subsets)
+
+        drops = inputs.shared_work(
+            drops_of_model, key, settings["baseline"], float(settings["blur_sigma"]), size, runs, good.tobytes()
         )
+        sums = subset_attribution_sums(np.asarray(inputs.attributions)[good], subsets)
         corr = pearson_rows(sums, drops)
         values[good] = corr
         for j in np.flatnonzero(~np.isfinite(corr)):

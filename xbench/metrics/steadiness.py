@@ -256,7 +256,16 @@ def _max_sensitivity(inputs: MetricInputs, truth: str, settings: dict[str, Any])
         if inputs.model is None:
             return nan_result(get_metric(key), inputs, truth, "radius 'auto' needs the model to count flips", settings)
         spread = band_spread(images)
-        fraction = _calibrate_sensitivity(inputs.model, images, good, inputs.seed, samples, spread, settings)
+        model = inputs.model
+
+        def calibrate() -> tuple[float, dict[str, Any]]:  # the model's flips, not the explainer's: shared
+            chosen = {"max_flips": settings["max_flips"]}
+            fraction = _calibrate_sensitivity(model, images, good, inputs.seed, samples, spread, chosen)
+            return fraction, {k: chosen[k] for k in ("calibrated", "fraction_used")}
+
+        where = (samples, float(settings["max_flips"]), good.tobytes())
+        fraction, chosen = inputs.shared_work(calibrate, "sensitivity radius", *where)
+        settings.update(chosen)
         radius, unit = fraction, spread
     else:
         radius = float(settings["radius"])
@@ -391,13 +400,20 @@ def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
         reason = "needs twins for the 'twin' baseline (no twins given; choose baseline zero, mean or blur)"
         return nan_result(get_metric(key), inputs, truth, reason, settings)
     score = model_scorer(inputs.model)
-    base_probs = score(images[good])
+    # the model's scores of the tiles and of the squares depend on the seed, not on the explainer: shared
+    base_probs = inputs.shared_work(lambda: score(images[good]), "tile scores", good.tobytes())
     base = target_score(base_probs[np.arange(good.size), targets[good]], settings["score"])
     if settings["perturbation"] == "square":
         side = square_side(float(settings["side"]), (h, w))
-        twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
-        fill = make_baseline(images[good], settings["baseline"], twins, float(settings["blur_sigma"]), "metric")
-        pert, scores = _square_scores(score, images[good], fill, targets[good], good, inputs.seed, samples, side)
+        pert = np.stack([square_perturbations(inputs.seed, int(i), (h, w), samples, side) for i in good])
+
+        def square_scores() -> np.ndarray:
+            twins = None if inputs.twins is None else np.asarray(inputs.twins)[good]
+            fill = make_baseline(images[good], settings["baseline"], twins, float(settings["blur_sigma"]), "metric")
+            return _square_scores(score, images[good], fill, targets[good], pert)
+
+        where = (settings["baseline"], float(settings["blur_sigma"]), samples, side, good.tobytes())
+        scores = inputs.shared_work(square_scores, "infidelity squares", *where)
         settings["calibrated"] = (
             f"squares of {side} x {side} px ({float(settings['side']):g} of the tile side) set to the "
             f"{settings['baseline']} baseline, {samples} per tile; f = {settings['score']}"
@@ -412,19 +428,12 @@ def _infidelity(inputs: MetricInputs, truth: str, settings: dict[str, Any]) -> M
 
 
 def _square_scores(
-    score: Any,
-    images: np.ndarray,
-    fill: np.ndarray,
-    targets: np.ndarray,
-    tile_ids: np.ndarray,
-    seed: int,
-    samples: int,
-    side: int,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Square indicators (G, S, H, W) and the target probabilities (G, S) of the tiles with each square set
-    to ``fill``."""
+    score: Any, images: np.ndarray, fill: np.ndarray, targets: np.ndarray, pert: np.ndarray
+) -> np.ndarray:
+    """The target probabilities (G, S) of the tiles with each square of ``pert`` (G, S, H, W) set to
+    ``fill``."""
     g, c, h, w = images.shape
-    pert = np.stack([square_perturbations(seed, int(i), (h, w), samples, side) for i in tile_ids])
+    samples = pert.shape[1]
     per_chunk = max(1, (8 * 2**20) // (samples * c * h * w * 4))
     picked = np.empty((g, samples))
     for start in range(0, g, per_chunk):
@@ -433,7 +442,7 @@ def _square_scores(
         stack = np.where(on, fill[j][:, None], images[j][:, None]).reshape(-1, c, h, w)
         probs = score(stack)
         picked[j] = probs[np.arange(stack.shape[0]), np.repeat(targets[j], samples)].reshape(len(j), samples)
-    return pert, picked
+    return picked
 
 
 def _gaussian_scores(

@@ -366,6 +366,11 @@ class ModelHandle:
             self.__dict__["_module_list"] = cached
         return cached[1]
 
+    def weights_signature(self) -> tuple:
+        """Changes whenever a weight of the module is replaced or changed in place (() for a black box):
+        part of the keys of work kept across calls."""
+        return () if self.module is None else _weights_signature(self._submodules())
+
     def _inference_copy(self, x: torch.Tensor, check_weights: bool = True) -> Any:
         """The frozen copy for tiles shaped like ``x`` (built on first use, rebuilt after a weight change),
         or None where the eager module must run. ``check_weights = False``: the caller has checked the
@@ -373,7 +378,7 @@ class ModelHandle:
         if not self.fast_inference or self.module is None or x.ndim != 4 or self._foreign_hooks():
             return None
         if check_weights:
-            weights = _weights_signature(self._submodules())
+            weights = self.weights_signature()
             if weights != self._inference_weights:
                 self._inference.clear()
                 self._inference_weights = weights

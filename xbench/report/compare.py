@@ -146,12 +146,15 @@ def unit_values(group: pd.DataFrame) -> tuple[str, pd.DataFrame, pd.Series]:
     return "seed", wide, group.groupby("explainer")["seed"].nunique()
 
 
-def seed_tile_matrix(group: pd.DataFrame, explainer: str) -> np.ndarray:
-    """(seeds, tiles) values of one explainer (NaN where undefined): the input of the hierarchical bootstrap."""
-    g = group[(group["explainer"] == explainer) & (group["tile"] >= 0)]
-    return g.pivot_table(index="seed", columns="tile", values="value", aggfunc="mean", dropna=False).to_numpy(
-        dtype=np.float64
-    )
+def seed_tile_matrices(group: pd.DataFrame) -> dict[str, np.ndarray]:
+    """Per explainer, its (seeds, tiles) values (NaN where undefined): the input of the hierarchical bootstrap.
+
+    One reshaping for the whole group: rows and columns are the seeds and tiles of any explainer, so an
+    explainer's matrix may hold NaN for seeds or tiles it lacks, which the bootstrap drops like undefined values
+    (its resamples do not depend on them)."""
+    per_tile = group[group["tile"] >= 0]
+    wide = per_tile.groupby(["explainer", "seed", "tile"])["value"].mean().unstack("tile")
+    return {str(e): wide.xs(e, level="explainer").to_numpy(dtype=np.float64) for e in wide.index.unique("explainer")}
 
 
 @dataclass(frozen=True)
@@ -376,11 +379,10 @@ def summarize(
                     )
             names = [e for e in explainers if e in wide.columns]
             cis = {}
+            matrices = seed_tile_matrices(group) if unit == "tile" else {}
             for e in names:
                 if unit == "tile":
-                    cis[e] = stats.hierarchical_bootstrap_ci(
-                        seed_tile_matrix(group, e), confidence, n_resamples, seed=seed
-                    )
+                    cis[e] = stats.hierarchical_bootstrap_ci(matrices[e], confidence, n_resamples, seed=seed)
                 else:
                     cis[e] = stats.bootstrap_ci(wide[e].to_numpy(), confidence, n_resamples, seed=seed)
             if not any(np.isfinite(cis[e].mean) for e in names):

@@ -12,6 +12,7 @@ clipped to [0, 1].
 from __future__ import annotations
 
 import textwrap
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -177,13 +178,30 @@ GALLERY_WIDTH = 7.0  # inches: a page's text width
 GALLERY_MAPS_PER_PART = 6
 
 
+def gallery_map_names(keys: Iterable[str], explainers: list[str]) -> list[str]:
+    """The explainers a gallery shows, in their order: the run's explainers first, then any other map."""
+    keys = list(keys)
+    names = [e for e in explainers if f"map__{e}" in keys]
+    return names + sorted(k[5:] for k in keys if k.startswith("map__") and k[5:] not in names)
+
+
+def gallery_part_count(keys: Iterable[str], explainers: list[str]) -> int:
+    """Pages of :func:`gallery_figures` for an artifact with these keys (at least one)."""
+    return max(1, -(-len(gallery_map_names(keys, explainers)) // GALLERY_MAPS_PER_PART))
+
+
 def gallery_figures(
-    data: dict[str, np.ndarray], explainers: list[str], title: str, max_tiles: int = 6
+    data: dict[str, np.ndarray],
+    explainers: list[str],
+    title: str,
+    max_tiles: int = 6,
+    parts: Iterable[int] | None = None,
 ) -> tuple[list[Figure], list[str]]:
     """The heatmap gallery as page-wide figures: rows are tiles (the first of every class first), columns
     natural and false colour, planted structures, verified evidence and up to six explainers per figure
     (more explainers: more figures, each repeating the tile columns). Colour bars for the per-tile map
-    scales and for the evidence sit under each figure."""
+    scales and for the evidence sit under each figure. ``parts``: only these pages (1-based; each page is
+    the same figure whichever others are drawn), e.g. to draw pages in different processes."""
     notes: list[str] = []
     images_all = np.asarray(data["images"])
     targets_all = data.get("targets")
@@ -197,8 +215,7 @@ def gallery_figures(
     natural, false = stretch(images, nat_idx), stretch(images, fc_idx)
     planted = np.asarray(data["planted"])[rows] if "planted" in data else None
     evidence = np.asarray(data["evidence"])[rows] if "evidence" in data else None
-    names = [e for e in explainers if f"map__{e}" in data]
-    names += sorted(k[5:] for k in data if k.startswith("map__") and k[5:] not in names)
+    names = gallery_map_names(data, explainers)
     chunks = [names[i : i + GALLERY_MAPS_PER_PART] for i in range(0, len(names), GALLERY_MAPS_PER_PART)] or [[]]
     tiles, classes = data.get("tiles"), data.get("class_names")
     if targets_all is not None and classes is not None:
@@ -207,7 +224,10 @@ def gallery_figures(
             notes.append(f"{title}: the run's gallery tiles hold no tile of class {', '.join(missing)}")
     ev_max = float(np.nanmax(evidence)) if evidence is not None and evidence.size else 1.0
     figs = []
+    wanted = set(range(1, len(chunks) + 1) if parts is None else parts)
     for part, chunk in enumerate(chunks, start=1):
+        if part not in wanted:
+            continue
         cols = ["natural\ncolour", "false\ncolour"]
         cols += ["planted"] if planted is not None else []
         cols += ["verified\nevidence"] if evidence is not None else []

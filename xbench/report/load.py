@@ -42,6 +42,11 @@ class Artifact:
         with np.load(self.path, allow_pickle=False) as data:
             return {k: data[k] for k in data.files}
 
+    def keys(self) -> list[str]:
+        """The arrays' names, read from the archive's index without reading the arrays."""
+        with np.load(self.path, allow_pickle=False) as data:
+            return list(data.files)
+
 
 @dataclass
 class RunSet:

@@ -228,25 +228,30 @@ def make_figures(
     def emit(make, stem: str, section: str, title: str, caption: str) -> None:
         units.append(lambda notes: draw(make, stem, section, title, caption, notes))
 
-    def gallery(a, title: str, notes: list[str]) -> list[F.FigureFile]:
+    def gallery(a, title: str, part: int, parts: int, notes: list[str]) -> list[F.FigureFile]:
+        """One page of an artifact's gallery (pages are units of their own: two processes share a long
+        gallery); the artifact's notes are the same on every page and are kept once, with the first."""
         try:
-            pages, more = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles)
+            pages, more = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles, parts=[part])
         except Exception as exc:  # one odd artifact must not sink the whole report
-            notes.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
+            if part == 1:
+                notes.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
             return []
-        notes.extend(more)
-        files = []
-        for k, page in enumerate(pages, start=1):
-            stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{k}" if len(pages) > 1 else "")
-            part = f" (part {k} of {len(pages)})" if len(pages) > 1 else ""
-            files += draw(
-                lambda page=page: page, stem, "gallery", f"Heatmap gallery: {title}{part}", CAPTIONS["gallery"], notes
-            )
-        return files
+        if part == 1:
+            notes.extend(more)
+        stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{part}" if parts > 1 else "")
+        suffix = f" (part {part} of {parts})" if parts > 1 else ""
+        return draw(lambda: pages[0], stem, "gallery", f"Heatmap gallery: {title}{suffix}", CAPTIONS["gallery"], notes)
 
     for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
         title = f"{a.task}, model {a.model}, seed {a.seed}"
-        units.append(functools.partial(gallery, a, title))
+        try:
+            parts = F.gallery_part_count(a.keys(), summary.explainers)
+        except Exception as exc:  # an unreadable archive: one note in its place
+            note(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
+            continue
+        for part in range(1, parts + 1):
+            units.append(functools.partial(gallery, a, title, part, parts))
     if runs.curves is not None:
         for (task, model), c in runs.curves.groupby(["task", "model"], sort=False):
             title = f"{task}, model {model}"

@@ -11,7 +11,7 @@ import signal
 import threading
 import time
 import traceback
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -62,6 +62,8 @@ class Prepared:
     concept_sets: dict[str, np.ndarray] | None
     planted_coverage: np.ndarray | None = None  # float32 (N, H, W): max coverage of the driving types
     band_spread: np.ndarray | None = None  # (C,) per-band standard deviation of the training split
+    # metrics' work that does not depend on the explainer (MetricInputs.shared_work), kept for its other cells
+    metric_work: dict = field(default_factory=dict, repr=False)
 
 
 def gallery_positions(targets: np.ndarray, count: int) -> np.ndarray:
@@ -472,6 +474,7 @@ def _compute_cell(
         cost=explanation.cost,
         seed=int(cell.seed),
         batch_size=int(prep.task.run["batch_size"]),
+        shared=prep.metric_work,
     )
     # Metrics that re-run the explainer many times (sanity, stability) may be scored on the first K explained
     # tiles only (metric setting `tiles`); metrics on the same K share one inputs object and its cache.
