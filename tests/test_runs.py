@@ -165,3 +165,33 @@ def test_bad_task_stops_before_any_work(tmp_path):
 
 def test_unknown_executor_is_a_usage_error(tmp_path, capsys):
     assert cli_main(["run", str(TINY), "--out", str(tmp_path / "x"), "--executor", "slurm"]) == 2
+
+
+def test_run_folder_keeps_the_tiles_attributes_the_breakdowns_read(first_run, tmp_path):
+    # The run writes each test tile's class, main planted type and its coverage (tiles.parquet): the report's
+    # breakdowns read them instead of synthesizing the test split again from the task file, and they must be the
+    # attributes of the tiles the task's test split holds (rebuilt here from the task, as older folders are).
+    from xbench.data import tiles_from_pack
+    from xbench.report.breakdown import tile_attributes
+    from xbench.tasks import build_task_data, load_task
+
+    out, _ = first_run
+    written = pd.read_parquet(out / "tiles.parquet")
+    task = load_task(TINY)
+    test = build_task_data(task).test
+    expected = tiles_from_pack("tiny", test, [t for t in test.mask_names if t not in task.lookalike_types])
+    pd.testing.assert_frame_equal(written, expected)
+    manifest = json.loads((out / "manifest.json").read_text())
+    log: list[str] = []
+    pd.testing.assert_frame_equal(tile_attributes([out], [manifest], log), expected)
+    assert not log
+    # a run of another task into the same folder keeps this task's rows
+    (tmp_path / "other.parquet").write_bytes((out / "tiles.parquet").read_bytes())
+    other = written.assign(task="other")
+    other.to_parquet(out / "tiles.parquet", index=False)
+    try:
+        run_task(TINY, out)
+        both = pd.read_parquet(out / "tiles.parquet")
+        assert sorted(set(both["task"])) == ["other", "tiny"] and len(both) == 2 * len(written)
+    finally:
+        (out / "tiles.parquet").write_bytes((tmp_path / "other.parquet").read_bytes())

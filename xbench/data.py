@@ -14,11 +14,14 @@ import zipfile
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, BinaryIO
+from typing import TYPE_CHECKING, Any, BinaryIO
 
 import numpy as np
 
 from xbench.errors import XbenchInputError
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 DEFAULT_BANDS = ("blue", "green", "red", "nir", "swir1", "swir2")
 
@@ -203,7 +206,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
 
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
-            write_npz(fh, arrays, stored=REFLECTANCE_ARRAYS)
+            write_npz_archive(fh, arrays, stored=REFLECTANCE_ARRAYS)
 
     atomic_write(path, write)
     return path
@@ -214,7 +217,7 @@ def save_pack(pack: TilePack, path: str | Path) -> Path:
 REFLECTANCE_ARRAYS = ("images", "twins")
 
 
-def write_npz(fh: BinaryIO, arrays: dict[str, np.ndarray], stored: tuple[str, ...] = ()) -> None:
+def write_npz_archive(fh: BinaryIO, arrays: dict[str, np.ndarray], stored: tuple[str, ...] = ()) -> None:
     """``numpy.savez_compressed`` with the arrays named in ``stored`` kept uncompressed (numpy offers no
     per-array choice). ``numpy.load`` reads the archive like any other ``.npz``."""
     with zipfile.ZipFile(fh, mode="w", compression=zipfile.ZIP_DEFLATED) as archive:
@@ -321,3 +324,32 @@ def load_pack(path: str | Path) -> TilePack:
     except Exception as exc:  # truncated members, bad zip entries, bad JSON
         raise XbenchInputError(str(path), f"damaged .npz tile pack ({type(exc).__name__}: {exc})") from None
     return validate_pack(pack, str(path))
+
+
+# per-tile attributes for the report's breakdowns by class, structure type and coverage
+TILE_COLUMNS = ["task", "tile", "class_name", "main_type", "coverage"]
+
+
+def tiles_from_pack(task: str, pack: TilePack, human_types: list[str] | None = None) -> pd.DataFrame:
+    """One row per tile of the pack (columns :data:`TILE_COLUMNS`): class name, the planted type with the
+    largest coverage among ``human_types`` (default: every type) and its share of the tile ("none" when
+    nothing is planted). The run writes it as ``tiles.parquet``; the report's breakdowns read it."""
+    import pandas as pd
+
+    names = [str(n) for n in pack.mask_names]
+    keep = [i for i, n in enumerate(names) if human_types is None or n in human_types]
+    if pack.coverage is not None:
+        share = np.asarray(pack.coverage, dtype=np.float64)[:, keep].mean(axis=(2, 3))
+    else:
+        share = np.asarray(pack.masks, dtype=np.float64)[:, keep].mean(axis=(2, 3))
+    main = share.argmax(axis=1) if keep else np.zeros(len(pack.labels), int)
+    top = share[np.arange(len(main)), main] if keep else np.zeros(len(main))
+    return pd.DataFrame(
+        {
+            "task": task,
+            "tile": np.arange(len(pack.labels)),
+            "class_name": [str(pack.class_names[int(c)]) for c in pack.labels],
+            "main_type": [names[keep[m]] if t > 0 else "none" for m, t in zip(main, top, strict=True)],
+            "coverage": top,
+        }
+    )

@@ -1,63 +1,39 @@
 """Breakdowns users ask for: per class, per structure type, per structure coverage, and models side by side.
 
 Per-tile attributes (class, the structure type that covers most of the tile, its coverage share) come from a
-run folder's ``tiles.parquet`` when it has one (columns ``task, tile, class_name, main_type, coverage``), else
-from the task's test split rebuilt from its task file (deterministic; used only when the file's hash equals
-the manifest's ``task_hash``, so the tiles are the ones the run explained). Without either, the breakdowns
-by tile are left out with a note; the side-by-side tables need only the summary table.
+run folder's ``tiles.parquet`` (columns ``task, tile, class_name, main_type, coverage``, written by the run),
+else (folders written before it was) from the task's test split rebuilt from its task file (deterministic;
+used only when the file's hash equals the manifest's ``task_hash``, so the tiles are the ones the run
+explained). Without either, the breakdowns by tile are left out with a note; the side-by-side tables need
+only the summary table.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from xbench.data import TILE_COLUMNS, tiles_from_pack
 from xbench.report import tables as T
 from xbench.report.recommend import ASPECTS, CONTROLS, _choose_column
+from xbench.runs.store import read_table
 
-if TYPE_CHECKING:
-    from xbench.data import TilePack
-
-TILE_COLUMNS = ["task", "tile", "class_name", "main_type", "coverage"]
 COVERAGE_BINS = (0.0, 0.01, 0.05, 1.0)  # share of the tile covered by its main planted structure type
 COVERAGE_LABELS = ("< 1 %", "1-5 %", ">= 5 %")
-
-
-def tiles_from_pack(task: str, pack: TilePack, human_types: list[str] | None = None) -> pd.DataFrame:
-    """One row per test tile: class name, the planted type with the largest coverage and its share."""
-    names = [str(n) for n in pack.mask_names]
-    keep = [i for i, n in enumerate(names) if human_types is None or n in human_types]
-    if pack.coverage is not None:
-        share = np.asarray(pack.coverage, dtype=np.float64)[:, keep].mean(axis=(2, 3))
-    else:
-        share = np.asarray(pack.masks, dtype=np.float64)[:, keep].mean(axis=(2, 3))
-    main = share.argmax(axis=1) if keep else np.zeros(len(pack.labels), int)
-    top = share[np.arange(len(main)), main] if keep else np.zeros(len(main))
-    return pd.DataFrame(
-        {
-            "task": task,
-            "tile": np.arange(len(pack.labels)),
-            "class_name": [str(pack.class_names[int(c)]) for c in pack.labels],
-            "main_type": [names[keep[m]] if t > 0 else "none" for m, t in zip(main, top, strict=True)],
-            "coverage": top,
-        }
-    )
 
 
 def tile_attributes(dirs: list[Path], manifests: list[dict[str, Any]], log: list[str]) -> pd.DataFrame | None:
     """Per-tile attributes of every run folder (see the module docstring); notes go to ``log``."""
     frames = []
     for d, m in zip(dirs, manifests, strict=True):
-        path = Path(d) / "tiles.parquet"
-        if path.is_file():
-            frame = pd.read_parquet(path)
-            if set(TILE_COLUMNS) <= set(frame.columns):
+        if (Path(d) / "tiles.parquet").is_file():  # written by the run (older run folders lack it)
+            frame = read_table(d, "tiles.parquet", log)
+            if frame is not None:
                 frames.append(frame[TILE_COLUMNS])
                 continue
-            log.append(f"{path}: missing columns {sorted(set(TILE_COLUMNS) - set(frame.columns))}; not used")
         frame = _rebuild(m, log)
         if frame is not None:
             frames.append(frame)

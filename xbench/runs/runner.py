@@ -15,6 +15,7 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from xbench import __version__
+from xbench.data import tiles_from_pack
 from xbench.runs.execute import Prepared, gallery_positions, prefetch_concept_sets, prepare, task_and_data
 from xbench.runs.executors import CellJob, LocalPool, executor_for, import_backends
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
@@ -413,6 +414,16 @@ def assemble(
         ]
         reliance = pd.concat([earlier_reliance[keep], reliance], ignore_index=True) if any(keep) else reliance
     write_table(out / "reliance.parquet", reliance)
+
+    # per test tile: class, main planted structure type and its coverage, for the report's breakdowns (which
+    # otherwise rebuild the test split from the task file)
+    if preps:
+        test = next(iter(preps.values())).data.test
+        tiles = tiles_from_pack(task.name, test, [t for t in test.mask_names if t not in task.lookalike_types])
+        earlier_tiles = read_table(out, "tiles.parquet", [])
+        if earlier_tiles is not None and (earlier_tiles["task"] != task.name).any():  # other tasks' rows stay
+            tiles = pd.concat([earlier_tiles[earlier_tiles["task"] != task.name], tiles], ignore_index=True)
+        write_table(out / "tiles.parquet", tiles)
 
     cells_meta = []
     for cid in [c.cell_id for c in grid.cells] + [c for c in order if c not in grid_ids]:

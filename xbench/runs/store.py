@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from xbench.data import atomic_write, file_sha256
+from xbench.data import REFLECTANCE_ARRAYS, TILE_COLUMNS, atomic_write, file_sha256, write_npz_archive
 from xbench.errors import XbenchInputError
 
 RECORD_COLUMNS = ["run_id", "task", "model", "seed", "explainer", "metric", "truth", "tile", "value"]
@@ -58,6 +58,7 @@ RUN_TABLES = {
     "reliance.parquet": RELIANCE_COLUMNS,
     "concepts.parquet": CONCEPT_COLUMNS,
     "reasons.parquet": REASON_COLUMNS,
+    "tiles.parquet": TILE_COLUMNS,  # per test tile: class, main planted type, its coverage (report breakdowns)
 }
 # What identifies a cell's place in a run folder, whatever its content key: a cell of the same identity with
 # another key is an earlier version of it (before a change of settings, weights, pack or recipe).
@@ -95,7 +96,7 @@ def write_table(path: Path, frame: pd.DataFrame) -> None:
 def write_npz(path: Path, arrays: dict[str, np.ndarray]) -> None:
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
-            np.savez_compressed(fh, allow_pickle=True, **arrays)  # numpy's default, stated for mypy
+            write_npz_archive(fh, arrays, stored=REFLECTANCE_ARRAYS)
 
     atomic_write(Path(path), write)
 
