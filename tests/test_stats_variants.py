@@ -106,3 +106,39 @@ def test_kendall_tau_and_flip_flags_by_hand():
     assert any("flips" in f for f in flags) and any("oracle no longer beats random" in f for f in flags)
     same, flags = variant_sensitivity(base, {"same": base}, ["gradient", "grad-cam", "occlusion"])
     assert same.iloc[0].kendall_tau == pytest.approx(1.0) and not same.iloc[0].flipped and not flags
+
+
+def test_variant_cells_reuse_the_main_runs_maps_and_record_what_they_would_compute(tmp_path, one_torch_thread):
+    # A variant that changes only metric settings scores the maps the main run made (same model, seed, explainer
+    # and settings): its cells must not explain again, and its records must equal those of the variant run alone
+    # in a process that has nothing kept (the reference: every map computed afresh). A variant that changes an
+    # explainer's settings (gradient's reduce) explains again.
+    import xbench.explainers as explainers_module
+    from xbench.runs.execute import release_process_caches
+
+    task = tiny_with_variants(tmp_path)
+    chosen = {"explainers": ["gradient", "grad-cam", "random", "oracle"], "metrics": ["deletion-auc", "mass-accuracy"]}
+    explained: list[str] = []
+    original = explainers_module.explain
+
+    def counting_explain(key, *args, **kwargs):
+        explained.append(key)
+        return original(key, *args, **kwargs)
+
+    release_process_caches()
+    explainers_module.explain = counting_explain
+    try:
+        run_task(task, tmp_path / "main", variant=None, **chosen)
+    finally:
+        explainers_module.explain = original
+    # main run: each explainer once; the variant: only gradient again (its settings changed), nothing else
+    assert sorted(explained) == sorted(chosen["explainers"] + ["gradient"])
+    release_process_caches()
+    run_task(task, tmp_path / "alone", variant="zero-baseline", **chosen)
+    reused = pd.read_parquet(tmp_path / "main" / "variants" / "zero-baseline" / "records.parquet")
+    fresh = pd.read_parquet(tmp_path / "alone" / "records.parquet")
+    keep = ["model", "seed", "explainer", "metric", "truth", "tile", "value"]
+    pd.testing.assert_frame_equal(
+        reused[reused.metric != "seconds"][keep].reset_index(drop=True),
+        fresh[fresh.metric != "seconds"][keep].reset_index(drop=True),
+    )

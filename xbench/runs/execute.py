@@ -7,6 +7,7 @@ from the training cache; the runner trains them on the client before cells are d
 
 from __future__ import annotations
 
+import json
 import signal
 import threading
 import time
@@ -64,6 +65,9 @@ class Prepared:
     band_spread: np.ndarray | None = None  # (C,) per-band standard deviation of the training split
     # metrics' work that does not depend on the explainer (MetricInputs.shared_work), kept for its other cells
     metric_work: dict = field(default_factory=dict, repr=False)
+    # this model's explanations by (explainer, settings) with their self-checks: a task's protocol variants
+    # score the same maps under other metric settings and take them from here (``explanation_key``)
+    explanations: dict = field(default_factory=dict, repr=False)
 
 
 def gallery_positions(targets: np.ndarray, count: int) -> np.ndarray:
@@ -446,7 +450,16 @@ def _compute_cell(
     prep = prepare(task_path, cell.model, cell.seed, need_concepts="concept-sets" in needs)
     handle = prep.trained.handle
     context = explain_context(prep, cell)
-    explanation = explain(cell.explainer, handle, prep.images, prep.targets, context=context, **cell.explainer_settings)
+    reuse = explanation_key(cell)
+    kept = prep.explanations.get(reuse)
+    if kept is None:  # explained once per model and settings: a protocol variant's cell reuses the maps
+        explanation = explain(
+            cell.explainer, handle, prep.images, prep.targets, context=context, **cell.explainer_settings
+        )
+        kept = prep.explanations[reuse] = (explanation, dict(context.self_checks or {}))
+    else:
+        explanation = kept[0]
+        context.self_checks = dict(kept[1])
     t_explained = time.perf_counter()
 
     importance, relied, lookalikes, unused = type_groups(prep)
@@ -555,6 +568,7 @@ def _compute_cell(
     gallery = gallery_positions(prep.targets, int(prep.task.run["gallery_tiles"]))
     cell_result: dict[str, Any] = {
         "status": "ok",
+        "explanation": kept,  # back to the client's prepared model (not stored): for the task's variants
         "records": records,
         "curves": pd.DataFrame(curves, columns=CURVE_COLUMNS),
         "concepts": pd.DataFrame(concepts, columns=CONCEPT_COLUMNS),
@@ -595,6 +609,20 @@ def _compute_cell(
             "score_changes": np.asarray(report.score_changes, dtype=np.float64),
         }
     return cell_result
+
+
+def explanation_key(cell: Cell) -> tuple[str, str]:
+    """What an explanation of a prepared model depends on besides the model and its tiles: the explainer and
+    its settings (the seed is the prepared model's)."""
+    return cell.explainer, json.dumps(cell.explainer_settings, sort_keys=True, default=str)
+
+
+def keep_explanation(prep: Prepared, cell: Cell, result: dict[str, Any]) -> None:
+    """Keep a cell's explanation (computed here or by a worker) in the prepared model for later runs of the
+    task's variants in this process (and their workers, which get the prepared models)."""
+    kept = result.pop("explanation", None)
+    if kept is not None:
+        prep.explanations.setdefault(explanation_key(cell), kept)
 
 
 @dataclass

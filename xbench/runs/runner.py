@@ -16,7 +16,14 @@ from tqdm.auto import tqdm
 
 from xbench import __version__
 from xbench.data import tiles_from_pack
-from xbench.runs.execute import Prepared, gallery_positions, prefetch_concept_sets, prepare, task_and_data
+from xbench.runs.execute import (
+    Prepared,
+    gallery_positions,
+    keep_explanation,
+    prefetch_concept_sets,
+    prepare,
+    task_and_data,
+)
 from xbench.runs.executors import CellJob, LocalPool, executor_for, import_backends
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
@@ -192,6 +199,7 @@ def run_task(
         import_backends()  # once per process, as the workers do when they start: not in the first cell's time
     bar = tqdm(total=len(pending), desc="cells", disable=not progress, unit="cell")
     for cell, result in run_for(jobs_list):
+        keep_explanation(preps[(cell.model, cell.seed)], cell, result)  # for the variants' cells
         store.commit(cell.cell_id, result)
         if result["status"] == "ok":
             summary.cells_done += 1
