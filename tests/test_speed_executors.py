@@ -257,6 +257,26 @@ def _noop_wait() -> None:
     return None
 
 
+def test_a_local_dask_cluster_runs_prefetched_work_on_a_worker(tmp_path):
+    # As the pool does: work asked for while the cluster is still starting (the runner asks at once) is
+    # submitted when the client connects, and runs in a worker process (a file only it can have written).
+    pytest.importorskip("dask.distributed")
+    from xbench.runs.executors import DaskCluster
+
+    flag = tmp_path / "flag"
+    cluster = DaskCluster(None, 2)
+    try:
+        cluster.prefetch(flag.touch)
+        cluster._thread.join(timeout=120)
+        assert cluster.error is None and len(cluster._prefetched) == 1
+        cluster._prefetched[0].result(timeout=120)
+        assert flag.is_file()
+        worker = next(iter(cluster.client.scheduler_info()["workers"].values()))
+        assert worker["name"] == "xbench-worker-1"  # the one worker process ran it
+    finally:
+        cluster.close()
+
+
 def test_prefetched_concept_sets_are_the_ones_a_cell_would_make(small_task_file, monkeypatch, tmp_path):
     # The worker writes the sets to the disk cache and keeps nothing in memory; the cell's process then reads
     # exactly the arrays it would have synthesized itself.

@@ -450,8 +450,26 @@ class DaskCluster:
         self.processes: list[subprocess.Popen] = []
         self.todo: list[CellJob] = []  # the local cluster's shared list of cells (emptied to stop its feeders)
         self._scattered: list[Any] = []  # the state's futures on a local cluster
+        self._prefetch: list[tuple[Callable[..., Any], tuple[Any, ...]]] = []
+        self._prefetched: list[Any] = []  # their futures (kept, so that dask does not drop them)
+        self._lock = threading.Lock()
         self._thread = threading.Thread(target=self._start, name="xbench-dask-start", daemon=True)
         self._thread.start()
+
+    def prefetch(self, fn: Callable[..., Any], *args: Any) -> None:
+        """Run ``fn(*args)`` on a worker before the cells, as :meth:`LocalPool.prefetch` does: submitted as
+        soon as the client is connected (now, or when the starting thread gets there); errors are ignored."""
+        with self._lock:
+            if self.client is None:
+                self._prefetch.append((fn, args))
+                return
+        self._submit_prefetch(fn, args)
+
+    def _submit_prefetch(self, fn: Callable[..., Any], args: tuple[Any, ...]) -> None:
+        try:
+            self._prefetched.append(self.client.submit(fn, *args, pure=False))
+        except Exception:  # noqa: BLE001 - the cell that needs the result makes it
+            pass
 
     def _start(self) -> None:
         import dask
@@ -480,6 +498,10 @@ class DaskCluster:
                     silence_logs=logging.ERROR,
                 )
                 self.client = Client(self.cluster)
+            with self._lock:  # work asked for before the client was connected
+                waiting, self._prefetch = self._prefetch, []
+            for fn, args in waiting:
+                self._submit_prefetch(fn, args)
             if self.cluster is None:  # a remote cluster's workers import while the client prepares
                 self.client.run(_warm_imports)
         except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
@@ -488,6 +510,7 @@ class DaskCluster:
     def close(self) -> None:
         self.todo.clear()  # feeder threads stop taking cells
         self._thread.join()
+        self._prefetched = []
         if self._scattered and self.client is not None:
             # released before the workers that hold them stop (else the scheduler logs lost data as an error)
             self.client.cancel(self._scattered)

@@ -24,7 +24,7 @@ from xbench.runs.execute import (
     prepare,
     task_and_data,
 )
-from xbench.runs.executors import CellJob, LocalPool, executor_for, import_backends
+from xbench.runs.executors import CellJob, DaskCluster, LocalPool, executor_for, import_backends
 from xbench.runs.grid import Grid, content_hash, expand_grid, package_versions, validate_task_keys
 from xbench.runs.store import (
     CELL_IDENTITY,
@@ -163,7 +163,7 @@ def run_task(
     from xbench.explainers import get_explainer
 
     _, data = task_and_data(task_path)
-    if isinstance(run_for, LocalPool) and any(
+    if isinstance(run_for, LocalPool | DaskCluster) and any(
         "concept-sets" in get_explainer(name).needs for name in dict.fromkeys(c.explainer for c in grid.cells)
     ):  # a worker makes TCAV's example sets while this process trains (the cell reads them from the cache)
         run_for.prefetch(prefetch_concept_sets, task_path, list(data.test.mask_names))
