@@ -434,6 +434,47 @@ def test_draw_units_keeps_order_and_redraws_what_a_dead_child_left():
     assert draw_units([], jobs=2) == [] and draw_units([unit(0)], jobs=2)[0][0][0][0] == 0
 
 
+def test_a_drawing_started_early_draws_while_the_caller_works_and_can_be_stopped(tmp_path):
+    # The report starts the gallery pages in a forked child before its statistics: the child draws while this
+    # process does other work, finish() joins in on what is left and returns the units' results in order; on an
+    # error path close() stops a child still drawing (its unit never finishes).
+    import os
+    import time
+
+    from xbench.report.drawing import Drawing, can_fork
+
+    if not can_fork():
+        pytest.skip("forks only on Linux")
+    parent = os.getpid()
+
+    def unit(i):
+        def run(notes):
+            time.sleep(0.05)
+            notes.append(f"note {i}")
+            return [(i, os.getpid())]
+
+        return run
+
+    drawing = Drawing([unit(i) for i in range(6)], jobs=2)
+    time.sleep(0.2)  # the caller's own work: the child has drawn some units meanwhile
+    out = drawing.finish()
+    assert [files[0][0] for files, _ in out] == list(range(6))
+    assert [notes for _, notes in out] == [[f"note {i}"] for i in range(6)]
+    pids = [files[0][1] for files, _ in out]
+    assert pids[0] != parent and parent in pids  # the child started first, this process joined in
+    flag = tmp_path / "finished"
+
+    def slow(notes):
+        time.sleep(30)
+        flag.write_text("done")
+        return []
+
+    drawing = Drawing([slow], jobs=2)
+    started = time.perf_counter()
+    drawing.close()
+    assert time.perf_counter() - started < 10 and not flag.exists() and drawing.process is None
+
+
 def test_figures_use_the_agg_canvas():
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 

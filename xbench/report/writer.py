@@ -31,8 +31,8 @@ from xbench.report import page as P
 from xbench.report import recommend as R
 from xbench.report import tables as T
 from xbench.report.bib import render_bib
-from xbench.report.compare import Column, Summary, summarize, variant_sensitivity
-from xbench.report.drawing import Unit, default_jobs, draw_units
+from xbench.report.compare import Column, Summary, order_explainers, summarize, variant_sensitivity
+from xbench.report.drawing import Drawing, Unit, default_jobs, draw_units
 from xbench.report.load import RunSet, load_runs
 from xbench.report.methods import methods_text
 
@@ -188,6 +188,64 @@ CAPTIONS = {
 }
 
 
+def _draw(
+    make, folder: Path, stem: str, section: str, title: str, caption: str, notes: list[str]
+) -> list[F.FigureFile]:
+    """Make one figure, save it as PNG and PDF, say why not in ``notes`` when it cannot be drawn."""
+    try:
+        fig = make()
+    except Exception as exc:  # one odd input must not sink the whole report
+        notes.append(f"figure {stem}: not drawn ({type(exc).__name__}: {exc})")
+        return []
+    if isinstance(fig, tuple):
+        fig, more = fig
+        notes.extend(more)
+    if fig is None:
+        notes.append(f"figure {stem}: nothing to draw")
+        return []
+    png, pdf = F.save(fig, folder, stem)
+    return [F.FigureFile(stem, section, title, caption, png, pdf)]
+
+
+def gallery_units(runs: RunSet, explainers: list[str], folder: Path, gallery_tiles: int) -> list[Unit]:
+    """One unit per page of every heatmap gallery: they need only the explainers' order, so the report starts
+    drawing them before its statistics (see :func:`write_report`)."""
+    units: list[Unit] = []
+
+    def gallery(a, title: str, part: int, parts: int, notes: list[str]) -> list[F.FigureFile]:
+        """One page of an artifact's gallery; the artifact's notes are the same on every page and are kept
+        once, with the first."""
+        try:
+            pages, more = F.gallery_figures(a.load(), explainers, title, gallery_tiles, parts=[part])
+        except Exception as exc:  # one odd artifact must not sink the whole report
+            if part == 1:
+                notes.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
+            return []
+        if part == 1:
+            notes.extend(more)
+        stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{part}" if parts > 1 else "")
+        suffix = f" (part {part} of {parts})" if parts > 1 else ""
+        caption = CAPTIONS["gallery"]
+        return _draw(lambda: pages[0], folder, stem, "gallery", f"Heatmap gallery: {title}{suffix}", caption, notes)
+
+    def note(text: str) -> Unit:
+        def unit(notes: list[str]) -> list[F.FigureFile]:
+            notes.append(text)
+            return []
+
+        return unit
+
+    for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
+        title = f"{a.task}, model {a.model}, seed {a.seed}"
+        try:
+            parts = F.gallery_part_count(a.keys(), explainers)
+        except Exception as exc:  # an unreadable archive: one note in its place
+            units.append(note(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})"))
+            continue
+        units += [functools.partial(gallery, a, title, part, parts) for part in range(1, parts + 1)]
+    return units
+
+
 def make_figures(
     runs: RunSet,
     summary: Summary,
@@ -197,26 +255,13 @@ def make_figures(
     gallery_tiles: int,
     costs: pd.DataFrame | None = None,
     jobs: int = 1,
+    galleries: Drawing | None = None,
 ) -> list[F.FigureFile]:
     """Every figure of the report, drawn and saved into ``folder`` (on two cores where ``jobs`` >= 2, see
-    :mod:`xbench.report.drawing`); notes go to ``log`` in the figures' order, whoever drew them."""
+    :mod:`xbench.report.drawing`); notes go to ``log`` in the figures' order, whoever drew them.
+    ``galleries``: the gallery pages already being drawn (:func:`gallery_units`), else drawn here."""
     units: list[Unit] = []
     styles = F.explainer_styles(summary.explainers)
-
-    def draw(make, stem: str, section: str, title: str, caption: str, notes: list[str]) -> list[F.FigureFile]:
-        try:
-            fig = make()
-        except Exception as exc:  # one odd input must not sink the whole report
-            notes.append(f"figure {stem}: not drawn ({type(exc).__name__}: {exc})")
-            return []
-        if isinstance(fig, tuple):
-            fig, more = fig
-            notes.extend(more)
-        if fig is None:
-            notes.append(f"figure {stem}: nothing to draw")
-            return []
-        png, pdf = F.save(fig, folder, stem)
-        return [F.FigureFile(stem, section, title, caption, png, pdf)]
 
     def note(text: str) -> None:  # a note between figures keeps its place in the log
         def unit(notes: list[str]) -> list[F.FigureFile]:
@@ -226,32 +271,10 @@ def make_figures(
         units.append(unit)
 
     def emit(make, stem: str, section: str, title: str, caption: str) -> None:
-        units.append(lambda notes: draw(make, stem, section, title, caption, notes))
+        units.append(lambda notes: _draw(make, folder, stem, section, title, caption, notes))
 
-    def gallery(a, title: str, part: int, parts: int, notes: list[str]) -> list[F.FigureFile]:
-        """One page of an artifact's gallery (pages are units of their own: two processes share a long
-        gallery); the artifact's notes are the same on every page and are kept once, with the first."""
-        try:
-            pages, more = F.gallery_figures(a.load(), summary.explainers, title, gallery_tiles, parts=[part])
-        except Exception as exc:  # one odd artifact must not sink the whole report
-            if part == 1:
-                notes.append(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
-            return []
-        if part == 1:
-            notes.extend(more)
-        stem = F.file_stem("gallery", a.task, a.model, a.seed) + (f"__part{part}" if parts > 1 else "")
-        suffix = f" (part {part} of {parts})" if parts > 1 else ""
-        return draw(lambda: pages[0], stem, "gallery", f"Heatmap gallery: {title}{suffix}", CAPTIONS["gallery"], notes)
-
-    for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
-        title = f"{a.task}, model {a.model}, seed {a.seed}"
-        try:
-            parts = F.gallery_part_count(a.keys(), summary.explainers)
-        except Exception as exc:  # an unreadable archive: one note in its place
-            note(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})")
-            continue
-        for part in range(1, parts + 1):
-            units.append(functools.partial(gallery, a, title, part, parts))
+    if galleries is None:
+        galleries = Drawing(gallery_units(runs, summary.explainers, folder, gallery_tiles), jobs=1)
     if runs.curves is not None:
         for (task, model), c in runs.curves.groupby(["task", "model"], sort=False):
             title = f"{task}, model {model}"
@@ -326,8 +349,9 @@ def make_figures(
                 f"Cost vs quality: {headline.label}",
                 CAPTIONS["cost"].format(label=headline.label),
             )
+    rest = draw_units(units, jobs)  # beside the gallery pages still being drawn, if any
     out: list[F.FigureFile] = []
-    for files, notes in draw_units(units, jobs):
+    for files, notes in galleries.finish() + rest:  # this process takes the gallery pages left, if any
         out += files
         log.extend(notes)
     return out
@@ -407,9 +431,15 @@ def write_report(
     mpl_logger = logging.getLogger("matplotlib")
     mpl_level = mpl_logger.level
     mpl_logger.setLevel(logging.ERROR)  # prints nothing: font notices would reach stderr
+    n_jobs = default_jobs() if jobs is None else jobs
+    galleries: Drawing | None = None
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
+            if figures:  # the gallery pages need only the explainers' order (summarize's): a forked child
+                # starts drawing them now, while this process computes the statistics
+                order = order_explainers(summary_records(runs, models), runs.manifests)
+                galleries = Drawing(gallery_units(runs, order, out / "figures", gallery_tiles), n_jobs)
             summary = summarize(
                 runs.records,
                 runs.manifests,
@@ -426,8 +456,8 @@ def write_report(
             recs = R.recommend(summary.table, runs.records, costs, summary.seeds, alpha=alpha)
             figs = (
                 make_figures(
-                    runs, summary, headline, out / "figures", log, gallery_tiles, costs,
-                    jobs=default_jobs() if jobs is None else jobs,
+                    runs, summary, headline, out / "figures", log, gallery_tiles, costs, jobs=n_jobs,
+                    galleries=galleries,
                 )
                 if figures
                 else []
@@ -449,6 +479,8 @@ def write_report(
             log += [f"no refs.bib entry for the citation of {u}" for u in cites.unmatched]
     finally:
         mpl_logger.setLevel(mpl_level)
+        if galleries is not None:
+            galleries.close()  # an error before the figures: the child stops (after finish: nothing to do)
     for w in caught:
         msg = f"{w.category.__name__}: {w.message}"
         if msg not in log:
