@@ -400,6 +400,19 @@ def test_figures_drawn_on_two_cores_are_the_same_files_and_notes(runs, report, t
     assert (report.out_dir / "report.log").read_text() == (serial.out_dir / "report.log").read_text()
 
 
+def _pid_unit(i: int, seconds: float):
+    """A drawing unit that takes ``seconds``, notes its index and returns (index, the drawing process's id)."""
+    import os
+    import time
+
+    def run(notes):
+        time.sleep(seconds)
+        notes.append(f"note {i}")
+        return [(i, os.getpid())]
+
+    return run
+
+
 def test_draw_units_keeps_order_and_redraws_what_a_dead_child_left():
     import os
     import time
@@ -407,16 +420,7 @@ def test_draw_units_keeps_order_and_redraws_what_a_dead_child_left():
     from xbench.report.drawing import can_fork, draw_units
 
     parent = os.getpid()
-
-    def unit(i):
-        def run(notes):
-            time.sleep(0.02)
-            notes.append(f"note {i}")
-            return [(i, os.getpid())]
-
-        return run
-
-    out = draw_units([unit(i) for i in range(8)], jobs=2)
+    out = draw_units([_pid_unit(i, 0.02) for i in range(8)], jobs=2)
     assert [files[0][0] for files, _ in out] == list(range(8))
     assert [notes for _, notes in out] == [[f"note {i}"] for i in range(8)]
     if can_fork():  # both processes drew some
@@ -431,7 +435,7 @@ def test_draw_units_keeps_order_and_redraws_what_a_dead_child_left():
 
     out = draw_units([dies_in_child] * 4, jobs=2)
     assert [files for files, _ in out] == [["drawn here"]] * 4
-    assert draw_units([], jobs=2) == [] and draw_units([unit(0)], jobs=2)[0][0][0][0] == 0
+    assert draw_units([], jobs=2) == [] and draw_units([_pid_unit(0, 0.0)], jobs=2)[0][0][0][0] == 0
 
 
 def test_a_drawing_started_early_draws_while_the_caller_works_and_can_be_stopped(tmp_path):
@@ -446,16 +450,7 @@ def test_a_drawing_started_early_draws_while_the_caller_works_and_can_be_stopped
     if not can_fork():
         pytest.skip("forks only on Linux")
     parent = os.getpid()
-
-    def unit(i):
-        def run(notes):
-            time.sleep(0.05)
-            notes.append(f"note {i}")
-            return [(i, os.getpid())]
-
-        return run
-
-    drawing = Drawing([unit(i) for i in range(6)], jobs=2)
+    drawing = Drawing([_pid_unit(i, 0.05) for i in range(6)], jobs=2)
     time.sleep(0.2)  # the caller's own work: the child has drawn some units meanwhile
     out = drawing.finish()
     assert [files[0][0] for files, _ in out] == list(range(6))
