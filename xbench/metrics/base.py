@@ -108,12 +108,7 @@ class MetricInputs:
 
     def cache_key(self, *parts: Any) -> tuple:
         """A key for shared work: the given parts plus a digest of the attributions and images."""
-        digest = hashlib.blake2b(digest_size=12)
-        for arr in (self.attributions, self.images, self.targets):
-            a = np.asarray(arr)
-            digest.update(repr((a.shape, a.dtype.str)).encode())
-            digest.update(array_digest(a))  # remembered for read-only arrays (the runner freezes both)
-        return (*parts, id(self.model), self.seed, digest.hexdigest())
+        return (*parts, id(self.model), self.seed, _arrays_digest(self.attributions, self.images, self.targets))
 
     def shared_work(self, compute: Callable[[], Any], *parts: Any) -> Any:
         """``compute()``, or its result kept in ``shared`` from an earlier explainer of the same model.
@@ -127,18 +122,25 @@ class MetricInputs:
         values are the same bits as computing them (the same calls on the same arrays)."""
         if self.shared is None or self.model is None:
             return compute()
-        digest = hashlib.blake2b(digest_size=12)
-        for arr in (self.images, self.targets, self.twins):
-            if arr is None:
-                digest.update(b"none")
-                continue
-            a = np.asarray(arr)
-            digest.update(repr((a.shape, a.dtype.str)).encode())
-            digest.update(array_digest(a))
-        key = (*parts, self.seed, id(self.model), self.model.weights_signature(), digest.hexdigest())
+        digest = _arrays_digest(self.images, self.targets, self.twins)
+        key = (*parts, self.seed, id(self.model), self.model.weights_signature(), digest)
         if key not in self.shared:
             self.shared[key] = _read_only(compute())
         return self.shared[key]
+
+
+def _arrays_digest(*arrays: np.ndarray | None) -> str:
+    """One digest of the arrays' shapes, dtypes and bytes (None counts as itself); ``array_digest`` remembers
+    the digest of read-only arrays (the runner freezes the images and maps), so they are hashed once."""
+    digest = hashlib.blake2b(digest_size=12)
+    for arr in arrays:
+        if arr is None:
+            digest.update(b"none")
+            continue
+        a = np.asarray(arr)
+        digest.update(repr((a.shape, a.dtype.str)).encode())
+        digest.update(array_digest(a))
+    return digest.hexdigest()
 
 
 def _read_only(value: Any) -> Any:

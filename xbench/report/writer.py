@@ -207,6 +207,16 @@ def _draw(
     return [F.FigureFile(stem, section, title, caption, png, pdf)]
 
 
+def _note_unit(text: str) -> Unit:
+    """A unit that draws nothing and adds ``text`` to the log in its place among the figures."""
+
+    def unit(notes: list[str]) -> list[F.FigureFile]:
+        notes.append(text)
+        return []
+
+    return unit
+
+
 def gallery_units(runs: RunSet, explainers: list[str], folder: Path, gallery_tiles: int) -> list[Unit]:
     """One unit per page of every heatmap gallery: they need only the explainers' order, so the report starts
     drawing them before its statistics (see :func:`write_report`)."""
@@ -228,19 +238,12 @@ def gallery_units(runs: RunSet, explainers: list[str], folder: Path, gallery_til
         caption = CAPTIONS["gallery"]
         return _draw(lambda: pages[0], folder, stem, "gallery", f"Heatmap gallery: {title}{suffix}", caption, notes)
 
-    def note(text: str) -> Unit:
-        def unit(notes: list[str]) -> list[F.FigureFile]:
-            notes.append(text)
-            return []
-
-        return unit
-
     for a in sorted(runs.galleries(), key=lambda a: (a.task, a.model, a.seed)):
         title = f"{a.task}, model {a.model}, seed {a.seed}"
         try:
             parts = F.gallery_part_count(a.keys(), explainers)
         except Exception as exc:  # an unreadable archive: one note in its place
-            units.append(note(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})"))
+            units.append(_note_unit(f"gallery {title}: not drawn ({type(exc).__name__}: {exc})"))
             continue
         units += [functools.partial(gallery, a, title, part, parts) for part in range(1, parts + 1)]
     return units
@@ -264,11 +267,7 @@ def make_figures(
     styles = F.explainer_styles(summary.explainers)
 
     def note(text: str) -> None:  # a note between figures keeps its place in the log
-        def unit(notes: list[str]) -> list[F.FigureFile]:
-            notes.append(text)
-            return []
-
-        units.append(unit)
+        units.append(_note_unit(text))
 
     def emit(make, stem: str, section: str, title: str, caption: str) -> None:
         units.append(lambda notes: _draw(make, folder, stem, section, title, caption, notes))
