@@ -119,6 +119,31 @@ def test_training_deterministic_and_cached(trained_small, monkeypatch: pytest.Mo
         assert 0 <= first.accuracy[f"{split}_accuracy"] <= 1
 
 
+def test_deterministic_block_sets_the_switch_without_loading_the_compiler() -> None:
+    """Inside ``deterministic_torch`` torch's deterministic mode is on (an op without a deterministic kernel
+    is refused or warned about, torch's documented behaviour) and the previous mode comes back after; in a
+    fresh process the block does not import torch's compiler packages (1.9 s of a cold process)."""
+    import subprocess
+    import sys
+
+    from xbench.models.train import deterministic_torch
+
+    before = torch.are_deterministic_algorithms_enabled()
+    with deterministic_torch(0):
+        assert torch.are_deterministic_algorithms_enabled()
+    assert torch.are_deterministic_algorithms_enabled() == before
+    code = (
+        "import sys, torch\n"
+        "from xbench.models.train import deterministic_torch\n"
+        "with deterministic_torch(0):\n"
+        "    assert torch.are_deterministic_algorithms_enabled()\n"
+        "assert not torch.are_deterministic_algorithms_enabled()\n"
+        "print(sorted(m for m in ('torch._dynamo', 'torch._inductor') if m in sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+
+
 def test_cache_entry_written_atomically(trained_small) -> None:
     entry = trained_small.trained.cache_dir
     assert (entry / "meta.json").is_file() and (entry / "weights.pt").is_file()

@@ -18,6 +18,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import sys
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -118,14 +119,28 @@ def deterministic_torch(seed: int, threads: int | None = None) -> Iterator[None]
     prev_threads = torch.get_num_threads()
     prev_det = torch.are_deterministic_algorithms_enabled()
     torch.set_num_threads(n_threads)
-    torch.use_deterministic_algorithms(True)
+    _set_deterministic_algorithms(True)
     try:
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(seed)
             yield
     finally:
-        torch.use_deterministic_algorithms(prev_det)
+        _set_deterministic_algorithms(prev_det)
         torch.set_num_threads(prev_threads)
+
+
+def _set_deterministic_algorithms(mode: bool) -> None:
+    """``torch.use_deterministic_algorithms(mode)`` without loading torch's compiler when it is not loaded.
+
+    The public switch also sets the compiler's (inductor's) own flag, and importing that package loads
+    torch._dynamo: 1.9 s of a cold process on a 2-core AVX2 machine, on the demo's critical path before
+    training. xbench never compiles a model, so while the compiler is not loaded the eager switch alone
+    is set (the same one the public function sets); once it is loaded, the public function sets both."""
+    eager_switch = getattr(torch._C, "_set_deterministic_algorithms", None)
+    if "torch._inductor" in sys.modules or eager_switch is None:
+        torch.use_deterministic_algorithms(mode)
+    else:
+        eager_switch(mode)
 
 
 # ---------------------------------------------------------------------------------------------------
